@@ -1,0 +1,1 @@
+"""The live dashboard (dearpygui), run in its own process."""

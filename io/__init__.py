@@ -1,0 +1,1 @@
+"""Controller links, frame codecs and signal conditioning."""

@@ -1,0 +1,76 @@
+"""The contracts the tick engine meets other parts through.
+
+The engine (plantrig.sim) knows nothing of links or devices; the composition root
+(plantrig.cli) builds objects from plantrig.io that satisfy these protocols and hands
+them to the engine. Every method here is called on the real-time thread: it must not
+block, must not allocate on the hot path where it can be avoided, and must never raise
+for bad controller input (count it and report an event instead).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Protocol
+
+import numpy as np
+from numpy.typing import NDArray
+
+Vector = NDArray[np.float64]
+
+
+@dataclass(frozen=True, slots=True)
+class Event:
+    """Something worth a line in the run record: a trip, a bad frame, a link loss."""
+
+    tick: int
+    time: float
+    kind: str
+    detail: str = ""
+
+
+class SignalChain(Protocol):
+    """Conditioning between engineering values and what crosses the link.
+
+    An actuator chain maps the controller's command (as decoded) to the plant input u;
+    a sensor chain maps the plant output y to the values sent to the controller.
+    """
+
+    def apply(self, tick: int, src: Vector, dst: Vector) -> None:
+        """Write the conditioned version of ``src`` into ``dst`` (same tick, in place)."""
+        ...
+
+    def reset(self) -> None:
+        """Forget history (delay lines, rate limiter memory, noise state is reseeded)."""
+        ...
+
+
+class ControllerLink(Protocol):
+    """A link to a controller under test, as the tick loop sees it. Never blocks."""
+
+    def open(self) -> None:
+        """Open the port or connect; called once before the first tick."""
+        ...
+
+    def receive(self, tick: int, t: float, out: Vector) -> bool:
+        """Copy the newest valid actuator command into ``out``; True if one arrived.
+
+        When nothing valid arrived ``out`` is left untouched (the engine holds the last
+        good command or applies the safe value, as the rig file says).
+        """
+        ...
+
+    def send(self, tick: int, t: float, values: Vector) -> None:
+        """Send the sensor values for this tick to the controller."""
+        ...
+
+    def drain_events(self) -> list[Event]:
+        """Events since the last call (bad frames, link lost, reconnects)."""
+        ...
+
+    def health(self) -> dict[str, float]:
+        """Counters and estimates: frames in/out, CRC errors, latency, ..."""
+        ...
+
+    def close(self) -> None:
+        """Release the port or connection; safe to call twice."""
+        ...
