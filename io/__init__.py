@@ -1,6 +1,17 @@
 """Controller links, frame codecs and signal conditioning."""
 
 from plantrig.io._cobs import CobsError, cobs_decode, cobs_encode
+from plantrig.io._conditioning import (
+    ActuatorChain,
+    ActuatorChannel,
+    ChainSpecError,
+    SensorChain,
+    SensorChannel,
+    build_actuator_chain,
+    build_sensor_chain,
+    counts_to_eng,
+    eng_to_counts,
+)
 from plantrig.io._crc import crc16
 from plantrig.io._frames import (
     MAX_CHANNELS,
@@ -46,4 +57,14 @@ __all__ = [
     "encode_frame",
     "encode_line",
     "xor_checksum",
+    # signal conditioning
+    "ActuatorChain",
+    "ActuatorChannel",
+    "ChainSpecError",
+    "SensorChain",
+    "SensorChannel",
+    "build_actuator_chain",
+    "build_sensor_chain",
+    "counts_to_eng",
+    "eng_to_counts",
 ]

@@ -89,7 +89,8 @@ def _to_counts(v: Vector, lo: Vector, span: Vector, top: Vector, out: Vector) ->
     np.divide(out, span, out=out)
     np.multiply(out, top, out=out)
     np.rint(out, out=out)
-    np.clip(out, 0.0, top, out=out)
+    np.maximum(out, 0.0, out=out)
+    np.minimum(out, top, out=out)
     return out
 
 
@@ -396,9 +397,10 @@ class SensorChain:
             np.mod(self._idx, self._ring_len, out=self._idx)
             np.multiply(self._idx, self.n_channels, out=self._idx)
             np.add(self._idx, self._cols, out=self._idx)
-            np.take(self._ring_flat, self._idx, out=w)
+            np.take(self._ring_flat, self._idx, out=w, mode="wrap")  # "raise" buffers out
             self._head = (head + 1) % self._ring_len
-        np.clip(w, self._lo, self._hi, out=w)
+        np.maximum(w, self._lo, out=w)
+        np.minimum(w, self._hi, out=w)
         if self._has_step.any():
             q = self._q
             np.divide(w, self._step, out=q)
@@ -438,6 +440,7 @@ class ActuatorChain:
         self._lo = _column([c.lo for c in ch])
         self._hi = _column([c.hi for c in ch])
         self._max_step = _column([c.rate * dt if math.isfinite(c.rate) and dt else 0.0 for c in ch])
+        self._min_step = -self._max_step
         self._has_dac, self._dac_lo, self._dac_span, self._dac_top = _converter_columns(
             [c.dac for c in ch]
         )
@@ -463,15 +466,18 @@ class ActuatorChain:
         # Bad entries are replaced now, so no inf arithmetic below; overwritten at the end.
         np.copyto(w, 0.0, where=self._bad)
         if self._has_dac.any():
-            np.clip(w, 0.0, self._dac_top, out=q)
+            np.maximum(w, 0.0, out=q)
+            np.minimum(q, self._dac_top, out=q)
             _to_eng(q, self._dac_lo, self._dac_span, self._dac_top, out=q)
             np.copyto(w, q, where=self._has_dac)
         np.multiply(w, self._gain, out=w)
         np.add(w, self._offset, out=w)
-        np.clip(w, self._lo, self._hi, out=w)
+        np.maximum(w, self._lo, out=w)
+        np.minimum(w, self._hi, out=w)
         if self._has_rate.any():
             np.subtract(w, self._last, out=q)
-            np.clip(q, -self._max_step, self._max_step, out=q)
+            np.maximum(q, self._min_step, out=q)
+            np.minimum(q, self._max_step, out=q)
             np.add(q, self._last, out=q)
             np.copyto(w, q, where=self._has_rate)
         np.isfinite(w, out=self._ok2)
