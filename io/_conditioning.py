@@ -18,7 +18,7 @@ Sensor channel keys (plant output y in engineering units -> value sent):
 ``offset``       float, added after the gain (default 0.0)
 ``noise_std``    float >= 0, standard deviation of added Gaussian noise, engineering
                  units (default 0.0); drawn from one numpy Generator seeded by the chain
-``delay_ticks``  int >= 0, transport delay in whole ticks (default 0)
+``delay_ticks``  int 0..100000, transport delay in whole ticks (default 0)
 ``lo``, ``hi``   floats, saturation range (default unbounded)
 ``step``         float > 0, quantization step: v -> round(v / step) * step
 ``adc_bits``     int 1..32, ADC resolution; needs ``adc_lo`` and ``adc_hi``
@@ -68,6 +68,7 @@ from numpy.typing import ArrayLike, NDArray
 Vector = NDArray[np.float64]
 
 MAX_BITS = 32
+MAX_DELAY_TICKS = 100_000  # 100 s at 1 kHz; the line holds (delay + 1) rows per channel
 
 
 class ChainSpecError(ValueError):
@@ -172,16 +173,12 @@ class _Reader:
         if key not in self.spec:
             return default
         v = self.spec[key]
-        if (
-            isinstance(v, bool)
-            or not isinstance(v, Real)
-            or not math.isfinite(float(v))
-            or float(v) != int(v)
-        ):
+        f = float(v) if isinstance(v, Real) and not isinstance(v, bool) else math.nan
+        if not f.is_integer():
             raise self.fail(key, f"expected a whole number, got {v!r}")
-        if not lo <= int(v) <= hi:
+        if not lo <= f <= hi:
             raise self.fail(key, f"expected {lo}..{hi}, got {v!r}")
-        return int(v)
+        return int(f)
 
     def flag(self, key: str, default: bool) -> bool:
         if key not in self.spec:
@@ -259,7 +256,7 @@ class SensorChannel:
             gain=r.real("gain", 1.0),
             offset=r.real("offset", 0.0),
             noise_std=noise_std,
-            delay_ticks=r.whole("delay_ticks", 0, 0, 1_000_000),
+            delay_ticks=r.whole("delay_ticks", 0, 0, MAX_DELAY_TICKS),
             lo=lo,
             hi=hi,
             step=step,
