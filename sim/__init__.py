@@ -1,1 +1,40 @@
-"""Plant models, the tick engine, the tape and run records (no device I/O)."""
+"""Plant models, the tick engine, the tape and run records (no device I/O).
+
+This is what other parts of plantrig (and users' scripts) may use; everything else in
+this package is private.
+"""
+
+from plantrig.sim._clock import Clock, VirtualClock, WallClock
+from plantrig.sim._contracts import ControllerLink, Event, SignalChain
+from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
+from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
+from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._plant import (
+    DiscretePlant,
+    LinearPlant,
+    LinearStepper,
+    ModelError,
+    OdePlant,
+    OdeStepper,
+    Plant,
+    from_state_space_object,
+    make_stepper,
+    zoh,
+)
+from plantrig.sim._recorder import read_journal
+from plantrig.sim._references import Ramp, Sine, Step, Table
+from plantrig.sim._rigfile import ControllerSpec, NamedReference, Rig, Signal, build_rig, load_rig
+from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
+from plantrig.sim._summary import ModelSummary, summarize
+from plantrig.sim._tape import MemoryTape, Tape, TapeOverflow, TapeReader
+
+__all__ = [
+    "Clock", "ControllerLink", "ControllerSpec", "DiscretePlant", "Engine", "Event",
+    "LinearPlant", "LinearStepper", "MemoryTape", "ModelError", "ModelSummary",
+    "NamedReference", "OdePlant", "OdeStepper", "OpenLoop", "Pid", "PidLoops", "Plant", "Ramp",
+    "Rig", "RigFileError", "RigIssue", "RunData", "RunOutcome", "Signal", "SignalChain", "Sine",
+    "StateFeedback", "Step", "Table", "Tape", "TapeOverflow", "TapeReader", "VirtualClock",
+    "WallClock", "build_controller", "build_rig", "from_state_space_object", "load_rig",
+    "make_stepper", "read_journal", "run_to_folder", "simulate", "simulate_inputs",
+    "summarize", "tick_columns", "zoh",
+]

@@ -1,0 +1,5 @@
+import sys
+
+from plantrig.cli import main
+
+sys.exit(main())

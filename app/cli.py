@@ -1,0 +1,124 @@
+"""The plantrig command line: the composition root that joins sim, io and gui.
+
+Exit codes: 0 success, 1 the run ended by fault, 2 a rig file or usage mistake.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import signal
+import sys
+from pathlib import Path
+from typing import Any
+
+from plantrig import CAUTION, __version__
+from plantrig.sim import RigFileError, load_rig, run_to_folder, summarize
+
+EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
+
+
+def _load(path: str):  # type: ignore[no-untyped-def]
+    try:
+        return load_rig(path)
+    except RigFileError as exc:
+        for issue in exc.issues:
+            print(f"error: {issue}", file=sys.stderr)
+        count = len(exc.issues)
+        print(f"{path}: {count} mistake{'s' if count != 1 else ''}; nothing was run",
+              file=sys.stderr)
+        raise SystemExit(EXIT_USAGE) from None
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    rig = _load(args.rig)
+    model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
+    print(f"{rig.path}: ok")
+    print(f"rig: {rig.name} — {rig.description}" if rig.description else f"rig: {rig.name}")
+    print(f"tick: {rig.tick:g} s ({1 / rig.tick:g} Hz), duration {rig.duration:g} s "
+          f"({rig.n_ticks} ticks), mode {rig.mode}, on overrun: {rig.on_overrun}")
+    for line in model.lines():
+        print(line)
+    for group, signals in (("states", rig.states), ("inputs", rig.inputs),
+                           ("outputs", rig.outputs)):
+        print(f"{group}: " + ", ".join(f"{s.name} [{s.unit}]" for s in signals))
+    print(f"controller: {rig.controller.kind}; references: "
+          + (", ".join(r.name for r in rig.references) or "none"))
+    return EXIT_OK
+
+
+def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
+    timing = summary["timing"]
+    print(f"run folder: {folder}")
+    print(f"ended: {summary['ended']} ({summary['reason']}); "
+          f"{summary['ticks_recorded']} of {summary['ticks_planned']} ticks recorded")
+    print(f"mode: {summary['mode']}; wall time {timing['wall_s']:.3f} s "
+          f"({timing['ticks_per_s']:.0f} ticks/s)")
+    if summary["mode"] == "realtime":
+        print(f"lateness p50 {timing['lateness_p50_s'] * 1e6:.1f} us, "
+              f"p99 {timing['lateness_p99_s'] * 1e6:.1f} us, "
+              f"max {timing['lateness_max_s'] * 1e6:.1f} us; "
+              f"overruns {timing['overruns']}, skipped slots {timing['skipped_slots']}; "
+              f"scheduler {timing['scheduler']}")
+    if summary["link"]:
+        print("link: " + ", ".join(f"{k} {v:g}" if isinstance(v, float) else f"{k} {v}"
+                                   for k, v in summary["link"].items()))
+    if summary["events"]:
+        print("events: " + ", ".join(f"{k} x{v}" for k, v in sorted(summary["events"].items())))
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    rig = _load(args.rig)
+    realtime = True if args.realtime else False if args.fast else None
+    if realtime or (realtime is None and rig.mode == "realtime"):
+        print(CAUTION, file=sys.stderr)
+    out = Path(args.out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        print(f"error: cannot create run folder parent {out}: {exc.strerror}", file=sys.stderr)
+        return EXIT_USAGE
+    folder, outcome, summary = run_to_folder(rig, out, realtime=realtime)
+    _print_outcome(folder, summary)
+    if args.json:
+        print(json.dumps(summary["timing"]))
+    return EXIT_OK if outcome.ended != "fault" else EXIT_FAULT
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="plantrig", description="A virtual plant on the controller test bench.",
+        epilog=CAUTION)
+    parser.add_argument("--version", action="version", version=f"plantrig {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("check", help="check a rig file and print the model summary",
+                       description="Check a rig file (every mistake at once) and print the "
+                                   "model summary: modes, stability, ranks, tick warnings.")
+    p.add_argument("rig", help="rig file (TOML)")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("run", help="run a rig and write a run folder",
+                       description="Run a rig closed-loop and write a run folder with the "
+                                   "tick data, a copy of the rig file and a summary.",
+                       epilog=CAUTION)
+    p.add_argument("rig", help="rig file (TOML)")
+    mode = p.add_mutually_exclusive_group()
+    mode.add_argument("--fast", action="store_true", help="as fast as possible (overrides rig)")
+    mode.add_argument("--realtime", action="store_true",
+                      help="paced to the wall clock (overrides rig)")
+    p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
+    p.add_argument("--json", action="store_true", help="also print timing as one JSON line")
+    p.set_defaults(func=cmd_run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    signal.signal(signal.SIGTERM, lambda *_: sys.exit(EXIT_FAULT))
+    return int(args.func(args))
+
+
+if __name__ == "__main__":
+    sys.exit(main())

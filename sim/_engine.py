@@ -1,0 +1,308 @@
+"""The tick loop: one fixed step, the same code in real time and as fast as possible.
+
+Order inside tick k (DESIGN.md), at plant time t_k = k * tick:
+
+    1. read link        the controller's newest command (or the built-in controller's,
+                        computed from the values sent at tick k-1 and r(t_k))
+    2. actuator chain   command -> plant input u_k (scaling, saturation, rate limit)
+    3. safety           non-finite inputs never reach the plant (last good u is held)
+    4. plant step       y_k = h(x_k, u_k), x_{k+1} = F(x_k, u_k)
+    5. sensor chain     y_k -> values for the controller
+    6. write link
+    7. record           one row on the tape: time, timing, r, command, u, y, sent, x_k
+
+Anything the model, the controller or a link raises ends the run through one stop path
+that records the error as an event; every row recorded up to then is kept.
+"""
+
+from __future__ import annotations
+
+import math
+import traceback
+from dataclasses import dataclass, field
+from typing import Protocol
+
+import numpy as np
+from numpy.typing import NDArray
+
+from plantrig.sim._clock import SPIN_NS, Clock, WallClock
+from plantrig.sim._contracts import ControllerLink, Event, SignalChain
+from plantrig.sim._controllers import Controller, OpenLoop, Pid, PidLoops, StateFeedback
+from plantrig.sim._plant import Stepper, make_stepper
+from plantrig.sim._realtime import RealtimeReport, realtime_process
+from plantrig.sim._rigfile import Rig
+
+Vector = NDArray[np.float64]
+START_LEAD_NS = 5_000_000
+META_COLUMNS = ("seq", "t", "lateness", "exec_time", "fresh")
+
+
+class TapeLike(Protocol):
+    def append(self, row: Vector) -> None: ...
+    def free(self) -> int: ...
+    def wait_for_room(self, timeout_s: float = 30.0) -> None: ...
+    def end(self) -> None: ...
+
+
+def tick_columns(rig: Rig) -> tuple[list[str], list[str]]:
+    """Column names and units of one tick record for ``rig``."""
+    names = list(META_COLUMNS)
+    units = ["", "s", "s", "s", ""]
+    for prefix, signals in (("ref", rig.references), ("cmd", rig.inputs), ("u", rig.inputs),
+                            ("y", rig.outputs), ("sent", rig.outputs), ("x", rig.states)):
+        for s in signals:
+            names.append(f"{prefix}:{s.name}")
+            units.append(s.unit)
+    return names, units
+
+
+def build_controller(rig: Rig) -> Controller | None:
+    """The built-in controller the rig file asks for (None for an external one)."""
+    spec = rig.controller
+    s = spec.settings
+    inputs = [i.name for i in rig.inputs]
+    outputs = [o.name for o in rig.outputs]
+    refs = [r.name for r in rig.references]
+    if spec.kind == "pid":
+        loops = []
+        for ls in s["loops"]:
+            drive = inputs.index(ls["drive"])
+            lo = ls["u_min"] if ls["u_min"] is not None else rig.inputs[drive].min
+            hi = ls["u_max"] if ls["u_max"] is not None else rig.inputs[drive].max
+            loops.append(Pid(measure=outputs.index(ls["measure"]), drive=drive,
+                             reference=refs.index(ls["reference"]), kp=ls["kp"], ki=ls["ki"],
+                             kd=ls["kd"], dt=rig.tick, tf=ls["derivative_filter"], u_min=lo,
+                             u_max=hi, anti_windup=ls["anti_windup"], tt=ls["tracking_time"]))
+        return PidLoops(loops)
+    if spec.kind == "state_feedback":
+        order = [refs.index(r) for r in s["references"]]
+        n_matrix = np.zeros((len(inputs), len(refs)))
+        n_matrix[:, order] = s["N"]
+        return StateFeedback(s["K"], n_matrix, np.array([i.min for i in rig.inputs]),
+                             np.array([i.max for i in rig.inputs]))
+    if spec.kind == "open_loop":
+        return OpenLoop([(inputs.index(i), refs.index(r)) for i, r in s["drive"].items()])
+    return None
+
+
+@dataclass
+class RunOutcome:
+    """How a run ended and what its timing was."""
+
+    ticks: int
+    ended: str                     # "completed", "stopped" or "fault"
+    reason: str
+    events: list[Event]
+    lateness_ns: NDArray[np.int64]
+    exec_ns: NDArray[np.int64]
+    overruns: int
+    skipped_slots: int
+    wall_s: float
+    realtime: RealtimeReport | None = None
+    link_health: dict[str, float] = field(default_factory=dict)
+
+    def timing(self, tick: float) -> dict[str, float | int | str | None]:
+        """Timing statistics for the summary (lateness only means something in real time)."""
+        late = self.lateness_ns[:self.ticks] / 1e9
+        work = self.exec_ns[:self.ticks] / 1e9
+
+        def pct(values: NDArray[np.float64], q: float) -> float:
+            return float(np.percentile(values, q)) if values.size else 0.0
+
+        return {
+            "ticks": self.ticks,
+            "wall_s": self.wall_s,
+            "ticks_per_s": self.ticks / self.wall_s if self.wall_s > 0 else 0.0,
+            "lateness_p50_s": pct(late, 50), "lateness_p99_s": pct(late, 99),
+            "lateness_max_s": float(late.max()) if late.size else 0.0,
+            "exec_p50_s": pct(work, 50), "exec_p99_s": pct(work, 99),
+            "exec_max_s": float(work.max()) if work.size else 0.0,
+            "overruns": self.overruns, "skipped_slots": self.skipped_slots,
+            "scheduler": self.realtime.scheduler if self.realtime else None,
+            "cpu": self.realtime.cpu if self.realtime else None,
+        }
+
+
+class Engine:
+    """Runs one rig for its duration, in real time or as fast as possible."""
+
+    def __init__(self, rig: Rig, tape: TapeLike, *, realtime: bool | None = None,
+                 clock: Clock | None = None, link: ControllerLink | None = None,
+                 actuator_chain: SignalChain | None = None,
+                 sensor_chain: SignalChain | None = None) -> None:
+        self.rig = rig
+        self.tape = tape
+        self.realtime = rig.mode == "realtime" if realtime is None else realtime
+        self.clock = clock or WallClock()
+        self.link = link
+        self.controller = build_controller(rig)
+        if self.controller is None and link is None:
+            raise ValueError(f"{rig.path}: controller.kind 'external' needs a link")
+        self.actuator_chain = actuator_chain
+        self.sensor_chain = sensor_chain
+        self.stepper: Stepper = make_stepper(rig.plant, rig.tick, rig.x0, rig.method,
+                                             rig.substeps)
+        self.columns, self.units = tick_columns(rig)
+        self.row = np.zeros(len(self.columns))
+        nr, m, p, n = len(rig.references), len(rig.inputs), len(rig.outputs), len(rig.states)
+        base = len(META_COLUMNS)
+        cuts = np.cumsum([base, nr, m, m, p, p, n])
+        self.r = self.row[cuts[0]:cuts[1]]
+        self.cmd = self.row[cuts[1]:cuts[2]]
+        self.u_rec = self.row[cuts[2]:cuts[3]]
+        self.y_rec = self.row[cuts[3]:cuts[4]]
+        self.sent = self.row[cuts[4]:cuts[5]]
+        self.x_rec = self.row[cuts[5]:cuts[6]]
+        self.safe_u = np.array([i.safe for i in rig.inputs], dtype=np.float64)
+        self.last_good_u = self.safe_u.copy()
+        self.events: list[Event] = []
+        self.stop_requested = False
+
+    def request_stop(self) -> None:
+        """Ask the loop to end after the current tick (from a signal handler, say)."""
+        self.stop_requested = True
+
+    def _event(self, tick: int, kind: str, detail: str = "") -> None:
+        self.events.append(Event(tick, tick * self.rig.tick, kind, detail))
+
+    def run(self) -> RunOutcome:
+        """Run every tick; whatever happens, end the tape and return the outcome."""
+        rig = self.rig
+        n_ticks = rig.n_ticks
+        tick_ns = int(round(rig.tick * 1e9))
+        lateness = np.zeros(n_ticks, dtype=np.int64)
+        exec_ns = np.zeros(n_ticks, dtype=np.int64)
+        overruns = skipped = done = 0
+        ended, reason = "completed", "duration reached"
+        report: RealtimeReport | None = None
+        self.cmd[:] = self.safe_u
+        # what the controller sees before tick 0: the output at x0 with the safe input
+        self.stepper.u[:] = self.safe_u
+        self.stepper.output_only(0.0)
+        if self.sensor_chain is not None:
+            self.sensor_chain.apply(-1, self.stepper.y, self.sent)
+        else:
+            self.sent[:] = self.stepper.y
+        refs = [r.waveform for r in rig.references]
+        stepper, row, tape, clock = self.stepper, self.row, self.tape, self.clock
+        controller, link = self.controller, self.link
+        actuator, sensor = self.actuator_chain, self.sensor_chain
+        cmd, r, u, sent = self.cmd, self.r, stepper.u, self.sent
+        hold_on_silence = rig.on_link_silence == "hold"
+        wall_start = clock.now_ns()
+        try:
+            if link is not None:
+                link.open()
+            with _maybe_realtime(self.realtime, tick_ns) as report:
+                start = clock.now_ns() + START_LEAD_NS
+                slot = 0
+                for k in range(n_ticks):
+                    if self.stop_requested:
+                        ended, reason = "stopped", "stop requested"
+                        break
+                    t = k * rig.tick
+                    if self.realtime:
+                        deadline = start + slot * tick_ns
+                        clock.sleep_until_ns(deadline)
+                        began = clock.now_ns()
+                        late = began - deadline
+                        lateness[k] = late
+                        if late >= tick_ns:
+                            overruns += 1
+                            if rig.on_overrun == "stop":
+                                self._event(k, "overrun", f"tick started {late / 1e6:.3f} ms "
+                                                          "late; on_overrun = 'stop'")
+                                ended, reason = "fault", "overrun"
+                                break
+                            if rig.on_overrun == "skip":
+                                missed = late // tick_ns
+                                slot += missed
+                                skipped += missed
+                        slot += 1
+                    else:
+                        began = 0
+                        if tape.free() <= 0:
+                            tape.wait_for_room()
+                    # 1. read link / built-in controller
+                    for i, ref in enumerate(refs):
+                        r[i] = ref.value(t)
+                    if link is not None:
+                        fresh = link.receive(k, t, cmd)
+                        if not fresh and not hold_on_silence:
+                            cmd[:] = self.safe_u
+                        for ev in link.drain_events():
+                            self.events.append(ev)
+                    else:
+                        controller.compute(t, sent, r, cmd)  # type: ignore[union-attr]
+                        fresh = True
+                    # 2. actuator chain
+                    if actuator is not None:
+                        actuator.apply(k, cmd, u)
+                    else:
+                        u[:] = cmd
+                    # 3. safety: a non-finite input never reaches the plant
+                    if not np.isfinite(u).all():
+                        self._event(k, "non_finite_input", f"u = {u.tolist()}; held last good")
+                        u[:] = self.last_good_u
+                    else:
+                        self.last_good_u[:] = u
+                    # 4. plant step
+                    self.x_rec[:] = stepper.x
+                    stepper.output_and_advance(t)
+                    self.y_rec[:] = stepper.y
+                    # 5. sensor chain, 6. write link
+                    if sensor is not None:
+                        sensor.apply(k, stepper.y, sent)
+                    else:
+                        sent[:] = stepper.y
+                    if link is not None:
+                        link.send(k, t, sent)
+                    # 7. record
+                    row[1] = t
+                    row[4] = 1.0 if fresh else 0.0
+                    self.u_rec[:] = u
+                    if self.realtime:
+                        row[2] = lateness[k] / 1e9
+                        work = clock.now_ns() - began
+                        exec_ns[k] = work
+                        row[3] = work / 1e9
+                        if tape.free() <= 0:
+                            self._event(k, "tape_overflow", "recorder fell a full ring behind")
+                            ended, reason = "fault", "tape overflow"
+                            done = k
+                            break
+                    tape.append(row)
+                    done = k + 1
+                    if not math.isfinite(stepper.x.sum()):
+                        self._event(k, "non_finite_state", f"x = {stepper.x.tolist()}")
+                        ended, reason = "fault", "plant state became NaN or infinite"
+                        break
+        except Exception as exc:  # the one stop path for model, controller and link errors
+            self._event(done, "error", "".join(
+                traceback.format_exception_only(type(exc), exc)).strip())
+            ended, reason = "fault", f"{type(exc).__name__}: {exc}"
+        finally:
+            tape.end()
+            health: dict[str, float] = {}
+            if link is not None:
+                try:
+                    health = link.health()
+                    self.events.extend(link.drain_events())
+                finally:
+                    link.close()
+        wall_s = (clock.now_ns() - wall_start) / 1e9
+        self._event(done, "run_end", f"{ended}: {reason}")
+        return RunOutcome(done, ended, reason, self.events, lateness, exec_ns, overruns,
+                          skipped, wall_s, report, health)
+
+
+class _NoRealtime:
+    def __enter__(self) -> None:
+        return None
+
+    def __exit__(self, *exc: object) -> None:
+        return None
+
+
+def _maybe_realtime(enabled: bool, tick_ns: int):  # type: ignore[no-untyped-def]
+    return realtime_process(tick_ns, SPIN_NS) if enabled else _NoRealtime()

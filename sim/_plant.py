@@ -1,0 +1,302 @@
+"""Plant models and their fixed-step discretisation.
+
+Every plant meets the engine through one contract (after python-control's
+``dynamics``/``output`` pair): a *stepper* that, for the input held over one tick
+(zero-order hold), gives the output of this tick and the state of the next:
+
+    y_k     = h(t_k, x_k, u_k)        (D feed-through: u_k reaches y_k in the same tick)
+    x_{k+1} = F(t_k, x_k, u_k)        (exact ZOH for LTI, RK4 or Euler substeps for ODEs)
+
+The engine knows nothing of the model's kind.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.linalg
+import scipy.signal
+from numpy.typing import NDArray
+
+Vector = NDArray[np.float64]
+Matrix = NDArray[np.float64]
+OdeFunction = Callable[[float, Vector, Vector, Mapping[str, Any]], Any]
+
+
+class ModelError(ValueError):
+    """A plant description that cannot be a model; ``key`` names the offending part."""
+
+    def __init__(self, key: str, message: str) -> None:
+        super().__init__(f"{key}: {message}")
+        self.key = key
+        self.reason = message
+
+
+def _as_matrix(name: str, value: Any) -> Matrix:
+    try:
+        array = np.array(value, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise ModelError(name, f"expected a matrix of numbers, found {value!r}") from exc
+    if array.ndim == 0:
+        array = array.reshape(1, 1)
+    elif array.ndim == 1:
+        array = array.reshape(1, -1) if name in ("C", "D") else array.reshape(-1, 1)
+    if array.ndim != 2:
+        raise ModelError(name, f"expected a 2-D matrix, found {array.ndim} dimensions")
+    if not np.all(np.isfinite(array)):
+        raise ModelError(name, "contains NaN or infinite entries")
+    return array
+
+
+def normalize_abcd(A: Any, B: Any, C: Any, D: Any) -> tuple[Matrix, Matrix, Matrix, Matrix]:
+    """Check shapes once and say exactly what is wrong (after scipy's abcd_normalize)."""
+    a, b, c = _as_matrix("A", A), _as_matrix("B", B), _as_matrix("C", C)
+    n = a.shape[0]
+    if a.shape != (n, n):
+        raise ModelError("A", f"has shape {a.shape}, expected a square matrix")
+    if b.shape[0] != n:
+        raise ModelError("B", f"has shape {b.shape}, expected ({n}, m) to match A")
+    if c.shape[1] != n:
+        raise ModelError("C", f"has shape {c.shape}, expected (p, {n}) to match A")
+    m, p = b.shape[1], c.shape[0]
+    d = np.zeros((p, m)) if D is None else _as_matrix("D", D)
+    if d.shape != (p, m):
+        raise ModelError("D", f"has shape {d.shape}, expected ({p}, {m}) from C and B")
+    return a, b, c, d
+
+
+@dataclass(frozen=True)
+class LinearPlant:
+    """Continuous LTI plant x' = A x + B u, y = C x + D u."""
+
+    A: Matrix
+    B: Matrix
+    C: Matrix
+    D: Matrix
+
+    @classmethod
+    def from_matrices(cls, A: Any, B: Any, C: Any, D: Any = None) -> LinearPlant:
+        return cls(*normalize_abcd(A, B, C, D))
+
+    @classmethod
+    def from_transfer_function(cls, num: Any, den: Any) -> LinearPlant:
+        """SISO transfer function num(s)/den(s), highest power first, to state space.
+
+        Uses scipy.signal.tf2ss (controllable canonical form); a non-proper transfer
+        function cannot be simulated causally and is refused.
+        """
+        num_a = np.atleast_1d(np.array(num, dtype=np.float64))
+        den_a = np.atleast_1d(np.array(den, dtype=np.float64))
+        if num_a.ndim != 1 or den_a.ndim != 1:
+            raise ModelError("num", "expected 1-D coefficient lists (SISO)")
+        den_a = np.trim_zeros(den_a, "f")
+        num_a = np.trim_zeros(num_a, "f")
+        if den_a.size == 0:
+            raise ModelError("den", "denominator is all zeros")
+        if num_a.size == 0:
+            num_a = np.zeros(1)
+        if num_a.size > den_a.size:
+            raise ModelError(
+                "num", f"order {num_a.size - 1} exceeds denominator order {den_a.size - 1}"
+                " (improper transfer function)")
+        if den_a.size == 1:
+            return cls.from_matrices(np.zeros((0, 0)), np.zeros((0, 1)), np.zeros((1, 0)),
+                                     [[num_a[-1] / den_a[0]]])
+        a, b, c, d = scipy.signal.tf2ss(num_a, den_a)
+        return cls.from_matrices(a, b, c, d)
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        """(states, inputs, outputs)."""
+        return self.A.shape[0], self.B.shape[1], self.C.shape[0]
+
+    def dynamics(self, t: float, x: Vector, u: Vector, params: Mapping[str, Any]) -> Vector:
+        return self.A @ x + self.B @ u
+
+    def output(self, t: float, x: Vector, u: Vector, params: Mapping[str, Any]) -> Vector:
+        return self.C @ x + self.D @ u
+
+
+@dataclass(frozen=True)
+class DiscretePlant:
+    """Discrete LTI plant x[k+1] = Ad x[k] + Bd u[k], y = C x + D u, with its sample time."""
+
+    Ad: Matrix
+    Bd: Matrix
+    C: Matrix
+    D: Matrix
+    dt: float
+
+    @classmethod
+    def from_matrices(cls, A: Any, B: Any, C: Any, D: Any, dt: float) -> DiscretePlant:
+        a, b, c, d = normalize_abcd(A, B, C, D)
+        if not (isinstance(dt, int | float) and dt > 0 and np.isfinite(dt)):
+            raise ModelError("dt", f"expected a positive sample time in seconds, found {dt!r}")
+        return cls(a, b, c, d, float(dt))
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return self.Ad.shape[0], self.Bd.shape[1], self.C.shape[0]
+
+
+@dataclass(frozen=True)
+class OdePlant:
+    """Nonlinear plant x' = f(t, x, u, p), y = h(t, x, u, p) with parameters p."""
+
+    f: OdeFunction
+    h: OdeFunction
+    n_states: int
+    n_inputs: int
+    n_outputs: int
+    params: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return self.n_states, self.n_inputs, self.n_outputs
+
+    def dynamics(self, t: float, x: Vector, u: Vector, params: Mapping[str, Any]) -> Vector:
+        return np.asarray(self.f(t, x, u, params), dtype=np.float64)
+
+    def output(self, t: float, x: Vector, u: Vector, params: Mapping[str, Any]) -> Vector:
+        return np.asarray(self.h(t, x, u, params), dtype=np.float64)
+
+
+Plant = LinearPlant | DiscretePlant | OdePlant
+
+
+def zoh(A: Matrix, B: Matrix, dt: float) -> tuple[Matrix, Matrix]:
+    """Exact zero-order-hold discretisation by one matrix exponential.
+
+    expm([[A, B], [0, 0]] * dt) = [[Ad, Bd], [0, I]]  (Van Loan's block form; the same
+    construction scipy.signal.cont2discrete uses for method='zoh').
+    """
+    n, m = B.shape
+    block = np.zeros((n + m, n + m))
+    block[:n, :n] = A
+    block[:n, n:] = B
+    phi = scipy.linalg.expm(block * dt)
+    return phi[:n, :n].copy(), phi[:n, n:].copy()
+
+
+class LinearStepper:
+    """One tick of a discrete LTI model as a single matrix product.
+
+    [x_{k+1}; y_k] = [[Ad, Bd], [C, D]] @ [x_k; u_k]. The engine writes u into the
+    ``u`` view and reads ``x`` and ``y``; nothing is allocated per tick.
+    """
+
+    def __init__(self, Ad: Matrix, Bd: Matrix, C: Matrix, D: Matrix, x0: Vector) -> None:
+        n, m, p = Ad.shape[0], Bd.shape[1], C.shape[0]
+        self.n_states, self.n_inputs, self.n_outputs = n, m, p
+        self._block = np.ascontiguousarray(np.block([[Ad, Bd], [C, D]]))
+        self._xu = np.zeros(n + m)
+        self._next = np.zeros(n + p)
+        self.x = self._xu[:n]
+        self.u = self._xu[n:]
+        self.y = self._next[n:]
+        self._x_next = self._next[:n]
+        self.x0 = np.array(x0, dtype=np.float64)
+        self.reset()
+
+    def reset(self) -> None:
+        self.x[:] = self.x0
+        self.u[:] = 0.0
+        self._next[:] = 0.0
+
+    def output_only(self, t: float) -> None:
+        """Compute y from the present (x, u) without advancing."""
+        np.dot(self._block[self.n_states:], self._xu, out=self.y)
+
+    def output_and_advance(self, t: float) -> None:
+        """Compute y_k from (x_k, u_k), then move x to x_{k+1}."""
+        np.dot(self._block, self._xu, out=self._next)
+        self.x[:] = self._x_next
+
+
+class OdeStepper:
+    """RK4 or forward Euler with an integer number of substeps per tick, u held (ZOH)."""
+
+    def __init__(self, plant: OdePlant, dt: float, method: str, substeps: int,
+                 x0: Vector) -> None:
+        if method not in ("rk4", "euler"):
+            raise ModelError("method", f"expected 'rk4' or 'euler', found {method!r}")
+        if not (isinstance(substeps, int) and substeps >= 1):
+            raise ModelError("substeps", f"expected a whole number >= 1, found {substeps!r}")
+        self.plant = plant
+        self.n_states, self.n_inputs, self.n_outputs = plant.shape
+        self.h_step = dt / substeps
+        self.substeps = substeps
+        self.method = method
+        self.x = np.zeros(self.n_states)
+        self.u = np.zeros(self.n_inputs)
+        self.y = np.zeros(self.n_outputs)
+        self.x0 = np.array(x0, dtype=np.float64)
+        self.params = plant.params
+        self.reset()
+
+    def reset(self) -> None:
+        self.x[:] = self.x0
+        self.u[:] = 0.0
+        self.y[:] = 0.0
+
+    def output_only(self, t: float) -> None:
+        """Compute y from the present (x, u) without advancing."""
+        self.y[:] = self.plant.output(t, self.x, self.u, self.params)
+
+    def output_and_advance(self, t: float) -> None:
+        f, p, u, h = self.plant.dynamics, self.params, self.u, self.h_step
+        self.y[:] = self.plant.output(t, self.x, u, p)
+        x = self.x.copy()
+        for i in range(self.substeps):
+            ti = t + i * h
+            if self.method == "rk4":
+                # classical fourth-order Runge-Kutta (Butcher tableau 1/6, 1/3, 1/3, 1/6)
+                k1 = f(ti, x, u, p)
+                k2 = f(ti + h / 2, x + h / 2 * k1, u, p)
+                k3 = f(ti + h / 2, x + h / 2 * k2, u, p)
+                k4 = f(ti + h, x + h * k3, u, p)
+                x = x + h / 6 * (k1 + 2 * k2 + 2 * k3 + k4)
+            else:
+                x = x + h * f(ti, x, u, p)
+        self.x[:] = x
+
+
+Stepper = LinearStepper | OdeStepper
+
+
+def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
+                 substeps: int = 1) -> Stepper:
+    """Build the per-tick stepper for any plant kind at tick ``dt`` seconds."""
+    n = plant.shape[0]
+    x_init = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64).reshape(-1)
+    if x_init.shape != (n,):
+        raise ModelError("x0", f"has {x_init.size} entries, expected {n} (one per state)")
+    if isinstance(plant, LinearPlant):
+        ad, bd = zoh(plant.A, plant.B, dt)
+        return LinearStepper(ad, bd, plant.C, plant.D, x_init)
+    if isinstance(plant, DiscretePlant):
+        if not np.isclose(plant.dt, dt, rtol=1e-9, atol=0.0):
+            raise ModelError("dt", f"sample time {plant.dt} s differs from the rig tick {dt} s;"
+                             " a discrete model runs only at its own sample time")
+        return LinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init)
+    return OdeStepper(plant, dt, method, substeps, x_init)
+
+
+def from_state_space_object(system: Any) -> LinearPlant | DiscretePlant:
+    """Accept a scipy.signal StateSpace or a python-control StateSpace object.
+
+    Continuous systems (dt None or 0) become LinearPlant; discrete ones DiscretePlant.
+    """
+    try:
+        a, b, c, d = system.A, system.B, system.C, system.D
+    except AttributeError as exc:
+        raise ModelError("system", f"{type(system).__name__} has no A, B, C, D") from exc
+    dt = getattr(system, "dt", None)
+    if dt is None or dt is False or dt == 0:
+        return LinearPlant.from_matrices(a, b, c, d)
+    if dt is True:
+        raise ModelError("system", "discrete system with unspecified sample time (dt=True)")
+    return DiscretePlant.from_matrices(a, b, c, d, float(dt))

@@ -1,0 +1,73 @@
+"""Making the tick loop's process fit for real time, and undoing it afterwards.
+
+FIELD-NOTES.md: a full garbage collection stalled the loop ~99 ms, so collect, freeze
+and disable the collector for the run; a busy thread delays wake-ups by one GIL switch
+interval, so lower it; SCHED_FIFO and a pinned core help where permitted, but a thread
+spinning close to 100 % under SCHED_FIFO gets throttled (50 ms stalls), so FIFO is used
+only when the spin window is under half the tick.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import gc
+import os
+import sys
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+
+FIFO_PRIORITY = 10
+SWITCH_INTERVAL_S = 1e-4
+
+
+@dataclass
+class RealtimeReport:
+    gc_frozen: bool = False
+    cpu: int | None = None
+    scheduler: str = "SCHED_OTHER"
+    notes: list[str] = field(default_factory=list)
+
+
+@contextlib.contextmanager
+def realtime_process(tick_ns: int, spin_ns: int) -> Iterator[RealtimeReport]:
+    """Apply what the OS allows for the duration of a real-time run; say what it was."""
+    report = RealtimeReport()
+    old_switch = sys.getswitchinterval()
+    old_affinity = os.sched_getaffinity(0) if hasattr(os, "sched_getaffinity") else None
+    old_policy = os.sched_getscheduler(0) if hasattr(os, "sched_getscheduler") else None
+    old_param = os.sched_getparam(0) if hasattr(os, "sched_getparam") else None
+    gc_was_enabled = gc.isenabled()
+    try:
+        gc.collect()
+        gc.freeze()
+        gc.disable()
+        report.gc_frozen = True
+        sys.setswitchinterval(SWITCH_INTERVAL_S)
+        if old_affinity and len(old_affinity) > 1:
+            cpu = max(old_affinity)
+            try:
+                os.sched_setaffinity(0, {cpu})
+                report.cpu = cpu
+            except OSError as exc:
+                report.notes.append(f"affinity not set: {exc.strerror}")
+        if old_policy is not None and spin_ns * 2 < tick_ns:
+            try:
+                os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(FIFO_PRIORITY))
+                report.scheduler = f"SCHED_FIFO {FIFO_PRIORITY}"
+            except OSError as exc:
+                report.notes.append(f"SCHED_FIFO not permitted ({exc.strerror}); "
+                                    "running under SCHED_OTHER")
+        elif old_policy is not None:
+            report.notes.append("tick too short to spin under SCHED_FIFO; SCHED_OTHER")
+        yield report
+    finally:
+        if old_policy is not None and old_param is not None:
+            with contextlib.suppress(OSError):
+                os.sched_setscheduler(0, old_policy, old_param)
+        if old_affinity:
+            with contextlib.suppress(OSError):
+                os.sched_setaffinity(0, old_affinity)
+        sys.setswitchinterval(old_switch)
+        gc.unfreeze()
+        if gc_was_enabled:
+            gc.enable()

@@ -1,0 +1,170 @@
+"""Running a rig: in memory for the Python API, or into a run folder for the CLI."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from plantrig import __version__
+from plantrig.sim._clock import Clock
+from plantrig.sim._contracts import ControllerLink, SignalChain
+from plantrig.sim._engine import Engine, RunOutcome, tick_columns
+from plantrig.sim._plant import Plant, from_state_space_object, make_stepper
+from plantrig.sim._recorder import read_journal, start_recorder
+from plantrig.sim._rigfile import Rig
+from plantrig.sim._summary import summarize
+from plantrig.sim._tape import MemoryTape, Tape, tape_dir
+
+RING_SECONDS = 10.0
+RING_MIN_ROWS = 4096
+
+
+@dataclass
+class RunData:
+    """A run's tick records as one array with named columns."""
+
+    columns: list[str]
+    units: list[str]
+    rows: NDArray[np.float64]
+    outcome: RunOutcome
+
+    def __getitem__(self, name: str) -> NDArray[np.float64]:
+        try:
+            return self.rows[:, self.columns.index(name)]
+        except ValueError:
+            raise KeyError(f"no column {name!r}; columns: {', '.join(self.columns)}") from None
+
+    @property
+    def t(self) -> NDArray[np.float64]:
+        return self["t"]
+
+
+def simulate(rig: Rig, *, realtime: bool = False, clock: Clock | None = None,
+             link: ControllerLink | None = None, actuator_chain: SignalChain | None = None,
+             sensor_chain: SignalChain | None = None) -> RunData:
+    """Run ``rig`` in this process, keeping every row in memory."""
+    columns, units = tick_columns(rig)
+    tape = MemoryTape(columns, rig.n_ticks)
+    engine = Engine(rig, tape, realtime=realtime, clock=clock, link=link,
+                    actuator_chain=actuator_chain, sensor_chain=sensor_chain)
+    outcome = engine.run()
+    return RunData(columns, units, tape.rows, outcome)
+
+
+def simulate_inputs(plant: Plant | Any, tick: float, u: NDArray[np.float64],
+                    x0: NDArray[np.float64] | None = None, method: str = "rk4",
+                    substeps: int = 1) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Open-loop response to an input sequence ``u`` (ticks x inputs), held per tick.
+
+    ``plant`` may be a plantrig plant or a scipy / python-control StateSpace object.
+    Returns (y, x): outputs y_k and states x_k for every tick k, through the same
+    stepper the engine uses.
+    """
+    if not isinstance(plant, Plant):
+        plant = from_state_space_object(plant)
+    stepper = make_stepper(plant, tick, x0, method, substeps)
+    u = np.asarray(u, dtype=np.float64).reshape(len(u), -1)
+    y = np.zeros((len(u), stepper.n_outputs))
+    x = np.zeros((len(u), stepper.n_states))
+    for k in range(len(u)):
+        x[k] = stepper.x
+        stepper.u[:] = u[k]
+        stepper.output_and_advance(k * tick)
+        y[k] = stepper.y
+    return y, x
+
+
+def ring_capacity(rig: Rig) -> int:
+    return max(RING_MIN_ROWS, min(rig.n_ticks, int(RING_SECONDS / rig.tick)))
+
+
+def new_run_folder(rig: Rig, out_dir: Path) -> Path:
+    stamp = _dt.datetime.now(_dt.UTC).strftime("%Y%m%d-%H%M%S")
+    folder = out_dir / f"{rig.name}-{stamp}"
+    suffix = 1
+    while folder.exists():
+        suffix += 1
+        folder = out_dir / f"{rig.name}-{stamp}-{suffix}"
+    folder.mkdir(parents=True)
+    return folder
+
+
+def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
+                  link: ControllerLink | None = None,
+                  actuator_chain: SignalChain | None = None,
+                  sensor_chain: SignalChain | None = None,
+                  folder: Path | None = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
+    """Run ``rig`` with the recorder in its own process; write the run folder.
+
+    The folder holds the rig file as given (and an ODE model's module), the tick data
+    (``ticks.npy``, one named float64 field per column), ``events.jsonl`` and
+    ``summary.json`` with the model summary and timing statistics.
+    """
+    folder = folder or new_run_folder(rig, out_dir)
+    shutil.copyfile(rig.path, folder / "rig.toml")
+    module = getattr(rig.plant, "f", None)
+    if module is not None:
+        source = Path(module.__code__.co_filename)
+        if source.is_file():
+            shutil.copyfile(source, folder / source.name)
+    columns, units = tick_columns(rig)
+    (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
+    tape_path = tape_dir() / f"plantrig-{folder.name}-{id(folder):x}.tape"
+    tape = Tape(tape_path, columns, ring_capacity(rig), units)
+    journal = folder / "ticks.journal"
+    status = folder / "recorder.json"
+    recorder = start_recorder(tape_path, journal, status)
+    started = _dt.datetime.now(_dt.UTC)
+    try:
+        engine = Engine(rig, tape, realtime=realtime, link=link,
+                        actuator_chain=actuator_chain, sensor_chain=sensor_chain)
+        outcome = engine.run()
+    finally:
+        tape.end()
+        recorder.join(timeout=60)
+        tape.close(unlink=True)
+    rows = read_journal(journal, len(columns))
+    structured = np.ascontiguousarray(rows).view(
+        np.dtype([(name, np.float64) for name in columns])).reshape(-1)
+    np.save(folder / "ticks.npy", structured)
+    journal.unlink()
+    with open(folder / "events.jsonl", "w") as f:
+        for ev in outcome.events:
+            f.write(json.dumps({"tick": ev.tick, "time": ev.time, "kind": ev.kind,
+                                "detail": ev.detail}) + "\n")
+    recorder_status = json.loads(status.read_text()) if status.exists() else {}
+    status.unlink(missing_ok=True)
+    model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
+    summary = {
+        "software": {"name": "plantrig", "version": __version__},
+        "rig": {"name": rig.name, "file": str(rig.path),
+                "sha256": hashlib.sha256(rig.path.read_bytes()).hexdigest(),
+                "tick_s": rig.tick, "duration_s": rig.duration},
+        "started_utc": started.isoformat(timespec="seconds"),
+        "mode": "realtime" if engine.realtime else "fast",
+        "ended": outcome.ended, "reason": outcome.reason,
+        "ticks_planned": rig.n_ticks, "ticks_recorded": int(rows.shape[0]),
+        "timing": outcome.timing(rig.tick),
+        "recorder": recorder_status,
+        "link": outcome.link_health,
+        "events": _count_kinds(outcome),
+        "model": model.as_dict(),
+        "columns": columns, "units": units,
+    }
+    (folder / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+    return folder, outcome, summary
+
+
+def _count_kinds(outcome: RunOutcome) -> dict[str, int]:
+    counts: dict[str, int] = {}
+    for ev in outcome.events:
+        counts[ev.kind] = counts.get(ev.kind, 0) + 1
+    return counts

@@ -1,0 +1,187 @@
+"""The tape: a ring of fixed-size tick records in a shared-memory file.
+
+Layout of the file (an np.memmap under /dev/shm, see FIELD-NOTES.md for why not
+multiprocessing.shared_memory): a header of eight int64 words, then ``capacity`` rows of
+``n_columns`` float64. Column 0 of every row is its sequence number. The writer marks a
+row invalid (-1) while it fills it, writes the data, then the sequence number, then
+advances the ``written`` counter; a reader checks the sequence number before and after
+copying, so a row overwritten during the copy is detected, never read torn.
+
+Header words: magic, version, n_columns, capacity, written, consumed (the slowest
+reader's acknowledged count, so a fast-mode writer can wait instead of overwriting),
+state (0 running, 1 ended), reserved.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+from numpy.typing import NDArray
+
+MAGIC = 0x5450_4152_5450  # "PTRAPT", a plantrig tape
+VERSION = 1
+HEADER_WORDS = 8
+W_MAGIC, W_VERSION, W_COLUMNS, W_CAPACITY, W_WRITTEN, W_CONSUMED, W_STATE = range(7)
+STATE_RUNNING, STATE_ENDED = 0, 1
+
+
+def tape_dir() -> Path:
+    """/dev/shm where it exists (RAM-backed), else the temporary folder."""
+    shm = Path("/dev/shm")
+    return shm if shm.is_dir() and os.access(shm, os.W_OK) else Path(tempfile.gettempdir())
+
+
+class TapeOverflow(RuntimeError):
+    """The writer would overwrite rows no reader has consumed."""
+
+
+class Tape:
+    """Writer side of the ring, owned by the tick loop."""
+
+    def __init__(self, path: Path, columns: list[str], capacity: int,
+                 units: list[str] | None = None) -> None:
+        self.path = Path(path)
+        self.columns = list(columns)
+        self.capacity = int(capacity)
+        n = len(columns)
+        size = (HEADER_WORDS + self.capacity * n) * 8
+        with open(self.path, "wb") as f:
+            f.truncate(size)
+        self._map = np.memmap(self.path, dtype=np.float64, mode="r+", shape=(size // 8,))
+        self.header = self._map[:HEADER_WORDS].view(np.int64)
+        self.rows = self._map[HEADER_WORDS:].reshape(self.capacity, n)
+        self.rows[:, 0] = -1.0
+        self.header[:] = [MAGIC, VERSION, n, self.capacity, 0, 0, STATE_RUNNING, 0]
+        meta = {"columns": self.columns, "units": units or [""] * n}
+        self.meta_path = self.path.with_suffix(".json")
+        self.meta_path.write_text(json.dumps(meta))
+        self.written = 0
+
+    def free(self) -> int:
+        """Rows that can be written before unread rows would be overwritten."""
+        return self.capacity - (self.written - int(self.header[W_CONSUMED]))
+
+    def append(self, row: NDArray[np.float64]) -> None:
+        """Copy one tick record into the ring (row[0] is ignored; the tape numbers rows)."""
+        slot = self.rows[self.written % self.capacity]
+        slot[0] = -1.0
+        slot[1:] = row[1:]
+        slot[0] = self.written
+        self.written += 1
+        self.header[W_WRITTEN] = self.written
+
+    def wait_for_room(self, timeout_s: float = 30.0) -> None:
+        """Fast mode only: block until a reader has freed a row (never in real time)."""
+        deadline = time.monotonic() + timeout_s
+        while self.free() <= 0:
+            if time.monotonic() > deadline:
+                raise TapeOverflow(f"{self.path}: no reader consumed rows for {timeout_s} s")
+            time.sleep(0.0005)
+
+    def end(self) -> None:
+        self.header[W_STATE] = STATE_ENDED
+        self._map.flush()
+
+    def close(self, unlink: bool = True) -> None:
+        del self.rows, self.header
+        self._map._mmap.close()  # type: ignore[attr-defined]
+        if unlink:
+            for p in (self.path, self.meta_path):
+                p.unlink(missing_ok=True)
+
+
+class MemoryTape:
+    """An in-process tape holding every row of a run, for the Python API and tests."""
+
+    def __init__(self, columns: list[str], capacity: int) -> None:
+        self.columns = list(columns)
+        self.rows = np.zeros((capacity, len(columns)))
+        self.written = 0
+
+    def free(self) -> int:
+        return len(self.rows) - self.written
+
+    def append(self, row: NDArray[np.float64]) -> None:
+        if self.written >= len(self.rows):
+            raise TapeOverflow("memory tape full: the run is longer than planned")
+        slot = self.rows[self.written]
+        slot[1:] = row[1:]
+        slot[0] = self.written
+        self.written += 1
+
+    def wait_for_room(self, timeout_s: float = 30.0) -> None:
+        if self.free() <= 0:
+            raise TapeOverflow("memory tape full: the run is longer than planned")
+
+    def end(self) -> None:
+        self.rows = self.rows[:self.written]
+
+
+class TapeReader:
+    """Reader side: copies new rows out in order and notices any it missed."""
+
+    def __init__(self, path: Path, acknowledge: bool = False) -> None:
+        self.path = Path(path)
+        self._map = np.memmap(self.path, dtype=np.float64, mode="r+" if acknowledge else "r")
+        self.header = self._map[:HEADER_WORDS].view(np.int64)
+        if int(self.header[W_MAGIC]) != MAGIC:
+            raise ValueError(f"{self.path}: not a plantrig tape")
+        n, cap = int(self.header[W_COLUMNS]), int(self.header[W_CAPACITY])
+        self.rows = self._map[HEADER_WORDS:HEADER_WORDS + n * cap].reshape(cap, n)
+        self.capacity, self.n_columns = cap, n
+        meta = json.loads(self.path.with_suffix(".json").read_text())
+        self.columns: list[str] = meta["columns"]
+        self.units: list[str] = meta["units"]
+        self.acknowledge = acknowledge
+        self.next_seq = 0
+        self.lost = 0
+
+    @property
+    def ended(self) -> bool:
+        return int(self.header[W_STATE]) == STATE_ENDED
+
+    @property
+    def written(self) -> int:
+        return int(self.header[W_WRITTEN])
+
+    def read_new(self, max_rows: int = 4096) -> NDArray[np.float64]:
+        """Rows written since the last call, oldest first (at most ``max_rows``)."""
+        written = self.written
+        if written - self.next_seq > self.capacity:
+            skipped = written - self.capacity - self.next_seq
+            self.lost += skipped
+            self.next_seq = written - self.capacity
+        count = min(written - self.next_seq, max_rows)
+        if count <= 0:
+            return np.empty((0, self.n_columns))
+        start = self.next_seq % self.capacity
+        first = min(count, self.capacity - start)
+        block = np.concatenate([self.rows[start:start + first], self.rows[:count - first]])
+        expected = np.arange(self.next_seq, self.next_seq + count, dtype=np.float64)
+        good = block[:, 0] == expected
+        if not good.all():
+            # overwritten while we copied: keep the valid prefix, count the rest as lost
+            stop = int(np.argmin(good))
+            block = block[:stop]
+            self.lost += count - stop
+        self.next_seq += count
+        if self.acknowledge:
+            self.header[W_CONSUMED] = self.next_seq
+        return block
+
+    def latest(self) -> NDArray[np.float64] | None:
+        """The newest complete row, for displays that only need the present."""
+        written = self.written
+        if written == 0:
+            return None
+        row = self.rows[(written - 1) % self.capacity].copy()
+        return row if row[0] == written - 1 else None
+
+    def close(self) -> None:
+        del self.rows, self.header
+        self._map._mmap.close()  # type: ignore[attr-defined]
