@@ -9,7 +9,8 @@ together with numpy, and ``apply`` allocates no arrays (every buffer is made at
 construction).
 
 Each channel is described by a plain dict (one table per channel in the rig file).
-Every key is optional; unknown keys are refused.
+Every key is optional; unknown keys are refused. A bad spec raises ChainSpecError (a
+ValueError) naming chain, channel and key, e.g. ``sensors[2].delay_ticks: ...``.
 
 Sensor channel keys (plant output y in engineering units -> value sent):
 
@@ -29,7 +30,8 @@ Sensor channel keys (plant output y in engineering units -> value sent):
 ``step`` and ``adc_bits`` exclude each other.
 
 Sensor order, fixed: gain/offset -> noise -> delay -> saturate (lo/hi) -> quantize
-(step, or ADC: eng -> counts clipped to 0..2^bits-1 -> counts or eng).
+(step, or ADC: eng -> counts clipped to 0..2^bits-1 -> counts or eng). A NaN plant
+output passes through as NaN: hiding a diverged plant is not this chain's job.
 
 Actuator channel keys (value received from the controller -> plant input u):
 
