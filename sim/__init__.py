@@ -5,6 +5,7 @@ this package is private.
 """
 
 from plantrig.sim._clock import Clock, VirtualClock, WallClock
+from plantrig.sim._commands import Command, CommandInbox
 from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
 from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
@@ -26,10 +27,10 @@ from plantrig.sim._references import Ramp, Sine, Step, Table
 from plantrig.sim._rigfile import ControllerSpec, NamedReference, Rig, Signal, build_rig, load_rig
 from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
 from plantrig.sim._summary import ModelSummary, summarize
-from plantrig.sim._tape import MemoryTape, Tape, TapeOverflow, TapeReader
+from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
 
 __all__ = [
-    "Clock", "ControllerLink", "ControllerSpec", "DiscretePlant", "Engine", "Event",
+    "Clock", "Command", "CommandInbox", "EventTape", "ControllerLink", "ControllerSpec", "DiscretePlant", "Engine", "Event",
     "LinearPlant", "LinearStepper", "MemoryTape", "ModelError", "ModelSummary",
     "NamedReference", "OdePlant", "OdeStepper", "OpenLoop", "Pid", "PidLoops", "Plant", "Ramp",
     "Rig", "RigFileError", "RigIssue", "RunData", "RunOutcome", "Signal", "SignalChain", "Sine",

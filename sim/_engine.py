@@ -26,11 +26,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim._clock import SPIN_NS, Clock, WallClock
+from plantrig.sim._commands import COMMAND_POLL_S, Command, CommandInbox
 from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import Controller, OpenLoop, Pid, PidLoops, StateFeedback
 from plantrig.sim._plant import Stepper, make_stepper
 from plantrig.sim._realtime import RealtimeReport, realtime_process
 from plantrig.sim._rigfile import Rig
+from plantrig.sim._tape import EventTape
 
 Vector = NDArray[np.float64]
 START_LEAD_NS = 5_000_000
@@ -129,8 +131,12 @@ class Engine:
     def __init__(self, rig: Rig, tape: TapeLike, *, realtime: bool | None = None,
                  clock: Clock | None = None, link: ControllerLink | None = None,
                  actuator_chain: SignalChain | None = None,
-                 sensor_chain: SignalChain | None = None) -> None:
+                 sensor_chain: SignalChain | None = None,
+                 commands: CommandInbox | None = None,
+                 event_tape: EventTape | None = None) -> None:
         self.rig = rig
+        self.commands = commands
+        self.event_tape = event_tape
         self.tape = tape
         self.realtime = rig.mode == "realtime" if realtime is None else realtime
         self.clock = clock or WallClock()
@@ -157,13 +163,53 @@ class Engine:
         self.last_good_u = self.safe_u.copy()
         self.events: list[Event] = []
         self.stop_requested = False
+        self.estop_latched = False
+        self.ref_override = np.full(nr, np.nan)
+        self.ref_names = [r.name for r in rig.references]
 
     def request_stop(self) -> None:
         """Ask the loop to end after the current tick (from a signal handler, say)."""
         self.stop_requested = True
 
     def _event(self, tick: int, kind: str, detail: str = "") -> None:
-        self.events.append(Event(tick, tick * self.rig.tick, kind, detail))
+        self._record_event(Event(tick, tick * self.rig.tick, kind, detail))
+
+    def _record_event(self, event: Event) -> None:
+        self.events.append(event)
+        if self.event_tape is not None:
+            self.event_tape.append(event.tick, event.time, event.kind, event.detail)
+
+    def _apply_command(self, k: int, command: Command) -> None:
+        """Act on one operator command; every command becomes an event."""
+        a = command.args
+        if command.kind == "stop":
+            self.stop_requested = True
+            self._event(k, "operator_stop", str(a.get("reason", "")))
+        elif command.kind == "estop":
+            self.estop_latched = True
+            self._event(k, "estop", "operator E-stop: inputs forced to safe values")
+        elif command.kind == "reset":
+            if self.estop_latched:
+                self.estop_latched = False
+                self._event(k, "reset", "E-stop released by operator")
+            else:
+                self._event(k, "reset_refused", "nothing is latched")
+        elif command.kind == "set_reference":
+            name = a.get("name")
+            try:
+                value = float(a.get("value"))  # type: ignore[arg-type]
+            except (TypeError, ValueError):
+                value = math.nan
+            if name in self.ref_names and math.isfinite(value):
+                self.ref_override[self.ref_names.index(name)] = value
+                self._event(k, "reference_set", f"{name} = {value:g}")
+            else:
+                self._event(k, "command_refused", f"set_reference {a!r}: unknown name or "
+                                                  "non-finite value")
+        elif command.kind == "mark_phase":
+            self._event(k, "phase", str(a.get("name", "")))
+        else:
+            self._event(k, "command_refused", f"{command.kind}: not available in this run")
 
     def run(self) -> RunOutcome:
         """Run every tick; whatever happens, end the tape and return the outcome."""
@@ -189,6 +235,8 @@ class Engine:
         actuator, sensor = self.actuator_chain, self.sensor_chain
         cmd, r, u, sent = self.cmd, self.r, stepper.u, self.sent
         hold_on_silence = rig.on_link_silence == "hold"
+        poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick)))
+        override = self.ref_override
         wall_start = clock.now_ns()
         try:
             if link is not None:
@@ -223,15 +271,18 @@ class Engine:
                         began = 0
                         if tape.free() <= 0:
                             tape.wait_for_room()
+                    if self.commands is not None and k % poll_every == 0:
+                        for command in self.commands.take():
+                            self._apply_command(k, command)
                     # 1. read link / built-in controller
                     for i, ref in enumerate(refs):
-                        r[i] = ref.value(t)
+                        r[i] = ref.value(t) if math.isnan(override[i]) else override[i]
                     if link is not None:
                         fresh = link.receive(k, t, cmd)
                         if not fresh and not hold_on_silence:
                             cmd[:] = self.safe_u
                         for ev in link.drain_events():
-                            self.events.append(ev)
+                            self._record_event(ev)
                     else:
                         controller.compute(t, sent, r, cmd)  # type: ignore[union-attr]
                         fresh = True
@@ -240,8 +291,11 @@ class Engine:
                         actuator.apply(k, cmd, u)
                     else:
                         u[:] = cmd
-                    # 3. safety: a non-finite input never reaches the plant
-                    if not np.isfinite(u).all():
+                    # 3. safety: a latched stop forces the safe state; a non-finite input
+                    #    never reaches the plant
+                    if self.estop_latched:
+                        u[:] = self.safe_u
+                    elif not np.isfinite(u).all():
                         self._event(k, "non_finite_input", f"u = {u.tolist()}; held last good")
                         u[:] = self.last_good_u
                     else:
@@ -282,16 +336,19 @@ class Engine:
                 traceback.format_exception_only(type(exc), exc)).strip())
             ended, reason = "fault", f"{type(exc).__name__}: {exc}"
         finally:
-            tape.end()
             health: dict[str, float] = {}
             if link is not None:
                 try:
                     health = link.health()
-                    self.events.extend(link.drain_events())
+                    for ev in link.drain_events():
+                        self._record_event(ev)
                 finally:
                     link.close()
+            self._event(done, "run_end", f"{ended}: {reason}")
+            if self.event_tape is not None:
+                self.event_tape.end()
+            tape.end()
         wall_s = (clock.now_ns() - wall_start) / 1e9
-        self._event(done, "run_end", f"{ended}: {reason}")
         return RunOutcome(done, ended, reason, self.events, lateness, exec_ns, overruns,
                           skipped, wall_s, report, health)
 

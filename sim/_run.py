@@ -15,13 +15,14 @@ from numpy.typing import NDArray
 
 from plantrig import __version__
 from plantrig.sim._clock import Clock
+from plantrig.sim._commands import CommandInbox
 from plantrig.sim._contracts import ControllerLink, SignalChain
 from plantrig.sim._engine import Engine, RunOutcome, tick_columns
 from plantrig.sim._plant import Plant, from_state_space_object, make_stepper
 from plantrig.sim._recorder import read_journal, start_recorder
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._summary import summarize
-from plantrig.sim._tape import MemoryTape, Tape, tape_dir
+from plantrig.sim._tape import EventTape, MemoryTape, Tape, tape_dir
 
 RING_SECONDS = 10.0
 RING_MIN_ROWS = 4096
@@ -101,12 +102,15 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                   link: ControllerLink | None = None,
                   actuator_chain: SignalChain | None = None,
                   sensor_chain: SignalChain | None = None,
-                  folder: Path | None = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
+                  folder: Path | None = None, commands: Any = None,
+                  on_tapes_ready: Any = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
     """Run ``rig`` with the recorder in its own process; write the run folder.
 
     The folder holds the rig file as given (and an ODE model's module), the tick data
     (``ticks.npy``, one named float64 field per column), ``events.jsonl`` and
-    ``summary.json`` with the model summary and timing statistics.
+    ``summary.json`` with the model summary and timing statistics. ``commands`` is a
+    queue of operator Commands; ``on_tapes_ready(tape_path, event_tape_path)`` is called
+    once both tapes exist (to start a dashboard on them).
     """
     folder = folder or new_run_folder(rig, out_dir)
     shutil.copyfile(rig.path, folder / "rig.toml")
@@ -119,27 +123,32 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
     tape_path = tape_dir() / f"plantrig-{folder.name}-{id(folder):x}.tape"
     tape = Tape(tape_path, columns, ring_capacity(rig), units)
+    event_tape_path = tape_path.with_suffix(".events")
+    event_tape = EventTape(event_tape_path)
     journal = folder / "ticks.journal"
     status = folder / "recorder.json"
-    recorder = start_recorder(tape_path, journal, status)
+    recorder = start_recorder(tape_path, journal, status, event_tape_path,
+                              folder / "events.jsonl")
+    if on_tapes_ready is not None:
+        on_tapes_ready(tape_path, event_tape_path)
     started = _dt.datetime.now(_dt.UTC)
     try:
         engine = Engine(rig, tape, realtime=realtime, link=link,
-                        actuator_chain=actuator_chain, sensor_chain=sensor_chain)
+                        actuator_chain=actuator_chain, sensor_chain=sensor_chain,
+                        commands=CommandInbox(commands) if commands is not None else None,
+                        event_tape=event_tape)
         outcome = engine.run()
     finally:
         tape.end()
+        event_tape.end()
         recorder.join(timeout=60)
         tape.close(unlink=True)
+        event_tape.close(unlink=True)
     rows = read_journal(journal, len(columns))
     structured = np.ascontiguousarray(rows).view(
         np.dtype([(name, np.float64) for name in columns])).reshape(-1)
     np.save(folder / "ticks.npy", structured)
     journal.unlink()
-    with open(folder / "events.jsonl", "w") as f:
-        for ev in outcome.events:
-            f.write(json.dumps({"tick": ev.tick, "time": ev.time, "kind": ev.kind,
-                                "detail": ev.detail}) + "\n")
     recorder_status = json.loads(status.read_text()) if status.exists() else {}
     status.unlink(missing_ok=True)
     model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)

@@ -185,3 +185,71 @@ class TapeReader:
     def close(self) -> None:
         del self.rows, self.header
         self._map._mmap.close()  # type: ignore[attr-defined]
+
+
+EVENT_DTYPE = np.dtype([("seq", np.int64), ("tick", np.int64), ("time", np.float64),
+                        ("kind", "S32"), ("detail", "S200")])
+
+
+class EventTape:
+    """A ring of fixed-size event records beside the tick tape (same header rules).
+
+    Readers (recorder, dashboard) see trips, bad frames and operator actions while the
+    run goes on; a crash keeps what the recorder has drained.
+    """
+
+    def __init__(self, path: Path, capacity: int = 4096, create: bool = True) -> None:
+        self.path = Path(path)
+        if create:
+            size = HEADER_WORDS * 8 + capacity * EVENT_DTYPE.itemsize
+            with open(self.path, "wb") as f:
+                f.truncate(size)
+        self._header_map = np.memmap(self.path, dtype=np.int64, mode="r+",
+                                     shape=(HEADER_WORDS,))
+        self.header = self._header_map
+        if create:
+            self.header[:] = [MAGIC, VERSION, 0, capacity, 0, 0, STATE_RUNNING, 0]
+        self.capacity = int(self.header[W_CAPACITY])
+        self.rows = np.memmap(self.path, dtype=EVENT_DTYPE, mode="r+",
+                              offset=HEADER_WORDS * 8, shape=(self.capacity,))
+        if create:
+            self.rows["seq"] = -1
+        self.next_seq = 0
+
+    def append(self, tick: int, time_s: float, kind: str, detail: str) -> None:
+        n = int(self.header[W_WRITTEN])
+        slot = self.rows[n % self.capacity]
+        slot["seq"] = -1
+        slot["tick"] = tick
+        slot["time"] = time_s
+        slot["kind"] = kind.encode("utf-8", "replace")[:32]
+        slot["detail"] = detail.encode("utf-8", "replace")[:200]
+        slot["seq"] = n
+        self.header[W_WRITTEN] = n + 1
+
+    def read_new(self) -> list[tuple[int, float, str, str]]:
+        """Events since the last call as (tick, time, kind, detail)."""
+        written = int(self.header[W_WRITTEN])
+        self.next_seq = max(self.next_seq, written - self.capacity)
+        out = []
+        while self.next_seq < written:
+            slot = self.rows[self.next_seq % self.capacity].copy()
+            if int(slot["seq"]) == self.next_seq:
+                out.append((int(slot["tick"]), float(slot["time"]),
+                            slot["kind"].decode("utf-8", "replace"),
+                            slot["detail"].decode("utf-8", "replace")))
+            self.next_seq += 1
+        return out
+
+    def end(self) -> None:
+        self.header[W_STATE] = STATE_ENDED
+
+    @property
+    def ended(self) -> bool:
+        return int(self.header[W_STATE]) == STATE_ENDED
+
+    def close(self, unlink: bool = False) -> None:
+        del self.rows, self.header
+        self._header_map._mmap.close()  # type: ignore[attr-defined]
+        if unlink:
+            self.path.unlink(missing_ok=True)
