@@ -247,6 +247,11 @@ class FrameSplitter:
         self.oversize = 0
         self.dropped_bytes = 0
 
+    @property
+    def pending(self) -> int:
+        """Bytes held of a frame not yet complete (never more than MAX_LENGTH)."""
+        return len(self._buf)
+
     def reset(self) -> None:
         """Forget a partial frame (after a reconnect); counters are kept."""
         self.dropped_bytes += len(self._buf)

@@ -33,6 +33,7 @@ MAX_LINE_LENGTH = 1024
 _UINT = re.compile(r"[0-9]+", re.ASCII)
 _NUMBER = re.compile(r"[-+]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][-+]?[0-9]+)?", re.ASCII)
 _HEX2 = re.compile(r"[0-9A-Fa-f]{2}", re.ASCII)
+_NON_FINITE_WORDS = frozenset({"nan", "inf", "infinity"})
 
 
 def xor_checksum(data: bytes | bytearray) -> int:
@@ -112,7 +113,9 @@ def decode_line(
     values = []
     for i, text in enumerate(value_texts):
         if not _NUMBER.fullmatch(text):
-            raise FrameError("syntax", f"value {i} {text!r} is not a decimal number")
+            spelled = text.lower().lstrip("+-") in _NON_FINITE_WORDS
+            reason = "non_finite" if spelled else "syntax"
+            raise FrameError(reason, f"value {i} {text!r} is not a finite decimal number")
         v = float(text)
         if not isfinite(v):
             raise FrameError("non_finite", f"value {i} {text!r} overflows")

@@ -30,7 +30,8 @@ from plantrig.sim._summary import ModelSummary, summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
 
 __all__ = [
-    "Clock", "Command", "CommandInbox", "EventTape", "ControllerLink", "ControllerSpec", "DiscretePlant", "Engine", "Event",
+    "Clock", "Command", "CommandInbox", "ControllerLink", "ControllerSpec", "DiscretePlant",
+    "Engine", "Event", "EventTape",
     "LinearPlant", "LinearStepper", "MemoryTape", "ModelError", "ModelSummary",
     "NamedReference", "OdePlant", "OdeStepper", "OpenLoop", "Pid", "PidLoops", "Plant", "Ramp",
     "Rig", "RigFileError", "RigIssue", "RunData", "RunOutcome", "Signal", "SignalChain", "Sine",
