@@ -14,24 +14,22 @@ class CobsError(ValueError):
     """The bytes are not a valid COBS encoding (a zero inside, or a block runs past the end)."""
 
 
+_CODE = tuple(bytes((n + 1,)) for n in range(254))
+
+
 def cobs_encode(data: bytes | bytearray | memoryview) -> bytes:
     """COBS-encode ``data``; the result holds no 0x00 and is not yet delimited."""
-    out = bytearray()
+    blocks = []
     segments = bytes(data).split(b"\x00")
-    last = len(segments) - 1
-    for i, seg in enumerate(segments):
-        n = len(seg)
-        pos = 0
-        while n - pos >= 254:
-            out.append(0xFF)
-            out += seg[pos : pos + 254]
-            pos += 254
-        if i == last and pos == n and n > 0:
-            # a final 0xFF block implies no zero, so no trailing empty block is needed
-            break
-        out.append(n - pos + 1)
-        out += seg[pos:]
-    return bytes(out)
+    for seg in segments:
+        while len(seg) >= 254:
+            blocks.append(b"\xff" + seg[:254])
+            seg = seg[254:]
+        blocks.append(_CODE[len(seg)] + seg)
+    if segments[-1] and len(segments[-1]) % 254 == 0:
+        # a final 0xFF block implies no zero, so the empty block after it is not sent
+        blocks.pop()
+    return b"".join(blocks)
 
 
 def cobs_decode(data: bytes | bytearray | memoryview) -> bytes:
