@@ -24,7 +24,15 @@ from plantrig.sim._plant import (
 )
 from plantrig.sim._recorder import read_journal
 from plantrig.sim._references import Ramp, Sine, Step, Table
-from plantrig.sim._rigfile import ControllerSpec, NamedReference, Rig, Signal, build_rig, load_rig
+from plantrig.sim._rigfile import (
+    ControllerSpec,
+    NamedReference,
+    Rig,
+    Signal,
+    build_rig,
+    check_controller_table,
+    load_rig,
+)
 from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
 from plantrig.sim._summary import ModelSummary, summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
@@ -36,7 +44,8 @@ __all__ = [
     "NamedReference", "OdePlant", "OdeStepper", "OpenLoop", "Pid", "PidLoops", "Plant", "Ramp",
     "Rig", "RigFileError", "RigIssue", "RunData", "RunOutcome", "Signal", "SignalChain", "Sine",
     "StateFeedback", "Step", "Table", "Tape", "TapeOverflow", "TapeReader", "VirtualClock",
-    "WallClock", "build_controller", "build_rig", "from_state_space_object", "load_rig",
-    "make_stepper", "read_journal", "run_to_folder", "simulate", "simulate_inputs",
+    "WallClock", "build_controller", "build_rig", "check_controller_table",
+    "from_state_space_object", "load_rig", "make_stepper", "read_journal", "run_to_folder",
+    "simulate", "simulate_inputs",
     "summarize", "tick_columns", "zoh",
 ]

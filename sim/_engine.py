@@ -241,6 +241,9 @@ class Engine:
         try:
             if link is not None:
                 link.open()
+                # prime: the values before tick 0, so the controller's answer is there at
+                # tick 0 as the built-in controller's is (docs/protocol.md, tick stamps)
+                link.send(-1, -rig.tick, sent)
             with _maybe_realtime(self.realtime, tick_ns) as report:
                 start = clock.now_ns() + START_LEAD_NS
                 slot = 0

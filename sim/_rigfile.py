@@ -607,3 +607,17 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                                                        f"found {_describe(ref)}")
             settings["drive"] = drive
     return ControllerSpec(kind, settings)
+
+
+def check_controller_table(rig: Rig, table: Any, path: str) -> tuple[ControllerSpec | None,
+                                                                    list[RigIssue]]:
+    """Check a built-in law given outside [controller] (the reference controller's law in
+    ``[link.controller]``, say) against ``rig``'s signals, with key paths under ``path``."""
+    c = _Checker(str(rig.path))
+    spec = _controller(c, {"controller": table}, list(rig.inputs), list(rig.outputs),
+                       list(rig.references), rig.plant)
+    issues = [RigIssue(i.file, path + i.key[len("controller"):], i.message) for i in c.issues]
+    if not issues and spec.kind == "external":
+        issues.append(RigIssue(str(rig.path), f"{path}.kind", "expected a built-in law "
+                               "(pid, state_feedback, open_loop), found 'external'"))
+    return (None if issues else spec), issues
