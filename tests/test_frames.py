@@ -5,6 +5,7 @@ from __future__ import annotations
 import binascii
 import json
 import math
+import re
 import struct
 from pathlib import Path
 
@@ -64,6 +65,14 @@ def test_pinned_vectors(vec: dict) -> None:
     expected = vec["values"] if enc == Encoding.F32 else [r * vec["scale"] for r in vec["raw"]]
     assert frame == Frame(1, Kind(vec["kind"]), vec["seq"], vec["tick"], tuple(expected))
     assert wire.endswith(b"\x00") and 0 not in wire[:-1]
+
+
+def test_frames_quoted_in_the_spec_are_vectors() -> None:
+    doc = (Path(__file__).parents[1] / "docs" / "protocol.md").read_text()
+    quoted = set(re.findall(r"`([0-9a-f]{12,})`|^on the wire +([0-9a-f]+)$", doc, re.M))
+    wires = {v["wire"] for v in VECTORS["frames"] + VECTORS["bad_frames"]}
+    quoted_hex = {a or b for a, b in quoted}
+    assert len(quoted_hex) >= 10 and quoted_hex <= wires
 
 
 def test_layout_byte_by_byte() -> None:
