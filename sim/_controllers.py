@@ -68,32 +68,35 @@ class Pid:
             # (Astrom & Murray, section 10.4, rule of thumb).
             tt = math.sqrt(kd / ki) if ki and kd else (kp / ki if ki and kp else dt)
         self.tt = max(tt, dt)
+        self._d_pole = tf / (tf + dt)
+        self._d_gain = kd / (tf + dt)
+        self._tracking_gain = dt / self.tt
         self.reset()
 
     def reset(self) -> None:
         self.integral = 0.0
         self.derivative = 0.0
-        self.y_prev = math.nan
+        self.y_prev: float | None = None
 
     def compute(self, t: float, y: Vector, r: Vector, u: Vector) -> None:
+        # plain floats and locals: this runs every tick on the real-time thread
         yk = float(y[self.measure])
         e = float(r[self.reference]) - yk
-        if self.kd:
-            if math.isnan(self.y_prev):
-                self.y_prev = yk
-            a = self.tf / (self.tf + self.dt)
-            self.derivative = a * self.derivative - self.kd / (self.tf + self.dt) * (
-                yk - self.y_prev)
+        y_prev = self.y_prev if self.y_prev is not None else yk
         self.y_prev = yk
+        if self.kd:
+            self.derivative = self._d_pole * self.derivative - self._d_gain * (yk - y_prev)
         v = self.kp * e + self.integral + self.derivative
-        out = min(max(v, self.u_min), self.u_max)
+        lo, hi = self.u_min, self.u_max
+        out = lo if v < lo else hi if v > hi else v
+        ki_e_dt = self.ki * e * self.dt
         if self.anti_windup == "back_calculation":
-            self.integral += (self.ki * e + (out - v) / self.tt) * self.dt
+            self.integral += ki_e_dt + (out - v) * self._tracking_gain
         elif self.anti_windup == "clamp":
-            if not ((v > self.u_max and e > 0) or (v < self.u_min and e < 0)):
-                self.integral += self.ki * e * self.dt
+            if not ((v > hi and e > 0) or (v < lo and e < 0)):
+                self.integral += ki_e_dt
         else:
-            self.integral += self.ki * e * self.dt
+            self.integral += ki_e_dt
         u[self.drive] = out
 
 

@@ -43,6 +43,7 @@ class TapeLike(Protocol):
     def append(self, row: Vector) -> None: ...
     def free(self) -> int: ...
     def wait_for_room(self, timeout_s: float = 30.0) -> None: ...
+    def recorder_error(self) -> int: ...
     def end(self) -> None: ...
 
 
@@ -50,8 +51,9 @@ def tick_columns(rig: Rig) -> tuple[list[str], list[str]]:
     """Column names and units of one tick record for ``rig``."""
     names = list(META_COLUMNS)
     units = ["", "s", "s", "s", ""]
-    for prefix, signals in (("ref", rig.references), ("cmd", rig.inputs), ("u", rig.inputs),
-                            ("y", rig.outputs), ("sent", rig.outputs), ("x", rig.states)):
+    for prefix, signals in (("ref", rig.references), ("cmd", rig.inputs),
+                            ("sent", rig.outputs), ("y", rig.outputs), ("x", rig.states),
+                            ("u", rig.inputs)):
         for s in signals:
             names.append(f"{prefix}:{s.name}")
             units.append(s.unit)
@@ -146,25 +148,23 @@ class Engine:
             raise ValueError(f"{rig.path}: controller.kind 'external' needs a link")
         self.actuator_chain = actuator_chain
         self.sensor_chain = sensor_chain
-        self.stepper: Stepper = make_stepper(rig.plant, rig.tick, rig.x0, rig.method,
-                                             rig.substeps)
         self.columns, self.units = tick_columns(rig)
         self.row = np.zeros(len(self.columns))
         nr, m, p, n = len(rig.references), len(rig.inputs), len(rig.outputs), len(rig.states)
-        base = len(META_COLUMNS)
-        cuts = np.cumsum([base, nr, m, m, p, p, n])
+        cuts = np.cumsum([len(META_COLUMNS), nr, m, p, p, n, m])
         self.r = self.row[cuts[0]:cuts[1]]
         self.cmd = self.row[cuts[1]:cuts[2]]
-        self.u_rec = self.row[cuts[2]:cuts[3]]
+        self.sent = self.row[cuts[2]:cuts[3]]
         self.y_rec = self.row[cuts[3]:cuts[4]]
-        self.sent = self.row[cuts[4]:cuts[5]]
-        self.x_rec = self.row[cuts[5]:cuts[6]]
+        # x_k and u_k live in the record itself: the stepper works on that view
+        self.stepper: Stepper = make_stepper(rig.plant, rig.tick, rig.x0, rig.method,
+                                             rig.substeps, xu=self.row[cuts[4]:cuts[6]])
         self.safe_u = np.array([i.safe for i in rig.inputs], dtype=np.float64)
-        self.last_good_u = self.safe_u.copy()
         self.events: list[Event] = []
         self.stop_requested = False
         self.estop_latched = False
         self.ref_override = np.full(nr, np.nan)
+        self.any_override = False
         self.ref_names = [r.name for r in rig.references]
 
     def request_stop(self) -> None:
@@ -202,6 +202,7 @@ class Engine:
                 value = math.nan
             if name in self.ref_names and math.isfinite(value):
                 self.ref_override[self.ref_names.index(name)] = value
+                self.any_override = True
                 self._event(k, "reference_set", f"{name} = {value:g}")
             else:
                 self._event(k, "command_refused", f"set_reference {a!r}: unknown name or "
@@ -229,11 +230,11 @@ class Engine:
             self.sensor_chain.apply(-1, self.stepper.y, self.sent)
         else:
             self.sent[:] = self.stepper.y
-        refs = [r.waveform for r in rig.references]
+        ref_values = [(i, r.waveform.value) for i, r in enumerate(rig.references)]
         stepper, row, tape, clock = self.stepper, self.row, self.tape, self.clock
         controller, link = self.controller, self.link
         actuator, sensor = self.actuator_chain, self.sensor_chain
-        cmd, r, u, sent = self.cmd, self.r, stepper.u, self.sent
+        cmd, r, u, sent, y_rec = self.cmd, self.r, stepper.u, self.sent, self.y_rec
         hold_on_silence = rig.on_link_silence == "hold"
         poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick)))
         override = self.ref_override
@@ -244,7 +245,9 @@ class Engine:
                 # prime: the values before tick 0, so the controller's answer is there at
                 # tick 0 as the built-in controller's is (docs/protocol.md, tick stamps)
                 link.send(-1, -rig.tick, sent)
-            with _maybe_realtime(self.realtime, tick_ns) as report:
+            room = tape.free()
+            realtime, commands = self.realtime, self.commands
+            with _maybe_realtime(realtime, tick_ns) as report:
                 start = clock.now_ns() + START_LEAD_NS
                 slot = 0
                 for k in range(n_ticks):
@@ -252,7 +255,7 @@ class Engine:
                         ended, reason = "stopped", "stop requested"
                         break
                     t = k * rig.tick
-                    if self.realtime:
+                    if realtime:
                         deadline = start + slot * tick_ns
                         clock.sleep_until_ns(deadline)
                         began = clock.now_ns()
@@ -272,14 +275,23 @@ class Engine:
                         slot += 1
                     else:
                         began = 0
-                        if tape.free() <= 0:
+                        room -= 1
+                        if room < 0:
                             tape.wait_for_room()
-                    if self.commands is not None and k % poll_every == 0:
-                        for command in self.commands.take():
+                            room = tape.free() - 1
+                    if k % poll_every == 0 and tape.recorder_error():
+                        self._event(k, "record_failed", "the recorder cannot write the run "
+                                    "record (disk full or write error); run stopped")
+                        ended, reason = "fault", "run record cannot be written"
+                        break
+                    if commands is not None and k % poll_every == 0:
+                        for command in commands.take():
                             self._apply_command(k, command)
                     # 1. read link / built-in controller
-                    for i, ref in enumerate(refs):
-                        r[i] = ref.value(t) if math.isnan(override[i]) else override[i]
+                    for i, value in ref_values:
+                        r[i] = value(t)
+                    if self.any_override:
+                        np.copyto(r, override, where=~np.isnan(override))
                     if link is not None:
                         fresh = link.receive(k, t, cmd)
                         if not fresh and not hold_on_silence:
@@ -289,24 +301,21 @@ class Engine:
                     else:
                         controller.compute(t, sent, r, cmd)  # type: ignore[union-attr]
                         fresh = True
-                    # 2. actuator chain
-                    if actuator is not None:
+                    # 2. actuator chain, 3. safety: a non-finite command never reaches the
+                    #    plant (u keeps last tick's good value); a latched stop forces the
+                    #    safe state
+                    if not math.isfinite(cmd.sum()):  # NaN or inf anywhere makes the sum so
+                        self._event(k, "non_finite_input",
+                                    f"command {cmd.tolist()}; last good input held")
+                    elif actuator is not None:
                         actuator.apply(k, cmd, u)
                     else:
                         u[:] = cmd
-                    # 3. safety: a latched stop forces the safe state; a non-finite input
-                    #    never reaches the plant
                     if self.estop_latched:
                         u[:] = self.safe_u
-                    elif not np.isfinite(u).all():
-                        self._event(k, "non_finite_input", f"u = {u.tolist()}; held last good")
-                        u[:] = self.last_good_u
-                    else:
-                        self.last_good_u[:] = u
-                    # 4. plant step
-                    self.x_rec[:] = stepper.x
+                    # 4. plant step (x_k and u_k are already in the record)
                     stepper.output_and_advance(t)
-                    self.y_rec[:] = stepper.y
+                    y_rec[:] = stepper.y
                     # 5. sensor chain, 6. write link
                     if sensor is not None:
                         sensor.apply(k, stepper.y, sent)
@@ -317,8 +326,7 @@ class Engine:
                     # 7. record
                     row[1] = t
                     row[4] = 1.0 if fresh else 0.0
-                    self.u_rec[:] = u
-                    if self.realtime:
+                    if realtime:
                         row[2] = lateness[k] / 1e9
                         work = clock.now_ns() - began
                         exec_ns[k] = work

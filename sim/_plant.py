@@ -188,11 +188,13 @@ class LinearStepper:
     ``u`` view and reads ``x`` and ``y``; nothing is allocated per tick.
     """
 
-    def __init__(self, Ad: Matrix, Bd: Matrix, C: Matrix, D: Matrix, x0: Vector) -> None:
+    def __init__(self, Ad: Matrix, Bd: Matrix, C: Matrix, D: Matrix, x0: Vector,
+                 xu: Vector | None = None) -> None:
         n, m, p = Ad.shape[0], Bd.shape[1], C.shape[0]
         self.n_states, self.n_inputs, self.n_outputs = n, m, p
         self._block = np.ascontiguousarray(np.block([[Ad, Bd], [C, D]]))
-        self._xu = np.zeros(n + m)
+        # ``xu`` lets the engine keep [x; u] inside its tick record, saving two copies
+        self._xu = np.zeros(n + m) if xu is None else xu
         self._next = np.zeros(n + p)
         self.x = self._xu[:n]
         self.u = self._xu[n:]
@@ -220,7 +222,7 @@ class OdeStepper:
     """RK4 or forward Euler with an integer number of substeps per tick, u held (ZOH)."""
 
     def __init__(self, plant: OdePlant, dt: float, method: str, substeps: int,
-                 x0: Vector) -> None:
+                 x0: Vector, xu: Vector | None = None) -> None:
         if method not in ("rk4", "euler"):
             raise ModelError("method", f"expected 'rk4' or 'euler', found {method!r}")
         if not (isinstance(substeps, int) and substeps >= 1):
@@ -230,8 +232,10 @@ class OdeStepper:
         self.h_step = dt / substeps
         self.substeps = substeps
         self.method = method
-        self.x = np.zeros(self.n_states)
-        self.u = np.zeros(self.n_inputs)
+        n = self.n_states
+        xu = np.zeros(n + self.n_inputs) if xu is None else xu
+        self.x = xu[:n]
+        self.u = xu[n:]
         self.y = np.zeros(self.n_outputs)
         self.x0 = np.array(x0, dtype=np.float64)
         self.params = plant.params
@@ -268,21 +272,24 @@ Stepper = LinearStepper | OdeStepper
 
 
 def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
-                 substeps: int = 1) -> Stepper:
-    """Build the per-tick stepper for any plant kind at tick ``dt`` seconds."""
+                 substeps: int = 1, xu: Vector | None = None) -> Stepper:
+    """Build the per-tick stepper for any plant kind at tick ``dt`` seconds.
+
+    ``xu``, if given, is a float64 view of n + m elements the stepper keeps x and u in.
+    """
     n = plant.shape[0]
     x_init = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64).reshape(-1)
     if x_init.shape != (n,):
         raise ModelError("x0", f"has {x_init.size} entries, expected {n} (one per state)")
     if isinstance(plant, LinearPlant):
         ad, bd = zoh(plant.A, plant.B, dt)
-        return LinearStepper(ad, bd, plant.C, plant.D, x_init)
+        return LinearStepper(ad, bd, plant.C, plant.D, x_init, xu)
     if isinstance(plant, DiscretePlant):
         if not np.isclose(plant.dt, dt, rtol=1e-9, atol=0.0):
             raise ModelError("dt", f"sample time {plant.dt} s differs from the rig tick {dt} s;"
                              " a discrete model runs only at its own sample time")
-        return LinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init)
-    return OdeStepper(plant, dt, method, substeps, x_init)
+        return LinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init, xu)
+    return OdeStepper(plant, dt, method, substeps, x_init, xu)
 
 
 def from_state_space_object(system: Any) -> LinearPlant | DiscretePlant:
