@@ -13,7 +13,9 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import CAUTION, __version__
+from plantrig._records_cli import add_record_commands
 from plantrig.sim import RigFileError, load_rig, run_to_folder, summarize
+from plantrig.sim._preflight import RecordError  # public once sim/__init__ exports it
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 
@@ -78,7 +80,11 @@ def cmd_run(args: argparse.Namespace) -> int:
     except OSError as exc:
         print(f"error: cannot create run folder parent {out}: {exc.strerror}", file=sys.stderr)
         return EXIT_USAGE
-    folder, outcome, summary = run_to_folder(rig, out, realtime=realtime)
+    try:
+        folder, outcome, summary = run_to_folder(rig, out, realtime=realtime)
+    except RecordError as exc:  # preflight, or a record that could not be finished
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
     _print_outcome(folder, summary)
     if args.json:
         print(json.dumps(summary["timing"]))
@@ -110,6 +116,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
     p.add_argument("--json", action="store_true", help="also print timing as one JSON line")
     p.set_defaults(func=cmd_run)
+    add_record_commands(sub)
     return parser
 
 

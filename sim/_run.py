@@ -19,7 +19,9 @@ from plantrig.sim._commands import CommandInbox
 from plantrig.sim._contracts import ControllerLink, SignalChain
 from plantrig.sim._engine import Engine, RunOutcome, tick_columns
 from plantrig.sim._plant import Plant, from_state_space_object, make_stepper
+from plantrig.sim._preflight import preflight
 from plantrig.sim._recorder import read_journal, start_recorder
+from plantrig.sim._records import finish_record, start_record
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._summary import summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, tape_dir
@@ -107,11 +109,15 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     """Run ``rig`` with the recorder in its own process; write the run folder.
 
     The folder holds the rig file as given (and an ODE model's module), the tick data
-    (``ticks.npy``, one named float64 field per column), ``events.jsonl`` and
-    ``summary.json`` with the model summary and timing statistics. ``commands`` is a
+    (``ticks.npy``, one named float64 field per column, and the self-describing
+    ``run.h5``), ``events.jsonl``, ``summary.json`` with the model summary and timing
+    statistics, and ``manifest.json`` (docs/records.md). ``commands`` is a
     queue of operator Commands; ``on_tapes_ready(tape_path, event_tape_path)`` is called
     once both tapes exist (to start a dashboard on them).
     """
+    columns, units = tick_columns(rig)
+    preflight(folder or out_dir, rig.n_ticks, len(columns),
+              ring_capacity(rig) * len(columns) * 8, tape_dir())
     folder = folder or new_run_folder(rig, out_dir)
     shutil.copyfile(rig.path, folder / "rig.toml")
     module = getattr(rig.plant, "f", None)
@@ -119,7 +125,6 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         source = Path(module.__code__.co_filename)
         if source.is_file():
             shutil.copyfile(source, folder / source.name)
-    columns, units = tick_columns(rig)
     (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
     tape_path = tape_dir() / f"plantrig-{folder.name}-{id(folder):x}.tape"
     tape = Tape(tape_path, columns, ring_capacity(rig), units)
@@ -129,6 +134,8 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     status = folder / "recorder.json"
     recorder = start_recorder(tape_path, journal, status, event_tape_path,
                               folder / "events.jsonl")
+    start_record(folder, rig, columns, units, tape_path, event_tape_path, recorder.pid,
+                 rig.mode == "realtime" if realtime is None else realtime)
     if on_tapes_ready is not None:
         on_tapes_ready(tape_path, event_tape_path)
     started = _dt.datetime.now(_dt.UTC)
@@ -145,10 +152,6 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         tape.close(unlink=True)
         event_tape.close(unlink=True)
     rows = read_journal(journal, len(columns))
-    structured = np.ascontiguousarray(rows).view(
-        np.dtype([(name, np.float64) for name in columns])).reshape(-1)
-    np.save(folder / "ticks.npy", structured)
-    journal.unlink()
     recorder_status = json.loads(status.read_text()) if status.exists() else {}
     status.unlink(missing_ok=True)
     model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
@@ -168,7 +171,7 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         "model": model.as_dict(),
         "columns": columns, "units": units,
     }
-    (folder / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+    finish_record(folder, rows, summary)  # ticks.npy, run.h5, summary.json, manifest.json
     return folder, outcome, summary
 
 

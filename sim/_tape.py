@@ -9,7 +9,8 @@ copying, so a row overwritten during the copy is detected, never read torn.
 
 Header words: magic, version, n_columns, capacity, written, consumed (the slowest
 reader's acknowledged count, so a fast-mode writer can wait instead of overwriting),
-state (0 running, 1 ended), reserved.
+state (0 running, 1 ended), recorder (0 writing, else a RECORDER_* code: the recorder
+cannot write the record, and the loop stops safely).
 """
 
 from __future__ import annotations
@@ -26,8 +27,9 @@ from numpy.typing import NDArray
 MAGIC = 0x5450_4152_5450  # "PTRAPT", a plantrig tape
 VERSION = 1
 HEADER_WORDS = 8
-W_MAGIC, W_VERSION, W_COLUMNS, W_CAPACITY, W_WRITTEN, W_CONSUMED, W_STATE = range(7)
+W_MAGIC, W_VERSION, W_COLUMNS, W_CAPACITY, W_WRITTEN, W_CONSUMED, W_STATE, W_RECORDER = range(8)
 STATE_RUNNING, STATE_ENDED = 0, 1
+RECORDER_OK, RECORDER_DISK_FULL, RECORDER_WRITE_ERROR = 0, 1, 2
 
 
 def tape_dir() -> Path:
@@ -75,6 +77,10 @@ class Tape:
         self.written += 1
         self.header[W_WRITTEN] = self.written
 
+    def recorder_error(self) -> int:
+        """RECORDER_OK, or the code the recorder set when it could not write."""
+        return int(self.header[W_RECORDER])
+
     def wait_for_room(self, timeout_s: float = 30.0) -> None:
         """Fast mode only: block until a reader has freed a row (never in real time)."""
         deadline = time.monotonic() + timeout_s
@@ -114,6 +120,9 @@ class MemoryTape:
         slot[0] = self.written
         self.written += 1
 
+    def recorder_error(self) -> int:
+        return RECORDER_OK
+
     def wait_for_room(self, timeout_s: float = 30.0) -> None:
         if self.free() <= 0:
             raise TapeOverflow("memory tape full: the run is longer than planned")
@@ -148,6 +157,10 @@ class TapeReader:
     @property
     def written(self) -> int:
         return int(self.header[W_WRITTEN])
+
+    def report_error(self, code: int) -> None:
+        """Tell the writer the record cannot be written (an acknowledging reader only)."""
+        self.header[W_RECORDER] = code
 
     def read_new(self, max_rows: int = 4096) -> NDArray[np.float64]:
         """Rows written since the last call, oldest first (at most ``max_rows``)."""

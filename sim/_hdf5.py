@@ -1,0 +1,148 @@
+"""The run record as one self-describing HDF5 file, ``run.h5``.
+
+Written once, at the end of a run or on recovery, never during it (FIELD-NOTES.md: an
+HDF5 file being written when the process dies may be unreadable; the journal is what
+survives a crash). Default libver, for the same reason and so older readers open it.
+
+Layout::
+
+    /                    attrs: format, format_version, software_version, rig, started_utc,
+                                ended, reason, tick_s, columns (JSON list, tick record
+                                order), summary (JSON), model (JSON)
+    /ticks/<group>/<name>  one float64 dataset per tick column; attrs column, index, unit,
+                           description, min, max (NaN where the rig gives no bound)
+    /events              compound (tick int64, time float64, kind str, detail str)
+    /sources/<file>      text of the rig file, model module, scenario file
+
+Groups by column prefix: see GROUPS. h5py is an optional dependency, imported here only.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+FORMAT = "plantrig run record"
+FORMAT_VERSION = 1
+GROUPS = {
+    "seq": "time", "t": "time",
+    "lateness": "timing", "exec_time": "timing",
+    "fresh": "link",
+    "ref": "references", "u": "inputs", "y": "outputs", "x": "states",
+    "cmd": "link/cmd", "sent": "link/sent",
+    "fault": "faults", "limit": "limits", "trip": "interlocks",
+}
+
+
+def column_place(column: str) -> tuple[str, str]:
+    """(group path, dataset name) of a tick column in /ticks."""
+    prefix, sep, name = column.partition(":")
+    if not sep:
+        return GROUPS.get(column, "other"), column
+    group = GROUPS.get(prefix, f"other/{prefix}")
+    return group, name.replace("/", "|") or "_"
+
+
+def write_run_h5(path: Path, rows: NDArray[np.float64], info: list[dict[str, Any]],
+                 events: list[dict[str, Any]], sources: dict[str, str],
+                 attrs: dict[str, Any]) -> None:
+    """Write ``run.h5`` atomically (a temporary file, then os.replace).
+
+    ``info`` has one dict per column (name, unit, description, min, max); ``attrs``
+    values that are not plain strings or numbers are stored as JSON text.
+    """
+    import h5py
+
+    path = Path(path)
+    tmp = path.with_name(path.name + ".tmp")
+    try:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = FORMAT
+            f.attrs["format_version"] = FORMAT_VERSION
+            f.attrs["columns"] = json.dumps([c["name"] for c in info])
+            for key, value in attrs.items():
+                f.attrs[key] = value if isinstance(value, str | int | float) else json.dumps(
+                    value)
+            ticks = f.create_group("ticks")
+            for index, c in enumerate(info):
+                group, name = column_place(c["name"])
+                ds = ticks.require_group(group).create_dataset(
+                    name, data=np.ascontiguousarray(rows[:, index]))
+                ds.attrs["column"] = c["name"]
+                ds.attrs["index"] = index
+                ds.attrs["unit"] = c.get("unit", "")
+                ds.attrs["description"] = c.get("description", "")
+                for bound in ("min", "max"):
+                    value = c.get(bound)
+                    ds.attrs[bound] = math.nan if value is None else float(value)
+            text = h5py.string_dtype()
+            dtype = np.dtype([("tick", np.int64), ("time", np.float64), ("kind", text),
+                              ("detail", text)])
+            table = np.empty(len(events), dtype=dtype)
+            for i, ev in enumerate(events):
+                table[i] = (int(ev["tick"]), float(ev["time"]), str(ev["kind"]),
+                            str(ev.get("detail", "")))
+            f.create_dataset("events", data=table)
+            src = f.create_group("sources")
+            for name, body in sources.items():
+                src.create_dataset(name, data=body, dtype=text)
+            f.flush()
+        os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def read_run_h5(path: Path) -> dict[str, Any]:
+    """Everything in ``run.h5``: columns, units, info, rows (ticks x columns), events,
+    sources and attrs (JSON attrs decoded)."""
+    import h5py
+
+    with h5py.File(path, "r") as f:
+        if f.attrs.get("format") != FORMAT:
+            raise ValueError(f"{path}: not a plantrig run record")
+        columns: list[str] = json.loads(f.attrs["columns"])
+        info: list[dict[str, Any]] = [{} for _ in columns]
+        length = None
+        data: dict[int, NDArray[np.float64]] = {}
+
+        def visit(_name: str, obj: Any) -> None:
+            nonlocal length
+            if isinstance(obj, h5py.Dataset) and "index" in obj.attrs:
+                i = int(obj.attrs["index"])
+                data[i] = obj[()]
+                length = len(data[i])
+                info[i] = {"name": str(obj.attrs["column"]), "unit": str(obj.attrs["unit"]),
+                           "description": str(obj.attrs["description"]),
+                           "min": _bound(obj.attrs["min"]), "max": _bound(obj.attrs["max"])}
+
+        f["ticks"].visititems(visit)
+        rows = np.empty((length or 0, len(columns)))
+        for i in range(len(columns)):
+            rows[:, i] = data[i]
+        events = [{"tick": int(e["tick"]), "time": float(e["time"]),
+                   "kind": _text(e["kind"]), "detail": _text(e["detail"])}
+                  for e in f["events"][()]]
+        sources = {name: _text(ds[()]) for name, ds in f["sources"].items()}
+        attrs: dict[str, Any] = {}
+        for key, value in f.attrs.items():
+            value = _text(value) if isinstance(value, bytes | str) else value
+            if key in ("summary", "model", "columns", "recovery") and isinstance(value, str):
+                value = json.loads(value)
+            attrs[key] = value.item() if isinstance(value, np.generic) else value
+    return {"columns": columns, "units": [c["unit"] for c in info], "info": info,
+            "rows": rows, "events": events, "sources": sources, "attrs": attrs}
+
+
+def _bound(value: Any) -> float | None:
+    value = float(value)
+    return None if math.isnan(value) else value
+
+
+def _text(value: Any) -> str:
+    return value.decode("utf-8") if isinstance(value, bytes) else str(value)

@@ -1,0 +1,354 @@
+"""The life of a run record: the start sidecar, the finish, and recovery after a crash.
+
+During a run the folder holds ``run_start.json`` (written atomically before the first
+tick: who, what, where the tapes are), ``ticks.journal`` (raw float64 rows appended by
+the recorder) and ``events.jsonl``. At the end, or on ``plantrig recover`` after a crash,
+the journal becomes ``ticks.npy`` and ``run.h5``, ``summary.json`` is written, and
+``manifest.json`` is written last. A killed rig leaves its tapes in /dev/shm; recovery
+takes from them the rows the journal lacks, measures what was lost, and removes them.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import errno
+import hashlib
+import json
+import math
+import os
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from plantrig import __version__
+from plantrig.sim._hdf5 import write_run_h5
+from plantrig.sim._manifest import write_atomic, write_manifest
+from plantrig.sim._preflight import RecordError
+from plantrig.sim._recorder import RESERVE_NAME, read_journal
+from plantrig.sim._rigfile import Rig
+from plantrig.sim._summary import summarize
+from plantrig.sim._tape import EventTape, TapeReader
+
+RUN_START = "run_start.json"
+RESERVE_BYTES = 256 * 1024
+RECORDER_EXIT_WAIT_S = 10.0
+META_DESCRIPTIONS = {
+    "seq": "tick number",
+    "t": "plant time at the start of the tick",
+    "lateness": "how late the tick started against its deadline (real time only)",
+    "exec_time": "work time of the tick (real time only)",
+    "fresh": "1 when a fresh command arrived in this tick",
+}
+PREFIX_DESCRIPTIONS = {
+    "ref": "reference", "cmd": "command as received from the controller (raw link value)",
+    "u": "plant input after the actuator chain and safety",
+    "y": "plant output", "sent": "value sent to the controller (raw link value)",
+    "x": "plant state at the start of the tick", "limit": "limit", "trip": "interlock trip",
+    "fault": "injected fault",
+}
+
+
+def column_info(rig: Rig, columns: list[str], units: list[str]) -> list[dict[str, Any]]:
+    """Name, unit, description and range of every tick column (None: no bound)."""
+    signals: dict[str, Any] = {}
+    for prefix, group in (("cmd", rig.inputs), ("u", rig.inputs), ("y", rig.outputs),
+                          ("sent", rig.outputs), ("x", rig.states)):
+        for s in group:
+            signals[f"{prefix}:{s.name}"] = s
+    out = []
+    for name, unit in zip(columns, units, strict=True):
+        prefix, _, short = name.partition(":")
+        s = signals.get(name)
+        described = META_DESCRIPTIONS.get(name) or f"{PREFIX_DESCRIPTIONS.get(prefix, prefix)} " \
+                                                    f"{short}".strip()
+        if s is not None and s.description:
+            described += f": {s.description}"
+        out.append({"name": name, "unit": unit, "description": described,
+                    "min": _finite(s.min) if s else None, "max": _finite(s.max) if s else None})
+    return out
+
+
+def start_record(folder: Path, rig: Rig, columns: list[str], units: list[str],
+                 tape_path: Path, event_tape_path: Path, recorder_pid: int | None,
+                 realtime: bool) -> None:
+    """Write ``run_start.json`` (atomically) and the disk reserve before the first tick.
+
+    The reserve is a small preallocated file the recorder deletes when the disk fills,
+    so the last events, the summary and the manifest still fit.
+    """
+    model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
+    start = {
+        "software": {"name": "plantrig", "version": __version__},
+        "rig": {"name": rig.name, "file": str(rig.path), "tick_s": rig.tick,
+                "duration_s": rig.duration},
+        "started_utc": _dt.datetime.now(_dt.UTC).isoformat(timespec="milliseconds"),
+        "started_unix_s": time.time(),
+        "mode": "realtime" if realtime else "fast",
+        "ticks_planned": rig.n_ticks,
+        "columns": column_info(rig, columns, units),
+        "model": model.as_dict(),
+        "rig_process": _identity(os.getpid()),
+        "recorder_process": _identity(recorder_pid) if recorder_pid else None,
+        "tape": str(tape_path), "event_tape": str(event_tape_path),
+    }
+    write_atomic(folder / RUN_START, (json.dumps(start, indent=2) + "\n").encode())
+    try:
+        fd = os.open(folder / RESERVE_NAME, os.O_WRONLY | os.O_CREAT, 0o600)
+        try:
+            os.posix_fallocate(fd, 0, RESERVE_BYTES)
+        finally:
+            os.close(fd)
+    except OSError:
+        (folder / RESERVE_NAME).unlink(missing_ok=True)
+
+
+def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, Any]) -> None:
+    """Turn the journal into ``ticks.npy`` and ``run.h5``; write summary and manifest.
+
+    The journal is removed only once ``ticks.npy`` is safely on disk. When the disk is
+    full the journal stays (``plantrig recover`` finishes later) and the summary says so.
+    ``summary`` gets a "record" entry naming what was written.
+    """
+    folder = Path(folder)
+    start = json.loads((folder / RUN_START).read_text()) if (folder / RUN_START).exists() else {}
+    columns: list[str] = summary["columns"]
+    info = start.get("columns") or [{"name": c, "unit": u} for c, u in
+                                    zip(columns, summary["units"], strict=True)]
+    (folder / RESERVE_NAME).unlink(missing_ok=True)
+    record: dict[str, Any] = {"files": [], "problems": []}
+    summary["record"] = record
+    journal = folder / "ticks.journal"
+    try:
+        structured = np.ascontiguousarray(rows).view(
+            np.dtype([(name, np.float64) for name in columns])).reshape(-1)
+        _save_npy(folder / "ticks.npy", structured)
+        record["files"].append("ticks.npy")
+        journal.unlink(missing_ok=True)
+    except OSError as exc:
+        (folder / ".ticks.npy.tmp").unlink(missing_ok=True)
+        record["problems"].append(f"ticks.npy not written ({exc.strerror}); ticks.journal "
+                                  "kept: free space, then run plantrig recover")
+    try:
+        events = read_events(folder / "events.jsonl")
+        sources = {p.name: p.read_text(encoding="utf-8", errors="replace")
+                   for p in sorted(folder.iterdir())
+                   if p.suffix in (".toml", ".py") and p.is_file()}
+        write_run_h5(folder / "run.h5", rows, info, events, sources, {
+            "software_version": __version__, "rig": summary["rig"]["name"],
+            "started_utc": summary["started_utc"], "ended": summary["ended"],
+            "reason": summary["reason"], "tick_s": summary["rig"]["tick_s"],
+            "summary": summary, "model": summary["model"]})
+        record["files"].append("run.h5")
+    except ImportError:
+        record["problems"].append("run.h5 not written: h5py is not installed")
+    except OSError as exc:
+        record["problems"].append(f"run.h5 not written ({exc.strerror or exc})")
+    try:
+        write_atomic(folder / "summary.json", (json.dumps(summary, indent=2) + "\n").encode())
+        write_manifest(folder)
+    except OSError as exc:
+        raise RecordError(folder, f"summary or manifest not written ({exc.strerror}); "
+                                  "free space, then run plantrig recover") from None
+
+
+def read_events(path: Path) -> list[dict[str, Any]]:
+    """Events of events.jsonl; a torn last line (the writer died mid-line) is dropped."""
+    if not Path(path).exists():
+        return []
+    out = []
+    for line in Path(path).read_text(encoding="utf-8", errors="replace").splitlines():
+        try:
+            ev = json.loads(line)
+        except ValueError:
+            continue
+        if isinstance(ev, dict) and {"tick", "time", "kind"} <= ev.keys():
+            out.append(ev)
+    return out
+
+
+def timing_from_rows(rows: NDArray[np.float64], columns: list[str]) -> dict[str, Any]:
+    """Lateness and work-time statistics read back from the tick records."""
+    late = rows[:, columns.index("lateness")] if "lateness" in columns else np.empty(0)
+    work = rows[:, columns.index("exec_time")] if "exec_time" in columns else np.empty(0)
+
+    def pct(v: NDArray[np.float64], q: float) -> float:
+        return float(np.percentile(v, q)) if v.size else 0.0
+
+    return {"ticks": int(rows.shape[0]),
+            "lateness_p50_s": pct(late, 50), "lateness_p99_s": pct(late, 99),
+            "lateness_max_s": float(late.max()) if late.size else 0.0,
+            "exec_p50_s": pct(work, 50), "exec_p99_s": pct(work, 99),
+            "exec_max_s": float(work.max()) if work.size else 0.0}
+
+
+def recover_run(folder: Path) -> dict[str, Any]:
+    """Rebuild run.h5, ticks.npy, summary.json and the manifest of a run that died.
+
+    Rows come from the journal (a torn last row dropped), then from the tape if it is
+    still in /dev/shm; the tape's written counter says how many rows the rig produced,
+    so the loss is measured, not guessed. Returns the recovery report (also in the
+    summary under "recovery").
+    """
+    folder = Path(folder)
+    start_path = folder / RUN_START
+    if not start_path.exists():
+        raise RecordError(folder, f"no {RUN_START}: not a plantrig run folder")
+    journal = folder / "ticks.journal"
+    summary_path = folder / "summary.json"
+    if summary_path.exists() and not journal.exists():
+        raise RecordError(folder, "the run ended cleanly; nothing to recover")
+    start = json.loads(start_path.read_text())
+    _wait_for_exit(folder, start)
+    info = start["columns"]
+    columns = [c["name"] for c in info]
+    n = len(columns)
+    tick = float(start["rig"]["tick_s"])
+    if summary_path.exists():
+        # the run ended but its finish did not (disk full): finish it now, as it ended
+        summary = json.loads(summary_path.read_text())
+        rows = read_journal(journal, n)
+        finish_record(folder, rows, summary)
+        return {"finished_again": True, "recovered_rows": int(rows.shape[0]),
+                "lost_rows": summary["ticks_recorded"] - int(rows.shape[0])}
+    if journal.exists():
+        rows = read_journal(journal, n)
+        torn_bytes = journal.stat().st_size - rows.size * 8
+    elif (folder / "ticks.npy").exists():
+        rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, n)
+        torn_bytes = 0
+    else:
+        rows, torn_bytes = np.empty((0, n)), 0
+    from_journal = rows.shape[0]
+    events = read_events(folder / "events.jsonl")
+    produced: int | None = None
+    salvaged = np.empty((0, n))
+    tape_path, event_path = Path(start["tape"]), Path(start["event_tape"])
+    if tape_path.exists():
+        reader = TapeReader(tape_path)
+        if reader.n_columns == n:
+            produced = reader.written
+            reader.next_seq = from_journal
+            while reader.next_seq < produced:
+                block = reader.read_new()
+                if not block.size:
+                    break
+                salvaged = np.concatenate([salvaged, block])
+            if reader.lost:   # the ring lapped the journal: a gap, so take nothing from it
+                salvaged = np.empty((0, n))
+        reader.close()
+    if event_path.exists():
+        etape = EventTape(event_path, create=False)
+        etape.next_seq = len(events)
+        events_salvaged = [{"tick": tk, "time": t, "kind": k, "detail": d}
+                           for tk, t, k, d in etape.read_new()]
+        etape.close()
+    else:
+        events_salvaged = []
+    rows = np.concatenate([rows, salvaged]) if salvaged.size else rows
+    recovered = rows.shape[0]
+    lost = None if produced is None else produced - recovered
+    report = {
+        "produced_rows": produced, "journal_rows": from_journal,
+        "tape_rows": int(salvaged.shape[0]), "recovered_rows": recovered,
+        "lost_rows": lost, "lost_ms": None if lost is None else lost * tick * 1e3,
+        "journal_only_lost_rows": None if produced is None else produced - from_journal,
+        "journal_only_lost_ms": None if produced is None else (produced - from_journal)
+        * tick * 1e3,
+        "torn_bytes_dropped": int(torn_bytes), "tape_found": produced is not None,
+        "events_from_tape": len(events_salvaged),
+    }
+    last_tick = int(rows[-1, 0]) if recovered else 0
+    note = {"tick": last_tick, "time": last_tick * tick, "kind": "recovered",
+            "detail": "run did not end cleanly; rebuilt by plantrig recover; "
+                      + (f"{lost} ticks lost" if lost is not None else
+                         "tape gone, loss unknown")}
+    with open(folder / "events.jsonl", "a+", encoding="utf-8") as f:
+        f.seek(0, os.SEEK_END)
+        if f.tell() and not _ends_with_newline(folder / "events.jsonl"):
+            f.write("\n")
+        for ev in [*events_salvaged, note]:
+            f.write(json.dumps(ev) + "\n")
+    all_events = read_events(folder / "events.jsonl")
+    recorder_status = folder / "recorder.json"
+    counts: dict[str, int] = {}
+    for ev in all_events:
+        counts[ev["kind"]] = counts.get(ev["kind"], 0) + 1
+    rig_file = folder / "rig.toml"
+    summary = {
+        "software": start["software"],
+        "recovered_by": {"name": "plantrig", "version": __version__},
+        "rig": {**start["rig"], "sha256": hashlib.sha256(rig_file.read_bytes()).hexdigest()
+                if rig_file.exists() else None},
+        "started_utc": start["started_utc"], "mode": start["mode"],
+        "ended": "fault", "reason": "run did not end cleanly (recovered)",
+        "ticks_planned": start["ticks_planned"], "ticks_recorded": recovered,
+        "timing": timing_from_rows(rows, columns),
+        "recorder": json.loads(recorder_status.read_text()) if recorder_status.exists() else {},
+        "link": {}, "events": counts, "model": start["model"],
+        "columns": columns, "units": [c["unit"] for c in info],
+        "recovery": report,
+    }
+    recorder_status.unlink(missing_ok=True)
+    finish_record(folder, rows, summary)
+    for path in (tape_path, tape_path.with_suffix(".json"), event_path):
+        path.unlink(missing_ok=True)
+    return report
+
+
+def _save_npy(path: Path, array: NDArray[Any]) -> None:
+    tmp = path.with_name(f".{path.name}.tmp")
+    with open(tmp, "wb") as f:
+        np.save(f, array)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+
+
+def _ends_with_newline(path: Path) -> bool:
+    with open(path, "rb") as f:
+        f.seek(-1, os.SEEK_END)
+        return f.read(1) == b"\n"
+
+
+def _finite(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def _identity(pid: int) -> dict[str, Any]:
+    """A pid with its start time since boot, so a reused pid is not mistaken for ours."""
+    return {"pid": pid, "start_ticks": _start_ticks(pid)}
+
+
+def _start_ticks(pid: int) -> int | None:
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return None
+    return int(stat.rpartition(")")[2].split()[19])
+
+
+def _alive(identity: dict[str, Any] | None) -> bool:
+    if not identity:
+        return False
+    try:
+        os.kill(identity["pid"], 0)
+    except OSError as exc:
+        return exc.errno == errno.EPERM
+    known = identity.get("start_ticks")
+    return known is None or _start_ticks(identity["pid"]) == known
+
+
+def _wait_for_exit(folder: Path, start: dict[str, Any]) -> None:
+    """Refuse while the rig runs; give an orphaned recorder time to drain the tape."""
+    if _alive(start.get("rig_process")):
+        raise RecordError(folder, f"the run is still going (pid "
+                                  f"{start['rig_process']['pid']}); nothing to recover")
+    deadline = time.monotonic() + RECORDER_EXIT_WAIT_S
+    while _alive(start.get("recorder_process")):
+        if time.monotonic() > deadline:
+            raise RecordError(folder, f"the recorder (pid {start['recorder_process']['pid']}) "
+                                      "is still writing; try again")
+        time.sleep(0.05)
