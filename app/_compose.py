@@ -1,0 +1,69 @@
+"""Build the parts a rig file asks for from plantrig.io, for the command line.
+
+The engine (plantrig.sim) takes its signal chains as objects; this module turns the
+rig file's ``[[sensors]]`` and ``[[actuators]]`` tables (one per signal, matched by
+``name`` to a plant output or input) into those objects, reporting mistakes in the
+rig-file style.
+"""
+
+from __future__ import annotations
+
+import difflib
+from typing import Any
+
+from plantrig.sim import Rig, RigFileError, RigIssue, SignalChain
+
+
+def _ordered(rig: Rig, group: str, tables: tuple[dict[str, Any], ...],
+             names: list[str], issues: list[RigIssue]) -> tuple[list[dict[str, Any]],
+                                                                 list[int | None]]:
+    """One channel dict per signal in plant order (signals without a table pass
+    through), and for each the index of its table in the rig file."""
+    by_name: dict[str, dict[str, Any]] = {}
+    where: dict[str, int] = {}
+    for i, table in enumerate(tables):
+        name = table.get("name")
+        if name not in names:
+            close = difflib.get_close_matches(str(name), names, n=1)
+            hint = f"; did you mean '{close[0]}'?" if close else ""
+            issues.append(RigIssue(str(rig.path), f"{group}[{i}].name",
+                                   f"expected one of {', '.join(names)}, found {name!r}{hint}"))
+        elif name in by_name:
+            issues.append(RigIssue(str(rig.path), f"{group}[{i}].name",
+                                   f"{name!r} already has a [[{group}]] table"))
+        else:
+            by_name[name] = table
+            where[name] = i
+    return ([by_name.get(name, {"name": name}) for name in names],
+            [where.get(name) for name in names])
+
+
+def _issue(rig: Rig, exc: Any, origin: list[int | None]) -> RigIssue:
+    index = origin[exc.index] if exc.index < len(origin) else exc.index
+    return RigIssue(str(rig.path), f"{exc.chain}[{index}].{exc.key}",
+                    str(exc).split(": ", 1)[-1])
+
+
+def build_chains(rig: Rig) -> tuple[SignalChain | None, SignalChain | None]:
+    """(actuator chain, sensor chain) for ``rig``; None where the file asks for none."""
+    from plantrig.io import ChainSpecError, build_actuator_chain, build_sensor_chain
+
+    issues: list[RigIssue] = []
+    actuator = sensor = None
+    if rig.actuators:
+        spec, origin = _ordered(rig, "actuators", rig.actuators, [s.name for s in rig.inputs],
+                                issues)
+        try:
+            actuator = build_actuator_chain(spec, rig.tick)
+        except ChainSpecError as exc:
+            issues.append(_issue(rig, exc, origin))
+    if rig.sensors:
+        spec, origin = _ordered(rig, "sensors", rig.sensors, [s.name for s in rig.outputs],
+                                issues)
+        try:
+            sensor = build_sensor_chain(spec, rig.seed)
+        except ChainSpecError as exc:
+            issues.append(_issue(rig, exc, origin))
+    if issues:
+        raise RigFileError(issues)
+    return actuator, sensor
