@@ -22,6 +22,7 @@ import multiprocessing as mp
 import os
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -36,6 +37,7 @@ from plantrig.sim._tape import (
 
 SYNC_INTERVAL_S = 0.1
 IDLE_SLEEP_S = 0.002
+READY_TIMEOUT_S = 60.0
 RESERVE_NAME = ".reserve"
 
 
@@ -68,7 +70,7 @@ class _Disk:
 
 
 def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_path: str,
-               events_path: str) -> None:
+               events_path: str, parent_pid: int | None = None, ready: Any = None) -> None:
     """Copy every tape row into the journal and every event into events.jsonl, until
     both tapes have ended and are empty, or the rig process has died and nothing is left.
 
@@ -80,12 +82,14 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
     event_tape = EventTape(Path(event_tape_path), create=False)
     disk = _Disk(reader, Path(journal_path).with_name(RESERVE_NAME))
     row_bytes = reader.n_columns * 8
-    parent = os.getppid()
+    parent = parent_pid or os.getppid()
     max_backlog = journal_bytes = not_written = 0
     orphaned = False
     with open(journal_path, "ab", buffering=0) as journal, \
             open(events_path, "ab", buffering=0) as events:
         last_sync = time.monotonic()
+        if ready is not None:
+            ready.set()
         while True:
             orphaned = orphaned or os.getppid() != parent
             backlog = reader.written - reader.next_seq
@@ -135,12 +139,21 @@ def _sync(disk: _Disk, *files: io.FileIO) -> None:
 
 def start_recorder(tape_path: Path, journal_path: Path, status_path: Path,
                    event_tape_path: Path, events_path: Path) -> mp.Process:
-    """Start the recorder in its own process (spawned: no state shared by accident)."""
+    """Start the recorder in its own process (spawned: no state shared by accident) and
+    wait until it is draining: a spawned interpreter takes about a second to import,
+    and a real-time loop must not fill the ring meanwhile."""
     ctx = mp.get_context("spawn")
+    ready = ctx.Event()
     proc = ctx.Process(target=drain_tape, name="plantrig-recorder",
                        args=(str(tape_path), str(journal_path), str(status_path),
-                             str(event_tape_path), str(events_path)), daemon=True)
+                             str(event_tape_path), str(events_path), os.getpid(), ready),
+                       daemon=True)
     proc.start()
+    deadline = time.monotonic() + READY_TIMEOUT_S
+    while not ready.wait(0.05):
+        if not proc.is_alive() or time.monotonic() > deadline:
+            proc.kill()
+            raise RuntimeError(f"the recorder did not start (exit code {proc.exitcode})")
     return proc
 
 
