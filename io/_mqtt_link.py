@@ -1,0 +1,269 @@
+"""MqttLink: the tick loop's side of a controller reached through an MQTT broker.
+
+Every method the loop calls is non-blocking: values go to the worker (plantrig.io.
+_mqtt_worker, its own process by default) through a non-blocking socket and commands
+come back the same way, already checked. The watchdog runs here, on plant ticks: no
+valid command for ``watchdog_timeout`` gives one ``link_lost`` event, the next valid
+command one ``link_restored``.
+
+Why a process and not a thread: FIELD-NOTES.md measured that a busy Python thread in
+the loop's process delays every wake-up by about one GIL switch interval; the worker
+parses JSON and runs paho's packet handling for every message. bench/bench_mqtt.py
+measures both placements (``worker = "thread"`` is kept for that comparison and for
+platforms where spawning is costly).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import select
+import socket
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from plantrig.io._mqtt_config import MqttSettings, mqtt_settings
+from plantrig.io._mqtt_worker import (
+    ChannelSpec,
+    command_struct,
+    sensor_struct,
+    setup_record,
+    worker_main,
+)
+from plantrig.sim import Event, Rig, Signal
+from plantrig.sim._contracts import Vector
+
+SOCKET_BUFFER = 1 << 16
+# The worker process imports only what it needs: plantrig.io's __init__ pulls in the
+# whole simulator (scipy; about 3 s on a loaded 2-core machine against 0.3 s without it),
+# so the bootstrap stands in an empty package module for it.
+WORKER_BOOT = (
+    "import importlib.util, sys, types\n"
+    "spec = importlib.util.find_spec('plantrig.io')\n"
+    "pkg = types.ModuleType('plantrig.io')\n"
+    "pkg.__path__ = list(spec.submodule_search_locations)\n"
+    "sys.modules['plantrig.io'] = pkg\n"
+    "from plantrig.io._mqtt_worker import process_main\n"
+    "sys.exit(process_main(sys.argv))\n")
+CLOSE_WAIT_S = 3.0
+READY_EVENTS = {"link_connected", "link_auth_failed", "link_connect_failed"}
+
+
+class MqttLink:
+    """A ControllerLink over MQTT (see plantrig.io._mqtt_payload for the topics)."""
+
+    def __init__(self, settings: MqttSettings, *, inputs: Sequence[Signal],
+                 outputs: Sequence[Signal], tick: float, rig_name: str) -> None:
+        self.settings = settings
+        self.tick = tick
+        self.spec = ChannelSpec(rig_name, tick, tuple(s.name for s in inputs),
+                                tuple(s.name for s in outputs),
+                                tuple(float(s.min) for s in inputs),
+                                tuple(float(s.max) for s in inputs))
+        self.m, self.p = len(inputs), len(outputs)
+        self._sensor = sensor_struct(self.p)
+        self._command = command_struct(self.m)
+        self._out = bytearray(self._sensor.size)
+        self._in = bytearray(65536)
+        self._newest = np.zeros(self.m)
+        self.watchdog_ticks = max(1, math.ceil(watchdog_round(settings.watchdog_timeout / tick)))
+        self._sock: socket.socket | None = None
+        self._peer: socket.socket | None = None
+        self._worker: Any = None
+        self._events: list[Event] = []
+        self._worker_health: dict[str, float] = {}
+        self._health_raw: bytes | None = None
+        self.last_valid_tick: int | None = None
+        self.last_echo_tick = -1
+        self.lost = False
+        self._gone = False
+        self._fresh = False
+        self.counts = {"sends": 0, "receives": 0, "commands_used": 0, "commands_superseded": 0,
+                       "loop_send_dropped": 0, "link_lost": 0, "link_restored": 0,
+                       "command_age_ticks_max": 0, "command_age_ticks_last": 0}
+
+    @classmethod
+    def from_rig(cls, rig: Rig, settings: MqttSettings) -> MqttLink:
+        return cls(settings, inputs=rig.inputs, outputs=rig.outputs, tick=rig.tick,
+                   rig_name=rig.name)
+
+    # ---- ControllerLink -------------------------------------------------------------
+    def open(self) -> None:
+        """Start the worker and wait up to open_timeout for its first connection result."""
+        if self._sock is not None:
+            return
+        mine, theirs = socket.socketpair(socket.AF_UNIX, socket.SOCK_SEQPACKET)
+        for s in (mine, theirs):
+            s.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, SOCKET_BUFFER)
+            s.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, SOCKET_BUFFER)
+        self._sock, self._peer = mine, theirs
+        if self.settings.worker == "thread":
+            self._worker = threading.Thread(target=worker_main, daemon=True,
+                                            args=(self.settings, self.spec, theirs),
+                                            name=f"mqtt-{self.settings.rig_id}")
+            self._worker.start()
+        else:
+            mine.send(setup_record(self.settings, self.spec))
+            self._worker = subprocess.Popen(
+                [sys.executable, "-c", WORKER_BOOT, str(theirs.fileno())],
+                pass_fds=(theirs.fileno(),), stdin=subprocess.DEVNULL)
+            theirs.close()  # the child holds its own copy
+            self._peer = None
+        mine.setblocking(False)
+        deadline = time.monotonic() + self.settings.open_timeout
+        while time.monotonic() < deadline and not self._gone:
+            select.select([mine], [], [], max(0.0, deadline - time.monotonic()))
+            if any(ev.kind in READY_EVENTS for ev in self._drain(-1, 0.0)):
+                return
+        if not self._gone:
+            self._events.append(Event(-1, 0.0, "link_not_connected",
+                                      f"no connection to {self.settings.host}:"
+                                      f"{self.settings.port} within {self.settings.open_timeout}"
+                                      " s; the run starts and the link keeps trying"))
+
+    def receive(self, tick: int, t: float, out: Vector) -> bool:
+        self.counts["receives"] += 1
+        self._drain(tick, t)
+        fresh = self._fresh
+        if self.last_valid_tick is None:
+            self.last_valid_tick = tick  # the watchdog starts with the first tick
+        if fresh:
+            out[:] = self._newest
+            self.last_valid_tick = tick
+            self.counts["commands_used"] += 1
+            age = tick - self.last_echo_tick
+            self.counts["command_age_ticks_last"] = age
+            if age > self.counts["command_age_ticks_max"]:
+                self.counts["command_age_ticks_max"] = age
+            if self.lost:
+                self.lost = False
+                self.counts["link_restored"] += 1
+                self._events.append(Event(tick, t, "link_restored",
+                                          f"valid command after {self._silence(tick)}"))
+            return True
+        if not self.lost and tick - self.last_valid_tick >= self.watchdog_ticks:
+            self.lost = True
+            self.counts["link_lost"] += 1
+            self._events.append(Event(tick, t, "link_lost",
+                                      f"no valid command for {self._silence(tick)} "
+                                      f"(watchdog_timeout {self.settings.watchdog_timeout} s)"))
+        return False
+
+    def send(self, tick: int, t: float, values: Vector) -> None:
+        self.counts["sends"] += 1
+        if self._sock is None or self._gone:
+            self.counts["loop_send_dropped"] += 1
+            return
+        self._sensor.pack_into(self._out, 0, b"S", tick, t, *values)
+        try:
+            self._sock.send(self._out)
+        except BlockingIOError:  # the worker is a full buffer behind: drop the newest
+            self.counts["loop_send_dropped"] += 1
+        except OSError as exc:
+            self._worker_gone(tick, t, f"send failed: {exc}")
+
+    def drain_events(self) -> list[Event]:
+        events, self._events = self._events, []
+        return events
+
+    def health(self) -> dict[str, float]:
+        if self._health_raw is not None:
+            try:
+                self._worker_health = json.loads(self._health_raw)
+            except ValueError:
+                pass
+            self._health_raw = None
+        merged = {k: float(v) for k, v in self._worker_health.items()}
+        merged.update({k: float(v) for k, v in self.counts.items()})
+        merged["watchdog_lost"] = 1.0 if self.lost else 0.0
+        return merged
+
+    def close(self) -> None:
+        """Ask the worker to publish 'offline' and disconnect; wait a little, then end it."""
+        sock, worker = self._sock, self._worker
+        if sock is None:
+            return
+        if not self._gone:
+            try:
+                sock.send(b"Q")
+            except OSError:
+                pass
+            deadline = time.monotonic() + CLOSE_WAIT_S
+            while time.monotonic() < deadline and not self._gone:
+                select.select([sock], [], [], max(0.0, deadline - time.monotonic()))
+                self._drain(-1, 0.0)
+        if isinstance(worker, threading.Thread):
+            worker.join(timeout=CLOSE_WAIT_S / 3)
+        elif worker is not None:
+            try:
+                worker.wait(timeout=CLOSE_WAIT_S / 3)
+            except subprocess.TimeoutExpired:
+                worker.kill()
+                worker.wait(timeout=1.0)
+        sock.close()
+        if self._peer is not None:
+            self._peer.close()
+        self._sock = self._peer = None
+        self._worker = None
+
+    # ---- helpers --------------------------------------------------------------------
+    def _silence(self, tick: int) -> str:
+        last = self.last_valid_tick if self.last_valid_tick is not None else tick
+        return f"{(tick - last) * self.tick:.3f} s ({tick - last} ticks)"
+
+    def _worker_gone(self, tick: int, t: float, detail: str) -> None:
+        if not self._gone:
+            self._gone = True
+            self._events.append(Event(tick, t, "link_worker_gone", detail))
+
+    def _drain(self, tick: int, t: float) -> tuple[Event, ...]:
+        """Read every record the worker sent; keep the newest command, return the events."""
+        self._fresh = False
+        sock = self._sock
+        if sock is None or self._gone:
+            return ()
+        new: list[Event] = []
+        buf, command = self._in, self._command
+        while True:
+            try:
+                n = sock.recv_into(buf)
+            except BlockingIOError:
+                break
+            except OSError as exc:
+                self._worker_gone(tick, t, f"receive failed: {exc}")
+                break
+            if n == 0:
+                self._worker_gone(tick, t, "the MQTT worker ended")
+                break
+            code = buf[0]
+            if code == 0x43 and n == command.size:  # b"C"
+                if self._fresh:
+                    self.counts["commands_superseded"] += 1
+                _, _seq, echo, *values = command.unpack_from(buf)
+                self._newest[:] = values
+                self.last_echo_tick = echo
+                self._fresh = True
+            elif code == 0x45:  # b"E"
+                kind, _, detail = bytes(buf[1:n]).decode(errors="replace").partition("\t")
+                ev = Event(tick, t, kind, detail)
+                self._events.append(ev)
+                new.append(ev)
+            elif code == 0x48:  # b"H"
+                self._health_raw = bytes(buf[1:n])
+        return tuple(new)
+
+
+def watchdog_round(ticks: float) -> float:
+    """Tick count of a timeout, robust to float error (0.1 / 0.002 = 50.000000000000001)."""
+    return round(ticks, 9)
+
+
+def build_mqtt_link(rig: Rig, link: Any, endpoint: Any = None) -> MqttLink:
+    """The LINK_KINDS builder: an MqttLink from a checked [link] (plantrig.io._link_config)."""
+    return MqttLink.from_rig(rig, mqtt_settings(link, endpoint))
