@@ -27,6 +27,24 @@ from plantrig.io._frames import (
     decode_frame,
     encode_frame,
 )
+from plantrig.io._link_config import (
+    LINK_KINDS,
+    Issues,
+    LinkKind,
+    LinkSettings,
+    build_link,
+    check_link_table,
+    parse_link_table,
+)
+from plantrig.io._pty import FdPort, PtyPair, open_pty_pair
+from plantrig.io._refcontroller import (
+    TRANSPORTS,
+    ReferenceController,
+    SerialTransport,
+    Transport,
+    run_controller,
+)
+from plantrig.io._serial_link import BytePort, LinkError, SerialLink, open_serial_port
 from plantrig.io._textline import (
     MAX_LINE_LENGTH,
     LineSplitter,
@@ -34,6 +52,7 @@ from plantrig.io._textline import (
     encode_line,
     xor_checksum,
 )
+from plantrig.io._wire import WireFormat
 
 __all__ = [
     "MAX_CHANNELS",
@@ -67,4 +86,25 @@ __all__ = [
     "build_sensor_chain",
     "counts_to_eng",
     "eng_to_counts",
+    # links
+    "LINK_KINDS",
+    "TRANSPORTS",
+    "BytePort",
+    "FdPort",
+    "Issues",
+    "LinkError",
+    "LinkKind",
+    "LinkSettings",
+    "PtyPair",
+    "ReferenceController",
+    "SerialLink",
+    "SerialTransport",
+    "Transport",
+    "WireFormat",
+    "build_link",
+    "check_link_table",
+    "open_pty_pair",
+    "open_serial_port",
+    "parse_link_table",
+    "run_controller",
 ]

@@ -1,0 +1,190 @@
+"""Command-line parts for a controller on a link: `plantrig controller` and `plantrig demo`.
+
+`controller` runs the reference controller (plantrig.io) against a rig over its link.
+`demo` is the whole bench on one machine: a pty pair stands in for the cable, the
+reference controller runs on one end as a separate process, and the rig runs in real
+time on the other; the run folder, the link health and the timing are printed at the end.
+"""
+
+from __future__ import annotations
+
+import argparse
+import select
+import signal
+import subprocess
+import sys
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from plantrig import CAUTION
+
+EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
+DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_hil.toml"
+READY_TIMEOUT_S = 20.0
+READY_WORD = "controller: ready"
+
+
+def link_settings(rig: Any) -> Any:
+    """The checked [link] settings of a rig already loaded (and checked) by the CLI."""
+    from plantrig.io import parse_link_table
+    settings, _ = parse_link_table(rig)
+    if settings is None:
+        print(f"error: {rig.path}: link: missing table (the controller is on a link)",
+              file=sys.stderr)
+        raise SystemExit(EXIT_USAGE)
+    return settings
+
+
+def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
+    """Serve the rig's link with the reference controller until the far end closes."""
+    from plantrig.io import TRANSPORTS, ReferenceController, run_controller
+    from plantrig.io._refcontroller import prefer_realtime
+    from plantrig.sim import RigFileError
+
+    print(CAUTION, file=sys.stderr)
+    rig = load(args.rig)
+    settings = link_settings(rig)
+    try:
+        controller = ReferenceController(rig, settings)
+    except RigFileError as exc:
+        for issue in exc.issues:
+            print(f"error: {issue}", file=sys.stderr)
+        return EXIT_USAGE
+    if settings.kind not in TRANSPORTS:
+        print(f"error: the reference controller has no transport for link kind "
+              f"{settings.kind!r}", file=sys.stderr)
+        return EXIT_USAGE
+    try:
+        transport = TRANSPORTS[settings.kind](settings, args.port)
+    except (OSError, ValueError) as exc:
+        print(f"error: cannot open {args.port or 'the link'}: {exc}", file=sys.stderr)
+        return EXIT_FAULT
+    stopping = []
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(sig, lambda *_: stopping.append(True))
+    scheduler = prefer_realtime() if not args.no_realtime else "SCHED_OTHER"
+    print(f"{READY_WORD} on {transport.name} ({settings.protocol}, "
+          f"{controller.law.__class__.__name__}, {scheduler})", flush=True)
+    try:
+        reason = run_controller(controller, transport, stop=lambda: bool(stopping))
+    finally:
+        transport.close()
+    c = controller.counts
+    print(f"controller: {reason}; answered {c.rx_ok}, bad {c.rx_bad}, duplicates "
+          f"{c.duplicates}, out of order {c.out_of_order}, dropped {c.tx_dropped}, "
+          f"heartbeats {c.heartbeats}, status {c.status}", flush=True)
+    return EXIT_OK
+
+
+def _wait_ready(proc: subprocess.Popen[str], timeout: float) -> str | None:
+    """The controller's ready line, or None if it exited or said nothing in time."""
+    assert proc.stdout is not None
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        ready, _, _ = select.select([proc.stdout], [], [], 0.1)
+        if ready:
+            line = proc.stdout.readline()
+            if not line:
+                return None
+            if line.startswith(READY_WORD):
+                return line.strip()
+        elif proc.poll() is not None:
+            return None
+    return None
+
+
+def controller_command(rig_path: str | Path, port: str) -> list[str]:
+    """The command line that starts the reference controller in its own process."""
+    return [sys.executable, "-m", "plantrig", "controller", str(rig_path), "--port", port]
+
+
+def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
+             print_outcome: Callable[[Path, dict[str, Any]], None]) -> int:
+    """Rig and reference controller over a pty pair, in real time; 0 if all went well."""
+    from plantrig.io import FdPort, build_link, open_pty_pair
+    from plantrig.sim import run_to_folder
+
+    print(CAUTION)
+    rig = load(args.rig)
+    link_settings(rig)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    pair = open_pty_pair()
+    proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
+                            stdout=subprocess.PIPE, text=True)
+    try:
+        ready = _wait_ready(proc, READY_TIMEOUT_S)
+        if ready is None:
+            print("error: the reference controller did not start", file=sys.stderr)
+            return EXIT_FAULT
+        print(f"{ready} (pid {proc.pid})")
+        # from here the controller's end is the only one open: if it goes, we see it
+        pair.close_slave()
+        port = FdPort(pair.master_fd, name=f"pty {pair.slave_path}", owns_fd=False)
+        link = build_link(rig, port=port)
+        print(f"rig: {rig.name}, {1 / rig.tick:g} Hz for {rig.duration:g} s in real time "
+              f"over {pair.slave_path}")
+        folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
+    finally:
+        pair.close_slave()
+        pair.close_master()   # the controller ends when the rig's end of the pty closes
+        try:
+            proc.wait(timeout=5)
+        except subprocess.TimeoutExpired:
+            proc.terminate()
+            proc.wait(timeout=5)
+    assert proc.stdout is not None
+    for line in proc.stdout.read().splitlines():
+        print(line)
+    print_outcome(folder, summary)
+    health = summary["link"]
+    print(link_report(health, rig.tick))
+    ok = outcome.ended == "completed" and health.get("link_lost", 1) == 0
+    print("demo: ok" if ok else "demo: the link was lost or the run did not complete")
+    return EXIT_OK if ok else EXIT_FAULT
+
+
+def link_report(h: dict[str, float], tick: float) -> str:
+    """The link health in a few readable lines."""
+    bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
+    lines = [
+        f"link: frames out {h.get('frames_out', 0):.0f}, commands in "
+        f"{h.get('commands_in', 0):.0f}, heartbeats {h.get('heartbeats_in', 0):.0f}, "
+        f"status {h.get('status_in', 0):.0f}",
+        f"link: bad or rejected {bad:.0f}, duplicates {h.get('duplicates', 0):.0f}, "
+        f"out of order {h.get('out_of_order', 0):.0f}, dropped out "
+        f"{h.get('dropped_out', 0):.0f}, late answers {h.get('late', 0):.0f}, ticks without "
+        f"a fresh command {h.get('missed_ticks', 0):.0f}, link lost "
+        f"{h.get('link_lost', 0):.0f}",
+    ]
+    if "latency_ticks_p50" in h:
+        lines.append(
+            f"link: latency {h['latency_ticks_p50']:.0f} tick(s) p50, "
+            f"{h['latency_ticks_max']:.0f} max; write-to-read {h['latency_ms_p50']:.3f} ms "
+            f"p50, {h['latency_ms_p99']:.3f} ms p99, {h['latency_ms_max']:.3f} ms max "
+            f"(seen at tick starts, tick {tick * 1e3:g} ms)")
+    return "\n".join(lines)
+
+
+def add_parsers(sub: Any, load: Callable[[str], Any],
+                print_outcome: Callable[[Path, dict[str, Any]], None]) -> None:
+    """Add `controller` and `demo` to the CLI's subcommands."""
+    p = sub.add_parser("controller", help="run the reference controller on a rig's link",
+                       description="Answer the rig's sensor frames with the law in "
+                                   "[link.controller], until the far end closes.",
+                       epilog=CAUTION)
+    p.add_argument("rig", help="rig file (TOML) with a [link] table")
+    p.add_argument("--port", help="device path or pyserial URL (overrides link.port)")
+    p.add_argument("--no-realtime", action="store_true",
+                   help="do not ask for SCHED_FIFO")
+    p.set_defaults(func=lambda a: cmd_controller(a, load))
+
+    p = sub.add_parser("demo", help="rig and reference controller over a pty, in real time",
+                       description="Run a rig in real time against the reference controller "
+                                   "in another process, over a pseudo-terminal pair.",
+                       epilog=CAUTION)
+    p.add_argument("--rig", default=str(DEMO_RIG), help=f"rig file (default: {DEMO_RIG.name})")
+    p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
+    p.set_defaults(func=lambda a: cmd_demo(a, load, print_outcome))

@@ -1,0 +1,267 @@
+"""The reference controller: a worked example of the controller's end of a link.
+
+Firmware authors can read this top to bottom as the shape of their main loop:
+
+    1. wait for bytes (the transport's read returns within its poll time)
+    2. cut them into frames and decode each one; drop bad, repeated or stale frames
+    3. for each sensor frame stamped k: compute the command for tick k + 1 from its
+       values and the references at t = (k + 1) * tick, and send it stamped k
+    4. when nothing needed saying for heartbeat_period, send a heartbeat; every
+       status_period, send a status frame (binary mode)
+
+It is paced by the rig's sensor frames, not by a clock of its own. The rig writes the
+sensor frame of tick k at the end of tick k and reads commands at the start of tick
+k + 1, so an answer that arrives within the tick is used exactly where the built-in
+controller's would be: the closed loop over the wire equals the same rig run fast with
+the law built in (to float32 rounding on a binary link; exactly in text mode).
+
+The law is the rig file's [link.controller] table (same keys as [controller]), run with
+plantrig.sim's own Pid / PidLoops / StateFeedback through build_controller. The
+transport is pluggable: anything with read(), write() and close() (Transport below);
+SerialTransport is the one for a UART or a pty.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import gc
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any, Protocol
+
+import numpy as np
+
+from plantrig.io._frames import TICK_MODULUS, FrameError, Kind, SeqTracker
+from plantrig.io._link_config import LinkSettings
+from plantrig.io._wire import WireFormat
+from plantrig.sim import Rig, RigFileError, RigIssue, build_controller
+
+WRITE_TIMEOUT_S = 0.05
+FIFO_PRIORITY = 5   # below the rig's loop (plantrig.sim uses 10), above ordinary work
+
+# status frame values: [state, detail, rx_ok, rx_bad, answered]
+STATE_WAITING, STATE_RUNNING = 0.0, 1.0
+
+
+class Transport(Protocol):
+    """Moves bytes for the controller. read() waits at most its poll time and returns
+    b"" if nothing came; read() and write() raise OSError when the far end is gone."""
+
+    name: str
+
+    def read(self) -> bytes: ...
+    def write(self, data: bytes) -> bool: ...   # False: dropped (output buffer full)
+    def close(self) -> None: ...
+
+
+class SerialTransport:
+    """A serial port (device path or pyserial URL) with the [link] line settings."""
+
+    def __init__(self, port: str, options: dict[str, Any], poll_s: float) -> None:
+        import serial
+        self._timeout_error = serial.SerialTimeoutException
+        parity = {"none": serial.PARITY_NONE, "even": serial.PARITY_EVEN,
+                  "odd": serial.PARITY_ODD, "mark": serial.PARITY_MARK,
+                  "space": serial.PARITY_SPACE}[options["parity"]]
+        self.ser = serial.serial_for_url(port, baudrate=options["baud"],
+                                         bytesize=options["byte_size"], parity=parity,
+                                         stopbits=options["stop_bits"], timeout=poll_s,
+                                         write_timeout=WRITE_TIMEOUT_S)
+        self.name = port
+
+    def read(self) -> bytes:
+        data = self.ser.read(max(1, self.ser.in_waiting))   # waits up to poll_s
+        if data and self.ser.in_waiting:
+            data += self.ser.read(self.ser.in_waiting)
+        return bytes(data)
+
+    def write(self, data: bytes) -> bool:
+        try:
+            self.ser.write(data)
+        except self._timeout_error:
+            return False
+        return True
+
+    def close(self) -> None:
+        self.ser.close()
+
+
+def law_spec(rig: Rig, settings: LinkSettings):  # type: ignore[no-untyped-def]
+    """The law to run: [link.controller], or the rig's own [controller] if built in."""
+    if settings.controller is not None:
+        return settings.controller
+    if rig.controller.kind != "external":
+        return rig.controller
+    raise RigFileError([RigIssue(str(rig.path), "link.controller",
+                                 "missing table: the reference controller needs a law "
+                                 "(kind = \"pid\", \"state_feedback\" or \"open_loop\", with "
+                                 "the same keys as [controller])")])
+
+
+@dataclass
+class ControllerCounts:
+    rx_ok: int = 0          # sensor frames answered
+    rx_bad: int = 0         # frames that failed to decode, or sensor frames of wrong size
+    duplicates: int = 0
+    out_of_order: int = 0
+    tx_dropped: int = 0     # frames the port would not take in time
+    tx_errors: int = 0      # commands that could not be encoded (beyond the encoding)
+    heartbeats: int = 0
+    status: int = 0
+
+
+class ReferenceController:
+    """The law and the protocol, with no knowledge of the transport."""
+
+    def __init__(self, rig: Rig, settings: LinkSettings) -> None:
+        self.rig = rig
+        self.settings = settings
+        self.law = build_controller(dataclasses.replace(rig, controller=law_spec(rig, settings)))
+        assert self.law is not None
+        self.wire = WireFormat(settings.protocol, settings.encoding, settings.scale,
+                               settings.checksum)
+        self.splitter = self.wire.splitter()
+        self.rx_seq = SeqTracker()
+        self.tx_seq = 0
+        self.tick_s = rig.tick
+        self.references = [r.waveform for r in rig.references]
+        self.y = np.zeros(len(rig.outputs))
+        self.r = np.zeros(len(rig.references))
+        # inputs no loop drives stay at their safe value, as in the engine
+        self.u = np.array([s.safe for s in rig.inputs], dtype=np.float64)
+        self.counts = ControllerCounts()
+        self.last_tick = 0
+
+    def _next_seq(self) -> int:
+        seq = self.tx_seq
+        self.tx_seq = (seq + 1) & 0xFFFF
+        return seq
+
+    def on_bytes(self, data: bytes) -> list[bytes]:
+        """Feed received bytes; return the frames to send in answer, oldest first."""
+        replies = []
+        for piece in self.splitter.feed(data):
+            try:
+                frame = self.wire.decode(piece, Kind.SENSOR)
+            except FrameError:
+                self.counts.rx_bad += 1
+                continue
+            dups, late = self.rx_seq.duplicates, self.rx_seq.out_of_order
+            if not self.rx_seq.check(frame.seq):
+                self.counts.duplicates += self.rx_seq.duplicates - dups
+                self.counts.out_of_order += self.rx_seq.out_of_order - late
+                continue
+            if frame.kind in (Kind.HEARTBEAT, Kind.STATUS):
+                continue
+            if frame.kind != Kind.SENSOR or len(frame.values) != len(self.y):
+                self.counts.rx_bad += 1
+                continue
+            reply = self.answer(frame.tick, frame.values)
+            if reply is not None:
+                replies.append(reply)
+        return replies
+
+    def command_for(self, stamp: int, values: tuple[float, ...]) -> np.ndarray:
+        """The command answering the sensor values stamped ``stamp`` (any transport).
+
+        The rig uses it at tick k = stamp + 1 (the prime frame before tick 0 is stamped
+        2**32 - 1, so k = 0), exactly where its built-in controller reads the values sent
+        at tick k - 1 with the references at t_k. Returns the controller's own buffer.
+        """
+        k = (stamp + 1) % TICK_MODULUS
+        t = k * self.tick_s
+        self.y[:] = values
+        for i, ref in enumerate(self.references):
+            self.r[i] = ref.value(t)
+        self.law.compute(t, self.y, self.r, self.u)
+        self.counts.rx_ok += 1
+        self.last_tick = stamp
+        return self.u
+
+    def answer(self, stamp: int, values: tuple[float, ...]) -> bytes | None:
+        """The command frame answering the sensor frame stamped ``stamp``."""
+        self.command_for(stamp, values)
+        try:
+            return self.wire.encode(Kind.COMMAND, self._next_seq(), stamp, self.u)
+        except FrameError:
+            self.counts.tx_errors += 1
+            return None
+
+    def heartbeat(self) -> bytes:
+        self.counts.heartbeats += 1
+        return self.wire.encode(Kind.HEARTBEAT, self._next_seq(), self.last_tick)
+
+    def status(self, running: bool) -> bytes | None:
+        """A status frame (binary mode only): [state, detail, rx_ok, rx_bad, answered]."""
+        if not self.wire.can_status:
+            return None
+        self.counts.status += 1
+        c = self.counts
+        values = (STATE_RUNNING if running else STATE_WAITING, 0.0, float(c.rx_ok),
+                  float(c.rx_bad), float(c.rx_ok))
+        return self.wire.encode(Kind.STATUS, self._next_seq(), self.last_tick, values)
+
+
+def run_controller(controller: ReferenceController, transport: Transport, *,
+                   stop: Callable[[], bool], clock: Callable[[], float] = time.monotonic
+                   ) -> str:
+    """Serve the link until ``stop()`` is true or the transport fails; say why it ended."""
+    settings = controller.settings
+    last_tx = last_rx = -1e9
+    last_status = clock()
+    first = controller.status(running=False)
+    if first is not None:
+        transport.write(first)
+    while not stop():
+        try:
+            data = transport.read()
+        except OSError as exc:
+            return f"port closed by the far end ({exc})"
+        now = clock()
+        out = controller.on_bytes(data) if data else []
+        if out:
+            last_rx = now
+        elif now - last_tx >= settings.heartbeat_period:
+            out.append(controller.heartbeat())
+        if now - last_status >= settings.status_period:
+            status = controller.status(running=now - last_rx < settings.heartbeat_period)
+            if status is not None:
+                out.append(status)
+            last_status = now
+        for frame in out:
+            try:
+                sent = transport.write(frame)
+            except OSError as exc:
+                return f"port closed by the far end ({exc})"
+            if not sent:
+                controller.counts.tx_dropped += 1
+        if out:
+            last_tx = now
+    return "stopped"
+
+
+def serial_transport(settings: LinkSettings, port: str | None) -> Transport:
+    """The transport for a serial [link]: ``port`` overrides link.port."""
+    poll = min(0.05, settings.heartbeat_period, settings.status_period)
+    return SerialTransport(port or settings.options["port"], settings.options, poll)
+
+
+# [link].kind -> how the reference controller reaches the rig; another kind of link adds
+# its own entry (a function of the settings and an optional address override).
+TRANSPORTS: dict[str, Callable[[LinkSettings, str | None], Transport]] = {
+    "serial": serial_transport,
+}
+
+
+def prefer_realtime() -> str:
+    """Ask for SCHED_FIFO where permitted (the controller sleeps in read, so it cannot
+    hog a core), and freeze the garbage collector's view of the start-up objects."""
+    gc.collect()
+    gc.freeze()
+    try:
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(FIFO_PRIORITY))
+    except (OSError, AttributeError):
+        return "SCHED_OTHER"
+    return f"SCHED_FIFO {FIFO_PRIORITY}"
