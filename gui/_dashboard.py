@@ -1,0 +1,129 @@
+"""The live dashboard: reads a running tape, draws it, sends operator commands back.
+
+It runs in its own process (see _process.py) and only ever reads the tape, so a slow
+or dead dashboard cannot make the loop late. Frames are capped (FIELD-NOTES.md: an
+uncapped dearpygui window under Mesa used both cores and pushed the loop's p99
+lateness to 3 ms) and series are decimated to about one min-max pair per pixel column.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+from pathlib import Path
+from typing import Any
+
+from plantrig.gui._columns import ColumnGroups
+from plantrig.gui._faults import fault_catalogue
+from plantrig.gui._feed import LiveFeed
+from plantrig.gui._model import DashboardModel
+from plantrig.gui._operator import Operator
+from plantrig.gui._plots import plot_specs
+from plantrig.gui._store import LiveStore
+from plantrig.gui._view import DashboardView
+from plantrig.sim import load_rig
+
+MAX_SPAN_S = 30.0
+MAX_KEEP_ROWS = 200_000
+DEFAULT_SCREENSHOT_FRAME = 60
+
+
+class FramePacer:
+    """Sleeps so frames start no more often than ``cap_hz``; never bursts to catch up."""
+
+    def __init__(self, cap_hz: float) -> None:
+        if not cap_hz > 0:
+            raise ValueError(f"frame_cap_hz must be positive, got {cap_hz}")
+        self.period = 1.0 / cap_hz
+        self.next = time.perf_counter()
+
+    def wait(self) -> None:
+        self.next += self.period
+        now = time.perf_counter()
+        if self.next > now:
+            time.sleep(self.next - now)
+        else:
+            self.next = now
+
+
+def prepare_renderer() -> None:
+    """Mesa's software renderer starts one thread per core unless told otherwise."""
+    os.environ["LP_NUM_THREADS"] = "1"
+
+
+class Dashboard:
+    """One live dashboard window; ``frame()`` reads what is new and draws once."""
+
+    def __init__(self, tape_path: str | Path, event_tape_path: str | Path | None,
+                 rig_path: str | Path, command_queue: Any | None, *,
+                 frame_cap_hz: float = 30.0, span_s: float = 10.0) -> None:
+        prepare_renderer()
+        rig = load_rig(rig_path)
+        keep = int(min(MAX_KEEP_ROWS, math.ceil(MAX_SPAN_S / rig.tick) + 16))
+        self.feed = LiveFeed(tape_path, event_tape_path, keep)
+        groups = ColumnGroups(self.feed.columns, self.feed.units, rig)
+        self.store = LiveStore(len(groups.columns), keep, groups.index("t"))
+        self.model = DashboardModel(groups, rig.tick, has_link=rig.controller.kind == "external")
+        self.operator = Operator(command_queue)
+        self.rig = rig
+        self.view = DashboardView(
+            title=f"plantrig dashboard: {rig.name}", groups=groups,
+            specs=plot_specs(groups, rig), operator=self.operator,
+            fault_kinds=fault_catalogue(), span_s=span_s,
+            max_span_s=min(MAX_SPAN_S, keep * rig.tick), frame_cap_hz=frame_cap_hz)
+        self.frames = 0
+
+    def run_state(self) -> str:
+        log = self.model.log
+        if log.ended is not None:
+            return f"RUN ENDED ({log.ended}) | {self.rig.name}"
+        if self.feed.ended:
+            return f"RUN ENDED | {self.rig.name}"
+        return f"RUNNING | {self.rig.name}"
+
+    def frame(self) -> bool:
+        """Read new rows and events, draw one frame; False once the window is closed."""
+        rows, events = self.feed.poll()
+        self.store.append(rows)
+        self.model.count_rows(rows)
+        self.model.log.add(events)
+        snap = self.model.snapshot(self.store, self.store.t_last, self.view.span,
+                                   run_state=self.run_state())
+        lost = self.feed.lost
+        self.view.show(snap, extra_status=f"rows not displayed {lost}" if lost else "")
+        self.frames += 1
+        return self.view.render()
+
+    def close(self) -> None:
+        self.view.close()
+        self.feed.close()
+
+
+def run_dashboard(tape_path: str | Path, event_tape_path: str | Path | None,
+                  rig_path: str | Path, command_queue: Any | None, *,
+                  frame_cap_hz: float = 30.0, screenshot: str | Path | None = None,
+                  exit_after_frames: int | None = None, frame_counter: Any = None) -> int:
+    """Show the dashboard until its window is closed (or ``exit_after_frames``).
+
+    ``screenshot`` saves the frame buffer as PNG at frame ``exit_after_frames`` (or
+    frame 60) with a JSON of the regions beside it. ``frame_counter`` (a shared
+    integer with ``.value``) lets a supervisor see frames being drawn. Returns the
+    number of frames drawn.
+    """
+    dash = Dashboard(tape_path, event_tape_path, rig_path, command_queue,
+                     frame_cap_hz=frame_cap_hz)
+    shot_at = exit_after_frames or DEFAULT_SCREENSHOT_FRAME
+    pacer = FramePacer(frame_cap_hz)
+    try:
+        while dash.frame():
+            if frame_counter is not None:
+                frame_counter.value = dash.frames
+            if screenshot is not None and dash.frames == shot_at:
+                dash.view.screenshot(screenshot)
+            if exit_after_frames is not None and dash.frames >= exit_after_frames:
+                break
+            pacer.wait()
+    finally:
+        dash.close()
+    return dash.frames

@@ -1,0 +1,94 @@
+"""What the event stream says about the run: E-stop latch, fault windows, the recent list.
+
+Events come from the engine's event tape as (tick, time, kind, detail). The engine
+latches an operator E-stop with an "estop" event and releases it with "reset"; fault
+windows open on events that announce a fault and close on those that clear it (the
+kind names are matched loosely, see ``fault_edge``, so the safety work can choose its
+own).
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from dataclasses import dataclass
+
+EventRow = tuple[int, float, str, str]
+RECENT_EVENTS = 400
+
+
+@dataclass
+class FaultWindow:
+    """A stretch of plant time with a fault active; ``end`` None while it lasts."""
+
+    name: str
+    start: float
+    end: float | None = None
+
+
+def fault_edge(kind: str) -> int:
+    """+1 if an event of this kind starts a fault, -1 if it clears one, 0 otherwise.
+
+    A refused command is not a fault; "fault_injected", "inject_fault", "fault_start",
+    "sensor_fault" start one; "fault_cleared", "clear_fault", "fault_end" clear one.
+    """
+    k = kind.lower()
+    if "fault" not in k or "refused" in k:
+        return 0
+    if "clear" in k or k.endswith(("_end", "_off", "_over")):
+        return -1
+    return 1
+
+
+def fault_name(detail: str) -> str:
+    """The fault's name as the first word of the detail ("stuck_at y:level ..." -> ...)."""
+    word = detail.strip().split(" ", 1)[0].rstrip(":,;") if detail.strip() else ""
+    return word or "fault"
+
+
+class EventLog:
+    """Folds events into the state the dashboard shows; the list keeps the newest."""
+
+    def __init__(self, keep: int = RECENT_EVENTS) -> None:
+        self.recent: deque[EventRow] = deque(maxlen=keep)
+        self.count = 0
+        self.estop_latched = False
+        self.estop_time: float | None = None
+        self.ended: str | None = None
+        self.windows: list[FaultWindow] = []
+        self.kinds: dict[str, int] = {}
+
+    @classmethod
+    def upto(cls, events: list[EventRow], t: float) -> EventLog:
+        """The state after every event at or before plant time ``t`` (for replay)."""
+        log = cls()
+        log.add([e for e in events if e[1] <= t])
+        return log
+
+    def add(self, events: list[EventRow]) -> None:
+        for event in events:
+            _, t, kind, detail = event
+            self.recent.append(event)
+            self.count += 1
+            self.kinds[kind] = self.kinds.get(kind, 0) + 1
+            if kind == "estop":
+                self.estop_latched, self.estop_time = True, t
+            elif kind == "reset":
+                self.estop_latched = False
+            elif kind == "run_end":
+                self.ended = detail
+            edge = fault_edge(kind)
+            if edge > 0:
+                name = fault_name(detail)
+                if not any(w.name == name and w.end is None for w in self.windows):
+                    self.windows.append(FaultWindow(name, t))
+            elif edge < 0:
+                name = fault_name(detail)
+                open_ = [w for w in self.windows if w.end is None]
+                named = [w for w in open_ if w.name == name]
+                for w in named or open_:
+                    w.end = t
+
+    def newest_first(self, limit: int) -> list[EventRow]:
+        out = list(self.recent)[-limit:]
+        out.reverse()
+        return out

@@ -1,0 +1,167 @@
+"""A recorded run in the dashboard, with a time slider instead of operator controls.
+
+A run folder holds ticks.npy (one float64 field per column), columns.json (units),
+events.jsonl and rig.toml (with an ODE model's module beside it). The same panels as
+the live dashboard show the moment under the slider and the window before it.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.lib import recfunctions
+from numpy.typing import NDArray
+
+from plantrig.gui._columns import ColumnGroups
+from plantrig.gui._dashboard import FramePacer, prepare_renderer
+from plantrig.gui._eventlog import EventLog, EventRow
+from plantrig.gui._faults import fault_catalogue
+from plantrig.gui._model import DashboardModel
+from plantrig.gui._operator import Operator
+from plantrig.gui._plots import plot_specs
+from plantrig.gui._store import RowStore
+from plantrig.gui._view import DashboardView
+from plantrig.sim import Rig, load_rig
+
+DEFAULT_SCREENSHOT_FRAME = 30
+
+
+class RunFolderError(ValueError):
+    """The folder is not a readable plantrig run folder; carries the folder."""
+
+    def __init__(self, folder: Path, problem: str) -> None:
+        super().__init__(f"{folder}: {problem}")
+        self.folder = folder
+
+
+@dataclass
+class RunRecord:
+    folder: Path
+    rig: Rig
+    columns: list[str]
+    units: list[str]
+    rows: NDArray[np.float64]
+    events: list[EventRow]
+    summary: dict[str, object]
+
+
+def load_run(folder: str | Path) -> RunRecord:
+    """Read a run folder; every problem is a RunFolderError naming the file."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise RunFolderError(folder, "no such folder")
+    for name in ("ticks.npy", "rig.toml"):
+        if not (folder / name).is_file():
+            raise RunFolderError(folder, f"no {name}: is this a plantrig run folder?")
+    try:
+        ticks = np.load(folder / "ticks.npy", allow_pickle=False)
+    except (OSError, ValueError) as exc:
+        raise RunFolderError(folder, f"ticks.npy unreadable: {exc}") from None
+    if ticks.dtype.names is None or "t" not in ticks.dtype.names:
+        raise RunFolderError(folder, "ticks.npy has no named columns (expected a 't' field)")
+    columns = list(ticks.dtype.names)
+    rows = recfunctions.structured_to_unstructured(ticks, dtype=np.float64).reshape(
+        len(ticks), len(columns))
+    units = [""] * len(columns)
+    meta_path = folder / "columns.json"
+    if meta_path.is_file():
+        meta = json.loads(meta_path.read_text())
+        if meta.get("columns") == columns:
+            units = list(meta.get("units", units))
+    events: list[EventRow] = []
+    events_path = folder / "events.jsonl"
+    if events_path.is_file():
+        for n, line in enumerate(events_path.read_text(encoding="utf-8").splitlines(), 1):
+            if not line.strip():
+                continue
+            try:
+                e = json.loads(line)
+                events.append((int(e["tick"]), float(e["time"]), str(e["kind"]),
+                               str(e.get("detail", ""))))
+            except (ValueError, KeyError, TypeError):
+                raise RunFolderError(folder, f"events.jsonl line {n} is not an event "
+                                             "record") from None
+    summary_path = folder / "summary.json"
+    summary = json.loads(summary_path.read_text()) if summary_path.is_file() else {}
+    return RunRecord(folder, load_rig(folder / "rig.toml"), columns, units, rows, events,
+                     summary)
+
+
+class Replay:
+    """The dashboard over a recorded run; ``frame()`` draws the slider's moment."""
+
+    def __init__(self, folder: str | Path, *, frame_cap_hz: float = 30.0,
+                 span_s: float = 10.0) -> None:
+        prepare_renderer()
+        self.record = rec = load_run(folder)
+        groups = ColumnGroups(rec.columns, rec.units, rec.rig)
+        self.store = RowStore(rec.rows, groups.index("t"))
+        self.model = DashboardModel(groups, rec.rig.tick,
+                                    has_link=rec.rig.controller.kind == "external")
+        late = rec.rows[:, groups.index("lateness")] if "lateness" in groups else \
+            np.zeros(len(rec.rows))
+        self.overruns_upto = np.cumsum(late >= rec.rig.tick)
+        span_total = max(self.store.t_last - self.store.t_first, rec.rig.tick)
+        self.view = DashboardView(
+            title=f"plantrig replay: {rec.folder.name}", groups=groups,
+            specs=plot_specs(groups, rec.rig), operator=Operator(None),
+            fault_kinds=fault_catalogue(),
+            replay_range=(self.store.t_first, self.store.t_last),
+            span_s=min(span_s, span_total), max_span_s=max(span_total, 0.5),
+            frame_cap_hz=frame_cap_hz)
+        ended = rec.summary.get("ended", "unknown")
+        self.state = f"REPLAY | {rec.folder.name} | run ended: {ended}"
+        self.log = EventLog()
+        self.frames = 0
+
+    def seek(self, t: float) -> None:
+        """Move the slider (what dragging it does)."""
+        self.view.set_cursor(t)
+
+    def frame(self) -> bool:
+        view = self.view
+        if view.cursor_moved:
+            self.log = EventLog.upto(self.record.events, view.cursor)
+            i = self.store.position(view.cursor)
+            self.model.overruns = int(self.overruns_upto[i - 1]) if i > 0 else 0
+            view.cursor_moved = False
+        snap = self.model.snapshot(self.store, view.cursor, view.span, run_state=self.state,
+                                   log=self.log)
+        view.show(snap)
+        self.frames += 1
+        return view.render()
+
+    def close(self) -> None:
+        self.view.close()
+
+
+def run_replay(folder: str | Path, *, frame_cap_hz: float = 30.0,
+               screenshot: str | Path | None = None, exit_after_frames: int | None = None,
+               at: float | None = None, frame_counter: Any = None) -> int:
+    """Show a recorded run until the window is closed (or ``exit_after_frames``).
+
+    ``at`` puts the slider at that plant time first; ``screenshot`` saves a PNG at
+    frame ``exit_after_frames`` (or 30). Returns the number of frames drawn.
+    """
+    replay = Replay(folder, frame_cap_hz=frame_cap_hz)
+    if at is not None and math.isfinite(at):
+        replay.seek(at)
+    shot_at = exit_after_frames or DEFAULT_SCREENSHOT_FRAME
+    pacer = FramePacer(frame_cap_hz)
+    try:
+        while replay.frame():
+            if frame_counter is not None:
+                frame_counter.value = replay.frames
+            if screenshot is not None and replay.frames == shot_at:
+                replay.view.screenshot(screenshot)
+            if exit_after_frames is not None and replay.frames >= exit_after_frames:
+                break
+            pacer.wait()
+    finally:
+        replay.close()
+    return replay.frames

@@ -1,0 +1,415 @@
+"""The dashboard window: widgets built once, then each Snapshot copied into them.
+
+Every dearpygui call of the dashboard happens here, on the thread that created the
+view (dearpygui is not thread-safe). Button callbacks are plain methods (``on_estop``,
+``on_inject_fault``, ...) that read the form and call the Operator, so a test presses
+a button by calling the callback the button holds.
+
+Layout: the caution banner across the top; a status line with the run state and the
+E-stop latch; three columns below: operator controls (E-stop first, outside any
+scrolling), the plots, and the panels (signal table, limit bars, interlock lamps,
+timing, link, events).
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from collections import deque
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import dearpygui.dearpygui as dpg
+import numpy as np
+
+from plantrig import CAUTION
+from plantrig.gui._columns import LABELS, ColumnGroups
+from plantrig.gui._decimate import decimate_minmax
+from plantrig.gui._model import EVENTS_SHOWN, Snapshot, fmt
+from plantrig.gui._operator import NOT_A_START, Operator
+from plantrig.gui._plots import PlotSpec
+from plantrig.gui._theme import Themes
+
+T = "plantrig."                   # tag prefix
+WIDTH, HEIGHT = 1360, 880
+LEFT_W, CENTRE_W = 300, 620
+BUCKETS = 400                     # min-max pairs per series: one per ~1.5 pixel columns
+SERIES_LABELS = {"ref": "reference", "y": "measured", "sent": "sent to controller",
+                 "cmd": "commanded", "u": "applied to plant", "x": "state"}
+TABLE_ORDER = ("x", "u", "cmd", "y", "sent", "ref")
+PANEL_PREFIXES = ("trip", "fault", "limit")
+
+
+class DashboardView:
+    """One dashboard window in this process's dearpygui context."""
+
+    def __init__(self, *, title: str, groups: ColumnGroups, specs: list[PlotSpec],
+                 operator: Operator, fault_kinds: tuple[str, ...],
+                 replay_range: tuple[float, float] | None = None,
+                 span_s: float = 10.0, max_span_s: float = 30.0,
+                 frame_cap_hz: float = 30.0) -> None:
+        self.groups = groups
+        self.specs = specs
+        self.operator = operator
+        self.fault_kinds = fault_kinds
+        self.replay = replay_range is not None
+        self.span = min(span_s, max_span_s)
+        self.cursor = replay_range[1] if replay_range else 0.0
+        self.cursor_moved = True
+        self.frame_cap_hz = frame_cap_hz
+        self.frame_times: deque[float] = deque(maxlen=30)
+        self.t_index = groups.index("t")
+        self._labels: dict[int, str] = {}
+        dpg.create_context()
+        self.themes = Themes()
+        with dpg.window(tag=T + "main", no_scrollbar=True):
+            self._banner()
+            self._status_line()
+            if replay_range is not None:
+                self._replay_bar(*replay_range)
+            with dpg.group(horizontal=True):
+                self._controls()
+                self._plots(max_span_s)
+                self._panels()
+        dpg.create_viewport(title=title, width=WIDTH, height=HEIGHT, vsync=False)
+        dpg.setup_dearpygui()
+        dpg.show_viewport()
+        dpg.set_primary_window(T + "main", True)
+
+    # -- building ----------------------------------------------------------------------
+    def _banner(self) -> None:
+        with dpg.child_window(tag=T + "banner", height=44, border=False, no_scrollbar=True):
+            dpg.add_text(CAUTION, wrap=WIDTH - 40)
+        dpg.bind_item_theme(T + "banner", self.themes.banner)
+
+    def _status_line(self) -> None:
+        with dpg.group(horizontal=True):
+            dpg.add_button(tag=T + "estop_lamp", label="E-STOP clear", width=420)
+            dpg.bind_item_theme(T + "estop_lamp", self.themes.ok)
+            dpg.add_text("", tag=T + "run_state")
+            dpg.add_text("", tag=T + "display")
+
+    def _replay_bar(self, t0: float, t1: float) -> None:
+        with dpg.group(horizontal=True):
+            dpg.add_text("replay time [s]")
+            dpg.add_slider_double(tag=T + "cursor", min_value=t0, max_value=max(t1, t0 + 1e-9),
+                                  default_value=t1, width=-1, format="%.3f",
+                                  callback=self.on_cursor)
+
+    def _button(self, label: str, callback: Callable[..., Any], tag: str = "",
+                width: int = -1, height: int = 0) -> None:
+        dpg.add_button(label=label, callback=callback, width=width, height=height,
+                       tag=T + (tag or label.lower().replace(" ", "_")))
+
+    def _controls(self) -> None:
+        with dpg.group(width=LEFT_W):
+            if self.replay:
+                with dpg.child_window(width=LEFT_W, height=-1, tag=T + "controls"):
+                    dpg.add_text("Replay of a recorded run", color=(245, 200, 90))
+                    dpg.add_text("Operator controls are off: there is no run to command. "
+                                 "Move the time slider to look at any moment.",
+                                 wrap=LEFT_W - 20)
+                return
+            self._button("E-STOP", self.on_estop, "estop", height=84)
+            dpg.bind_item_theme(T + "estop", self.themes.estop)
+            if self.themes.big_font is not None:
+                dpg.bind_item_font(T + "estop", self.themes.big_font)
+            dpg.add_text("software E-stop: the loop forces every input to its safe value "
+                         "and latches. Not a safety function.", wrap=LEFT_W - 10)
+            with dpg.child_window(width=LEFT_W, height=-1, tag=T + "controls"):
+                self._button("Reset interlock / E-stop", self.on_reset, "reset")
+                dpg.add_separator()
+                dpg.add_text("Run")
+                with dpg.group(horizontal=True):
+                    self._button("Arm", self.on_arm, width=88)
+                    self._button("Start", self.on_start, width=88)
+                    self._button("Stop run", self.on_stop, "stop", width=88)
+                dpg.add_text(f"Arm / Start: {NOT_A_START}.", wrap=LEFT_W - 20,
+                             color=(170, 176, 186))
+                dpg.add_separator()
+                dpg.add_text("Reference")
+                refs = [c.name for c in self.groups.group("ref")]
+                dpg.add_combo(refs, tag=T + "ref_name", default_value=refs[0] if refs else "",
+                              width=-1)
+                dpg.add_input_double(tag=T + "ref_value", label="value", width=150,
+                                     format="%.4g")
+                self._button("Set reference", self.on_set_reference, "set_reference")
+                dpg.add_separator()
+                dpg.add_text("Phase mark")
+                dpg.add_input_text(tag=T + "phase_name", hint="e.g. warm-up done", width=-1)
+                self._button("Mark phase", self.on_mark_phase, "mark_phase")
+                dpg.add_separator()
+                dpg.add_text("Fault")
+                kinds = list(self.fault_kinds)
+                dpg.add_combo(kinds, tag=T + "fault_kind", label="kind", width=170,
+                              default_value=kinds[0] if kinds else "")
+                targets = [c.name for c in self.groups.group("y")] + \
+                    [c.name for c in self.groups.group("u")]
+                dpg.add_combo(targets, tag=T + "fault_target", label="signal", width=170,
+                              default_value=targets[0] if targets else "")
+                dpg.add_input_double(tag=T + "fault_value", label="value", width=150,
+                                     format="%.4g")
+                dpg.add_input_double(tag=T + "fault_duration", label="for [s], 0 = until "
+                                     "cleared", width=90, format="%.3g", min_value=0.0,
+                                     min_clamped=True)
+                with dpg.group(horizontal=True):
+                    self._button("Inject fault", self.on_inject_fault, "inject_fault",
+                                 width=136)
+                    self._button("Clear faults", self.on_clear_fault, "clear_fault",
+                                 width=136)
+                dpg.add_separator()
+                dpg.add_text("", tag=T + "operator_message", wrap=LEFT_W - 20)
+
+    def _plots(self, max_span_s: float) -> None:
+        n = max(1, len(self.specs))
+        height = int(min(260, max(150, (HEIGHT - 190) / n)))
+        with dpg.child_window(width=CENTRE_W, height=-1, tag=T + "plots"):
+            with dpg.group(horizontal=True):
+                dpg.add_slider_double(tag=T + "span", label="window [s]", width=160,
+                                      min_value=0.5, max_value=max_span_s,
+                                      default_value=self.span, format="%.1f",
+                                      callback=self.on_span)
+                for i, spec in enumerate(self.specs):
+                    dpg.add_checkbox(label=spec.key, default_value=True, user_data=i,
+                                     callback=self.on_toggle_plot, tag=f"{T}show.{i}")
+            self.series: list[list[tuple[str, int]]] = []
+            for i, spec in enumerate(self.specs):
+                tag = f"{T}plot.{i}"
+                self._labels[i] = spec.title
+                with dpg.plot(label=spec.title, height=height, width=-1, tag=tag,
+                              no_menus=True):
+                    dpg.add_plot_legend(horizontal=True, outside=True,
+                                        location=dpg.mvPlot_Location_North)
+                    dpg.add_plot_axis(dpg.mvXAxis, tag=f"{tag}.x", label="plant time [s]")
+                    with dpg.plot_axis(dpg.mvYAxis, tag=f"{tag}.y", auto_fit=True):
+                        row = []
+                        for key in spec.series:
+                            prefix = self.groups[key].prefix
+                            s = dpg.add_line_series([], [], tag=f"{tag}.{key}",
+                                                    label=f"{SERIES_LABELS.get(prefix, prefix)}"
+                                                          f" {self.groups[key].name}")
+                            dpg.bind_item_theme(s, self.themes.series.get(prefix,
+                                                                          self.themes.base))
+                            row.append((f"{tag}.{key}", self.groups.index(key)))
+                        self.series.append(row)
+                        if np.isfinite(spec.low) and np.isfinite(spec.high):
+                            band = dpg.add_inf_line_series([spec.low, spec.high],
+                                                           horizontal=True,
+                                                           label="rig min/max")
+                            dpg.bind_item_theme(band, self.themes.limit)
+                    with dpg.plot_axis(dpg.mvYAxis2, tag=f"{tag}.y2", no_tick_labels=True,
+                                       no_gridlines=True, no_tick_marks=True, opposite=True):
+                        shade = dpg.add_shade_series([0.0], [0.0], y2=[0.0], tag=f"{tag}.fault",
+                                                     label="fault active")
+                        dpg.bind_item_theme(shade, self.themes.fault)
+                    dpg.set_axis_limits(f"{tag}.y2", 0.0, 1.0)
+
+    def _panels(self) -> None:
+        g = self.groups
+        with dpg.child_window(width=-1, height=-1, tag=T + "panels"):
+            dpg.add_text("Signals")
+            self.table_cells: list[tuple[str, int]] = []
+            prefixes = [p for p in TABLE_ORDER if g.group(p)] + \
+                [p for p in g.prefixes() if p not in TABLE_ORDER and p not in PANEL_PREFIXES]
+            with dpg.table(header_row=True, row_background=True, borders_innerH=True,
+                           policy=dpg.mvTable_SizingStretchProp, tag=T + "table",
+                           scrollY=True, height=230):
+                for name, weight in (("signal", 0.4), ("value", 0.25), ("unit", 0.12),
+                                     ("rig range", 0.23)):
+                    dpg.add_table_column(label=name, init_width_or_weight=weight)
+                for p in prefixes:
+                    for c in g.group(p):
+                        with dpg.table_row():
+                            dpg.add_text(f"{LABELS.get(p, p)} {c.name}")
+                            cell = f"{T}value.{c.key}"
+                            dpg.add_text("", tag=cell)
+                            dpg.add_text(c.unit)
+                            dpg.add_text(f"{c.low:g} .. {c.high:g}" if c.has_range else "")
+                            self.table_cells.append((cell, c.index))
+            dpg.add_separator()
+            dpg.add_text("", tag=T + "bars_title", wrap=WIDTH - LEFT_W - CENTRE_W - 60)
+            limits = g.group("limit")
+            n_bars = len(limits) if limits else sum(
+                1 for p in ("y", "u", "x") for c in g.group(p) if c.has_range)
+            for i in range(n_bars):
+                dpg.add_progress_bar(tag=f"{T}bar.{i}", width=-1)
+            dpg.add_separator()
+            dpg.add_text("Interlocks")
+            trips = g.group("trip")
+            if not trips:
+                dpg.add_text("no interlock columns in this run (trip:<name>)",
+                             color=(170, 176, 186))
+            for i, _ in enumerate(trips):
+                dpg.add_button(tag=f"{T}lamp.{i}", width=-1)
+            dpg.add_separator()
+            dpg.add_text("Timing")
+            for i in range(3):
+                dpg.add_text("", tag=f"{T}timing.{i}")
+            dpg.add_text("Link")
+            for i in range(3):
+                dpg.add_text("", tag=f"{T}link.{i}")
+            dpg.add_separator()
+            dpg.add_text("Events (newest first)")
+            with dpg.table(header_row=True, row_background=True, scrollY=True, height=-1,
+                           policy=dpg.mvTable_SizingStretchProp, tag=T + "events"):
+                for name, weight in (("t [s]", 0.18), ("kind", 0.32), ("detail", 0.5)):
+                    dpg.add_table_column(label=name, init_width_or_weight=weight)
+                for i in range(EVENTS_SHOWN):
+                    with dpg.table_row(tag=f"{T}event.{i}", show=False):
+                        for j in range(3):
+                            dpg.add_text("", tag=f"{T}event.{i}.{j}")
+
+    # -- callbacks (plain functions; tests call them directly) -------------------------
+    def on_estop(self, *_: Any) -> bool:
+        return self.operator.estop()
+
+    def on_reset(self, *_: Any) -> bool:
+        return self.operator.reset()
+
+    def on_arm(self, *_: Any) -> bool:
+        return self.operator.arm()
+
+    def on_start(self, *_: Any) -> bool:
+        return self.operator.start()
+
+    def on_stop(self, *_: Any) -> bool:
+        return self.operator.stop()
+
+    def on_set_reference(self, *_: Any) -> bool:
+        return self.operator.set_reference(dpg.get_value(T + "ref_name"),
+                                           dpg.get_value(T + "ref_value"))
+
+    def on_mark_phase(self, *_: Any) -> bool:
+        return self.operator.mark_phase(dpg.get_value(T + "phase_name"))
+
+    def on_inject_fault(self, *_: Any) -> bool:
+        return self.operator.inject_fault(dpg.get_value(T + "fault_kind"),
+                                          dpg.get_value(T + "fault_target"),
+                                          dpg.get_value(T + "fault_value"),
+                                          dpg.get_value(T + "fault_duration"))
+
+    def on_clear_fault(self, *_: Any) -> bool:
+        return self.operator.clear_fault()
+
+    def on_span(self, _sender: Any = None, value: float | None = None, *_: Any) -> None:
+        if value is not None:
+            self.span = float(value)
+
+    def on_cursor(self, _sender: Any = None, value: float | None = None, *_: Any) -> None:
+        if value is not None:
+            self.cursor = float(value)
+            self.cursor_moved = True
+
+    def set_cursor(self, t: float) -> None:
+        """Move the replay slider from code, as if it had been dragged there."""
+        dpg.set_value(T + "cursor", t)
+        self.on_cursor(None, t)
+
+    def on_toggle_plot(self, _sender: Any, value: bool, index: int) -> None:
+        dpg.configure_item(f"{T}plot.{index}", show=bool(value))
+
+    # -- updating ----------------------------------------------------------------------
+    def show(self, snap: Snapshot, *, extra_status: str = "") -> None:
+        """Copy one snapshot into the widgets (cheap enough for every frame)."""
+        latched = snap.estop_latched
+        dpg.configure_item(T + "estop_lamp", label=snap.estop_text)
+        dpg.bind_item_theme(T + "estop_lamp", self.themes.alarm if latched else self.themes.ok)
+        dpg.set_value(T + "run_state", f"{snap.run_state} | plant time {snap.t:.3f} s")
+        now = time.perf_counter()
+        self.frame_times.append(now)
+        fps = (len(self.frame_times) - 1) / (now - self.frame_times[0]) \
+            if len(self.frame_times) > 1 and now > self.frame_times[0] else 0.0
+        dpg.set_value(T + "display", f"| display {fps:.0f} fps (cap {self.frame_cap_hz:g})"
+                      + (f" | {extra_status}" if extra_status else ""))
+        if not self.replay:
+            dpg.set_value(T + "operator_message", f"last action: {self.operator.message}")
+        self._show_plots(snap)
+        values = snap.current
+        for cell, index in self.table_cells:
+            dpg.set_value(cell, fmt(float(values[index])) if values is not None else "-")
+        dpg.set_value(T + "bars_title", snap.bars_title)
+        for i, bar in enumerate(snap.bars):
+            dpg.configure_item(f"{T}bar.{i}", default_value=bar.fraction, overlay=bar.text)
+            dpg.bind_item_theme(f"{T}bar.{i}",
+                                self.themes.bar_alarm if bar.outside else self.themes.bar_ok)
+        for i, lamp in enumerate(snap.lamps):
+            dpg.configure_item(f"{T}lamp.{i}", label=lamp.text)
+            dpg.bind_item_theme(f"{T}lamp.{i}",
+                                self.themes.alarm if lamp.tripped else self.themes.ok)
+        for i in range(3):
+            dpg.set_value(f"{T}timing.{i}", snap.timing[i] if i < len(snap.timing) else "")
+            dpg.set_value(f"{T}link.{i}", snap.link[i] if i < len(snap.link) else "")
+        for i in range(EVENTS_SHOWN):
+            shown = i < len(snap.events)
+            dpg.configure_item(f"{T}event.{i}", show=shown)
+            if shown:
+                _, t, kind, detail = snap.events[i]
+                dpg.set_value(f"{T}event.{i}.0", f"{t:.3f}")
+                dpg.set_value(f"{T}event.{i}.1", kind)
+                dpg.set_value(f"{T}event.{i}.2", detail)
+
+    def _show_plots(self, snap: Snapshot) -> None:
+        rows = snap.rows
+        t = rows[:, self.t_index]
+        t1 = snap.t
+        t0 = t1 - self.span
+        windows = [(w.name, max(w.start, t0), min(w.end if w.end is not None else t1, t1),
+                    w.end is None or w.end >= t1) for w in snap.faults]
+        windows = [w for w in windows if w[2] > w[1] or (w[3] and w[1] <= t1)]
+        fx: list[float] = []
+        fy: list[float] = []
+        for _, start, end, _ in windows:
+            fx += [start, start, end, end]
+            fy += [0.0, 1.0, 1.0, 0.0]
+        active = sorted({name for name, _, _, now in windows if now})
+        in_view = sorted({name for name, _, _, _ in windows} - set(active))
+        for i, spec in enumerate(self.specs):
+            tag = f"{T}plot.{i}"
+            for series, index in self.series[i]:
+                x, y = decimate_minmax(t, rows[:, index], BUCKETS)
+                dpg.set_value(series, [np.ascontiguousarray(x), np.ascontiguousarray(y)])
+            dpg.set_value(f"{tag}.fault", [fx or [t0], fy or [0.0], [0.0] * max(1, len(fy))])
+            label = spec.title
+            if active:
+                label += "  | FAULT ACTIVE: " + ", ".join(active)
+            elif in_view:
+                label += "  | fault in view: " + ", ".join(in_view)
+            if label != self._labels[i]:
+                dpg.configure_item(tag, label=label)
+                self._labels[i] = label
+            dpg.set_axis_limits(f"{tag}.x", t0, t1 if t1 > t0 else t0 + 1e-3)
+
+    # -- frames ------------------------------------------------------------------------
+    def render(self) -> bool:
+        """Draw one frame; False once the window has been closed."""
+        if not dpg.is_dearpygui_running():
+            return False
+        dpg.render_dearpygui_frame()
+        return True
+
+    def regions(self) -> dict[str, list[int]]:
+        """Screen rectangles [x, y, width, height] of the banner, E-stop and plots."""
+        out = {}
+        names = ["banner", "estop_lamp"] + ([] if self.replay else ["estop"]) + \
+            [f"plot.{i}" for i in range(len(self.specs))]
+        for name in names:
+            state = dpg.get_item_state(T + name)
+            # child windows report only their position in the (full-screen) main window
+            x, y = state.get("rect_min", state["pos"])
+            w, h = state["rect_size"]
+            out[name] = [int(x), int(y), int(w), int(h)]
+        return out
+
+    def screenshot(self, path: str | Path) -> dict[str, list[int]]:
+        """Save the frame buffer as PNG (written after one more frame) and its regions."""
+        path = Path(path)
+        dpg.output_frame_buffer(file=str(path))
+        dpg.render_dearpygui_frame()
+        dpg.render_dearpygui_frame()
+        regions = self.regions()
+        path.with_suffix(".regions.json").write_text(json.dumps(regions))
+        return regions
+
+    def close(self) -> None:
+        dpg.destroy_context()
