@@ -1,18 +1,24 @@
-"""The controller's end of the MQTT link, for the reference controller and benchmarks.
+"""The controller's end of the MQTT link: the reference controller's MQTT transport.
 
 It subscribes to ``<prefix>/<rig_id>/sensors``, checks each message as untrusted (the
-same decoder as the rig's end), hands the values to a compute function and publishes
-the command on ``.../commands`` with the sensor tick echoed. Like the rig's end it uses
-a fresh aiomqtt Client for every connection attempt, with exponential backoff, so it
-rides through a broker restart.
+same decoder as the rig's end), hands the values to a compute function (the reference
+controller's ``command_for``) and publishes the answer on ``.../commands`` with the
+sensor tick echoed. Its own retained status is on ``.../controller/status`` ('online' on
+every connect, a retained last will 'offline'). Like the rig's end it uses a fresh
+aiomqtt Client for every connection attempt, with exponential backoff, so it rides
+through a broker restart; it ends when the rig announces a clean close (a live, not
+retained, 'offline' with reason "link closed"), when ``stop()`` is true, or after
+``duration`` seconds.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
+import json
 import time
 from collections.abc import Callable, Sequence
+from typing import Protocol
 
 import aiomqtt
 
@@ -22,48 +28,89 @@ from plantrig.io._mqtt_payload import Codec, PayloadError
 from plantrig.io._mqtt_worker import TCP_NODELAY, tls_context
 
 Compute = Callable[[int, tuple[float, ...]], Sequence[float] | None]
+STOP_POLL_S = 0.1
+
+
+class Law(Protocol):
+    """What serve_reference needs of plantrig.io.ReferenceController."""
+
+    def command_for(self, stamp: int, values: tuple[float, ...]) -> Sequence[float]: ...
 
 
 class MqttControllerPeer:
     """Answer every valid sensor message with ``compute(tick, values)`` as a command."""
 
     def __init__(self, settings: MqttSettings, n_outputs: int, compute: Compute, *,
-                 client_id: str | None = None) -> None:
+                 client_id: str | None = None,
+                 on_ready: Callable[[str], None] | None = None) -> None:
         self.s = settings
         self.n_outputs = n_outputs
         self.compute = compute
+        self.on_ready = on_ready
         self.client_id = client_id or f"{settings.client_id}-controller"
         self.codec = Codec(settings.payload, settings.encoding, settings.scale,
                            settings.max_payload)
         self.seq = 0
         self.tracker = SeqTracker()
-        self.counts: dict[str, int] = {"sensors_in": 0, "sensors_refused": 0,
-                                       "commands_out": 0, "connects": 0}
+        self.counts: dict[str, int] = {"answered": 0, "bad": 0, "duplicates": 0,
+                                       "out_of_order": 0, "connects": 0}
+        self.ended = ""
+
+    def _status(self, state: str) -> bytes:
+        return json.dumps({"state": state, "client_id": self.client_id,
+                           "payload": self.s.payload}).encode()
 
     def _client(self) -> aiomqtt.Client:
         s = self.s
+        will = aiomqtt.Will(s.topic("controller/status"), self._status("offline"),
+                            qos=s.qos["status"], retain=True)
         return aiomqtt.Client(s.host, s.port, identifier=self.client_id, username=s.username,
                               password=s.resolved_password() if s.username else None,
                               keepalive=s.keepalive, protocol=aiomqtt.ProtocolVersion.V5,
-                              tls_context=tls_context(s), socket_options=(TCP_NODELAY,))
+                              will=will, tls_context=tls_context(s),
+                              socket_options=(TCP_NODELAY,))
+
+    def _rig_closed(self, message: aiomqtt.Message) -> bool:
+        if message.retain:
+            return False
+        try:
+            doc = json.loads(message.payload)  # type: ignore[arg-type]
+        except (TypeError, ValueError):
+            return False
+        return isinstance(doc, dict) and doc.get("state") == "offline" and (
+            doc.get("reason") == "link closed")
 
     async def _serve(self, client: aiomqtt.Client) -> None:
         s = self.s
+        sensors, status = s.topic("sensors"), s.topic("status")
         topic_out, qos_out = s.topic("commands"), s.qos["commands"]
-        await client.subscribe(s.topic("sensors"), qos=s.qos["sensors"])
+        await client.publish(s.topic("controller/status"), self._status("online"),
+                             qos=s.qos["status"], retain=True)
+        await client.subscribe(sensors, qos=s.qos["sensors"])
+        await client.subscribe(status, qos=s.qos["status"])
         self.tracker.reset()
+        self.counts["connects"] += 1
+        if self.on_ready is not None and self.counts["connects"] == 1:
+            self.on_ready(f"{s.host}:{s.port} {sensors}")
         async for message in client.messages:
-            self.counts["sensors_in"] += 1
-            payload = message.payload
+            if message.topic.value == status:
+                if self._rig_closed(message):
+                    self.ended = "the rig closed the link"
+                    return
+                continue
             try:
+                payload = message.payload
                 if not isinstance(payload, bytes | bytearray):
                     raise PayloadError("schema", "payload is not bytes")
                 seq, tick, values = self.codec.decode(Kind.SENSOR, bytes(payload),
                                                       self.n_outputs)
-                if not self.tracker.check(seq):
-                    raise PayloadError("duplicate", f"seq {seq}")
             except PayloadError:
-                self.counts["sensors_refused"] += 1
+                self.counts["bad"] += 1
+                continue
+            dups, late = self.tracker.duplicates, self.tracker.out_of_order
+            if not self.tracker.check(seq):
+                self.counts["duplicates"] += self.tracker.duplicates - dups
+                self.counts["out_of_order"] += self.tracker.out_of_order - late
                 continue
             command = self.compute(tick, values)
             if command is None:
@@ -71,30 +118,44 @@ class MqttControllerPeer:
             await client.publish(topic_out, self.codec.command(self.seq, tick, command),
                                  qos=qos_out)
             self.seq = (self.seq + 1) % 65536
-            self.counts["commands_out"] += 1
+            self.counts["answered"] += 1
 
-    async def run(self, stop: asyncio.Event | None = None,
-                  duration: float | None = None) -> dict[str, int]:
-        """Serve until ``stop`` is set or ``duration`` seconds have passed."""
-        stop = stop or asyncio.Event()
+    async def _watch(self, stop: Callable[[], bool], end: float | None) -> None:
+        while not stop() and (end is None or time.monotonic() < end):
+            await asyncio.sleep(STOP_POLL_S)
+        self.ended = self.ended or "stopped"
+
+    async def run(self, stop: Callable[[], bool] = lambda: False,
+                  duration: float | None = None) -> str:
+        """Serve until the rig closes, ``stop()`` is true or ``duration`` s passed; why."""
         end = None if duration is None else time.monotonic() + duration
+        watch = asyncio.create_task(self._watch(stop, end))
         delay = self.s.reconnect_min
-        while not stop.is_set() and (end is None or time.monotonic() < end):
-            left = None if end is None else max(0.0, end - time.monotonic())
+        while not self.ended:
             try:
                 async with self._client() as client:
-                    self.counts["connects"] += 1
                     delay = self.s.reconnect_min
                     serve = asyncio.create_task(self._serve(client))
-                    halt = asyncio.create_task(stop.wait())
-                    await asyncio.wait({serve, halt}, timeout=left,
-                                                 return_when=asyncio.FIRST_COMPLETED)
-                    for task in (serve, halt):
-                        task.cancel()
+                    await asyncio.wait({serve, watch}, return_when=asyncio.FIRST_COMPLETED)
+                    serve.cancel()
                     with contextlib.suppress(asyncio.CancelledError):
                         await serve  # re-raises the error that ended a dropped connection
+                    if self.ended:  # a clean end: say 'offline' ourselves (no will)
+                        await client.publish(self.s.topic("controller/status"),
+                                             self._status("offline"), qos=self.s.qos["status"],
+                                             retain=True)
             except (aiomqtt.MqttError, OSError):
                 with contextlib.suppress(asyncio.TimeoutError):
-                    await asyncio.wait_for(stop.wait(), timeout=delay)
+                    await asyncio.wait_for(asyncio.shield(watch), timeout=delay)
                 delay = min(self.s.reconnect_max, delay * 2)
-        return dict(self.counts)
+        watch.cancel()
+        return self.ended
+
+
+def serve_reference(controller: Law, settings: MqttSettings, n_outputs: int, *,
+                    stop: Callable[[], bool], on_ready: Callable[[str], None] | None = None,
+                    ) -> tuple[str, dict[str, int]]:
+    """Run a plantrig.io ReferenceController over MQTT; why it ended and its counts."""
+    peer = MqttControllerPeer(settings, n_outputs, controller.command_for, on_ready=on_ready)
+    reason = asyncio.run(peer.run(stop))
+    return reason, peer.counts

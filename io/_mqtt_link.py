@@ -40,6 +40,7 @@ from plantrig.sim import Event, Rig, Signal
 from plantrig.sim._contracts import Vector
 
 SOCKET_BUFFER = 1 << 16
+LATENCY_BINS = 64
 # The worker process imports only what it needs: plantrig.io's __init__ pulls in the
 # whole simulator (scipy; about 3 s on a loaded 2-core machine against 0.3 s without it),
 # so the bootstrap stands in an empty package module for it.
@@ -84,9 +85,10 @@ class MqttLink:
         self.lost = False
         self._gone = False
         self._fresh = False
-        self.counts = {"sends": 0, "receives": 0, "commands_used": 0, "commands_superseded": 0,
-                       "loop_send_dropped": 0, "link_lost": 0, "link_restored": 0,
-                       "command_age_ticks_max": 0, "command_age_ticks_last": 0}
+        self.counts = dict.fromkeys(("sends", "receives", "commands_used", "superseded",
+                                     "dropped_to_worker", "missed_ticks", "late", "link_lost",
+                                     "link_restored"), 0)
+        self.age_hist = np.zeros(LATENCY_BINS, dtype=np.int64)
 
     @classmethod
     def from_rig(cls, rig: Rig, settings: MqttSettings) -> MqttLink:
@@ -137,16 +139,17 @@ class MqttLink:
             out[:] = self._newest
             self.last_valid_tick = tick
             self.counts["commands_used"] += 1
-            age = tick - self.last_echo_tick
-            self.counts["command_age_ticks_last"] = age
-            if age > self.counts["command_age_ticks_max"]:
-                self.counts["command_age_ticks_max"] = age
+            age = tick - self.last_echo_tick  # 1: answered within the tick
+            self.age_hist[min(max(age, 0), LATENCY_BINS - 1)] += 1
+            if age > 1:
+                self.counts["late"] += 1
             if self.lost:
                 self.lost = False
                 self.counts["link_restored"] += 1
                 self._events.append(Event(tick, t, "link_restored",
                                           f"valid command after {self._silence(tick)}"))
             return True
+        self.counts["missed_ticks"] += 1
         if not self.lost and tick - self.last_valid_tick >= self.watchdog_ticks:
             self.lost = True
             self.counts["link_lost"] += 1
@@ -158,13 +161,13 @@ class MqttLink:
     def send(self, tick: int, t: float, values: Vector) -> None:
         self.counts["sends"] += 1
         if self._sock is None or self._gone:
-            self.counts["loop_send_dropped"] += 1
+            self.counts["dropped_to_worker"] += 1
             return
         self._sensor.pack_into(self._out, 0, b"S", tick, t, *values)
         try:
             self._sock.send(self._out)
         except BlockingIOError:  # the worker is a full buffer behind: drop the newest
-            self.counts["loop_send_dropped"] += 1
+            self.counts["dropped_to_worker"] += 1
         except OSError as exc:
             self._worker_gone(tick, t, f"send failed: {exc}")
 
@@ -173,6 +176,12 @@ class MqttLink:
         return events
 
     def health(self) -> dict[str, float]:
+        """The worker's counters (at most 0.1 s old) and the loop's own.
+
+        latency_ticks_*: ticks from a sensor message to the tick its answer was used;
+        latency_ms_*: from publishing a sensor message to receiving its answer, in the
+        worker (broker and controller included, the loop's tick excluded).
+        """
         if self._health_raw is not None:
             try:
                 self._worker_health = json.loads(self._health_raw)
@@ -182,6 +191,11 @@ class MqttLink:
         merged = {k: float(v) for k, v in self._worker_health.items()}
         merged.update({k: float(v) for k, v in self.counts.items()})
         merged["watchdog_lost"] = 1.0 if self.lost else 0.0
+        total = int(self.age_hist.sum())
+        if total:
+            cum = np.cumsum(self.age_hist)
+            merged["latency_ticks_p50"] = float(np.searchsorted(cum, (total + 1) // 2))
+            merged["latency_ticks_max"] = float(np.flatnonzero(self.age_hist)[-1])
         return merged
 
     def close(self) -> None:
@@ -244,7 +258,7 @@ class MqttLink:
             code = buf[0]
             if code == 0x43 and n == command.size:  # b"C"
                 if self._fresh:
-                    self.counts["commands_superseded"] += 1
+                    self.counts["superseded"] += 1
                 _, _seq, echo, *values = command.unpack_from(buf)
                 self._newest[:] = values
                 self.last_echo_tick = echo

@@ -3,22 +3,23 @@
 The tick loop and this worker meet through one AF_UNIX SOCK_SEQPACKET socket pair: each
 datagram is one record, sends are non-blocking on both ends and a full buffer drops the
 newest record (counted). The worker holds at most ``send_queue`` sensor messages waiting
-for the broker (drop-oldest, counted) and validates every command before the loop sees
-it, so nothing untrusted crosses to the plant.
+for the broker (drop-oldest, counted) and checks every command before the loop sees it,
+so nothing untrusted crosses to the plant.
 
 Records, first byte the type::
 
     loop -> worker   b"S" + <q d {p}d>  sensor values: tick, t, values
                      b"Q"               close: publish 'offline', disconnect, exit
     worker -> loop   b"C" + <q q {m}d>  a valid command: seq, echoed tick, values
-                     b"E" + kind \\t detail (UTF-8)   an event for the run record
-                     b"H" + JSON        health counters (every 0.1 s and on exit)
+                     b"E" + kind TAB detail (UTF-8)   an event for the run record
+                     b"H" + JSON        health counters (every 0.1 s and at the end)
 
 Connections follow aiomqtt 2.x practice (FIELD-NOTES.md): no automatic reconnect, so a
-fresh Client per attempt with exponential backoff; TCP_NODELAY on the socket; retained
-'online' status republished on every connect (retained messages vanish when a broker
-without persistence restarts) and a retained last will 'offline'. One TaskGroup owns the
-tasks of one connection (publish, receive, heartbeat, close), after aiomqtt's own design.
+fresh Client for every attempt with exponential backoff; TCP_NODELAY on the socket; the
+retained 'online' status republished on every connect (retained messages vanish when a
+broker without persistence restarts) and a retained last will 'offline'. One TaskGroup
+owns the tasks of one connection (publish, receive, heartbeat, close), after aiomqtt's
+own design.
 """
 
 from __future__ import annotations
@@ -37,7 +38,7 @@ import struct
 import sys
 import time
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import aiomqtt
@@ -51,11 +52,12 @@ HEALTH_PERIOD_S = 0.1
 LATENCY_WINDOW = 4096
 TCP_NODELAY = (socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 AUTH_CODES = {4, 5, 134, 135}  # bad user name or password / not authorised (v3.1.1, v5)
+REJECT_REASONS = ("range", "tick", "retained")  # well-formed, but must not be used
 
 
 @dataclass(frozen=True)
 class ChannelSpec:
-    """What the worker must know of the rig to check commands and label status."""
+    """What the worker must know of the rig to check commands and describe itself."""
 
     rig_name: str
     tick_s: float
@@ -89,20 +91,12 @@ class _DropOldestQueue(asyncio.Queue):  # type: ignore[type-arg]
         super().put_nowait(item)
 
 
-@dataclass
-class _Counters:
-    values: dict[str, float] = field(default_factory=dict)
-
-    def inc(self, key: str, by: float = 1.0) -> None:
-        self.values[key] = self.values.get(key, 0.0) + by
-
-
 def connect_failure(exc: BaseException) -> tuple[str, str]:
     """Event kind and a plain-words detail for a failed connection attempt."""
     rc = getattr(exc, "rc", None)
     code = getattr(rc, "value", rc)
     if isinstance(exc, MqttConnectError) and code in AUTH_CODES:
-        return "link_auth_failed", (f"broker refused the credentials ({rc}, code {code}); "
+        return "link_auth_failed", (f"the broker refused the credentials ({rc}, code {code}); "
                                     "check link.username and the password")
     return "link_connect_failed", str(exc) or type(exc).__name__
 
@@ -121,6 +115,17 @@ def tls_context(settings: MqttSettings) -> ssl.SSLContext | None:
     return ctx
 
 
+def admit(counts: dict[str, int], key: str, per_kind: int) -> str:
+    """'item', 'summary' or '' for the newest event of ``key``: the first ``per_kind`` are
+    itemised, then one summary at 10x, 100x, ... (the serial link's rule)."""
+    n = counts.get(key, 0) + 1
+    counts[key] = n
+    if n <= per_kind:
+        return "item"
+    q = n / per_kind
+    return "summary" if q == int(q) and 10 ** round(math.log10(q)) == q else ""
+
+
 class Worker:
     """One MQTT session for the life of a run, reconnecting as needed."""
 
@@ -128,75 +133,72 @@ class Worker:
         self.s = settings
         self.spec = spec
         self.sock = sock
-        self.p = len(spec.outputs)
         self.m = len(spec.inputs)
-        self.sensor_rec = sensor_struct(self.p)
+        self.sensor_rec = sensor_struct(len(spec.outputs))
         self.command_rec = command_struct(self.m)
         self.topics = {name: settings.topic(name) for name in
                        ("sensors", "commands", "heartbeat", "status")}
         self.codec = Codec(settings.payload, settings.encoding, settings.scale,
                            settings.max_payload)
         self.outbox: deque[tuple[int, float, tuple[float, ...]]] = deque()
-        self.c = _Counters()
+        self.n: dict[str, float] = {}
         self.seq = SeqTracker()
-        self.sent_seq = 0
-        self.heartbeat_seq = 0
-        self.status_seq = 0
-        self.last_tick: int | None = None
-        self.sent_at_tick = [-1] * LATENCY_WINDOW
+        self.out_seq = {"sensors": 0, "heartbeat": 0, "status": 0}
+        self.last_tick: int | None = None  # newest sensor tick published (may be -1)
+        self.sent_at_tick = [-2] * LATENCY_WINDOW
         self.sent_at_ns = [0] * LATENCY_WINDOW
-        self.latencies: deque[float] = deque(maxlen=LATENCY_WINDOW)
+        self.rtt_ms: deque[float] = deque(maxlen=LATENCY_WINDOW)
         self.connected = False
+        self.established = False  # this attempt got as far as a live session
+        self.last_failure: str | None = None
+        self.gate: dict[str, int] = {}
         self.session = f"{os.getpid():x}-{time.time_ns() & 0xFFFFFFFF:08x}"
         self.started = time.monotonic()
-        self.itemised: dict[str, int] = {}
-        self.last_failure: str | None = None
-        self.established = False
         self.queue_type: type[_DropOldestQueue] = type("_Queue", (_DropOldestQueue,),
                                                        {"dropped": 0})
 
     # ---- talking to the loop -------------------------------------------------------
+    def inc(self, key: str) -> None:
+        self.n[key] = self.n.get(key, 0.0) + 1.0
+
+    def _next(self, topic: str) -> int:
+        seq = self.out_seq[topic]
+        self.out_seq[topic] = (seq + 1) % 65536
+        return seq
+
     def _to_loop(self, record: bytes) -> None:
         try:
             self.sock.send(record)
         except BlockingIOError:
-            self.c.inc("to_loop_dropped")
+            self.inc("dropped_to_loop")
         except OSError:
             self.stopping.set()  # the loop's end is gone: nothing left to serve
 
-    def event(self, kind: str, detail: str = "") -> None:
-        self._to_loop(b"E" + f"{kind}\t{detail}".encode()[:2000])
-
-    def _bad(self, reason: str, detail: str, kind: str = "bad_command") -> None:
-        """Count a refused (or clamped) command; event the first events_per_kind of each
-        reason, count the rest only (a flooding controller must not flood the record)."""
-        if kind == "bad_command":
-            self.c.inc(f"err_{reason}")
-            self.c.inc("commands_refused")
-        else:
-            self.c.inc("commands_clamped")
-        used = self.itemised.get(reason, 0)
-        if used < self.s.events_per_kind:
-            self.event(kind, f"{reason}: {detail}")
-        else:
-            self.c.inc("events_not_itemised")
-        self.itemised[reason] = used + 1
+    def event(self, kind: str, detail: str = "", reason: str = "") -> None:
+        """Pass an event to the loop, itemised up to events_per_kind per kind and reason."""
+        key = f"{kind}:{reason}" if reason else kind
+        verdict = admit(self.gate, key, self.s.events_per_kind)
+        if verdict == "item":
+            self._to_loop(b"E" + f"{kind}\t{detail}".encode()[:2000])
+        elif verdict == "summary":
+            self._to_loop(b"E" + (f"events_suppressed\t{key}: {self.gate[key]} so far; the "
+                                  f"first {self.s.events_per_kind} are itemised, link health "
+                                  "has the totals").encode())
 
     def health(self) -> dict[str, float]:
-        h = dict(self.c.values)
+        h = dict(self.n)
         h["connected"] = 1.0 if self.connected else 0.0
-        h["receive_queue_dropped"] = float(self.queue_type.dropped)
+        h["dropped_in"] = float(self.queue_type.dropped)
         h["duplicates"] = float(self.seq.duplicates)
         h["out_of_order"] = float(self.seq.out_of_order)
-        h["commands_lost"] = float(self.seq.lost)
-        h["seq_resyncs"] = float(self.seq.resyncs)
-        if self.latencies:
-            lat = sorted(self.latencies)
+        h["lost_in"] = float(self.seq.lost)
+        h["resyncs"] = float(self.seq.resyncs)
+        if self.rtt_ms:
+            lat = sorted(self.rtt_ms)
             n = len(lat)
-            h["latency_last_s"] = self.latencies[-1]
-            h["latency_p50_s"] = lat[n // 2]
-            h["latency_p99_s"] = lat[min(n - 1, math.ceil(0.99 * n) - 1)]
-            h["latency_max_s"] = lat[-1]
+            h["latency_ms_p50"] = lat[(n - 1) // 2]
+            h["latency_ms_p99"] = lat[max(0, math.ceil(0.99 * n) - 1)]
+            h["latency_ms_max"] = lat[-1]
         return h
 
     def _send_health(self) -> None:
@@ -217,32 +219,31 @@ class Worker:
             if rec[:1] == b"S" and len(rec) == self.sensor_rec.size:
                 _, tick, t, *values = self.sensor_rec.unpack(rec)
                 if not self.connected:
-                    self.c.inc("sensors_dropped_offline")
+                    self.inc("dropped_offline")
                     continue
                 if len(self.outbox) >= self.s.send_queue:
                     self.outbox.popleft()
-                    self.c.inc("send_queue_dropped")
+                    self.inc("dropped_out")
                 self.outbox.append((tick, t, tuple(values)))
                 self.outbox_ready.set()
             elif rec[:1] == b"Q":
                 self.stopping.set()
             else:
-                self.c.inc("bad_loop_records")
+                self.inc("bad_loop_records")
 
     # ---- one connection ------------------------------------------------------------
     def _status(self, state: str, reason: str = "") -> bytes:
-        self.status_seq += 1
         doc: dict[str, Any] = {
-            "seq": self.status_seq % 65536, "state": state, "rig": self.spec.rig_name,
+            "seq": self._next("status"), "state": state, "rig": self.spec.rig_name,
             "rig_id": self.s.rig_id, "session": self.session,
             "time_utc": _dt.datetime.now(_dt.UTC).isoformat(timespec="milliseconds"),
         }
         if state == "online":
             doc.update({
                 "tick_s": self.spec.tick_s, "payload": self.s.payload,
-                "inputs": list(self.spec.inputs), "outputs": list(self.spec.outputs),
-                "topics": {k: v for k, v in self.topics.items()},
-                "qos": dict(self.s.qos), "connects": int(self.c.values.get("connects", 0)),
+                "encoding": self.s.encoding, "inputs": list(self.spec.inputs),
+                "outputs": list(self.spec.outputs), "topics": dict(self.topics),
+                "qos": dict(self.s.qos), "connects": int(self.n.get("connects", 0)),
             })
         if reason:
             doc["reason"] = reason
@@ -269,66 +270,80 @@ class Worker:
             while self.outbox:
                 tick, t, values = self.outbox.popleft()
                 try:
-                    payload = codec.sensors(self.sent_seq, tick, t, values)
-                except ValueError as exc:  # a value float32 cannot carry
-                    self.c.inc("sensors_unencodable")
-                    self.event("sensor_not_sent", f"tick {tick}: {exc}")
+                    payload = codec.sensors(self.out_seq["sensors"], tick, t, values)
+                except ValueError as exc:  # a value the binary encoding cannot carry
+                    self.inc("encode_errors")
+                    self.event("encode_error", f"sensor values for tick {tick} not sent: {exc}")
                     continue
-                self.sent_seq = (self.sent_seq + 1) % 65536
+                self._next("sensors")
                 slot = tick % LATENCY_WINDOW
                 self.sent_at_tick[slot] = tick
                 self.sent_at_ns[slot] = time.perf_counter_ns()
                 self.last_tick = tick
                 await client.publish(topic, payload, qos=qos)
-                self.c.inc("messages_out")
+                self.inc("frames_out")
 
     async def _heartbeat(self, client: aiomqtt.Client) -> None:
         topic, qos = self.topics["heartbeat"], self.s.qos["heartbeat"]
         while True:
-            tick = self.last_tick if self.last_tick is not None else 0
-            payload = self.codec.heartbeat(self.heartbeat_seq, tick,
+            tick = self.last_tick if self.last_tick is not None else -1
+            payload = self.codec.heartbeat(self._next("heartbeat"), tick,
                                            time.monotonic() - self.started)
-            self.heartbeat_seq = (self.heartbeat_seq + 1) % 65536
             await client.publish(topic, payload, qos=qos)
-            self.c.inc("heartbeats_out")
+            self.inc("heartbeats_out")
             await asyncio.sleep(self.s.heartbeat_period)
+
+    def _check(self, message: aiomqtt.Message) -> tuple[int, int, tuple[float, ...]]:
+        """(seq, echoed tick, values) of a command that may be used, else PayloadError."""
+        payload = message.payload
+        if not isinstance(payload, bytes | bytearray):
+            raise PayloadError("schema", f"payload of type {type(payload).__name__}")
+        if message.retain:
+            raise PayloadError("retained", "a retained command is stale by definition")
+        seq, echo, values = self.codec.decode(Kind.COMMAND, bytes(payload), self.m)
+        last = self.last_tick
+        behind = None if last is None else (last - echo) % TICK_MODULUS
+        if last is None or behind is None or behind >= TICK_MODULUS // 2:
+            raise PayloadError("tick", f"echoes tick {echo}, newest sent "
+                                       f"{'none' if last is None else last}")
+        echo = last - behind  # a binary frame's tick is u32: unwrap it
+        try:
+            check_range(values, self.spec.lo, self.spec.hi, self.spec.inputs)
+        except PayloadError as exc:
+            if self.s.out_of_range != "clamp":
+                raise
+            values = tuple(min(max(v, lo), hi) for v, lo, hi in
+                           zip(values, self.spec.lo, self.spec.hi, strict=True))
+            self.inc("clamped")
+            self.event("clamped_command", f"{exc.detail}; clamped to {list(values)}")
+        return seq, echo, values
 
     def _accept(self, message: aiomqtt.Message) -> None:
         """Check one command message; pass it to the loop only if every rule holds."""
-        self.c.inc("messages_in")
-        payload = message.payload
-        if not isinstance(payload, bytes | bytearray):
-            payload = str(payload).encode()
+        self.inc("frames_in")
         try:
-            if message.retain:
-                raise PayloadError("retained", "a retained command is stale by definition")
-            seq, echo, values = self.codec.decode(Kind.COMMAND, bytes(payload), self.m)
-            try:
-                check_range(values, self.spec.lo, self.spec.hi, self.spec.inputs)
-            except PayloadError as exc:
-                if self.s.out_of_range != "clamp":
-                    raise
-                self._bad("range", exc.detail, kind="command_clamped")
-                values = tuple(min(max(v, lo), hi) for v, lo, hi in
-                               zip(values, self.spec.lo, self.spec.hi, strict=True))
-            last = self.last_tick
-            behind = None if last is None else (last - echo) % TICK_MODULUS
-            if last is None or behind is None or behind >= TICK_MODULUS // 2:
-                raise PayloadError("tick", f"echoes tick {echo}, newest sent "
-                                           f"{'none' if last is None else last}")
-            echo = last - behind  # unwrap a binary frame's u32 tick
-            before = (self.seq.duplicates, self.seq.out_of_order)
-            if not self.seq.check(seq):
-                kind = "duplicate" if self.seq.duplicates > before[0] else "out_of_order"
-                raise PayloadError(kind, f"seq {seq} after {self.seq.last}")
+            seq, echo, values = self._check(message)
         except PayloadError as exc:
-            self._bad(exc.reason, exc.detail)
+            if exc.reason in REJECT_REASONS:
+                self.inc(f"rejected_{exc.reason}")
+                self.event("rejected_command", f"{exc.reason}: {exc.detail}", exc.reason)
+            else:
+                self.inc(f"bad_{exc.reason}")
+                self.event("bad_frame", f"{exc.reason}: {exc.detail}", exc.reason)
+            return
+        newest = self.seq.last
+        if not self.seq.check(seq):
+            if self.seq.last == seq:
+                self.event("duplicate_frame", f"seq {seq} seen already; dropped")
+            else:
+                self.event("out_of_order_frame", f"seq {seq} is older than seq {newest}; "
+                                                 "dropped")
             return
         slot = echo % LATENCY_WINDOW
         if self.sent_at_tick[slot] == echo:
-            self.latencies.append((time.perf_counter_ns() - self.sent_at_ns[slot]) / 1e9)
-            self.sent_at_tick[slot] = -1  # measure each sensor message once
-        self.c.inc("commands_valid")
+            self.rtt_ms.append((time.perf_counter_ns() - self.sent_at_ns[slot]) / 1e6)
+            self.sent_at_tick[slot] = -2  # one round trip per sensor message
+        self.inc("commands_in")
         self._to_loop(self.command_rec.pack(b"C", seq, echo, *values))
 
     async def _receiver(self, client: aiomqtt.Client) -> None:
@@ -345,18 +360,20 @@ class Worker:
 
     async def _session(self, client: aiomqtt.Client) -> None:
         """Serve one live connection until it drops or the loop closes the link."""
-        self.c.inc("connects")
-        if self.c.values["connects"] > 1:
-            self.c.inc("reconnects")
-        self.outbox.clear()  # values from before the outage are stale
+        self.inc("connects")
+        first = self.n["connects"] == 1
+        if not first:
+            self.inc("reconnects")
+        self.outbox.clear()  # values from before an outage are stale
         self.seq.reset()
         await client.publish(self.topics["status"], self._status("online"),
                              qos=self.s.qos["status"], retain=True)
+        self.inc("status_out")
         await client.subscribe(self.topics["commands"], qos=self.s.qos["commands"])
         self.connected = self.established = True
         self.last_failure = None
-        kind = "link_connected" if self.c.values["connects"] == 1 else "link_reconnected"
-        self.event(kind, f"{self.s.host}:{self.s.port} as {self.s.client_id}")
+        self.event("link_connected" if first else "link_reconnected",
+                   f"{self.s.host}:{self.s.port} as {self.s.client_id}")
         try:
             async with asyncio.TaskGroup() as tg:
                 tg.create_task(self._publisher(client), name="mqtt-publish")
@@ -365,6 +382,18 @@ class Worker:
                 tg.create_task(self._close_when_asked(client), name="mqtt-close")
         finally:
             self.connected = False
+
+    def _failed(self, exc: BaseException) -> None:
+        """Count and event a lost connection or a failed attempt (each new failure once)."""
+        if self.established:
+            self.inc("disconnects")
+            self.event("link_disconnected", str(exc) or type(exc).__name__)
+            return
+        kind, detail = connect_failure(exc)
+        self.inc("auth_failures" if kind == "link_auth_failed" else "connect_failures")
+        if self.last_failure != detail:
+            self.event(kind, detail)
+            self.last_failure = detail
 
     async def _health_ticker(self) -> None:
         while True:
@@ -403,20 +432,6 @@ class Worker:
             loop.remove_reader(self.sock.fileno())
             self.connected = False
             self._send_health()
-            self.event("link_worker_ended", "")
-
-    def _failed(self, exc: BaseException) -> None:
-        """Count and event a lost connection or a failed attempt (each new failure once)."""
-        if self.established:
-            self.c.inc("disconnects")
-            self.event("link_disconnected", str(exc) or type(exc).__name__)
-            self.last_failure = None
-            return
-        kind, detail = connect_failure(exc)
-        self.c.inc("auth_failures" if kind == "link_auth_failed" else "connect_failures")
-        if self.last_failure != detail:
-            self.event(kind, detail)
-            self.last_failure = detail
 
 
 def worker_main(settings: MqttSettings, spec: ChannelSpec, sock: socket.socket) -> None:

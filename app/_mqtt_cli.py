@@ -1,0 +1,132 @@
+"""Command-line parts for a controller over MQTT: `plantrig controller` on an MQTT rig and
+`plantrig demo --mqtt`.
+
+The demo is the whole MQTT bench on one machine: it starts its own mosquitto on a free
+127.0.0.1 port (generated configuration: loopback listener only, anonymous access, which
+is fine for a demo on loopback and nowhere else, set_tcp_nodelay true), the reference
+controller as a separate process, and the rig in real time; then it prints the run
+folder, the link health and the timing, and stops the broker.
+"""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import subprocess
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from plantrig import CAUTION
+
+EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
+DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_mqtt.toml"
+READY_TIMEOUT_S = 20.0
+
+
+def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
+                        controller: Any, ready_word: str) -> int:
+    """`plantrig controller RIG` for an MQTT [link]: serve until the rig closes the link.
+
+    ``--port`` overrides the broker: a port number or host:port.
+    """
+    from plantrig.io._mqtt_config import mqtt_settings
+    from plantrig.io._mqtt_controller import serve_reference
+
+    try:
+        mqtt = mqtt_settings(settings, args.port)
+    except ValueError as exc:
+        print(f"error: --port: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    stopping: list[bool] = []
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(sig, lambda *_: stopping.append(True))
+
+    def ready(where: str) -> None:
+        print(f"{ready_word} on mqtt {where} ({mqtt.payload}, "
+              f"{controller.law.__class__.__name__})", flush=True)
+
+    reason, c = serve_reference(controller, mqtt, len(rig.outputs),
+                                stop=lambda: bool(stopping), on_ready=ready)
+    print(f"controller: {reason}; answered {c['answered']}, bad {c['bad']}, duplicates "
+          f"{c['duplicates']}, out of order {c['out_of_order']}, connects {c['connects']}",
+          flush=True)
+    return EXIT_OK
+
+
+def link_report(h: dict[str, float]) -> str:
+    """The MQTT link health in a few readable lines."""
+    bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
+    lines = [
+        f"link: sensor messages out {h.get('frames_out', 0):.0f}, commands in "
+        f"{h.get('commands_in', 0):.0f} (used {h.get('commands_used', 0):.0f}), heartbeats "
+        f"out {h.get('heartbeats_out', 0):.0f}, connects {h.get('connects', 0):.0f}, "
+        f"reconnects {h.get('reconnects', 0):.0f}",
+        f"link: bad or rejected {bad:.0f}, duplicates {h.get('duplicates', 0):.0f}, out of "
+        f"order {h.get('out_of_order', 0):.0f}, dropped out "
+        f"{h.get('dropped_out', 0) + h.get('dropped_offline', 0):.0f}, late answers "
+        f"{h.get('late', 0):.0f}, ticks without a fresh command "
+        f"{h.get('missed_ticks', 0):.0f}, link lost {h.get('link_lost', 0):.0f}",
+    ]
+    if "latency_ms_p50" in h:
+        lines.append(
+            f"link: round trip through the broker {h['latency_ms_p50']:.3f} ms p50, "
+            f"{h['latency_ms_p99']:.3f} ms p99, {h['latency_ms_max']:.3f} ms max; answer "
+            f"used {h.get('latency_ticks_p50', 0):.0f} tick(s) after its sensor message p50, "
+            f"{h.get('latency_ticks_max', 0):.0f} max")
+    return "\n".join(lines)
+
+
+def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any],
+                  print_outcome: Callable[[Path, dict[str, Any]], None],
+                  wait_ready: Callable[[subprocess.Popen[str], float], str | None]) -> int:
+    """Rig and reference controller through a local mosquitto, in real time."""
+    from plantrig.io import build_link
+    from plantrig.io._broker import BrokerError, LocalBroker
+    from plantrig.sim import run_to_folder
+
+    print(CAUTION)
+    rig = load(args.rig or str(DEMO_RIG))
+    if (rig.link or {}).get("kind") != "mqtt":
+        print(f"error: {rig.path}: link.kind: expected 'mqtt' for demo --mqtt, found "
+              f"{(rig.link or {}).get('kind')!r}", file=sys.stderr)
+        return EXIT_USAGE
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    try:
+        broker = LocalBroker()
+        broker.start()
+    except (BrokerError, OSError) as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_FAULT
+    where = f"{broker.host}:{broker.port}"
+    print(f"broker: mosquitto on {where} (config {broker.conf})")
+    proc = subprocess.Popen([sys.executable, "-m", "plantrig", "controller", str(rig.path),
+                             "--port", where], stdout=subprocess.PIPE, text=True)
+    try:
+        ready = wait_ready(proc, READY_TIMEOUT_S)
+        if ready is None:
+            print("error: the reference controller did not start", file=sys.stderr)
+            return EXIT_FAULT
+        print(f"{ready} (pid {proc.pid})")
+        link = build_link(rig, port=where)
+        print(f"rig: {rig.name}, {1 / rig.tick:g} Hz for {rig.duration:g} s in real time "
+              f"over MQTT at {where}")
+        folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
+    finally:
+        try:  # the controller ends when the rig says 'offline' (link closed)
+            proc.wait(timeout=5)
+        except subprocess.TimeoutExpired:
+            proc.terminate()
+            proc.wait(timeout=5)
+        broker.close()
+    assert proc.stdout is not None
+    for line in proc.stdout.read().splitlines():
+        print(line)
+    print_outcome(folder, summary)
+    health = summary["link"]
+    print(link_report(health))
+    ok = outcome.ended == "completed" and health.get("link_lost", 1) == 0
+    print("demo: ok" if ok else "demo: the link was lost or the run did not complete")
+    return EXIT_OK if ok else EXIT_FAULT
