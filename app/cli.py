@@ -80,15 +80,44 @@ def cmd_run(args: argparse.Namespace) -> int:
     except OSError as exc:
         print(f"error: cannot create run folder parent {out}: {exc.strerror}", file=sys.stderr)
         return EXIT_USAGE
+    dashboard = _open_dashboard(rig) if args.gui else None
+    if args.gui and dashboard is None:
+        return EXIT_USAGE
+    dashboard_args = {"commands": dashboard.commands,
+                      "on_tapes_ready": dashboard.on_tapes_ready} if dashboard else {}
     try:
-        folder, outcome, summary = run_to_folder(rig, out, realtime=realtime)
+        folder, outcome, summary = run_to_folder(rig, out, realtime=realtime, **dashboard_args)
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
     _print_outcome(folder, summary)
     if args.json:
         print(json.dumps(summary["timing"]))
+    if dashboard is not None:
+        dashboard.after_run(folder)
     return EXIT_OK if outcome.ended != "fault" else EXIT_FAULT
+
+
+def _open_dashboard(rig: Any) -> Any:
+    """The dashboard for ``run --gui``, imported only then; None after a message."""
+    try:
+        from plantrig.gui import NO_DISPLAY, LiveDashboard, display_available
+    except ImportError as exc:
+        print(f"error: --gui needs dearpygui ({exc}); install plantrig[gui]", file=sys.stderr)
+        return None
+    if not display_available():
+        print(f"error: {NO_DISPLAY}", file=sys.stderr)
+        return None
+    return LiveDashboard(rig.path)
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    try:
+        from plantrig.gui import replay
+    except ImportError as exc:
+        print(f"error: replay needs dearpygui ({exc}); install plantrig[gui]", file=sys.stderr)
+        return EXIT_USAGE
+    return replay(args.folder)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -115,8 +144,15 @@ def build_parser() -> argparse.ArgumentParser:
                       help="paced to the wall clock (overrides rig)")
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
     p.add_argument("--json", action="store_true", help="also print timing as one JSON line")
+    p.add_argument("--gui", action="store_true",
+                   help="open the live dashboard (needs dearpygui and a display)")
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)
+    p = sub.add_parser("replay", help="open a run folder in the dashboard",
+                       description="Open a recorded run folder in the dashboard, with a "
+                                   "time slider (needs dearpygui and a display).")
+    p.add_argument("folder", help="run folder written by plantrig run")
+    p.set_defaults(func=cmd_replay)
     return parser
 
 

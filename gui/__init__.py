@@ -7,6 +7,7 @@ the dashboard reads the tape and sends Commands back through the run's queue.
 from plantrig.gui._dashboard import Dashboard, run_dashboard
 from plantrig.gui._decimate import decimate_minmax
 from plantrig.gui._faults import fault_catalogue
+from plantrig.gui._launch import NO_DISPLAY, LiveDashboard, replay
 from plantrig.gui._operator import Operator
 from plantrig.gui._process import (
     DashboardProcess,
@@ -17,7 +18,8 @@ from plantrig.gui._process import (
 from plantrig.gui._replay import Replay, RunFolderError, RunRecord, load_run, run_replay
 
 __all__ = [
-    "Dashboard", "DashboardProcess", "Operator", "Replay", "RunFolderError", "RunRecord",
-    "decimate_minmax", "display_available", "fault_catalogue", "load_run", "run_dashboard",
-    "run_replay", "start_dashboard_process", "start_replay_process",
+    "NO_DISPLAY", "Dashboard", "DashboardProcess", "LiveDashboard", "Operator", "Replay",
+    "RunFolderError", "RunRecord", "decimate_minmax", "display_available", "fault_catalogue",
+    "load_run", "replay", "run_dashboard", "run_replay", "start_dashboard_process",
+    "start_replay_process",
 ]

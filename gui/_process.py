@@ -15,12 +15,15 @@ import multiprocessing as mp
 import multiprocessing.connection
 import os
 import signal
+import sys
 import threading
+import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 NICE_INCREMENT = 10
+EXIT_TAPE_GONE = 3        # the run ended (and removed its tapes) before the window opened
 
 
 def display_available() -> bool:
@@ -43,10 +46,17 @@ def _dashboard_child(tape_path: str, event_tape_path: str | None, rig_path: str,
                      command_queue: Any, frame_cap_hz: float, screenshot: str | None,
                      exit_after_frames: int | None, frames: Any) -> None:
     _step_aside()
+    if not Path(tape_path).exists():
+        sys.exit(EXIT_TAPE_GONE)
     from plantrig.gui._dashboard import run_dashboard
-    run_dashboard(tape_path, event_tape_path, rig_path, command_queue,
-                  frame_cap_hz=frame_cap_hz, screenshot=screenshot,
-                  exit_after_frames=exit_after_frames, frame_counter=frames)
+    try:
+        run_dashboard(tape_path, event_tape_path, rig_path, command_queue,
+                      frame_cap_hz=frame_cap_hz, screenshot=screenshot,
+                      exit_after_frames=exit_after_frames, frame_counter=frames)
+    except FileNotFoundError:
+        if not Path(tape_path).exists():   # removed between the check and the open
+            sys.exit(EXIT_TAPE_GONE)
+        raise
 
 
 def _replay_child(folder: str, frame_cap_hz: float, screenshot: str | None,
@@ -70,7 +80,9 @@ class DashboardProcess:
 
     def _watch(self, on_exit: Callable[[str], None]) -> None:
         multiprocessing.connection.wait([self.process.sentinel])
-        self.process.join()
+        # another thread may be reaping the child in wait(); let it finish
+        while self.process.exitcode is None:
+            time.sleep(0.01)
         on_exit(self.describe_exit())
 
     @property
@@ -92,6 +104,8 @@ class DashboardProcess:
             return "dashboard running"
         if code == 0:
             return "dashboard closed"
+        if code == EXIT_TAPE_GONE:
+            return "the run ended before the dashboard could open its tape"
         if code < 0:
             name = signal.Signals(-code).name
             hint = " (no display? dearpygui aborts without one)" \

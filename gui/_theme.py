@@ -51,6 +51,9 @@ class Themes:
             dpg.add_theme_color(dpg.mvThemeCol_Text, TEXT, category=core)
             dpg.add_theme_style(dpg.mvStyleVar_FrameRounding, 3, category=core)
             dpg.add_theme_style(dpg.mvStyleVar_ChildRounding, 4, category=core)
+            # room above and below the data so band lines at the rig range stay visible
+            dpg.add_theme_style(dpg.mvPlotStyleVar_FitPadding, 0.02, 0.08,
+                                category=dpg.mvThemeCat_Plots)
         self.banner = _colour_theme([(dpg.mvThemeCol_ChildBg, BANNER_BG, core),
                                      (dpg.mvThemeCol_Text, BANNER_TEXT, core)])
         self.estop = self._button(ESTOP_BG, ESTOP_HOVER)

@@ -178,7 +178,7 @@ class DashboardView:
                 tag = f"{T}plot.{i}"
                 self._labels[i] = spec.title
                 with dpg.plot(label=spec.title, height=height, width=-1, tag=tag,
-                              no_menus=True):
+                              no_menus=True, no_mouse_pos=True):
                     dpg.add_plot_legend(horizontal=True, outside=True,
                                         location=dpg.mvPlot_Location_North)
                     dpg.add_plot_axis(dpg.mvXAxis, tag=f"{tag}.x", label="plant time [s]")

@@ -1,0 +1,93 @@
+"""What the command line needs to open the dashboard: for a run, or for a run folder.
+
+Kept apart from the CLI so the CLI stays a thin composition root and loads dearpygui
+only when asked (``plantrig run --gui``, ``plantrig replay``).
+"""
+
+from __future__ import annotations
+
+import multiprocessing as mp
+import sys
+from pathlib import Path
+from typing import Any
+
+from plantrig.gui._process import (
+    EXIT_TAPE_GONE,
+    DashboardProcess,
+    display_available,
+    start_dashboard_process,
+    start_replay_process,
+)
+from plantrig.gui._replay import RunFolderError, load_run
+from plantrig.sim import RigFileError
+
+NO_DISPLAY = ("no display: the dashboard needs an X or Wayland display (DISPLAY is not set); "
+              "run without --gui, or under Xvfb")
+
+
+def _say(text: str) -> None:
+    print(text, file=sys.stderr, flush=True)
+
+
+class LiveDashboard:
+    """The command queue for a run and the callback that opens the dashboard on it."""
+
+    def __init__(self, rig_path: str | Path, *, frame_cap_hz: float = 30.0) -> None:
+        self.rig_path = Path(rig_path)
+        self.frame_cap_hz = frame_cap_hz
+        self.commands: Any = mp.get_context("spawn").Queue()
+        self.process: DashboardProcess | None = None
+
+    def on_tapes_ready(self, tape_path: Path, event_tape_path: Path) -> None:
+        """run_to_folder calls this once the tapes exist; returns at once."""
+        self.process = start_dashboard_process(tape_path, event_tape_path, self.rig_path,
+                                               self.commands,
+                                               frame_cap_hz=self.frame_cap_hz, on_exit=_say)
+
+    def after_run(self, folder: Path) -> None:
+        """Keep the window up for a look at the end of the run, until it is closed.
+
+        A fast run can end before the dashboard has opened its tape (a spawned
+        interpreter takes about a second to start); then the run folder is opened
+        in replay instead.
+        """
+        process = self.process
+        if process is None:
+            return
+        _say("the run has ended and is recorded; close the dashboard window (or press "
+             "Ctrl-C) to exit")
+        try:
+            process.wait()
+            if process.process.exitcode == EXIT_TAPE_GONE:
+                _say(f"the run ended before the dashboard opened; opening {folder} in replay")
+                process = start_replay_process(folder, frame_cap_hz=self.frame_cap_hz,
+                                               on_exit=_say)
+                process.wait()
+        except KeyboardInterrupt:
+            process.stop()
+
+
+def replay(folder: str | Path, *, frame_cap_hz: float = 30.0) -> int:
+    """Open a run folder; 0 when the window is closed, 2 for a bad folder or no display."""
+    try:
+        load_run(folder)
+    except RunFolderError as exc:
+        _say(f"error: {exc}")
+        return 2
+    except RigFileError as exc:
+        for issue in exc.issues:
+            _say(f"error: {issue}")
+        return 2
+    if not display_available():
+        _say(f"error: {NO_DISPLAY}")
+        return 2
+    process = start_replay_process(folder, frame_cap_hz=frame_cap_hz)
+    try:
+        process.wait()
+    except KeyboardInterrupt:
+        process.stop()
+        return 0
+    if process.process.exitcode != 0:
+        _say(process.describe_exit())
+        return 1
+    return 0
