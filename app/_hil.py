@@ -52,6 +52,9 @@ def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
         for issue in exc.issues:
             print(f"error: {issue}", file=sys.stderr)
         return EXIT_USAGE
+    if settings.kind == "mqtt":  # message-based: its own loop (plantrig._mqtt_cli)
+        from plantrig._mqtt_cli import run_mqtt_controller
+        return run_mqtt_controller(args, rig, settings, controller, READY_WORD)
     if settings.kind not in TRANSPORTS:
         print(f"error: the reference controller has no transport for link kind "
               f"{settings.kind!r}", file=sys.stderr)
@@ -78,7 +81,7 @@ def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     return EXIT_OK
 
 
-def _wait_ready(proc: subprocess.Popen[str], timeout: float) -> str | None:
+def wait_ready(proc: subprocess.Popen[str], timeout: float) -> str | None:
     """The controller's ready line, or None if it exited or said nothing in time."""
     assert proc.stdout is not None
     end = time.monotonic() + timeout
@@ -106,8 +109,11 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     from plantrig.io import FdPort, build_link, open_pty_pair
     from plantrig.sim import run_to_folder
 
+    if args.mqtt:
+        from plantrig._mqtt_cli import cmd_demo_mqtt
+        return cmd_demo_mqtt(args, load, print_outcome, wait_ready)
     print(CAUTION)
-    rig = load(args.rig)
+    rig = load(args.rig or str(DEMO_RIG))
     link_settings(rig)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
@@ -115,7 +121,7 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
                             stdout=subprocess.PIPE, text=True)
     try:
-        ready = _wait_ready(proc, READY_TIMEOUT_S)
+        ready = wait_ready(proc, READY_TIMEOUT_S)
         if ready is None:
             print("error: the reference controller did not start", file=sys.stderr)
             return EXIT_FAULT
@@ -185,6 +191,10 @@ def add_parsers(sub: Any, load: Callable[[str], Any],
                        description="Run a rig in real time against the reference controller "
                                    "in another process, over a pseudo-terminal pair.",
                        epilog=CAUTION)
-    p.add_argument("--rig", default=str(DEMO_RIG), help=f"rig file (default: {DEMO_RIG.name})")
+    p.add_argument("--rig", help=f"rig file (default: {DEMO_RIG.name}, or "
+                                 "conveyor_mqtt.toml with --mqtt)")
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
+    p.add_argument("--mqtt", action="store_true",
+                   help="through a local mosquitto it starts on a free loopback port, "
+                        "instead of a pty pair")
     p.set_defaults(func=lambda a: cmd_demo(a, load, print_outcome))

@@ -68,8 +68,10 @@ class FdPort:
             data = os.read(self.fd, self.READ_SIZE)
         except BlockingIOError:
             return b""
-        if not data:
-            raise OSError(f"{self.name}: end of file (the far end closed)")
+        # a tty in raw mode with VMIN = 0 (as pyserial sets it) reads b"" when empty; it
+        # is a hang-up only if the fd also polls readable (pyserial's own test)
+        if not data and select.select([self.fd], [], [], 0)[0]:
+            raise OSError(f"{self.name}: end of file (the far end hung up)")
         return data
 
     def write_some(self, data: bytes | memoryview) -> int:

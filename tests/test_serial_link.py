@@ -1,0 +1,289 @@
+"""The serial link and the reference controller over a real pty pair, in separate processes.
+
+The closed loop over the wire is checked against the same rig run fast with the law
+built in (plantrig.sim.simulate). A binary link carries float32, so the wire run must
+equal, bit for bit, the fast run whose sensor and actuator values are rounded to float32
+(numpy's round-to-nearest-even, the IEEE 754 default, as struct's '<f' packing is), and
+stay within TOL of the unrounded fast run. Text lines carry the shortest repr that
+round-trips a float64, so a text link must equal the fast run exactly.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import os
+import signal
+import subprocess
+import sys
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+
+from plantrig._hil import controller_command, wait_ready
+from plantrig.io import (
+    FdPort,
+    PtyPair,
+    SerialLink,
+    build_link,
+    check_link_table,
+    open_pty_pair,
+    parse_link_table,
+)
+from plantrig.sim import Rig, RunData, load_rig, simulate
+
+CONFIGS = Path(__file__).parents[1] / "configs"
+HIL = (CONFIGS / "conveyor_hil.toml").read_text()
+INJECTOR = Path(__file__).with_name("pty_injector.py")
+# Float32 keeps 24 significant bits: unit roundoff 2**-24 (IEEE 754 binary32; Higham,
+# Accuracy and Stability of Numerical Algorithms, 2nd ed., section 2.1). Each tick rounds
+# the belt speed (<= 0.9 m/s) and the voltage (<= 24 V) by at most 2**-24 relative, i.e.
+# 5e-8 m/s and 1.4e-6 V; the stable loop sums such kicks with a bounded gain, and the
+# observed worst deviation over the run is ~1e-6 m/s. TOL allows 20x that and is still
+# 1e-4 of the 0.8 m/s step, far below any difference a wrong tick alignment makes (one
+# tick of delay moves the belt speed by ~1e-2 m/s during the step).
+TOL = {"y:belt_speed": 2e-5, "y:motor_current": 2e-3, "u:voltage": 2e-3}
+
+
+def hil_rig(tmp_path: Path, *, duration: float = 2.0, fast_lockstep: bool = False,
+            text: bool = False, extra: str = "") -> Rig:
+    """conveyor_hil.toml with the given changes, written beside the test's files."""
+    src = HIL.replace("duration = 3.0", f"duration = {duration}")
+    if fast_lockstep:
+        src = src.replace('mode = "realtime"', 'mode = "fast"')
+        src = src.replace('out_of_range = "reject"', 'out_of_range = "reject"\nlockstep = true')
+    if text:
+        src = src.replace('protocol = "binary"\nencoding = "float32"', 'protocol = "text"')
+    src = src.replace("\n[link.controller]\n", "\n" + extra + "\n[link.controller]\n")
+    path = tmp_path / "rig.toml"
+    path.write_text(src)
+    return load_rig(path)
+
+
+def builtin_twin(rig: Rig) -> Rig:
+    """The same rig with the reference controller's law built in and no link."""
+    settings, issues = parse_link_table(rig)
+    assert settings is not None and not issues
+    return dataclasses.replace(rig, controller=settings.controller, link=None)
+
+
+class Float32:
+    """A signal chain that rounds to float32, as the binary wire does."""
+
+    def apply(self, tick: int, src: np.ndarray, dst: np.ndarray) -> None:
+        dst[:] = src.astype(np.float32)
+
+    def reset(self) -> None:
+        pass
+
+
+@contextlib.contextmanager
+def reference_controller(rig: Rig, pair: PtyPair) -> Iterator[subprocess.Popen[str]]:
+    """`plantrig controller` on the slave end, in its own process."""
+    proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
+                            stdout=subprocess.PIPE, text=True)
+    try:
+        assert wait_ready(proc, 30.0), "the reference controller did not start"
+        pair.close_slave()
+        yield proc
+    finally:
+        pair.close_slave()
+        pair.close_master()
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(proc.pid, signal.SIGCONT)
+        try:
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+        assert proc.stdout is not None
+        proc.stdout.close()
+
+
+def run_over_pty(rig: Rig, action=None, at: float = 0.8) -> tuple[RunData, dict]:  # type: ignore[no-untyped-def]
+    """Run ``rig`` against the reference controller over a pty; ``action(proc)`` runs
+    ``at`` seconds into the run from a timer thread (it sleeps until then)."""
+    pair = open_pty_pair()
+    with reference_controller(rig, pair) as proc:
+        link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
+        timer = threading.Timer(at, action, (proc,)) if action else None
+        if timer:
+            timer.start()
+        try:
+            data = simulate(rig, realtime=rig.mode == "realtime", link=link)
+        finally:
+            if timer:
+                timer.cancel()
+    return data, data.outcome.link_health
+
+
+def assert_columns_equal(a: RunData, b: RunData, names: list[str]) -> None:
+    for name in names:
+        diff = np.flatnonzero(a[name] != b[name])
+        assert diff.size == 0, f"{name} differs first at tick {diff[0]}: " \
+                               f"{a[name][diff[0]]!r} vs {b[name][diff[0]]!r}"
+
+
+STATE_COLUMNS = ["u:voltage", "y:belt_speed", "y:motor_current", "x:current",
+                 "x:motor_speed", "x:belt_speed"]
+
+
+def test_binary_wire_loop_equals_fast_builtin(tmp_path: Path) -> None:
+    rig = hil_rig(tmp_path, fast_lockstep=True)
+    wire, health = run_over_pty(rig)
+    twin = builtin_twin(rig)
+    rounded = simulate(twin, actuator_chain=Float32(), sensor_chain=Float32())
+    plain = simulate(twin)
+    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert health["commands_in"] == rig.n_ticks and health["latency_ticks_max"] == 1
+    # the loop really moved: the belt follows the 0.8 m/s step
+    assert abs(wire["y:belt_speed"][1500] - 0.8) < 0.01
+    assert_columns_equal(wire, rounded, STATE_COLUMNS)
+    for name, tol in TOL.items():
+        assert np.max(np.abs(wire[name] - plain[name])) < tol, name
+
+
+def test_text_wire_loop_equals_fast_builtin_exactly(tmp_path: Path) -> None:
+    rig = hil_rig(tmp_path, fast_lockstep=True, text=True)
+    wire, health = run_over_pty(rig)
+    plain = simulate(builtin_twin(rig))
+    assert health["commands_in"] == rig.n_ticks
+    assert_columns_equal(wire, plain, STATE_COLUMNS + ["cmd:voltage"])
+
+
+def test_realtime_loop_matches_fast_while_answers_are_on_time(tmp_path: Path) -> None:
+    """In real time an answer can miss its tick (scheduling); the rig then holds the
+    last command. Until the first tick without a fresh command, every command used
+    answered the previous tick, so the run must equal the fast run up to there."""
+    rig = hil_rig(tmp_path)
+    wire, health = run_over_pty(rig)
+    rounded = simulate(builtin_twin(rig), actuator_chain=Float32(), sensor_chain=Float32())
+    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert health["latency_ticks_p50"] == 1 and health["link_lost"] == 0
+    stale = np.flatnonzero(wire["fresh"][1:] == 0)
+    end = int(stale[0]) + 1 if stale.size else rig.n_ticks
+    assert health["missed_ticks"] == rig.n_ticks - 1 - int(wire["fresh"][1:].sum())
+    for name in STATE_COLUMNS:
+        a, b = wire[name][:end], rounded[name][:end]
+        assert np.array_equal(a, b), f"{name} differs before tick {end}"
+
+
+def test_far_end_closed_mid_run(tmp_path: Path) -> None:
+    rig = hil_rig(tmp_path)
+    wire, health = run_over_pty(rig, action=lambda proc: proc.kill())
+    kinds = [e.kind for e in wire.outcome.events]
+    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert "port_error" in kinds and "link_lost" in kinds
+    lost = next(e for e in wire.outcome.events if e.kind == "link_lost")
+    assert "port error" in lost.detail
+    assert health["port_errors"] >= 1 and health["link_lost"] == 1
+    # from the loss on, the last good command is held (on_link_silence = "hold")
+    u = wire["u:voltage"]
+    assert np.isfinite(u).all() and np.all(u[lost.tick:] == u[lost.tick])
+
+
+def test_watchdog_fires_within_timeout_plus_one_tick(tmp_path: Path) -> None:
+    rig = hil_rig(tmp_path)
+    timeout_ticks = round(0.05 / rig.tick)   # link.watchdog_timeout = 0.05 s
+    wire, health = run_over_pty(rig, action=lambda proc: os.kill(proc.pid, signal.SIGSTOP))
+    events = wire.outcome.events
+    lost = [e for e in events if e.kind == "link_lost"][-1]    # the one never restored
+    assert "watchdog" in lost.detail
+    assert not any(e.kind == "link_restored" and e.tick > lost.tick for e in events)
+    last_fresh = int(np.flatnonzero(wire["fresh"][:lost.tick] == 1)[-1])
+    assert lost.tick - last_fresh == timeout_ticks + 1
+    assert not wire["fresh"][lost.tick:].any()
+    assert wire.rows.shape[0] == rig.n_ticks and wire.outcome.ended == "completed"
+
+
+def test_bad_input_is_counted_evented_and_kept_from_the_plant(tmp_path: Path) -> None:
+    rig = hil_rig(tmp_path, duration=1.5, extra="events_per_kind = 3\n")
+    pair = open_pty_pair()
+    injector = subprocess.Popen([sys.executable, str(INJECTOR), str(pair.master_fd)],
+                                pass_fds=[pair.master_fd], stdout=subprocess.PIPE, text=True)
+    try:
+        assert injector.stdout is not None
+        assert injector.stdout.readline().startswith("injector: ready")
+        pair.close_master()            # the injector holds the master now
+        link = build_link(rig, port=pair.slave_path)   # through pyserial, by path
+        assert isinstance(link, SerialLink)
+        data = simulate(rig, realtime=True, link=link)
+    finally:
+        pair.close_slave()
+        injector.wait(timeout=10)
+        assert injector.stdout is not None
+        injector.stdout.close()
+    h = data.outcome.link_health
+    rounds = rig.n_ticks // 20 // 10       # each of the 10 kinds comes this often
+    assert rounds >= 5
+    for key in ("bad_crc", "bad_truncated", "bad_oversize", "bad_non_finite",
+                "rejected_count", "rejected_range", "duplicates", "out_of_order"):
+        assert h[key] >= rounds - 1, (key, h[key])
+    assert h["bad_non_finite"] >= 2 * (rounds - 1)           # NaN and inf
+    garbage = h["bad_cobs"] + h["bad_crc"] + h["bad_truncated"] + h["bad_length"]
+    assert garbage >= 3 * (rounds - 1)                       # garbage, crc, truncated
+    events = data.outcome.events
+    details = {(e.kind, e.detail.split(":")[0]) for e in events}
+    for pair_ in [("bad_frame", "crc"), ("bad_frame", "truncated"), ("bad_frame", "oversize"),
+                  ("bad_frame", "non_finite"), ("rejected_command", "count"),
+                  ("rejected_command", "range")]:
+        assert pair_ in details, pair_
+    assert {"duplicate_frame", "out_of_order_frame"} <= {e.kind for e in events}
+    # three itemised per kind, then summaries only: bounded however long the flood
+    assert sum(e.kind == "bad_frame" and e.detail.startswith("crc") for e in events) == 3
+    u = data["u:voltage"]
+    assert np.isin(u, [0.0, 0.5]).all()          # only the good commands (or the safe 0)
+    assert data.outcome.ended == "completed"
+
+
+def test_a_flood_of_garbage_keeps_events_bounded(tmp_path: Path) -> None:
+    rig = hil_rig(tmp_path)
+    pair = open_pty_pair()
+    link = build_link(rig, port=pair.slave_path)
+    link.open()
+    cmd = np.zeros(1)
+    # valid COBS of a 3-byte body: shorter than any header, so "truncated" every time
+    flood = b"\x04\x01\x02\x03\x00" * 400
+    events = []
+    try:
+        for k in range(50):
+            assert os.write(pair.master_fd, flood) == len(flood)
+            link.receive(k, k * rig.tick, cmd)
+            events += link.drain_events()
+    finally:
+        link.close()
+        pair.close_slave()
+        pair.close_master()
+    h = link.health()
+    assert h["bad_truncated"] == 20_000 and cmd[0] == 0.0
+    assert len([e for e in events if e.kind == "bad_frame"]) == 20   # events_per_kind
+    summaries = [e.detail for e in events if e.kind == "events_suppressed"]
+    assert [d.split(";")[0] for d in summaries] == [
+        f"bad_frame:truncated: {n} so far" for n in (200, 2000, 20000)]
+
+
+def test_link_table_mistakes_are_reported_with_key_paths(tmp_path: Path) -> None:
+    bad = HIL.replace('baud = 921600', 'baud_rate = 921600\nencoding_ = 1') \
+             .replace('encoding = "float32"', 'encoding = "int16"') \
+             .replace('kp = 60.0', 'kp = "sixty"') \
+             .replace('watchdog_timeout = 0.05', 'watchdog_timeout = 0.0001\nlockstep = true')
+    path = tmp_path / "bad.toml"
+    path.write_text(bad)
+    issues = {i.key: i.message for i in check_link_table(load_rig(path))}
+    assert "did you mean 'baud'" in issues["link.baud_rate"]
+    assert "did you mean 'encoding'" in issues["link.encoding_"]
+    assert "int16" in issues["link.scale"]
+    assert "at least one tick" in issues["link.watchdog_timeout"]
+    assert "real-time" in issues["link.lockstep"]
+    assert "link.controller.loops[0].kp" in issues
+    assert all(i.file == str(path) for i in check_link_table(load_rig(path)))
+
+
+def test_unknown_link_kind_gets_a_did_you_mean(tmp_path: Path) -> None:
+    path = tmp_path / "k.toml"
+    path.write_text(HIL.replace('kind = "serial"', 'kind = "serail"'))
+    issues = check_link_table(load_rig(path))
+    assert len(issues) == 1 and issues[0].key == "link.kind"
+    assert "did you mean 'serial'" in issues[0].message
