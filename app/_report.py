@@ -286,7 +286,7 @@ def _bound(value: float | None) -> str:
 def _limit_page(record: RunRecord, t: NDArray[np.float64], names: list[str]) -> Any:
     import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(PAGE[0], PAGE[1] / 2.2))
+    fig, ax = plt.subplots(figsize=PAGE)
     for name in names:
         tt, vv = _envelope(t, record[name])
         ax.plot(tt, vv, lw=1.0, label=name.partition(":")[2])
@@ -295,7 +295,7 @@ def _limit_page(record: RunRecord, t: NDArray[np.float64], names: list[str]) -> 
     ax.set_xlabel("plant time [s]")
     ax.legend(fontsize=7)
     ax.grid(True, lw=0.3, alpha=0.6)
-    fig.tight_layout()
+    fig.tight_layout(rect=(0, 0.5, 1, 1))
     return fig
 
 
@@ -303,7 +303,7 @@ def _timeline(record: RunRecord) -> Any:
     import matplotlib.pyplot as plt
 
     kinds = sorted({ev["kind"] for ev in record.events})
-    fig, ax = plt.subplots(figsize=(PAGE[0], max(2.5, 0.35 * len(kinds) + 1.5)))
+    fig, ax = plt.subplots(figsize=PAGE)
     for i, kind in enumerate(kinds):
         times = [ev["time"] for ev in record.events if ev["kind"] == kind]
         ax.scatter(times, [i] * len(times), marker="|", s=300, color=LIMIT if kind != "error"
@@ -311,18 +311,19 @@ def _timeline(record: RunRecord) -> Any:
     ax.set_yticks(range(len(kinds)), kinds, fontsize=8)
     ax.set_ylim(-0.7, len(kinds) - 0.3)
     if len(record.rows):
-        ax.set_xlim(float(record.t[0]), float(record.t[-1]) + 1e-9)
+        lo, hi = float(record.t[0]), float(record.t[-1])
+        ax.set_xlim(lo - 0.02 * (hi - lo), hi + 0.02 * (hi - lo) + 1e-9)
     ax.set_xlabel("plant time [s]")
     ax.set_title("Event timeline", fontsize=11)
     ax.grid(True, axis="x", lw=0.3, alpha=0.6)
-    fig.tight_layout()
+    fig.tight_layout(rect=(0, 1 - min(0.9, 0.2 + 0.03 * len(kinds)), 1, 1))
     return fig
 
 
 def _timing_page(record: RunRecord) -> Any:
     import matplotlib.pyplot as plt
 
-    fig, (a, b) = plt.subplots(2, 1, figsize=(PAGE[0], PAGE[1] / 1.6))
+    fig, (a, b) = plt.subplots(2, 1, figsize=PAGE)
     late = record["lateness"] * 1e6 if "lateness" in record else np.zeros(0)
     work = record["exec_time"] * 1e6 if "exec_time" in record else np.zeros(0)
     for ax, values, what in ((a, late, "lateness"), (b, work, "work time")):
@@ -341,7 +342,7 @@ def _timing_page(record: RunRecord) -> Any:
             ax.set_xticks([])
             ax.set_yticks([])
         ax.set_title(f"Tick {what}", fontsize=11)
-    fig.tight_layout()
+    fig.tight_layout(rect=(0, 0.35, 1, 1))
     return fig
 
 

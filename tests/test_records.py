@@ -1,0 +1,262 @@
+"""Run records of a finished run: run.h5 bit for bit, the reader, manifest and signature,
+export round trips, and the sign-off report rendered and looked at."""
+
+from __future__ import annotations
+
+import csv
+import json
+import re
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import h5py
+import matplotlib.image
+import numpy as np
+import pytest
+import scipy.io
+
+from plantrig import __version__
+from plantrig._report import write_report
+from plantrig.cli import main
+from plantrig.sim import load_rig, run_to_folder, simulate
+from plantrig.sim._export import matlab_names
+from plantrig.sim._manifest import verify_folder
+from plantrig.sim._reader import RunRecord, read_run
+
+REPO = Path(__file__).resolve().parents[1]
+CONVEYOR = REPO / "configs" / "conveyor.toml"
+TANK = REPO / "configs" / "tank.toml"
+
+
+@pytest.fixture(scope="module")
+def conveyor_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    folder, outcome, _ = run_to_folder(load_rig(CONVEYOR), tmp_path_factory.mktemp("runs"),
+                                       realtime=False)
+    assert outcome.ended == "completed"
+    return folder
+
+
+def copy_of(folder: Path, tmp_path: Path) -> Path:
+    return Path(shutil.copytree(folder, tmp_path / folder.name))
+
+
+def h5_rows(path: Path) -> tuple[list[str], np.ndarray]:
+    """Tick columns read straight from run.h5 with h5py, by each dataset's index attr."""
+    with h5py.File(path, "r") as f:
+        columns = json.loads(f.attrs["columns"])
+        rows = np.full((0, 0), np.nan)
+        found: dict[int, np.ndarray] = {}
+        f["ticks"].visititems(lambda _n, o: found.__setitem__(int(o.attrs["index"]), o[()])
+                              if isinstance(o, h5py.Dataset) else None)
+        rows = np.column_stack([found[i] for i in range(len(columns))])
+    return columns, rows
+
+
+def test_hdf5_holds_every_tick_bit_for_bit(tmp_path: Path) -> None:
+    # the tank rig: an ODE plant whose model module travels with the record
+    rig = load_rig(TANK)
+    folder, _, summary = run_to_folder(rig, tmp_path, realtime=False)
+    memory = simulate(rig)       # the same rig, fast, into a MemoryTape
+    columns, rows = h5_rows(folder / "run.h5")
+    assert columns == memory.columns
+    assert rows.dtype == np.float64 and rows.tobytes() == memory.rows.tobytes()
+    with h5py.File(folder / "run.h5", "r") as f:
+        level = f["ticks/outputs/level"]
+        assert level.attrs["column"] == "y:level" and level.attrs["unit"] == "m"
+        assert (level.attrs["min"], level.attrs["max"]) == (0.0, 1.5)
+        assert f["ticks/link/cmd/heater"].attrs["unit"] == "W"
+        assert f["ticks/states/temperature"].attrs["unit"] == "degC"
+        assert set(f["ticks"]) >= {"time", "timing", "inputs", "outputs", "states", "link",
+                                   "references"}
+        events = f["events"][()]
+        assert events.dtype.names == ("tick", "time", "kind", "detail")
+        assert events["kind"][-1].decode() == "run_end" and events["tick"][-1] == 12000
+        assert f["sources/rig.toml"][()].decode() == TANK.read_text()
+        assert f["sources/tank_model.py"][()].decode() == (TANK.parent /
+                                                           "tank_model.py").read_text()
+        assert f.attrs["software_version"] == __version__
+        assert json.loads(f.attrs["model"]) == summary["model"]
+        assert json.loads(f.attrs["summary"])["ticks_recorded"] == 12000
+
+
+def test_reader_works_from_h5_npy_or_journal(conveyor_run: Path, tmp_path: Path) -> None:
+    memory = simulate(load_rig(CONVEYOR))
+    from_h5 = read_run(conveyor_run)
+    assert from_h5.source == "run.h5"
+    assert from_h5.rows.tobytes() == memory.rows.tobytes()
+    assert from_h5.unit("y:belt_speed") == "m/s" and from_h5.events[-1]["kind"] == "run_end"
+    np.testing.assert_array_equal(from_h5["u:voltage"], memory["u:voltage"])
+    no_h5 = copy_of(conveyor_run, tmp_path)
+    (no_h5 / "run.h5").unlink()
+    from_npy = read_run(no_h5)
+    assert from_npy.source == "ticks.npy" and from_npy.rows.tobytes() == memory.rows.tobytes()
+    (no_h5 / "ticks.npy").unlink()      # a crashed folder: only the journal, with a torn row
+    with open(no_h5 / "ticks.journal", "wb") as f:
+        f.write(memory.rows.tobytes() + b"\x01" * 13)
+    from_journal = read_run(no_h5)
+    assert from_journal.source == "ticks.journal"
+    assert from_journal.rows.tobytes() == memory.rows.tobytes()
+
+
+def test_manifest_catches_one_changed_byte_missing_and_extra(conveyor_run: Path,
+                                                             tmp_path: Path,
+                                                             capsys: pytest.CaptureFixture
+                                                             ) -> None:
+    folder = copy_of(conveyor_run, tmp_path)
+    assert main(["verify", str(folder)]) == 0
+    listed = json.loads((folder / "manifest.json").read_text())["files"]
+    assert set(listed) >= {"run.h5", "ticks.npy", "events.jsonl", "summary.json", "rig.toml",
+                           "run_start.json"}
+    data = bytearray((folder / "ticks.npy").read_bytes())
+    data[len(data) // 2] ^= 0x01                      # one bit of one byte
+    (folder / "ticks.npy").write_bytes(bytes(data))
+    capsys.readouterr()
+    assert main(["verify", str(folder)]) == 1
+    assert "changed: ticks.npy" in capsys.readouterr().out
+    (folder / "events.jsonl").unlink()
+    (folder / "notes.txt").write_text("added later")
+    result = verify_folder(folder)
+    assert (result.changed, result.missing, result.extra) == (
+        ["ticks.npy"], ["events.jsonl"], ["notes.txt"])
+    assert not result.ok
+
+
+def test_signature_from_one_key_is_rejected_under_another(conveyor_run: Path, tmp_path: Path,
+                                                          capsys: pytest.CaptureFixture
+                                                          ) -> None:
+    folder = copy_of(conveyor_run, tmp_path)
+    alice, mallory = tmp_path / "alice", tmp_path / "mallory"
+    assert main(["keygen", "--out", str(alice)]) == 0
+    assert main(["keygen", "--out", str(mallory)]) == 0
+    assert main(["keygen", "--out", str(alice)]) == 2          # never overwrites a key
+    assert (Path(f"{alice}.private.pem").stat().st_mode & 0o777) == 0o600
+    assert main(["sign", str(folder), "--key", f"{alice}.private.pem"]) == 0
+    assert main(["verify", str(folder), "--public-key", f"{alice}.public.pem"]) == 0
+    capsys.readouterr()
+    assert main(["verify", str(folder), "--public-key", f"{mallory}.public.pem"]) == 1
+    assert "signature: invalid" in capsys.readouterr().out
+    # a manifest edited to match a changed file no longer matches its signature
+    manifest = (folder / "manifest.json").read_text()
+    (folder / "manifest.json").write_text(manifest.replace('"version": 1', '"version": 1 '))
+    assert main(["verify", str(folder), "--public-key", f"{alice}.public.pem"]) == 1
+
+
+def test_csv_and_mat_exports_read_back_equal(conveyor_run: Path, tmp_path: Path) -> None:
+    folder = copy_of(conveyor_run, tmp_path)
+    record = read_run(folder)
+    assert main(["export", str(folder), "--csv", "--mat"]) == 0
+    with open(folder / "export" / "ticks.csv", newline="") as f:
+        table = list(csv.reader(f))
+    assert table[0] == record.columns and table[1] == record.units
+    back = np.array([[float(v) for v in row] for row in table[2:]])
+    assert back.tobytes() == record.rows.tobytes()        # 17 digits round-trip exactly
+    with open(folder / "export" / "events.csv", newline="") as f:
+        events = list(csv.reader(f))
+    assert events[-1][2] == "run_end"
+    mat = scipy.io.loadmat(folder / "export" / "run.mat")
+    names = [str(n[0]) for n in mat["names"].ravel()]
+    assert [str(c[0]) for c in mat["columns"].ravel()] == record.columns
+    assert [str(u[0]) if u.size else "" for u in mat["units"].ravel()] == record.units
+    for i, name in enumerate(names):
+        assert re.fullmatch(r"[A-Za-z][A-Za-z0-9_]{0,62}", name), name
+        assert mat[name].shape == (len(record.rows), 1)
+        assert mat[name].ravel().tobytes() == record.rows[:, i].tobytes()
+    assert main(["verify", str(folder)]) == 0             # exports joined the manifest
+
+
+def test_matlab_names_are_valid_and_distinct() -> None:
+    names = matlab_names(["y:belt speed", "y:belt-speed", "9lives", "end", "x:" + "a" * 80,
+                          "x:" + "a" * 80, "columns"])
+    assert names[:4] == ["y_belt_speed", "y_belt_speed_2", "v_9lives", "end_"]
+    assert len(set(names)) == len(names) and all(len(n) <= 63 for n in names)
+    assert "columns" not in names
+
+
+def trace_pixels(page: np.ndarray, bands: int) -> list[int]:
+    """Pixels of the blue trace ink (#1f3b57, antialiased: blue well above red) in each
+    horizontal band of a rendered page; text, grid and frames are grey, bands red."""
+    blue = page[..., 2] - page[..., 0] > 0.08
+    return [int(b.sum()) for b in np.array_split(blue, bands, axis=0)]
+
+
+def red_pixels(page: np.ndarray) -> int:
+    """Pixels of the range bands and limit lines (#d9534f)."""
+    return int((page[..., 0] - page[..., 2] > 0.2).sum())
+
+
+def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> None:
+    # a short real-time run, so the lateness histogram has something to show
+    rig_path = tmp_path / "conveyor.toml"
+    rig_path.write_text(CONVEYOR.read_text().replace("duration = 3.0", "duration = 1.0"))
+    folder, _, _ = run_to_folder(load_rig(rig_path), tmp_path / "runs", realtime=True)
+    assert main(["report", str(folder), "--operator", "R. Okafor", "--witness",
+                 "L. Brandt"]) == 0
+    page = (folder / "report.html").read_text()
+    assert "R. Okafor" in page and "L. Brandt" in page
+    assert "no acceptance criteria in this run" in page
+    assert re.search(r"""src=['"](?!data:image/png;base64,)""", page) is None
+    assert page.count("data:image/png;base64,") >= 4
+    assert json.loads((folder / "manifest.json").read_text())["files"]["ticks.npy"][
+        "sha256"] in page
+    assert main(["verify", str(folder)]) == 0
+    subprocess.run(["pdftoppm", "-r", "50", "-png", str(folder / "report.pdf"),
+                    str(tmp_path / "page")], check=True, timeout=60)
+    pages = [matplotlib.image.imread(p)[..., :3]
+             for p in sorted(tmp_path.glob("page-*.png"))]
+    # 10 signals in pages of 5 panels: two pages with a trace in every fifth of the page
+    # (below the title) and red range bands; text pages have neither
+    signal_pages = [p for p in pages
+                    if min(trace_pixels(p[int(0.04 * len(p)):], 5)) > 50 and red_pixels(p) > 500]
+    assert len(signal_pages) == 2
+    assert all(red_pixels(p) == 0 and max(trace_pixels(p, 5)) == 0 for p in pages[:1])
+    timing = pages[-1]      # lateness and work-time histograms in the upper 65 %
+    upper, lower, rest = trace_pixels(timing[:int(0.65 * len(timing))], 2) + [
+        sum(trace_pixels(timing[int(0.7 * len(timing)):], 1))]
+    assert upper > 500 and lower > 500 and rest == 0
+    matplotlib.image.imsave(tmp_path / "signals.png", signal_pages[0])
+    # a verdict file from the safety checks shows up as a table
+    (folder / "verdicts.json").write_text(json.dumps(
+        [{"name": "belt speed settles", "passed": True, "value": 0.41, "limit": 0.5}]))
+    assert main(["report", str(folder)]) == 0
+    page = (folder / "report.html").read_text()
+    assert "belt speed settles" in page and "no acceptance criteria" not in page
+
+
+def test_cli_record_commands_refuse_clearly(tmp_path: Path) -> None:
+    proc = subprocess.run([sys.executable, "-m", "plantrig", "verify", str(tmp_path / "nope")],
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 2 and "no such run folder" in proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert main(["verify", str(tmp_path)]) == 1           # no manifest: not verified
+    assert main(["recover", str(tmp_path)]) == 2          # not a run folder
+
+
+def test_report_marks_fault_and_trip_windows(tmp_path: Path) -> None:
+    # a record with the safety columns (fault:, trip:, limit:) as the dashboard reads them
+    t = np.arange(1000) * 0.001
+    fault = ((t >= 0.3) & (t < 0.5)).astype(float)
+    trip = (t >= 0.7).astype(float)
+    columns = ["seq", "t", "lateness", "exec_time", "fresh", "y:level", "fault:stuck_sensor",
+               "trip:high_level", "limit:level_high"]
+    rows = np.column_stack([np.arange(1000), t, np.zeros(1000), np.zeros(1000),
+                            np.ones(1000), np.sin(t * 6), fault, trip, np.abs(np.sin(t * 6))])
+    info = [{"name": c, "unit": "m" if c == "y:level" else "", "min": -0.5 if c == "y:level"
+             else None, "max": 0.9 if c == "y:level" else None} for c in columns]
+    record = RunRecord(tmp_path, columns, [i["unit"] for i in info], rows,
+                       [{"tick": 300, "time": 0.3, "kind": "fault_on", "detail": "stuck"}],
+                       {"rig": {"name": "demo"}}, info, "memory")
+    write_report(record, operator="R. Okafor")
+    subprocess.run(["pdftoppm", "-r", "50", "-png", str(tmp_path / "report.pdf"),
+                    str(tmp_path / "page")], check=True, timeout=60)
+    pages = [matplotlib.image.imread(p)[..., :3] for p in sorted(tmp_path.glob("page-*.png"))]
+    signal = next(p for p in pages if red_pixels(p) > 500)
+    panel = signal[int(0.05 * len(signal)):int(0.22 * len(signal))]   # the first panel
+    orange = (panel[..., 0] - panel[..., 2] > 0.1) & (panel[..., 1] - panel[..., 2] > 0.05)
+    violet = (panel[..., 2] - panel[..., 1] > 0.05) & (panel[..., 0] - panel[..., 1] > 0.05)
+    columns_with = np.flatnonzero(orange.any(axis=0))
+    # the fault window spans 0.2 s of the 1 s axis, about a fifth of the panel's width
+    assert 0.1 < (columns_with.max() - columns_with.min()) / panel.shape[1] < 0.3
+    assert violet.sum() > 200                     # the trip window, from 0.7 s to the end
+    assert "limit use" in (tmp_path / "report.html").read_text().lower()
