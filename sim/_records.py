@@ -322,23 +322,32 @@ def _identity(pid: int) -> dict[str, Any]:
     return {"pid": pid, "start_ticks": _start_ticks(pid)}
 
 
-def _start_ticks(pid: int) -> int | None:
+def _proc_stat(pid: int) -> list[str] | None:
+    """Fields of /proc/<pid>/stat after the command name (state first), or None."""
     try:
-        stat = Path(f"/proc/{pid}/stat").read_text()
+        return Path(f"/proc/{pid}/stat").read_text().rpartition(")")[2].split()
     except OSError:
         return None
-    return int(stat.rpartition(")")[2].split()[19])
+
+
+def _start_ticks(pid: int) -> int | None:
+    fields = _proc_stat(pid)
+    return int(fields[19]) if fields else None
 
 
 def _alive(identity: dict[str, Any] | None) -> bool:
+    """True while that very process runs (not a zombie, not a reused pid)."""
     if not identity:
         return False
     try:
         os.kill(identity["pid"], 0)
     except OSError as exc:
         return exc.errno == errno.EPERM
+    fields = _proc_stat(identity["pid"])
+    if fields is None:
+        return True
     known = identity.get("start_ticks")
-    return known is None or _start_ticks(identity["pid"]) == known
+    return fields[0] not in ("Z", "X") and (known is None or int(fields[19]) == known)
 
 
 def _wait_for_exit(folder: Path, start: dict[str, Any]) -> None:
