@@ -6,8 +6,9 @@ Firmware authors can read this top to bottom as the shape of their main loop:
     2. cut them into frames and decode each one; drop bad, repeated or stale frames
     3. for each sensor frame stamped k: compute the command for tick k + 1 from its
        values and the references at t = (k + 1) * tick, and send it stamped k
-    4. when nothing needed saying for heartbeat_period, send a heartbeat; every
-       status_period, send a status frame (binary mode)
+    4. when nothing needed saying for heartbeat_period, send a heartbeat; send a
+       status frame (binary mode) on start, on each change between waiting and
+       running, and every status_period
 
 It is paced by the rig's sensor frames, not by a clock of its own. The rig writes the
 sensor frame of tick k at the end of tick k and reads commands at the start of tick
@@ -211,6 +212,7 @@ def run_controller(controller: ReferenceController, transport: Transport, *,
     settings = controller.settings
     last_tx = last_rx = -1e9
     last_status = clock()
+    was_running = False
     first = controller.status(running=False)
     if first is not None:
         transport.write(first)
@@ -225,11 +227,12 @@ def run_controller(controller: ReferenceController, transport: Transport, *,
             last_rx = now
         elif now - last_tx >= settings.heartbeat_period:
             out.append(controller.heartbeat())
-        if now - last_status >= settings.status_period:
-            status = controller.status(running=now - last_rx < settings.heartbeat_period)
+        running = now - last_rx < settings.heartbeat_period
+        if now - last_status >= settings.status_period or running != was_running:
+            status = controller.status(running=running)   # periodic, and on each change
             if status is not None:
                 out.append(status)
-            last_status = now
+            last_status, was_running = now, running
         for frame in out:
             try:
                 sent = transport.write(frame)
