@@ -16,7 +16,7 @@ from plantrig.sim import Rig
 SIGNAL_PREFIXES = {"ref": "references", "cmd": "inputs", "u": "inputs", "y": "outputs",
                    "sent": "outputs", "x": "states"}
 LABELS = {"ref": "reference", "cmd": "command", "u": "input", "y": "output",
-          "sent": "sent", "x": "state"}
+          "sent": "sent", "x": "state", "d": "disturbance"}
 
 
 @dataclass(frozen=True)

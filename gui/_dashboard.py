@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from plantrig.gui._columns import ColumnGroups
-from plantrig.gui._faults import fault_catalogue
+from plantrig.gui._faults import fault_catalogue, fault_targets
 from plantrig.gui._feed import LiveFeed
 from plantrig.gui._model import DashboardModel
 from plantrig.gui._operator import Operator
@@ -64,13 +64,15 @@ class Dashboard:
         self.feed = LiveFeed(tape_path, event_tape_path, keep)
         groups = ColumnGroups(self.feed.columns, self.feed.units, rig)
         self.store = LiveStore(len(groups.columns), keep, groups.index("t"))
-        self.model = DashboardModel(groups, rig.tick, has_link=rig.controller.kind == "external")
+        self.model = DashboardModel(groups, rig.tick, has_link=rig.controller.kind == "external",
+                                    limits=getattr(rig, "limits", ()))
         self.operator = Operator(command_queue)
         self.rig = rig
         self.view = DashboardView(
             title=f"plantrig dashboard: {rig.name}", groups=groups,
             specs=plot_specs(groups, rig), operator=self.operator,
-            fault_kinds=fault_catalogue(), span_s=span_s,
+            fault_kinds=fault_catalogue(),
+            fault_targets=lambda choice: fault_targets(choice, rig), span_s=span_s,
             max_span_s=min(MAX_SPAN_S, keep * rig.tick), frame_cap_hz=frame_cap_hz)
         self.frames = 0
 

@@ -1,7 +1,8 @@
 """What the event stream says about the run: E-stop latch, fault windows, the recent list.
 
 Events come from the engine's event tape as (tick, time, kind, detail). The engine
-latches an operator E-stop with an "estop" event and releases it with "reset"; fault
+latches an operator E-stop with an "estop" event and releases it with a "reset" that
+names it (a recorded "trip:estop" column, where there is one, is the authority); fault
 windows open on events that announce a fault and close on those that clear it (the
 kind names are matched loosely, see ``fault_edge``, so the safety work can choose its
 own).
@@ -72,7 +73,7 @@ class EventLog:
             self.kinds[kind] = self.kinds.get(kind, 0) + 1
             if kind == "estop":
                 self.estop_latched, self.estop_time = True, t
-            elif kind == "reset":
+            elif kind == "reset" and ("estop" in detail.lower() or "e-stop" in detail.lower()):
                 self.estop_latched = False
             elif kind == "run_end":
                 self.ended = detail

@@ -5,19 +5,21 @@ the event log and the rig; the view only copies it into widgets. Tests check the
 numbers here directly.
 
 Column conventions read here (prefix:name, DESIGN.md tick record):
-  trip:<name>   non-zero while that interlock is tripped
-  fault:<name>  non-zero while that fault is active
-  limit:<name>  the fraction of that limit in use (0 idle, 1 at the limit, >1 beyond)
+  trip:<name>   1 while that interlock is latched ("trip:estop" for the operator E-stop)
+  fault:<name>  non-zero while that fault is active (fault windows also come from events)
+  limit:<name>  the limit's code: 0 ok, 1 outside a warn bound, 2 outside a trip bound
   lateness      seconds the tick started after its deadline (0 in fast mode)
   exec_time     seconds the tick's work took; fresh: 1 if the controller's command was new
-When a rig has no limit columns, its signal ranges (min/max in the rig file) are shown
-as bars instead.
+A limit's bar shows its watched signal between the limit's bounds (the rig's
+``[[limits]]``); a rig without limits shows its signal ranges (min/max) instead.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -29,6 +31,7 @@ from plantrig.gui._store import RowStore
 Rows = NDArray[np.float64]
 LINK_WINDOW_S = 1.0
 EVENTS_SHOWN = 60
+LIMIT_STATES = {0: "ok", 1: "WARN", 2: "TRIP"}
 
 
 @dataclass
@@ -85,6 +88,13 @@ def runs_nonzero(t: NDArray[np.float64], v: NDArray[np.float64],
     return out
 
 
+def _fraction(v: float, lo: float, hi: float) -> float:
+    """Where v sits between lo and hi, clipped to 0..1 (0 when unknown)."""
+    if not (math.isfinite(v) and math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
+        return 0.0
+    return min(max((v - lo) / (hi - lo), 0.0), 1.0)
+
+
 def fmt(value: float, unit: str = "") -> str:
     text = "n/a" if not math.isfinite(value) else f"{value:.4g}"
     return f"{text} {unit}".rstrip()
@@ -93,8 +103,10 @@ def fmt(value: float, unit: str = "") -> str:
 class DashboardModel:
     """Joins the columns, the rows and the events of one run into snapshots."""
 
-    def __init__(self, groups: ColumnGroups, tick: float, *, has_link: bool) -> None:
+    def __init__(self, groups: ColumnGroups, tick: float, *, has_link: bool,
+                 limits: Sequence[Any] = ()) -> None:
         self.groups = groups
+        self.limits = {spec.name: spec for spec in limits}
         self.tick = tick
         self.has_link = has_link
         self.log = EventLog()
@@ -125,14 +137,17 @@ class DashboardModel:
         for c in g.group("fault"):
             if len(rows):
                 faults.extend(runs_nonzero(t, rows[:, c.index], c.name))
-        if log.estop_latched:
+        latched = log.estop_latched
+        if "trip:estop" in g:                       # the engine's own latch, when recorded
+            latched = bool(values.get("trip:estop", 0.0))
+        if latched:
             since = f" at t = {log.estop_time:.3f} s" if log.estop_time is not None else ""
             estop_text = f"E-STOP LATCHED{since}: inputs at safe values"
         else:
             estop_text = "E-STOP clear"
         return Snapshot(
             t=t_end, rows=rows, current=current, run_state=run_state,
-            estop_latched=log.estop_latched, estop_text=estop_text, lamps=lamps,
+            estop_latched=latched, estop_text=estop_text, lamps=lamps,
             bars=bars, bars_title=title, faults=faults,
             timing=self._timing(rows), link=self._link(rows, t, log),
             events=log.newest_first(EVENTS_SHOWN), values=values)
@@ -140,25 +155,38 @@ class DashboardModel:
     def _bars(self, values: dict[str, float]) -> tuple[list[Bar], str]:
         limits = self.groups.group("limit")
         if limits:
-            bars = []
-            for c in limits:
-                v = values.get(c.key, math.nan)
-                frac = abs(v) if math.isfinite(v) else 0.0
-                bars.append(Bar(c.name, min(frac, 1.0), f"{c.name}: {frac:.0%} of limit",
-                                frac >= 1.0))
-            return bars, "Limits (fraction of limit in use)"
+            return [self._limit_bar(c.name, values) for c in limits], \
+                "Limits (watched signal between the limit's bounds)"
         bars = []
         for prefix in ("y", "u", "x"):
             for c in self.groups.group(prefix):
-                if not c.has_range:
-                    continue
-                v = values.get(c.key, math.nan)
-                frac = (v - c.low) / (c.high - c.low) if math.isfinite(v) else 0.0
-                outside = math.isfinite(v) and not c.low <= v <= c.high
-                bars.append(Bar(c.key, min(max(frac, 0.0), 1.0),
-                                f"{c.key} {fmt(v, c.unit)} in [{c.low:g}, {c.high:g}]"
-                                + ("  OUTSIDE" if outside else ""), outside))
-        return bars, "Signal ranges (rig min/max; no limit columns in this run)"
+                if c.has_range:
+                    v = values.get(c.key, math.nan)
+                    outside = math.isfinite(v) and not c.low <= v <= c.high
+                    bars.append(Bar(c.key, _fraction(v, c.low, c.high),
+                                    f"{c.key} {fmt(v, c.unit)} in [{c.low:g}, {c.high:g}]"
+                                    + ("  OUTSIDE" if outside else ""), outside))
+        return bars, "Signal ranges (rig min/max; this rig has no limits)"
+
+    def _limit_bar(self, name: str, values: dict[str, float]) -> Bar:
+        code = values.get(f"limit:{name}", math.nan)
+        state = LIMIT_STATES.get(int(code), f"code {code:g}") if math.isfinite(code) \
+            else "n/a"
+        spec = self.limits.get(name)
+        if spec is None or spec.column not in self.groups:
+            return Bar(name, 0.0, f"{name}: {state}", state != "ok")
+        watched = self.groups[spec.column]
+        v = values.get(spec.column, math.nan)
+        lo, hi = spec.trip_low, spec.trip_high
+        if not (math.isfinite(lo) and math.isfinite(hi)):
+            lo = lo if math.isfinite(lo) else spec.warn_low
+            hi = hi if math.isfinite(hi) else spec.warn_high
+        if not (math.isfinite(lo) and math.isfinite(hi)):
+            lo, hi = watched.low, watched.high
+        span = f" in [{lo:g}, {hi:g}]" if math.isfinite(lo) and math.isfinite(hi) else ""
+        return Bar(name, _fraction(v, lo, hi),
+                   f"{name}: {spec.column} {fmt(v, watched.unit)}{span}  {state}",
+                   state != "ok")
 
     def _timing(self, rows: Rows) -> list[str]:
         g = self.groups

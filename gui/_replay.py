@@ -20,7 +20,7 @@ from numpy.typing import NDArray
 from plantrig.gui._columns import ColumnGroups
 from plantrig.gui._dashboard import FramePacer, prepare_renderer
 from plantrig.gui._eventlog import EventLog, EventRow
-from plantrig.gui._faults import fault_catalogue
+from plantrig.gui._faults import fault_catalogue, fault_targets
 from plantrig.gui._model import DashboardModel
 from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
@@ -101,8 +101,9 @@ class Replay:
         self.record = rec = load_run(folder)
         groups = ColumnGroups(rec.columns, rec.units, rec.rig)
         self.store = RowStore(rec.rows, groups.index("t"))
-        self.model = DashboardModel(groups, rec.rig.tick,
-                                    has_link=rec.rig.controller.kind == "external")
+        rig = rec.rig
+        self.model = DashboardModel(groups, rig.tick, has_link=rig.controller.kind == "external",
+                                    limits=getattr(rig, "limits", ()))
         late = rec.rows[:, groups.index("lateness")] if "lateness" in groups else \
             np.zeros(len(rec.rows))
         self.overruns_upto = np.cumsum(late >= rec.rig.tick)
@@ -111,6 +112,7 @@ class Replay:
             title=f"plantrig replay: {rec.folder.name}", groups=groups,
             specs=plot_specs(groups, rec.rig), operator=Operator(None),
             fault_kinds=fault_catalogue(),
+            fault_targets=lambda choice: fault_targets(choice, rig),
             replay_range=(self.store.t_first, self.store.t_last),
             span_s=min(span_s, span_total), max_span_s=max(span_total, 0.5),
             frame_cap_hz=frame_cap_hz)

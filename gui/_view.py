@@ -26,6 +26,7 @@ import numpy as np
 from plantrig import CAUTION
 from plantrig.gui._columns import LABELS, ColumnGroups
 from plantrig.gui._decimate import decimate_minmax
+from plantrig.gui._faults import FaultChoice
 from plantrig.gui._model import EVENTS_SHOWN, Snapshot, fmt
 from plantrig.gui._operator import NOT_A_START, Operator
 from plantrig.gui._plots import PlotSpec
@@ -45,14 +46,16 @@ class DashboardView:
     """One dashboard window in this process's dearpygui context."""
 
     def __init__(self, *, title: str, groups: ColumnGroups, specs: list[PlotSpec],
-                 operator: Operator, fault_kinds: tuple[str, ...],
+                 operator: Operator, fault_kinds: tuple[FaultChoice, ...] = (),
+                 fault_targets: Callable[[FaultChoice], list[str]] = lambda _: [],
                  replay_range: tuple[float, float] | None = None,
                  span_s: float = 10.0, max_span_s: float = 30.0,
                  frame_cap_hz: float = 30.0) -> None:
         self.groups = groups
         self.specs = specs
         self.operator = operator
-        self.fault_kinds = fault_kinds
+        self.fault_kinds = {f.kind: f for f in fault_kinds}
+        self.fault_targets = fault_targets
         self.replay = replay_range is not None
         self.span = min(span_s, max_span_s)
         self.cursor = replay_range[1] if replay_range else 0.0
@@ -143,13 +146,15 @@ class DashboardView:
                 dpg.add_text("Fault")
                 kinds = list(self.fault_kinds)
                 dpg.add_combo(kinds, tag=T + "fault_kind", label="kind", width=170,
-                              default_value=kinds[0] if kinds else "")
-                targets = [c.name for c in self.groups.group("y")] + \
-                    [c.name for c in self.groups.group("u")]
-                dpg.add_combo(targets, tag=T + "fault_target", label="signal", width=170,
-                              default_value=targets[0] if targets else "")
+                              default_value=kinds[0] if kinds else "",
+                              callback=self.on_fault_kind)
+                dpg.add_combo([], tag=T + "fault_target", label="target", width=170)
+                dpg.add_input_text(tag=T + "fault_target_text", label="target", width=170,
+                                   hint="e.g. A[1,2]", show=False)
                 dpg.add_input_double(tag=T + "fault_value", label="value", width=150,
                                      format="%.4g")
+                dpg.add_text("", tag=T + "fault_help", wrap=LEFT_W - 20,
+                             color=(170, 176, 186))
                 dpg.add_input_double(tag=T + "fault_duration", label="for [s], 0 = until "
                                      "cleared", width=90, format="%.3g", min_value=0.0,
                                      min_clamped=True)
@@ -160,6 +165,8 @@ class DashboardView:
                                  width=136)
                 dpg.add_separator()
                 dpg.add_text("", tag=T + "operator_message", wrap=LEFT_W - 20)
+                if kinds:
+                    self.on_fault_kind(None, kinds[0])
 
     def _plots(self, max_span_s: float) -> None:
         n = max(1, len(self.specs))
@@ -283,10 +290,24 @@ class DashboardView:
     def on_mark_phase(self, *_: Any) -> bool:
         return self.operator.mark_phase(dpg.get_value(T + "phase_name"))
 
+    def on_fault_kind(self, _sender: Any, kind: str, *_: Any) -> None:
+        """Offer the targets this kind can act on and say what the value means."""
+        choice = self.fault_kinds.get(kind)
+        if choice is None:
+            return
+        targets = self.fault_targets(choice)
+        dpg.configure_item(T + "fault_target", items=targets, show=bool(targets))
+        dpg.set_value(T + "fault_target", targets[0] if targets else "")
+        dpg.configure_item(T + "fault_target_text", show=not targets)
+        dpg.configure_item(T + "fault_value", label=choice.parameter)
+        dpg.set_value(T + "fault_help", choice.description)
+
     def on_inject_fault(self, *_: Any) -> bool:
-        return self.operator.inject_fault(dpg.get_value(T + "fault_kind"),
-                                          dpg.get_value(T + "fault_target"),
-                                          dpg.get_value(T + "fault_value"),
+        kind = dpg.get_value(T + "fault_kind")
+        choice = self.fault_kinds.get(kind)
+        typed = choice is not None and not self.fault_targets(choice)
+        target = dpg.get_value(T + ("fault_target_text" if typed else "fault_target"))
+        return self.operator.inject_fault(kind, target, dpg.get_value(T + "fault_value"),
                                           dpg.get_value(T + "fault_duration"))
 
     def on_clear_fault(self, *_: Any) -> bool:

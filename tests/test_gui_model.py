@@ -1,0 +1,278 @@
+"""The dashboard's data side, without a window: decimation, stores, events, panels, commands.
+
+Reference values are brute-force restatements of each rule (a loop over buckets, a
+boolean mask over rows) or the rig files in configs/; nothing here needs a display.
+"""
+
+from __future__ import annotations
+
+import math
+import multiprocessing as mp
+import pickle
+import queue
+import select
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+
+import plantrig.sim
+from plantrig.gui._columns import ColumnGroups
+from plantrig.gui._decimate import decimate_minmax
+from plantrig.gui._eventlog import EventLog, fault_edge, fault_name
+from plantrig.gui._faults import PLAIN_SENSOR_FAULTS, fault_catalogue, fault_targets
+from plantrig.gui._model import DashboardModel, runs_nonzero
+from plantrig.gui._operator import MAX_TEXT, Operator
+from plantrig.gui._plots import plot_specs
+from plantrig.gui._store import LiveStore, RowStore
+from plantrig.sim import Command, load_rig, tick_columns
+
+CONFIGS = Path(__file__).resolve().parents[1] / "configs"
+finite = st.floats(-1e6, 1e6, allow_nan=False)
+
+
+# -- decimation -----------------------------------------------------------------------
+def brute_minmax(y: np.ndarray, buckets: int) -> set[int]:
+    """Indices a min-max decimation must keep: each bucket's argmin and argmax."""
+    size = -(-len(y) // buckets)
+    keep = set()
+    for start in range(0, len(y), size):
+        chunk = y[start:start + size]
+        keep.add(start + int(np.argmin(chunk)))
+        keep.add(start + int(np.argmax(chunk)))
+    return keep
+
+
+@settings(max_examples=60, deadline=None)
+@given(arrays(np.float64, st.integers(1, 3000), elements=finite), st.integers(1, 400))
+def test_decimation_keeps_every_bucket_extreme_in_time_order(y, buckets):
+    x = np.arange(len(y), dtype=np.float64)
+    dx, dy = decimate_minmax(x, y, buckets)
+    assert len(dx) <= 2 * buckets + 2
+    assert np.all(np.diff(dx) >= 0)
+    if len(y) <= 2 * buckets:
+        assert np.array_equal(dy, y)
+    else:
+        assert set(dx.astype(int)) == brute_minmax(y, buckets)
+        assert dy.max() == y.max() and dy.min() == y.min()
+        assert np.array_equal(dy, y[dx.astype(int)])
+
+
+def test_decimation_survives_nan_and_rejects_no_buckets():
+    y = np.full(1000, np.nan)
+    y[500] = 3.0
+    x = np.arange(1000.0)
+    _, dy = decimate_minmax(x, y, 10)
+    assert 3.0 in dy
+    with pytest.raises(ValueError, match="at least 1"):
+        decimate_minmax(x, y, 0)
+
+
+# -- stores ---------------------------------------------------------------------------
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.integers(0, 130), max_size=30), st.integers(1, 100))
+def test_live_store_holds_the_newest_rows_in_order(chunks, capacity):
+    store = LiveStore(2, capacity, t_index=0)
+    everything = []
+    n = 0
+    for size in chunks:
+        block = np.column_stack([np.arange(n, n + size, dtype=float),
+                                 np.arange(n, n + size, dtype=float) * 2])
+        n += size
+        everything.append(block)
+        store.append(block)
+    expected = np.concatenate(everything)[-capacity:] if everything and n else np.empty((0, 2))
+    assert np.array_equal(store.rows, expected)
+    assert store.appended == n
+
+
+def test_row_store_window_and_at_match_a_mask():
+    t = np.arange(0, 5, 0.01)
+    store = RowStore(np.column_stack([t, np.sin(t)]), t_index=0)
+    rows = store.window(3.0, 1.0)
+    assert np.array_equal(rows[:, 0], t[(t > 2.0) & (t <= 3.0)])
+    assert store.at(2.345)[0] == t[t <= 2.345][-1]
+    assert store.at(-1.0) is None
+
+
+# -- events ---------------------------------------------------------------------------
+def test_event_log_latches_estop_and_opens_and_closes_fault_windows():
+    events = [(10, 0.01, "estop", "operator E-stop: inputs forced to safe values"),
+              (20, 0.02, "fault_injected", "sensor_stuck:level: sensor_stuck on level"),
+              (25, 0.025, "command_refused", "inject_fault: unknown kind"),
+              (30, 0.03, "reset", "estop: released by operator"),
+              (40, 0.04, "fault_cleared", "sensor_stuck:level: cleared by operator")]
+    log = EventLog()
+    log.add(events)
+    assert not log.estop_latched and log.estop_time == 0.01
+    assert [(w.name, w.start, w.end) for w in log.windows] == [("sensor_stuck:level", 0.02,
+                                                                 0.04)]
+    mid = EventLog.upto(events, 0.029)
+    assert mid.estop_latched and mid.windows[0].end is None
+    assert [e[2] for e in mid.newest_first(2)] == ["command_refused", "fault_injected"]
+
+
+@pytest.mark.parametrize(("kind", "edge"), [
+    ("fault_injected", 1), ("inject_fault", 1), ("sensor_fault", 1), ("fault_cleared", -1),
+    ("clear_fault", -1), ("fault_end", -1), ("command_refused", 0), ("estop", 0),
+    ("fault_refused", 0)])
+def test_fault_edges(kind, edge):
+    assert fault_edge(kind) == edge
+
+
+def test_fault_name_is_the_first_word():
+    assert fault_name("stuck:y1: held at 0.4") == "stuck:y1"
+    assert fault_name("") == "fault"
+
+
+# -- panels ---------------------------------------------------------------------------
+def test_runs_nonzero_matches_a_loop():
+    t = np.arange(10.0)
+    v = np.array([0, 1, 1, 0, 0, 2, 0, 0, 3, 3], dtype=float)
+    got = [(w.start, w.end) for w in runs_nonzero(t, v, "f")]
+    assert got == [(1.0, 3.0), (5.0, 6.0), (8.0, None)]
+    assert runs_nonzero(t, np.zeros(10), "f") == []
+
+
+def conveyor_model(extra: list[str]):
+    rig = load_rig(CONFIGS / "conveyor.toml")
+    columns, units = tick_columns(rig)
+    columns = columns + extra
+    units = units + [""] * len(extra)
+    groups = ColumnGroups(columns, units, rig)
+    return rig, groups, DashboardModel(groups, rig.tick, has_link=False)
+
+
+def test_new_column_groups_are_discovered_by_prefix():
+    extra = ["trip:overspeed_probe", "fault:stuck_probe"]
+    rig, groups, model = conveyor_model(extra)
+    n = len(groups.columns)
+    rows = np.zeros((100, n))
+    rows[:, groups.index("t")] = np.arange(100) * rig.tick
+    rows[60:, groups.index("trip:overspeed_probe")] = 1.0
+    rows[20:40, groups.index("fault:stuck_probe")] = 1.0
+    rows[:, groups.index("y:belt_speed")] = 3.0              # above the rig range (max 2)
+    snap = model.snapshot(RowStore(rows, groups.index("t")), 0.099, 1.0, run_state="test")
+    lamp = [lamp for lamp in snap.lamps if lamp.name == "overspeed_probe"][0]
+    assert lamp.tripped and lamp.text.startswith("TRIPPED")
+    assert [(w.name, w.start, w.end) for w in snap.faults] == [("stuck_probe", 0.02, 0.04)]
+    belt = [b for b in snap.bars if b.label == "y:belt_speed"][0]
+    assert belt.outside and belt.fraction == 1.0 and "OUTSIDE" in belt.text
+    motor = [b for b in snap.bars if b.label == "x:motor_speed"][0]
+    assert motor.fraction == pytest.approx(0.5) and not motor.outside   # 0 in [-400, 400]
+
+
+def test_timing_panel_counts_overruns_from_the_lateness_column():
+    rig, groups, model = conveyor_model([])
+    rows = np.zeros((50, len(groups.columns)))
+    rows[:, groups.index("t")] = np.arange(50) * rig.tick
+    rows[:, groups.index("lateness")] = 2e-6
+    rows[[5, 17, 30], groups.index("lateness")] = [0.0011, 0.001, 0.0025]  # >= one tick
+    rows[:, groups.index("exec_time")] = 1e-5
+    model.count_rows(rows)
+    snap = model.snapshot(RowStore(rows, groups.index("t")), 1.0, 10.0, run_state="test")
+    assert model.overruns == 3
+    assert any("overruns" in line and line.endswith(": 3") for line in snap.timing)
+    assert "max 2500.0 us" in snap.timing[0]
+
+
+def test_plots_pair_each_reference_with_the_output_its_loop_measures():
+    for rig_file, expected in (
+            ("conveyor.toml", [("y:belt_speed", ("ref:speed_setpoint", "y:belt_speed",
+                                                 "sent:belt_speed")),
+                               ("y:motor_current", ("y:motor_current", "sent:motor_current")),
+                               ("u:voltage", ("cmd:voltage", "u:voltage"))]),
+            ("tank.toml", [("y:level", ("ref:level_setpoint", "y:level", "sent:level")),
+                           ("y:temperature", ("ref:temperature_setpoint", "y:temperature",
+                                              "sent:temperature")),
+                           ("u:inflow", ("cmd:inflow", "u:inflow")),
+                           ("u:heater", ("cmd:heater", "u:heater"))])):
+        rig = load_rig(CONFIGS / rig_file)
+        columns, units = tick_columns(rig)
+        specs = plot_specs(ColumnGroups(columns, units, rig), rig)
+        assert [(s.key, s.series) for s in specs] == expected
+        belt = specs[0]
+        out = rig.outputs[0]
+        assert (belt.low, belt.high) == (out.min, out.max)
+
+
+# -- faults catalogue -------------------------------------------------------------------
+def test_fault_catalogue_follows_sim(monkeypatch):
+    class Entry:
+        target = "input"
+        params = {"factor": None}
+        description = "acts weaker"
+
+    monkeypatch.setattr(plantrig.sim, "FAULT_KINDS", {"weak_drive": Entry()}, raising=False)
+    (choice,) = fault_catalogue()
+    assert (choice.kind, choice.target, choice.parameter) == ("weak_drive", "input", "factor")
+    rig = load_rig(CONFIGS / "tank.toml")
+    assert fault_targets(choice, rig) == ["inflow", "heater"]
+    monkeypatch.setattr(plantrig.sim, "FAULT_KINDS", None, raising=False)
+    assert fault_catalogue() == PLAIN_SENSOR_FAULTS
+    assert fault_targets(PLAIN_SENSOR_FAULTS[0], rig) == ["level", "temperature"]
+
+
+# -- operator actions -----------------------------------------------------------------
+@pytest.fixture
+def command_queue():
+    q = mp.get_context("spawn").Queue()
+    yield q
+    q.close()
+    q.join_thread()
+
+
+def drain(q, n):
+    return [q.get(timeout=5) for _ in range(n)]
+
+
+def test_every_action_puts_one_command(command_queue):
+    op = Operator(command_queue)
+    assert op.estop() and op.reset() and op.stop() and op.arm() and op.start()
+    assert "already running" in op.message         # start is a marker, and says so
+    assert op.set_reference("speed_setpoint", "0.5")
+    assert op.mark_phase("  load   step  ")
+    assert op.inject_fault("sensor_bias", "belt_speed", 0.2, 1.5)
+    assert op.clear_fault()
+    got = drain(command_queue, 9)
+    assert [c.kind for c in got] == ["estop", "reset", "stop", "mark_phase", "mark_phase",
+                                     "set_reference", "mark_phase", "inject_fault",
+                                     "clear_fault"]
+    assert got[5].args == {"name": "speed_setpoint", "value": 0.5}
+    assert got[6].args == {"name": "load step"}
+    assert got[7].args == {"kind": "sensor_bias", "target": "belt_speed", "value": 0.2,
+                           "duration_s": 1.5}
+    assert "no-op" in got[3].args["name"] and "no-op" in got[4].args["name"]
+
+
+def test_bad_input_is_refused_with_a_message_and_sends_nothing(command_queue):
+    op = Operator(command_queue)
+    assert not op.set_reference("speed_setpoint", "fast")
+    assert "not a number" in op.message
+    assert not op.set_reference("speed_setpoint", math.inf)
+    assert not op.mark_phase("   ")
+    assert not op.inject_fault("sensor_bias", "", 1.0)
+    assert not op.inject_fault("sensor_bias", "belt_speed", 1.0, -2)
+    with pytest.raises(queue.Empty):
+        command_queue.get(timeout=0.2)
+    readonly = Operator(None)
+    assert not readonly.estop() and "read-only" in readonly.message
+
+
+def test_a_command_is_one_atomic_pipe_write():
+    """POSIX: a pipe write of at most PIPE_BUF bytes is atomic (a killed dashboard cannot
+    leave half a command); multiprocessing sends a 4-byte length and the pickle."""
+    long = "x" * 10_000
+    op = Operator(None)
+    sent = []
+    op.queue = type("Q", (), {"put_nowait": lambda self, c: sent.append(c)})()
+    op.inject_fault(long, long, 1.0, 0.0)
+    op.mark_phase(long)
+    op.set_reference(long, 1.0)
+    for command in sent:
+        assert all(len(str(v)) <= MAX_TEXT for v in command.args.values())
+        assert 4 + len(pickle.dumps(command)) <= select.PIPE_BUF
+    assert isinstance(sent[0], Command)
