@@ -23,7 +23,7 @@ import pytest
 
 from plantrig.cli import main
 from plantrig.sim import _run as run_module
-from plantrig.sim import load_rig, run_to_folder, simulate
+from plantrig.sim import load_rig, run_to_folder, simulate, tick_columns
 from plantrig.sim._manifest import verify_folder
 from plantrig.sim._reader import read_run
 from plantrig.sim._records import recover_run
@@ -207,5 +207,6 @@ def test_preflight_refuses_unwritable_or_small_folders(tmp_path: Path,
         assert main(["run", str(CONVEYOR), "--out", str(small)]) == 2
         err = capsys.readouterr().err
         assert "not enough free space for this run's record" in err
-        assert "3000 ticks x 15 columns" in err
+        columns, _ = tick_columns(load_rig(CONVEYOR))
+        assert f"3000 ticks x {len(columns)} columns" in err
         assert list(small.iterdir()) == []                      # nothing was started
