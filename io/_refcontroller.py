@@ -185,7 +185,7 @@ class ReferenceController:
         """The command frame answering the sensor frame stamped ``stamp``."""
         self.command_for(stamp, values)
         try:
-            return self.wire.encode(Kind.COMMAND, self._next_seq(), stamp, self.u)
+            return self.wire.encode(Kind.COMMAND, self._next_seq(), stamp, self.u.tolist())
         except FrameError:
             self.counts.tx_errors += 1
             return None
