@@ -153,6 +153,36 @@ def test_text_wire_loop_equals_fast_builtin_exactly(tmp_path: Path) -> None:
     assert_columns_equal(wire, plain, STATE_COLUMNS + ["cmd:voltage"])
 
 
+class Int16:
+    """A signal chain that quantises as the int16 wire does: raw = round(v / scale),
+    half to even (Python's round and numpy's agree), value = raw * scale."""
+
+    def __init__(self, scale: float) -> None:
+        self.scale = scale
+
+    def apply(self, tick: int, src: np.ndarray, dst: np.ndarray) -> None:
+        dst[:] = np.round(src / self.scale) * self.scale
+
+    def reset(self) -> None:
+        pass
+
+
+def test_int16_wire_loop_equals_fast_builtin_with_the_same_quantisation(
+        tmp_path: Path) -> None:
+    rig = hil_rig(tmp_path, fast_lockstep=True, duration=1.0)
+    src = rig.path.read_text().replace('encoding = "float32"',
+                                       'encoding = "int16"\nscale = 0.001')
+    rig.path.write_text(src)
+    rig = load_rig(rig.path)
+    wire, health = run_over_pty(rig)
+    twin = builtin_twin(rig)
+    quantised = simulate(twin, actuator_chain=Int16(0.001), sensor_chain=Int16(0.001))
+    assert health["commands_in"] == rig.n_ticks and health["sensor_clipped"] == 0
+    assert_columns_equal(wire, quantised, STATE_COLUMNS)
+    # a 1 mV / 1 mm/s count is coarse: the loop differs from float64, but not by much
+    assert np.max(np.abs(wire["y:belt_speed"] - simulate(twin)["y:belt_speed"])) < 0.01
+
+
 def test_realtime_loop_matches_fast_while_answers_are_on_time(tmp_path: Path) -> None:
     """In real time an answer can miss its tick (scheduling); the rig then holds the
     last command. Until the first tick without a fresh command, every command used
