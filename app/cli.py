@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import CAUTION, __version__
+from plantrig._hil import add_parsers as add_link_commands
 from plantrig._records_cli import add_record_commands
 from plantrig.sim import RigFileError, load_rig, run_to_folder, summarize
 from plantrig.sim._preflight import RecordError  # public once sim/__init__ exports it
@@ -22,7 +23,13 @@ EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 
 def _load(path: str):  # type: ignore[no-untyped-def]
     try:
-        return load_rig(path)
+        rig = load_rig(path)
+        if rig.link is not None:
+            from plantrig.io import check_link_table  # links load only when a rig has one
+            issues = check_link_table(rig)
+            if issues:
+                raise RigFileError(issues)
+        return rig
     except RigFileError as exc:
         for issue in exc.issues:
             print(f"error: {issue}", file=sys.stderr)
@@ -85,8 +92,13 @@ def cmd_run(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     dashboard_args = {"commands": dashboard.commands,
                       "on_tapes_ready": dashboard.on_tapes_ready} if dashboard else {}
+    link = None
+    if rig.controller.kind == "external":
+        from plantrig.io import build_link
+        link = build_link(rig, port=args.port)   # [link] was checked by _load
     try:
-        folder, outcome, summary = run_to_folder(rig, out, realtime=realtime, **dashboard_args)
+        folder, outcome, summary = run_to_folder(rig, out, realtime=realtime, **dashboard_args,
+                                                 link=link)
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -146,8 +158,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="also print timing as one JSON line")
     p.add_argument("--gui", action="store_true",
                    help="open the live dashboard (needs dearpygui and a display)")
+    p.add_argument("--port", help="where the controller is (overrides link.port)")
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)
+    add_link_commands(sub, _load, _print_outcome)
     p = sub.add_parser("replay", help="open a run folder in the dashboard",
                        description="Open a recorded run folder in the dashboard, with a "
                                    "time slider (needs dearpygui and a display).")
