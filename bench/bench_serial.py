@@ -128,12 +128,17 @@ def twin_col(rig, name: str) -> int:  # type: ignore[no-untyped-def]
     return tick_columns(rig)[0].index(f"sent:{name}")
 
 
+@dataclasses.dataclass
+class Loop:
+    rtt_us: list[float] = dataclasses.field(default_factory=list)
+    lost: int = 0
+
+
 def run_blocks(link: SerialLink, echo: FdPort, y: np.ndarray,
-               seconds: float) -> dict[str, dict[str, list[float] | int]]:
+               seconds: float) -> dict[str, Loop]:
     """Alternate one-second blocks of the link loop and the echo loop at 1 kHz."""
     clock = WallClock()
-    out: dict[str, dict[str, list[float] | int]] = {
-        "link": {"rtt_us": [], "lost": 0}, "echo": {"rtt_us": [], "lost": 0}}
+    out = {"link": Loop(), "echo": Loop()}
     cmd = np.zeros(1)
     port = link.io
     assert port is not None
@@ -145,10 +150,8 @@ def run_blocks(link: SerialLink, echo: FdPort, y: np.ndarray,
     for block in range(2 * int(np.ceil(seconds))):
         which = "link" if block % 2 == 0 else "echo"
         res = out[which]
-        rtts = res["rtt_us"]
-        assert isinstance(rtts, list)
         for _ in range(1000):
-            if len(rtts) + int(res["lost"]) >= ticks:
+            if len(res.rtt_us) + res.lost >= ticks:
                 break
             deadline = start + slot * TICK_NS
             slot += 1
@@ -173,15 +176,15 @@ def run_blocks(link: SerialLink, echo: FdPort, y: np.ndarray,
                         got = True
                         break
             if got:
-                rtts.append((time.perf_counter_ns() - t0) / 1e3)
+                res.rtt_us.append((time.perf_counter_ns() - t0) / 1e3)
             else:
-                res["lost"] = int(res["lost"]) + 1
+                res.lost += 1
             k += 1
     return out
 
 
 def report(rig, link: SerialLink, y: np.ndarray,  # type: ignore[no-untyped-def]
-           results: dict[str, dict[str, list[float] | int]], health: dict[str, float],
+           results: dict[str, Loop], health: dict[str, float],
            seconds: float) -> None:
     print("## Serial link\n")
     print(f"Measured by `bench/bench_serial.py --seconds {seconds:g}` on this machine "
@@ -193,11 +196,10 @@ def report(rig, link: SerialLink, y: np.ndarray,  # type: ignore[no-untyped-def]
     stats = {}
     for name, label in (("link", "SerialLink + reference controller (decode, PI law, "
                                   "encode)"), ("echo", "bare pyserial echo, same bytes")):
-        rtts = results[name]["rtt_us"]
-        assert isinstance(rtts, list)
+        rtts = results[name].rtt_us
         p50, p99, mx = percentiles(rtts)
         stats[name] = (p50, p99)
-        print(f"| {label} | {len(rtts)} | {results[name]['lost']} | {p50:.0f} us | "
+        print(f"| {label} | {len(rtts)} | {results[name].lost} | {p50:.0f} us | "
               f"{p99:.0f} us | {mx:.0f} us |")
     ratio50 = stats["link"][0] / stats["echo"][0]
     ratio99 = stats["link"][1] / stats["echo"][1]
