@@ -4,12 +4,20 @@ Order inside tick k (DESIGN.md), at plant time t_k = k * tick:
 
     1. read link        the controller's newest command (or the built-in controller's,
                         computed from the values sent at tick k-1 and r(t_k))
-    2. actuator chain   command -> plant input u_k (scaling, saturation, rate limit)
-    3. safety           non-finite inputs never reach the plant (last good u is held)
-    4. plant step       y_k = h(x_k, u_k), x_{k+1} = F(x_k, u_k)
-    5. sensor chain     y_k -> values for the controller
-    6. write link
-    7. record           one row on the tape: time, timing, r, command, u, y, sent, x_k
+    2. actuator chain   command -> plant input u_k (scaling, saturation, rate limit),
+                        then actuator faults
+    3. safety           non-finite inputs never reach the plant (last good u is held);
+                        tripped interlocks force their inputs to the safe values
+    4. plant step       y_k = h(x_k, u_k), x_{k+1} = F(x_k, u_k) (+ disturbances); then the
+                        limits are checked on x, u_k and y_k, and a trip in this tick
+                        repeats the step with the safe inputs (safety acts in the tick
+                        its cause appears); a frozen plant keeps x_k
+    5. sensor chain     y_k -> values for the controller, then sensor faults
+    6. write link       (link faults act on both directions at the boundary)
+    7. record           one row on the tape: time, timing, r, command, u, y, sent, x,
+                        disturbances, limit codes, trip latches
+
+Scenario steps and operator commands act at the start of a tick (_scenario.py).
 
 Anything the model, the controller or a link raises ends the run through one stop path
 that records the error as an event; every row recorded up to then is kept.
@@ -29,9 +37,12 @@ from plantrig.sim._clock import SPIN_NS, Clock, WallClock
 from plantrig.sim._commands import COMMAND_POLL_S, Command, CommandInbox
 from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import Controller, OpenLoop, Pid, PidLoops, StateFeedback
+from plantrig.sim._faults import Faults
+from plantrig.sim._interlocks import ESTOP, Safety
 from plantrig.sim._plant import Stepper, make_stepper
 from plantrig.sim._realtime import RealtimeReport, realtime_process
 from plantrig.sim._rigfile import Rig
+from plantrig.sim._scenario import Scenario, ScenarioRunner
 from plantrig.sim._tape import EventTape
 
 Vector = NDArray[np.float64]
@@ -57,6 +68,11 @@ def tick_columns(rig: Rig) -> tuple[list[str], list[str]]:
         for s in signals:
             names.append(f"{prefix}:{s.name}")
             units.append(s.unit)
+    names += [f"d:{d.name}" for d in rig.disturbances]
+    units += [d.unit for d in rig.disturbances]
+    names += [f"limit:{lim.name}" for lim in rig.limits]       # 0 ok, 1 warn, 2 trip
+    names += [f"trip:{name}" for name in (ESTOP, *(i.name for i in rig.interlocks))]
+    units += [""] * (len(rig.limits) + 1 + len(rig.interlocks))
     return names, units
 
 
@@ -135,7 +151,8 @@ class Engine:
                  actuator_chain: SignalChain | None = None,
                  sensor_chain: SignalChain | None = None,
                  commands: CommandInbox | None = None,
-                 event_tape: EventTape | None = None) -> None:
+                 event_tape: EventTape | None = None,
+                 scenario: Scenario | None = None) -> None:
         self.rig = rig
         self.commands = commands
         self.event_tape = event_tape
@@ -162,7 +179,13 @@ class Engine:
         self.safe_u = np.array([i.safe for i in rig.inputs], dtype=np.float64)
         self.events: list[Event] = []
         self.stop_requested = False
-        self.estop_latched = False
+        self.safety = Safety(rig.interlocks, rig.limits, rig.safety,
+                             [i.name for i in rig.inputs], self.safe_u, self.columns, self.row,
+                             rig.tick, self._event)
+        self.faults = Faults(rig, self.stepper, self.columns, self.row, self._event,
+                             has_link=link is not None)
+        self.scenario = ScenarioRunner(scenario, self.columns, rig.tick, self._event) \
+            if scenario else None
         self.ref_override = np.full(nr, np.nan)
         self.any_override = False
         self.ref_names = [r.name for r in rig.references]
@@ -176,6 +199,9 @@ class Engine:
 
     def _record_event(self, event: Event) -> None:
         self.events.append(event)
+        self.safety.on_event(event)
+        if self.scenario is not None:
+            self.scenario.on_event(event)
         if self.event_tape is not None:
             self.event_tape.append(event.tick, event.time, event.kind, event.detail)
 
@@ -186,14 +212,13 @@ class Engine:
             self.stop_requested = True
             self._event(k, "operator_stop", str(a.get("reason", "")))
         elif command.kind == "estop":
-            self.estop_latched = True
-            self._event(k, "estop", "operator E-stop: inputs forced to safe values")
+            self.safety.estop(k)
         elif command.kind == "reset":
-            if self.estop_latched:
-                self.estop_latched = False
-                self._event(k, "reset", "E-stop released by operator")
-            else:
-                self._event(k, "reset_refused", "nothing is latched")
+            self.safety.reset(k, a.get("interlock"))
+        elif command.kind == "inject_fault":
+            self.faults.inject(k, a)
+        elif command.kind == "clear_fault":
+            self.faults.clear(k, a)
         elif command.kind == "set_reference":
             name = a.get("name")
             try:
@@ -238,6 +263,9 @@ class Engine:
         hold_on_silence = rig.on_link_silence == "hold"
         poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick)))
         override = self.ref_override
+        safety, faults, scenario = self.safety, self.faults, self.scenario
+        x_k = np.zeros(stepper.n_states)       # x_k kept while limits may repeat the step
+        streak, streak_trip = 0, rig.safety.overrun_streak
         wall_start = clock.now_ns()
         try:
             if link is not None:
@@ -263,6 +291,10 @@ class Engine:
                         lateness[k] = late
                         if late >= tick_ns:
                             overruns += 1
+                            streak += 1
+                            if streak == streak_trip:
+                                safety.cause(k, "overruns", f"{streak} ticks in a row started "
+                                                            "late")
                             if rig.on_overrun == "stop":
                                 self._event(k, "overrun", f"tick started {late / 1e6:.3f} ms "
                                                           "late; on_overrun = 'stop'")
@@ -272,6 +304,10 @@ class Engine:
                                 missed = late // tick_ns
                                 slot += missed
                                 skipped += missed
+                        elif streak:
+                            if streak >= streak_trip:
+                                safety.clear_cause("overruns")
+                            streak = 0
                         slot += 1
                     else:
                         began = 0
@@ -287,6 +323,11 @@ class Engine:
                     if commands is not None and k % poll_every == 0:
                         for command in commands.take():
                             self._apply_command(k, command)
+                    if faults.on and k >= faults.next_end:
+                        faults.expire(k)
+                    if scenario is not None and k >= scenario.next_tick:
+                        for command in scenario.due(k):
+                            self._apply_command(k, command)
                     # 1. read link / built-in controller
                     for i, value in ref_values:
                         r[i] = value(t)
@@ -294,13 +335,16 @@ class Engine:
                         np.copyto(r, override, where=~np.isnan(override))
                     if link is not None:
                         fresh = link.receive(k, t, cmd)
-                        if not fresh and not hold_on_silence:
-                            cmd[:] = self.safe_u
                         for ev in link.drain_events():
                             self._record_event(ev)
                     else:
-                        controller.compute(t, sent, r, cmd)  # type: ignore[union-attr]
+                        controller.compute(t, faults.delivered if faults.link_out_on else sent,
+                                           r, cmd)  # type: ignore[union-attr]
                         fresh = True
+                    if faults.link_in_on:
+                        fresh = faults.incoming(k, t, cmd, fresh)
+                    if not fresh and not hold_on_silence:
+                        cmd[:] = self.safe_u
                     # 2. actuator chain, 3. safety: a non-finite command never reaches the
                     #    plant (u keeps last tick's good value); a latched stop forces the
                     #    safe state
@@ -311,17 +355,41 @@ class Engine:
                         actuator.apply(k, cmd, u)
                     else:
                         u[:] = cmd
-                    if self.estop_latched:
-                        u[:] = self.safe_u
+                    if faults.actuator_on:
+                        faults.actuator(k, u)
+                    if safety.forcing:
+                        safety.force(u)
                     # 4. plant step (x_k and u_k are already in the record)
+                    guarded = safety.checking or safety.freezing
+                    if guarded:
+                        x_k[:] = stepper.x
+                    if faults.plant_on:
+                        faults.plant(k)
                     stepper.output_and_advance(t)
+                    if faults.disturbing:
+                        faults.disturb()
                     y_rec[:] = stepper.y
+                    if guarded:
+                        if safety.checking and safety.check(k):
+                            # tripped in this tick: the same step again, with the safe inputs
+                            safety.force(u)
+                            stepper.x[:] = x_k
+                            stepper.output_and_advance(t)
+                            if faults.disturbing:
+                                faults.disturb()
+                            y_rec[:] = stepper.y
+                        if safety.freezing:
+                            stepper.x[:] = x_k
                     # 5. sensor chain, 6. write link
                     if sensor is not None:
                         sensor.apply(k, stepper.y, sent)
                     else:
                         sent[:] = stepper.y
-                    if link is not None:
+                    if faults.sensor_on:
+                        faults.sensor(k, t, sent)
+                    if faults.link_out_on:
+                        faults.outgoing(k, t, sent, link)
+                    elif link is not None:
                         link.send(k, t, sent)
                     # 7. record
                     row[1] = t
@@ -336,21 +404,29 @@ class Engine:
                             ended, reason = "fault", "tape overflow"
                             done = k
                             break
+                    finite = math.isfinite(stepper.x.sum())
+                    if not finite:
+                        safety.cause(k, "non_finite", f"x = {stepper.x.tolist()}")
                     tape.append(row)
                     done = k + 1
-                    if not math.isfinite(stepper.x.sum()):
+                    if scenario is not None and scenario.watching:
+                        scenario.after_record(k, row)
+                    if not finite:
                         self._event(k, "non_finite_state", f"x = {stepper.x.tolist()}")
                         ended, reason = "fault", "plant state became NaN or infinite"
+                        break
+                    if safety.stop_reason:
+                        ended, reason = "stopped", safety.stop_reason
                         break
         except Exception as exc:  # the one stop path for model, controller and link errors
             self._event(done, "error", "".join(
                 traceback.format_exception_only(type(exc), exc)).strip())
             ended, reason = "fault", f"{type(exc).__name__}: {exc}"
         finally:
-            health: dict[str, float] = {}
+            health: dict[str, float] = {k: v for k, v in faults.health().items() if v}
             if link is not None:
                 try:
-                    health = link.health()
+                    health.update(link.health())
                     for ev in link.drain_events():
                         self._record_event(ev)
                 finally:

@@ -20,6 +20,14 @@ from typing import Any
 import numpy as np
 
 from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._faults import DisturbanceSpec, parse_disturbances
+from plantrig.sim._interlocks import (
+    InterlockSpec,
+    SafetySettings,
+    parse_interlocks,
+    parse_safety,
+)
+from plantrig.sim._limits import LimitSpec, parse_limits
 from plantrig.sim._plant import (
     DiscretePlant,
     LinearPlant,
@@ -87,6 +95,10 @@ class Rig:
     sensors: tuple[dict[str, Any], ...] = ()
     actuators: tuple[dict[str, Any], ...] = ()
     on_link_silence: str = "hold"
+    limits: tuple[LimitSpec, ...] = ()
+    interlocks: tuple[InterlockSpec, ...] = ()
+    safety: SafetySettings = SafetySettings()
+    disturbances: tuple[DisturbanceSpec, ...] = ()
 
     @property
     def n_ticks(self) -> int:
@@ -224,7 +236,8 @@ def _one_of(options: tuple[str, ...]) -> Callable[[Any], str | None]:
 
 RIG_KEYS = {"name", "description", "tick", "duration", "mode", "seed", "on_overrun",
             "on_link_silence"}
-TOP_KEYS = {"rig", "plant", "controller", "references", "link", "sensors", "actuators"}
+TOP_KEYS = {"rig", "plant", "controller", "references", "link", "sensors", "actuators",
+            "limits", "interlocks", "safety", "disturbances"}
 SIGNAL_KEYS = {"name", "unit", "min", "max", "description", "safe"}
 
 
@@ -280,6 +293,10 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     if "link" in doc:
         link = c.table(doc, "link", "", required=False) or None
     sensors = _list_of_tables(c, doc, "sensors")
+    limits = parse_limits(c, doc, states, inputs, outputs)
+    interlocks = parse_interlocks(c, doc, limits, inputs)
+    safety = parse_safety(c, doc)
+    disturbances = parse_disturbances(c, doc, plant, states)
     actuators = _list_of_tables(c, doc, "actuators")
     if controller.kind == "external" and link is None:
         c.add("controller.kind", "'external' needs a [link] table to reach the controller")
@@ -292,7 +309,8 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
                plant=plant, x0=x0, method=method, substeps=substeps, states=tuple(states),
                inputs=tuple(inputs), outputs=tuple(outputs), references=tuple(references),
                controller=controller, link=link, sensors=tuple(sensors),
-               actuators=tuple(actuators), on_link_silence=on_silence)
+               actuators=tuple(actuators), on_link_silence=on_silence, limits=tuple(limits),
+               interlocks=tuple(interlocks), safety=safety, disturbances=tuple(disturbances))
 
 
 def _list_of_tables(c: _Checker, doc: dict[str, Any], key: str) -> list[dict[str, Any]]:

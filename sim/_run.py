@@ -23,8 +23,10 @@ from plantrig.sim._preflight import preflight
 from plantrig.sim._recorder import read_journal, start_recorder
 from plantrig.sim._records import finish_record, start_record
 from plantrig.sim._rigfile import Rig
+from plantrig.sim._scenario import Scenario
 from plantrig.sim._summary import summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, tape_dir
+from plantrig.sim._verdicts import evaluate, write_verdicts
 
 RING_SECONDS = 10.0
 RING_MIN_ROWS = 4096
@@ -52,12 +54,16 @@ class RunData:
 
 def simulate(rig: Rig, *, realtime: bool = False, clock: Clock | None = None,
              link: ControllerLink | None = None, actuator_chain: SignalChain | None = None,
-             sensor_chain: SignalChain | None = None) -> RunData:
-    """Run ``rig`` in this process, keeping every row in memory."""
+             sensor_chain: SignalChain | None = None,
+             scenario: Scenario | None = None) -> RunData:
+    """Run ``rig`` in this process, keeping every row in memory (``scenario``: its steps
+    fire during the run; judge it with evaluate on the result)."""
+    rig = scenario.apply_to(rig) if scenario is not None else rig
     columns, units = tick_columns(rig)
     tape = MemoryTape(columns, rig.n_ticks)
     engine = Engine(rig, tape, realtime=realtime, clock=clock, link=link,
-                    actuator_chain=actuator_chain, sensor_chain=sensor_chain)
+                    actuator_chain=actuator_chain, sensor_chain=sensor_chain,
+                    scenario=scenario)
     outcome = engine.run()
     return RunData(columns, units, tape.rows, outcome)
 
@@ -105,7 +111,8 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                   actuator_chain: SignalChain | None = None,
                   sensor_chain: SignalChain | None = None,
                   folder: Path | None = None, commands: Any = None,
-                  on_tapes_ready: Any = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
+                  on_tapes_ready: Any = None,
+                  scenario: Scenario | None = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
     """Run ``rig`` with the recorder in its own process; write the run folder.
 
     The folder holds the rig file as given (and an ODE model's module), the tick data
@@ -113,13 +120,18 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     ``run.h5``), ``events.jsonl``, ``summary.json`` with the model summary and timing
     statistics, and ``manifest.json`` (docs/records.md). ``commands`` is a
     queue of operator Commands; ``on_tapes_ready(tape_path, event_tape_path)`` is called
-    once both tapes exist (to start a dashboard on them).
+    once both tapes exist (to start a dashboard on them). With a ``scenario`` the folder
+    also holds it (``scenario.toml``) and its judged criteria (``verdicts.json``), and
+    the summary lists them under "verdicts".
     """
+    rig = scenario.apply_to(rig) if scenario is not None else rig
     columns, units = tick_columns(rig)
     preflight(folder or out_dir, rig.n_ticks, len(columns),
               ring_capacity(rig) * len(columns) * 8, tape_dir())
     folder = folder or new_run_folder(rig, out_dir)
     shutil.copyfile(rig.path, folder / "rig.toml")
+    if scenario is not None:
+        (folder / "scenario.toml").write_text(scenario.text, encoding="utf-8")
     module = getattr(rig.plant, "f", None)
     if module is not None:
         source = Path(module.__code__.co_filename)
@@ -143,7 +155,7 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         engine = Engine(rig, tape, realtime=realtime, link=link,
                         actuator_chain=actuator_chain, sensor_chain=sensor_chain,
                         commands=CommandInbox(commands) if commands is not None else None,
-                        event_tape=event_tape)
+                        event_tape=event_tape, scenario=scenario)
         outcome = engine.run()
     finally:
         tape.end()
@@ -171,6 +183,10 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         "model": model.as_dict(),
         "columns": columns, "units": units,
     }
+    if scenario is not None:
+        verdicts = evaluate(scenario, columns, units, rows, outcome.events, rig.tick)
+        write_verdicts(folder, verdicts)
+        summary["verdicts"] = [v.as_dict() for v in verdicts]
     finish_record(folder, rows, summary)  # ticks.npy, run.h5, summary.json, manifest.json
     return folder, outcome, summary
 
