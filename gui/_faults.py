@@ -1,7 +1,7 @@
 """The fault catalogue offered in the inject form, and what each kind can act on.
 
 plantrig.sim is the authority on which faults a run can take: its ``FAULT_KINDS``
-(kind -> entry with ``target``, ``params`` and ``description``), when it exports one.
+(kind -> entry with ``target``, ``params`` and ``description``), where it has one.
 Without it the form offers plain sensor faults, which an engine that cannot apply
 them answers with a "command_refused" event.
 """
@@ -23,7 +23,7 @@ class FaultChoice:
     kind: str
     target: str               # "output", "input", "direction", "parameter", "disturbance"
     description: str = ""
-    parameter: str = "value"  # the number the form's one value field stands for
+    parameter: str | None = "value"   # what the form's one number means (None: no number)
 
 
 PLAIN_SENSOR_FAULTS = (
@@ -38,6 +38,12 @@ PLAIN_SENSOR_FAULTS = (
 def fault_catalogue() -> tuple[FaultChoice, ...]:
     """Fault kinds to list: sim's own catalogue if it has one, else plain sensor faults."""
     kinds: Any = getattr(plantrig.sim, "FAULT_KINDS", None)
+    if kinds is None:
+        try:  # public once sim/__init__ exports it
+            from plantrig.sim import _faults
+            kinds = getattr(_faults, "FAULT_KINDS", None)
+        except ImportError:
+            kinds = None
     if callable(kinds):
         kinds = kinds()
     if not kinds:
@@ -49,7 +55,7 @@ def fault_catalogue() -> tuple[FaultChoice, ...]:
         params = list(getattr(info, "params", {}) or {})
         out.append(FaultChoice(str(name), str(getattr(info, "target", "output")),
                                str(getattr(info, "description", "")),
-                               params[0] if params else "value"))
+                               params[0] if params else None))
     return tuple(out)
 
 

@@ -101,21 +101,28 @@ class Operator:
         return self.send(Command("mark_phase", {"name": text}))
 
     # -- faults ------------------------------------------------------------------------
-    def inject_fault(self, kind: str, target: str, value: Any = 0.0,
+    def inject_fault(self, kind: str, target: str, value: Any = None,
                      duration_s: Any = 0.0) -> bool:
-        """Ask the loop to apply fault ``kind`` to signal ``target`` (0 s: until cleared)."""
+        """Ask the loop to apply fault ``kind`` to ``target`` (0 s: until cleared).
+
+        ``value`` is the kind's one number (its first parameter); None sends none.
+        """
         if not kind or not target:
-            return self._refuse("choose a fault kind and a target signal")
+            return self._refuse("choose a fault kind and a target")
         try:
-            number, duration = float(value), float(duration_s)
+            duration = float(duration_s)
+            number = None if value is None else float(value)
         except (TypeError, ValueError):
             return self._refuse(f"fault value {value!r} / duration {duration_s!r} must be "
                                 "numbers")
-        if not (math.isfinite(number) and math.isfinite(duration)) or duration < 0:
+        if not math.isfinite(duration) or duration < 0 or \
+                (number is not None and not math.isfinite(number)):
             return self._refuse("fault value must be finite and duration >= 0")
-        return self.send(Command("inject_fault", {
-            "kind": str(kind)[:MAX_TEXT], "target": str(target)[:MAX_TEXT],
-            "value": number, "duration_s": duration}))
+        args: dict[str, Any] = {"kind": str(kind)[:MAX_TEXT], "target": str(target)[:MAX_TEXT]}
+        if number is not None:
+            args["value"] = number
+        args["duration_s"] = duration
+        return self.send(Command("inject_fault", args))
 
     def clear_fault(self, kind: str = "", target: str = "") -> bool:
         """Clear one fault (kind and target) or, with neither given, every active fault."""

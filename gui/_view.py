@@ -64,6 +64,7 @@ class DashboardView:
         self.frame_times: deque[float] = deque(maxlen=30)
         self.t_index = groups.index("t")
         self._labels: dict[int, str] = {}
+        self._bound: dict[str, int | str] = {}
         dpg.create_context()
         self.themes = Themes()
         with dpg.window(tag=T + "main", no_scrollbar=True):
@@ -89,7 +90,6 @@ class DashboardView:
     def _status_line(self) -> None:
         with dpg.group(horizontal=True):
             dpg.add_button(tag=T + "estop_lamp", label="E-STOP clear", width=420)
-            dpg.bind_item_theme(T + "estop_lamp", self.themes.ok)
             dpg.add_text("", tag=T + "run_state")
             dpg.add_text("", tag=T + "display")
 
@@ -299,7 +299,8 @@ class DashboardView:
         dpg.configure_item(T + "fault_target", items=targets, show=bool(targets))
         dpg.set_value(T + "fault_target", targets[0] if targets else "")
         dpg.configure_item(T + "fault_target_text", show=not targets)
-        dpg.configure_item(T + "fault_value", label=choice.parameter)
+        dpg.configure_item(T + "fault_value", label=choice.parameter or "",
+                           show=choice.parameter is not None)
         dpg.set_value(T + "fault_help", choice.description)
 
     def on_inject_fault(self, *_: Any) -> bool:
@@ -307,7 +308,8 @@ class DashboardView:
         choice = self.fault_kinds.get(kind)
         typed = choice is not None and not self.fault_targets(choice)
         target = dpg.get_value(T + ("fault_target_text" if typed else "fault_target"))
-        return self.operator.inject_fault(kind, target, dpg.get_value(T + "fault_value"),
+        value = dpg.get_value(T + "fault_value") if choice is None or choice.parameter else None
+        return self.operator.inject_fault(kind, target, value,
                                           dpg.get_value(T + "fault_duration"))
 
     def on_clear_fault(self, *_: Any) -> bool:
@@ -335,7 +337,7 @@ class DashboardView:
         """Copy one snapshot into the widgets (cheap enough for every frame)."""
         latched = snap.estop_latched
         dpg.configure_item(T + "estop_lamp", label=snap.estop_text)
-        dpg.bind_item_theme(T + "estop_lamp", self.themes.alarm if latched else self.themes.ok)
+        self._theme(T + "estop_lamp", self.themes.alarm if latched else self.themes.ok)
         dpg.set_value(T + "run_state", f"{snap.run_state} | plant time {snap.t:.3f} s")
         now = time.perf_counter()
         self.frame_times.append(now)
@@ -352,12 +354,10 @@ class DashboardView:
         dpg.set_value(T + "bars_title", snap.bars_title)
         for i, bar in enumerate(snap.bars):
             dpg.configure_item(f"{T}bar.{i}", default_value=bar.fraction, overlay=bar.text)
-            dpg.bind_item_theme(f"{T}bar.{i}",
-                                self.themes.bar_alarm if bar.outside else self.themes.bar_ok)
+            self._theme(f"{T}bar.{i}", self.themes.bar_alarm if bar.outside else self.themes.bar_ok)
         for i, lamp in enumerate(snap.lamps):
             dpg.configure_item(f"{T}lamp.{i}", label=lamp.text)
-            dpg.bind_item_theme(f"{T}lamp.{i}",
-                                self.themes.alarm if lamp.tripped else self.themes.ok)
+            self._theme(f"{T}lamp.{i}", self.themes.alarm if lamp.tripped else self.themes.ok)
         for i in range(3):
             dpg.set_value(f"{T}timing.{i}", snap.timing[i] if i < len(snap.timing) else "")
             dpg.set_value(f"{T}link.{i}", snap.link[i] if i < len(snap.link) else "")
@@ -369,6 +369,12 @@ class DashboardView:
                 dpg.set_value(f"{T}event.{i}.0", f"{t:.3f}")
                 dpg.set_value(f"{T}event.{i}.1", kind)
                 dpg.set_value(f"{T}event.{i}.2", detail)
+
+    def _theme(self, item: str, theme: int | str) -> None:
+        """Bind a theme only when it changes (a state colour, with its text beside it)."""
+        if self._bound.get(item) != theme:
+            dpg.bind_item_theme(item, theme)
+            self._bound[item] = theme
 
     def _show_plots(self, snap: Snapshot) -> None:
         rows = snap.rows

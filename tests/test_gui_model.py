@@ -211,7 +211,7 @@ def test_fault_catalogue_follows_sim(monkeypatch):
     assert (choice.kind, choice.target, choice.parameter) == ("weak_drive", "input", "factor")
     rig = load_rig(CONFIGS / "tank.toml")
     assert fault_targets(choice, rig) == ["inflow", "heater"]
-    monkeypatch.setattr(plantrig.sim, "FAULT_KINDS", None, raising=False)
+    monkeypatch.setattr(plantrig.sim, "FAULT_KINDS", [], raising=False)
     assert fault_catalogue() == PLAIN_SENSOR_FAULTS
     assert fault_targets(PLAIN_SENSOR_FAULTS[0], rig) == ["level", "temperature"]
 
