@@ -119,9 +119,7 @@ def check_recovered(folder: Path, rig_path: Path) -> dict:
 
 def test_sigkilled_rig_is_recovered_with_its_loss_measured(tmp_path: Path) -> None:
     folder, rig_path, alive_s = start_and_kill(tmp_path, whole_group=False)
-    proc = subprocess.run([sys.executable, "-m", "plantrig", "recover", str(folder)],
-                          capture_output=True, text=True, timeout=120)
-    assert proc.returncode == 0, proc.stderr
+    assert main(["recover", str(folder)]) == 0
     report = check_recovered(folder, rig_path)
     # the orphaned recorder drained the tape before it exited: nothing is lost
     assert report["journal_only_lost_rows"] == 0 and report["tape_rows"] == 0
