@@ -16,8 +16,8 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import html
-import io
 import json
+import tempfile
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -377,9 +377,10 @@ def _text_pages(sections: list[Section]) -> list[Any]:
 
 
 def _png(fig: Any) -> str:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90)
-    return base64.b64encode(buf.getvalue()).decode("ascii")
+    with tempfile.SpooledTemporaryFile(max_size=1 << 24) as buf:   # no name "io" here:
+        fig.savefig(buf, format="png", dpi=90)                      # ./io shadows it for
+        buf.seek(0)                                                 # type checkers
+        return base64.b64encode(buf.read()).decode("ascii")
 
 
 def _html(record: RunRecord, sections: list[Section], figures: list[tuple[str, Any]]) -> str:

@@ -16,13 +16,13 @@ from __future__ import annotations
 
 import contextlib
 import errno
-import io
 import json
 import multiprocessing as mp
 import os
 import time
+from multiprocessing.process import BaseProcess
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 import numpy as np
 from numpy.typing import NDArray
@@ -56,7 +56,7 @@ class _Disk:
             self.reader.report_error(self.error)
         self.reserve.unlink(missing_ok=True)
 
-    def write(self, f: io.FileIO, data: bytes) -> bool:
+    def write(self, f: BinaryIO, data: bytes) -> bool:
         """Write all of ``data``; after a failure retry once (the reserve is free now)."""
         view = memoryview(data)
         for _attempt in range(2):
@@ -129,7 +129,7 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
     reader.close()
 
 
-def _sync(disk: _Disk, *files: io.FileIO) -> None:
+def _sync(disk: _Disk, *files: BinaryIO) -> None:
     for f in files:
         try:
             os.fdatasync(f.fileno())
@@ -138,7 +138,7 @@ def _sync(disk: _Disk, *files: io.FileIO) -> None:
 
 
 def start_recorder(tape_path: Path, journal_path: Path, status_path: Path,
-                   event_tape_path: Path, events_path: Path) -> mp.Process:
+                   event_tape_path: Path, events_path: Path) -> BaseProcess:
     """Start the recorder in its own process (spawned: no state shared by accident) and
     wait until it is draining: a spawned interpreter takes about a second to import,
     and a real-time loop must not fill the ring meanwhile."""
