@@ -10,6 +10,9 @@ from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
 from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
 from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultSpec, parse_fault
+from plantrig.sim._interlocks import InterlockSpec, SafetySettings
+from plantrig.sim._limits import LimitSpec
 from plantrig.sim._plant import (
     DiscretePlant,
     LinearPlant,
@@ -34,8 +37,10 @@ from plantrig.sim._rigfile import (
     load_rig,
 )
 from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
+from plantrig.sim._scenario import Scenario, ScenarioFileError, build_scenario, load_scenario
 from plantrig.sim._summary import ModelSummary, summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
+from plantrig.sim._verdicts import Verdict, evaluate, verdict_lines, write_verdicts
 
 __all__ = [
     "Clock", "Command", "CommandInbox", "ControllerLink", "ControllerSpec", "DiscretePlant",
@@ -48,4 +53,8 @@ __all__ = [
     "from_state_space_object", "load_rig", "make_stepper", "read_journal", "run_to_folder",
     "simulate", "simulate_inputs",
     "summarize", "tick_columns", "zoh",
+    # safety, faults, scenarios and verdicts
+    "FAULT_KINDS", "DisturbanceSpec", "FaultKind", "FaultSpec", "InterlockSpec", "LimitSpec",
+    "SafetySettings", "Scenario", "ScenarioFileError", "Verdict", "build_scenario", "evaluate",
+    "load_scenario", "parse_fault", "verdict_lines", "write_verdicts",
 ]

@@ -460,7 +460,7 @@ class Faults:
             self.emit(k, "command_refused", f"clear_fault: no active fault matches {what}")
             return
         for n in chosen:
-            self._end(k, n, "cleared by operator")
+            self._end(k, n, "cleared by command")
 
     def expire(self, k: int) -> None:
         """End every fault whose duration ran out by tick ``k``."""

@@ -374,18 +374,19 @@ def write_verdicts(folder: Path, verdicts: list[Verdict]) -> Path:
     return path
 
 
-def verdict_lines(verdicts: list[Verdict]) -> list[str]:
-    """A plain-text pass/fail table for the terminal."""
+def verdict_lines(verdicts: list[dict[str, Any]]) -> list[str]:
+    """A plain-text pass/fail table of verdicts in their verdicts.json form."""
+    def num(v: Any) -> str:
+        return "-" if v is None else f"{v:.4g}"
     head = ("verdict", "criterion", "measured", "limit", "unit", "result")
-    body = [(v.name, v.criterion, f"{v.measured:.4g}" if math.isfinite(v.measured) else "-",
-             f"{v.limit:.4g}", v.unit, "pass" if v.passed else "FAIL") for v in verdicts]
+    body = [(v["name"], v["criterion"], num(v["measured"]), num(v["limit"]), v["unit"],
+             "pass" if v["passed"] else "FAIL") for v in verdicts]
     widths = [max(len(r[i]) for r in [head, *body]) for i in range(len(head))]
     lines = ["  ".join(cell.ljust(w) for cell, w in zip(r, widths, strict=True)).rstrip()
              for r in [head, *body]]
     lines.insert(1, "  ".join("-" * w for w in widths))
-    for v in verdicts:
-        if not v.passed and v.detail:
-            lines.append(f"FAIL {v.name}: {v.detail}")
-    failed = sum(not v.passed for v in verdicts)
+    lines += [f"FAIL {v['name']}: {v['detail']}" for v in verdicts
+              if not v["passed"] and v.get("detail")]
+    failed = sum(not v["passed"] for v in verdicts)
     lines.append(f"{len(verdicts) - failed} of {len(verdicts)} criteria passed")
     return lines
