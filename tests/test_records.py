@@ -221,7 +221,8 @@ def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> 
     timing = pages[-1]      # lateness and work-time histograms in the upper 65 %
     upper, lower, rest = trace_pixels(timing[:int(0.65 * len(timing))], 2) + [
         sum(trace_pixels(timing[int(0.7 * len(timing)):], 1))]
-    assert upper > 500 and lower > 500 and rest == 0
+    # bars of ink in both (a blank axes has none; one narrow bar gives a hundred or so)
+    assert upper > 50 and lower > 50 and rest == 0
     matplotlib.image.imsave(tmp_path / "signals.png", signal_pages[0])
 
 
