@@ -199,11 +199,11 @@ class Engine:
 
     def _record_event(self, event: Event) -> None:
         self.events.append(event)
-        self.safety.on_event(event)
-        if self.scenario is not None:
-            self.scenario.on_event(event)
         if self.event_tape is not None:
             self.event_tape.append(event.tick, event.time, event.kind, event.detail)
+        self.safety.on_event(event)        # a link loss may trip an interlock
+        if self.scenario is not None:
+            self.scenario.on_event(event)  # trips and phases may arm scenario steps
 
     def _apply_command(self, k: int, command: Command) -> None:
         """Act on one operator command; every command becomes an event."""

@@ -487,7 +487,7 @@ class Faults:
             or self.lost
         if self.link_in_on and not had_in:
             self._last_cmd[:] = self.row[self._cmd_col:self._cmd_col + len(self.inputs)]
-            self._last_fresh = k
+            self._last_fresh = k - 1       # the last command before the fault began
         out_before = self.link_out_on
         self.link_out_on = any(g == "link" and d != "from_controller" for g, d in groups)
         if self.link_out_on and not out_before:
