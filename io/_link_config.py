@@ -230,6 +230,9 @@ def parse_link_table(rig: Rig) -> tuple[LinkSettings | None, list[RigIssue]]:
         ("status_period", COMMON_DEFAULTS["status_period"], positive_number),
         ("lockstep", False, boolean),
     )}
+    if not common["lockstep"] and rig.mode == "fast" and rig.controller.kind == "external":
+        issues.add("link.lockstep", "a fast run with the controller on the link needs "
+                                    "lockstep = true (else ticks outrun the answers)")
     if common["lockstep"] and rig.mode == "realtime":
         issues.add("link.lockstep", "waits for each answer, which would stall a real-time "
                                     "loop; use it with rig.mode = \"fast\" only")

@@ -309,6 +309,10 @@ def test_link_table_mistakes_are_reported_with_key_paths(tmp_path: Path) -> None
     assert "real-time" in issues["link.lockstep"]
     assert "link.controller.loops[0].kp" in issues
     assert all(i.file == str(path) for i in check_link_table(load_rig(path)))
+    fast = tmp_path / "fast.toml"
+    fast.write_text(HIL.replace('mode = "realtime"', 'mode = "fast"'))
+    issues = {i.key: i.message for i in check_link_table(load_rig(fast))}
+    assert list(issues) == ["link.lockstep"] and "lockstep = true" in issues["link.lockstep"]
 
 
 def test_unknown_link_kind_gets_a_did_you_mean(tmp_path: Path) -> None:
