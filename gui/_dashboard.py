@@ -27,24 +27,32 @@ from plantrig.sim import load_rig
 MAX_SPAN_S = 30.0
 MAX_KEEP_ROWS = 200_000
 DEFAULT_SCREENSHOT_FRAME = 60
+IDLE_RATIO = 1.0
 
 
 class FramePacer:
-    """Sleeps so frames start no more often than ``cap_hz``; never bursts to catch up."""
+    """Sleeps so frames start no more often than ``cap_hz`` and the window stays idle at
+    least ``idle_ratio`` times as long as it was busy; never bursts to catch up.
 
-    def __init__(self, cap_hz: float) -> None:
+    Under Mesa a full-size frame can take longer than the 33 ms of a 30 Hz cap, so a
+    cap alone would still let the dashboard use a whole core; the idle ratio (1: at
+    most half a core) bounds it however slow drawing is.
+    """
+
+    def __init__(self, cap_hz: float, idle_ratio: float = IDLE_RATIO) -> None:
         if not cap_hz > 0:
             raise ValueError(f"frame_cap_hz must be positive, got {cap_hz}")
         self.period = 1.0 / cap_hz
-        self.next = time.perf_counter()
+        self.idle_ratio = idle_ratio
+        self.next = self.frame_start = time.perf_counter()
 
     def wait(self) -> None:
-        self.next += self.period
         now = time.perf_counter()
+        busy = now - self.frame_start
+        self.next = max(self.next + self.period, now + busy * self.idle_ratio)
         if self.next > now:
             time.sleep(self.next - now)
-        else:
-            self.next = now
+        self.frame_start = time.perf_counter()
 
 
 def prepare_renderer() -> None:

@@ -276,3 +276,32 @@ def test_a_command_is_one_atomic_pipe_write():
         assert all(len(str(v)) <= MAX_TEXT for v in command.args.values())
         assert 4 + len(pickle.dumps(command)) <= select.PIPE_BUF
     assert isinstance(sent[0], Command)
+
+
+# -- frame pacing -----------------------------------------------------------------------
+def test_frame_pacer_caps_the_rate_and_idles_as_long_as_it_worked(monkeypatch):
+    """On a virtual clock: quick frames are held to the cap; slow frames get at least
+    their own length of idle time (so drawing never takes more than half a core)."""
+    import plantrig.gui._dashboard as dashboard
+
+    now = [0.0]
+    slept: list[float] = []
+    monkeypatch.setattr(dashboard.time, "perf_counter", lambda: now[0])
+
+    def sleep(s: float) -> None:
+        slept.append(s)
+        now[0] += s
+
+    monkeypatch.setattr(dashboard.time, "sleep", sleep)
+    pacer = dashboard.FramePacer(25.0, idle_ratio=1.0)
+    starts = []
+    for work in (0.002, 0.002, 0.1, 0.1, 0.002):
+        starts.append(now[0])
+        now[0] += work
+        pacer.wait()
+    gaps = np.diff(starts + [now[0]])
+    assert gaps[0] == pytest.approx(0.04) and gaps[1] == pytest.approx(0.04)   # 25 Hz
+    assert slept[2] == pytest.approx(0.1) and slept[3] == pytest.approx(0.1)   # idle >= busy
+    assert gaps[4] == pytest.approx(0.04)
+    with pytest.raises(ValueError, match="positive"):
+        dashboard.FramePacer(0.0)
