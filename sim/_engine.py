@@ -265,6 +265,7 @@ class Engine:
         override = self.ref_override
         safety, faults, scenario = self.safety, self.faults, self.scenario
         x_k = np.zeros(stepper.n_states)       # x_k kept while limits may repeat the step
+        demand = np.zeros(len(rig.inputs))     # u before the safe values, for the limits
         streak, streak_trip = 0, rig.safety.overrun_streak
         wall_start = clock.now_ns()
         try:
@@ -357,7 +358,9 @@ class Engine:
                         u[:] = cmd
                     if faults.actuator_on:
                         faults.actuator(k, u)
-                    if safety.forcing:
+                    forced = safety.forcing
+                    if forced:
+                        demand[:] = u
                         safety.force(u)
                     # 4. plant step (x_k and u_k are already in the record)
                     guarded = safety.checking or safety.freezing
@@ -370,6 +373,8 @@ class Engine:
                         faults.disturb()
                     y_rec[:] = stepper.y
                     if guarded:
+                        if forced and safety.checking:
+                            u[:] = demand          # input limits judge what was asked for
                         if safety.checking and safety.check(k):
                             # tripped in this tick: the same step again, with the safe inputs
                             safety.force(u)
@@ -378,6 +383,8 @@ class Engine:
                             if faults.disturbing:
                                 faults.disturb()
                             y_rec[:] = stepper.y
+                        elif forced:
+                            safety.force(u)
                         if safety.freezing:
                             stepper.x[:] = x_k
                     # 5. sensor chain, 6. write link

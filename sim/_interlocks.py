@@ -139,8 +139,12 @@ def parse_interlocks(c: _Checker, doc: dict[str, Any], limits: list[LimitSpec],
         if name is not None:
             out.append(InterlockSpec(name, tuple(good), action, tuple(chosen), desc))
     listed = {cause for spec in out for cause in spec.on}
-    for j, spec in enumerate(limits):
+    raw = doc.get("limits", [])
+    for spec in limits:
         if spec.trips and f"limit:{spec.name}" not in listed:
+            j = next(i for i, e in enumerate(raw) if e.get("name", e.get("signal", "")
+                                                            .partition(":")[2]
+                                                            or e.get("signal")) == spec.name)
             c.add(f"limits[{j}]", f"limit {spec.name!r} has a trip bound but no interlock "
                                   f"lists 'limit:{spec.name}' in its `on`; add it to one "
                                   "(or keep warn bounds only)")
