@@ -139,14 +139,31 @@ def _verdict_rows(folder: Path) -> list[tuple[str, str]]:
         items = [{"name": k, **(v if isinstance(v, dict) else {"result": v})}
                  for k, v in items.items()]
     rows = []
-    for i, item in enumerate(items if isinstance(items, list) else [items]):
+    items = items if isinstance(items, list) else [items]
+    judged = [i for i in items if isinstance(i, dict) and "passed" in i]
+    if judged:
+        passed = sum(bool(i["passed"]) for i in judged)
+        rows.append(("result", f"{passed} of {len(judged)} criteria passed"
+                     + ("" if passed == len(judged) else " — NOT ACCEPTED")))
+    for i, item in enumerate(items):
         if not isinstance(item, dict):
             rows.append((f"#{i + 1}", _fmt(item)))
             continue
-        name = str(item.get("name", item.get("criterion", f"#{i + 1}")))
-        rest = ", ".join(f"{k} {_fmt(v)}" for k, v in item.items()
-                         if k not in ("name", "criterion"))
-        rows.append((name, rest))
+        name = str(item.get("name", f"#{i + 1}"))
+        unit = f" {item['unit']}" if item.get("unit") else ""
+        parts = []
+        if "passed" in item:
+            parts.append("PASS" if item["passed"] else "FAIL")
+        if item.get("criterion"):
+            parts.append(str(item["criterion"]))
+        if "measured" in item:
+            parts.append(f"measured {_fmt(item['measured'])}{unit}")
+        if "limit" in item:
+            parts.append(f"limit {_fmt(item['limit'])}{unit}")
+        known = {"name", "passed", "criterion", "measured", "limit", "unit"}
+        parts += [f"{k} {_fmt(v)}" for k, v in item.items() if k not in known and v not in
+                  (None, "")]
+        rows.append((name, "; ".join(parts)))
     return rows or [("verdicts", "verdicts.json lists no criteria")]
 
 

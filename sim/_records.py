@@ -120,6 +120,11 @@ def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, An
     (folder / RESERVE_NAME).unlink(missing_ok=True)
     record: dict[str, Any] = {"files": [], "problems": []}
     summary["record"] = record
+    recorder = summary.get("recorder") or {}
+    if recorder.get("disk_error"):   # a fast run can end before the loop hears of it
+        record["problems"].append(f"the recorder stopped writing ({recorder['disk_error']}): "
+                                  f"{recorder.get('rows_not_written')} ticks ran but are "
+                                  "not in the record")
     journal = folder / "ticks.journal"
     try:
         structured = np.ascontiguousarray(rows).view(

@@ -196,13 +196,18 @@ def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> 
     folder, _, _ = run_to_folder(load_rig(rig_path), tmp_path / "runs", realtime=True)
     # a verdict file from the safety checks (written before the manifest) shows as a table
     (folder / "verdicts.json").write_text(json.dumps(
-        [{"name": "belt speed settles", "passed": True, "value": 0.41, "limit": 0.5}]))
+        [{"name": "belt speed settles", "criterion": "settling_time", "measured": 0.41,
+          "limit": 0.5, "unit": "s", "passed": True, "detail": ""},
+         {"name": "no overspeed", "criterion": "max", "measured": 2.3, "limit": 2.0,
+          "unit": "m/s", "passed": False, "detail": "at 0.61 s"}]))
     write_manifest(folder)
     assert main(["report", str(folder), "--operator", "R. Okafor", "--witness",
                  "L. Brandt"]) == 0
     page = (folder / "report.html").read_text()
     assert "R. Okafor" in page and "L. Brandt" in page
     assert "belt speed settles" in page and "no acceptance criteria" not in page
+    assert "1 of 2 criteria passed — NOT ACCEPTED" in page
+    assert "FAIL; max; measured 2.3 m/s; limit 2 m/s; detail at 0.61 s" in page
     assert re.search(r"""src=['"](?!data:image/png;base64,)""", page) is None
     assert page.count("data:image/png;base64,") >= 4
     assert json.loads((folder / "manifest.json").read_text())["files"]["ticks.npy"][

@@ -188,6 +188,7 @@ def test_disk_filling_mid_run_stops_safely_and_keeps_the_rows(tmp_path: Path) ->
         assert 0 < kept < outcome.ticks < rig.n_ticks
         assert summary["ticks_recorded"] == kept
         assert summary["recorder"]["rows_not_written"] == outcome.ticks - kept
+        assert "the recorder stopped writing (disk full)" in summary["record"]["problems"][0]
         assert record.rows.tobytes() == simulate(rig).rows[:kept].tobytes()
         kinds = [e["kind"] for e in record.events]
         assert "record_failed" in kinds and kinds[-1] == "run_end"
