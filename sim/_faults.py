@@ -238,8 +238,8 @@ def parse_fault(args: Mapping[str, Any], rig: Rig) -> tuple[FaultSpec | None, li
     """Check a fault given as a table (scenario step) or a command's arguments.
 
     Returns the spec (None when anything is wrong) and every problem as (key, message).
-    ``value`` stands for the kind's first parameter when that one is not given by name
-    (so a generic form can send one number).
+    ``value`` stands for the kind's first parameter when the kind has no parameter of
+    that name and the first is not given by name (so a generic form can send one number).
     """
     problems: list[tuple[str, str]] = []
     kind = args.get("kind")
@@ -255,7 +255,8 @@ def parse_fault(args: Mapping[str, Any], rig: Rig) -> tuple[FaultSpec | None, li
     if "duration_s" in given:                         # the dashboard's spelling
         given["duration"] = given.pop("duration_s")
     first = next(iter(info.params), None)
-    if "value" in given and first is not None and first != "value" and first not in given:
+    if "value" in given and "value" not in info.params and first is not None \
+            and first not in given:
         given[first] = given.pop("value")
     for key in given:
         if key not in COMMON_KEYS and key not in info.params:
