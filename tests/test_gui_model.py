@@ -305,3 +305,12 @@ def test_frame_pacer_caps_the_rate_and_idles_as_long_as_it_worked(monkeypatch):
     assert gaps[4] == pytest.approx(0.04)
     with pytest.raises(ValueError, match="positive"):
         dashboard.FramePacer(0.0)
+
+
+def test_gui_exports_are_what_they_claim():
+    import plantrig.gui as gui
+
+    assert sorted(gui.__all__) == sorted(set(gui.__all__))
+    for name in gui.__all__:
+        obj = getattr(gui, name)
+        assert getattr(obj, "__module__", "plantrig.gui").startswith("plantrig.gui"), name
