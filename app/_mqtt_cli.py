@@ -33,6 +33,7 @@ def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
     """
     from plantrig.io._mqtt_config import mqtt_settings
     from plantrig.io._mqtt_controller import serve_reference
+    from plantrig.io._refcontroller import prefer_realtime
 
     try:
         mqtt = mqtt_settings(settings, args.port)
@@ -43,9 +44,11 @@ def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
     for sig in (signal.SIGTERM, signal.SIGINT):
         signal.signal(sig, lambda *_: stopping.append(True))
 
+    scheduler = prefer_realtime() if not args.no_realtime else "SCHED_OTHER"
+
     def ready(where: str) -> None:
         print(f"{ready_word} on mqtt {where} ({mqtt.payload}, "
-              f"{controller.law.__class__.__name__})", flush=True)
+              f"{controller.law.__class__.__name__}, {scheduler})", flush=True)
 
     reason, c = serve_reference(controller, mqtt, len(rig.outputs),
                                 stop=lambda: bool(stopping), on_ready=ready)

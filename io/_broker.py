@@ -14,6 +14,7 @@ import socket
 import subprocess
 import tempfile
 import time
+from collections.abc import Iterator
 from pathlib import Path
 
 READY_TIMEOUT_S = 5.0
@@ -63,10 +64,17 @@ class LocalBroker:
                 flags = ["-c"] if i == 0 else []
                 subprocess.run([passwd, *flags, "-b", str(pw_file), user, password],
                                check=True, capture_output=True)
+            # mosquitto started as root reads it after dropping to its own user
+            self.dir.chmod(0o755)
+            pw_file.chmod(0o644)
             lines += ["allow_anonymous false", f"password_file {pw_file}"]
         else:
             lines.append("allow_anonymous true")
         self.conf.write_text("\n".join(lines) + "\n")
+
+    def __iter__(self) -> Iterator[str | int]:
+        """``host, port = broker``."""
+        return iter((self.host, self.port))
 
     def __enter__(self) -> LocalBroker:
         self.start()

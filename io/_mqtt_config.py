@@ -21,6 +21,8 @@ MQTT keys (all optional; defaults in brackets)::
     reconnect_min      first reconnect delay, s [0.1]
     reconnect_max      largest reconnect delay, s [5.0]; doubling, +-20 % jitter
     open_timeout       how long opening waits for the first connection, s [5.0]
+    timeout            longest wait for the broker (CONNACK, SUBACK, PUBACK, a clean
+                       DISCONNECT) before the connection is given up and retried, s [2.0]
     send_queue         sensor messages held for a slow broker (drop-oldest) [64]
     receive_queue      commands held for the worker (drop-oldest) [64]
     max_payload        largest command payload accepted, bytes 64..1000000 [4096]
@@ -51,7 +53,8 @@ WORKERS = ("process", "thread")
 TLS_KEYS = frozenset({"ca_file", "cert_file", "key_file", "insecure"})
 MQTT_KEYS = frozenset({"host", "port", "prefix", "rig_id", "client_id", "payload", "username",
                        "password", "password_env", "keepalive", "reconnect_min",
-                       "reconnect_max", "open_timeout", "send_queue", "receive_queue",
+                       "reconnect_max", "open_timeout", "timeout", "send_queue",
+                       "receive_queue",
                        "max_payload", "worker", "qos", "tls"})
 SERIAL_ONLY = ("protocol", "status_period")
 
@@ -83,10 +86,12 @@ class MqttSettings:
     reconnect_min: float = 0.1
     reconnect_max: float = 5.0
     open_timeout: float = 5.0
+    timeout: float = 2.0
     watchdog_timeout: float = 0.1
     heartbeat_period: float = 0.1
     out_of_range: str = "reject"
     events_per_kind: int = 20
+    lockstep: bool = False
     send_queue: int = 64
     receive_queue: int = 64
     max_payload: int = 4096
@@ -217,6 +222,7 @@ def check_mqtt_keys(rig: Rig, table: dict[str, Any], issues: Issues) -> dict[str
         "reconnect_min": k.seconds("reconnect_min", 0.1),
         "reconnect_max": k.seconds("reconnect_max", 5.0),
         "open_timeout": k.seconds("open_timeout", 5.0),
+        "timeout": k.seconds("timeout", 2.0),
         "send_queue": k.integer("send_queue", 64, 1, 100_000),
         "receive_queue": k.integer("receive_queue", 64, 1, 100_000),
         "max_payload": k.integer("max_payload", 4096, 64, 1_000_000),
@@ -300,4 +306,4 @@ def mqtt_settings(link: LinkSettings, endpoint: Any = None) -> MqttSettings:
     return MqttSettings(**o, encoding=link.encoding, scale=link.scale,
                         watchdog_timeout=link.watchdog_timeout,
                         heartbeat_period=link.heartbeat_period, out_of_range=link.out_of_range,
-                        events_per_kind=link.events_per_kind)
+                        events_per_kind=link.events_per_kind, lockstep=link.lockstep)

@@ -53,7 +53,8 @@ class MqttControllerPeer:
         self.seq = 0
         self.tracker = SeqTracker()
         self.counts: dict[str, int] = {"answered": 0, "bad": 0, "duplicates": 0,
-                                       "out_of_order": 0, "connects": 0}
+                                       "out_of_order": 0, "connects": 0, "publish_errors": 0}
+        self._pending: set[asyncio.Task[None]] = set()
         self.ended = ""
 
     def _status(self, state: str) -> bytes:
@@ -66,7 +67,8 @@ class MqttControllerPeer:
                             qos=s.qos["status"], retain=True)
         return aiomqtt.Client(s.host, s.port, identifier=self.client_id, username=s.username,
                               password=s.resolved_password() if s.username else None,
-                              keepalive=s.keepalive, protocol=aiomqtt.ProtocolVersion.V5,
+                              keepalive=s.keepalive, timeout=s.timeout,
+                              protocol=aiomqtt.ProtocolVersion.V5,
                               will=will, tls_context=tls_context(s),
                               socket_options=(TCP_NODELAY,))
 
@@ -115,10 +117,22 @@ class MqttControllerPeer:
             command = self.compute(tick, values)
             if command is None:
                 continue
-            await client.publish(topic_out, self.codec.command(self.seq, tick, command),
-                                 qos=qos_out)
+            self._publish(client, topic_out, self.codec.command(self.seq, tick, command), qos_out)
             self.seq = (self.seq + 1) % 65536
             self.counts["answered"] += 1
+
+    def _publish(self, client: aiomqtt.Client, topic: str, payload: bytes, qos: int) -> None:
+        """Publish without waiting in line: aiomqtt's publish waits for its confirmation
+        but not for a disconnect, so awaiting it here would hide a dead broker from the
+        message loop for up to ``timeout``. Tasks start in order, so messages stay in order."""
+        task = asyncio.create_task(client.publish(topic, payload, qos=qos))
+        self._pending.add(task)
+        task.add_done_callback(self._published)
+
+    def _published(self, task: asyncio.Task[None]) -> None:
+        self._pending.discard(task)
+        if not task.cancelled() and task.exception() is not None:
+            self.counts["publish_errors"] += 1
 
     async def _watch(self, stop: Callable[[], bool], end: float | None) -> None:
         while not stop() and (end is None or time.monotonic() < end):
@@ -138,6 +152,8 @@ class MqttControllerPeer:
                     serve = asyncio.create_task(self._serve(client))
                     await asyncio.wait({serve, watch}, return_when=asyncio.FIRST_COMPLETED)
                     serve.cancel()
+                    for task in list(self._pending):
+                        task.cancel()
                     with contextlib.suppress(asyncio.CancelledError):
                         await serve  # re-raises the error that ended a dropped connection
                     if self.ended:  # a clean end: say 'offline' ourselves (no will)

@@ -74,6 +74,7 @@ class MqttLink:
         self._in = bytearray(65536)
         self._newest = np.zeros(self.m)
         self.watchdog_ticks = max(1, math.ceil(watchdog_round(settings.watchdog_timeout / tick)))
+        self.lockstep = settings.lockstep
         self._sock: socket.socket | None = None
         self._peer: socket.socket | None = None
         self._worker: Any = None
@@ -81,7 +82,7 @@ class MqttLink:
         self._worker_health: dict[str, float] = {}
         self._health_raw: bytes | None = None
         self.last_valid_tick: int | None = None
-        self.last_echo_tick = -1
+        self.last_echo_tick = -2  # none yet (-1 is the answer to the values before tick 0)
         self.lost = False
         self._gone = False
         self._fresh = False
@@ -132,31 +133,51 @@ class MqttLink:
     def receive(self, tick: int, t: float, out: Vector) -> bool:
         self.counts["receives"] += 1
         self._drain(tick, t)
-        fresh = self._fresh
+        if self.lockstep and not self.lost and self.last_echo_tick < tick - 1:
+            self._wait_for_answer(tick, t)
         if self.last_valid_tick is None:
             self.last_valid_tick = tick  # the watchdog starts with the first tick
-        if fresh:
+        if self._fresh:
+            self._fresh = False
             out[:] = self._newest
+            if self.lost:
+                self.lost = False
+                self.counts["link_restored"] += 1
+                self._events.append(Event(tick, t, "link_restored",
+                                          f"valid commands again after {self._silence(tick)}"))
             self.last_valid_tick = tick
             self.counts["commands_used"] += 1
             age = tick - self.last_echo_tick  # 1: answered within the tick
             self.age_hist[min(max(age, 0), LATENCY_BINS - 1)] += 1
             if age > 1:
                 self.counts["late"] += 1
-            if self.lost:
-                self.lost = False
-                self.counts["link_restored"] += 1
-                self._events.append(Event(tick, t, "link_restored",
-                                          f"valid command after {self._silence(tick)}"))
             return True
-        self.counts["missed_ticks"] += 1
-        if not self.lost and tick - self.last_valid_tick >= self.watchdog_ticks:
-            self.lost = True
-            self.counts["link_lost"] += 1
-            self._events.append(Event(tick, t, "link_lost",
-                                      f"no valid command for {self._silence(tick)} "
-                                      f"(watchdog_timeout {self.settings.watchdog_timeout} s)"))
+        if tick > 0:
+            self.counts["missed_ticks"] += 1
+        if not self.lost and tick - self.last_valid_tick > self.watchdog_ticks:
+            self._lose(tick, t, f"watchdog: no valid command for {self._silence(tick)} "
+                                f"(timeout {self.settings.watchdog_timeout:g} s)")
         return False
+
+    def _wait_for_answer(self, tick: int, t: float) -> None:
+        """Lockstep (fast runs only): wait up to watchdog_timeout for the answer to the
+        sensor values of tick - 1, so an external controller runs as a built-in one."""
+        assert self._sock is not None
+        deadline = time.monotonic() + self.settings.watchdog_timeout
+        while self.last_echo_tick < tick - 1 and not self._gone:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                self._lose(tick, t, f"watchdog: lockstep waited "
+                                    f"{self.settings.watchdog_timeout:g} s for the answer to "
+                                    f"tick {tick - 1}")
+                return
+            select.select([self._sock], [], [], left)
+            self._drain(tick, t)
+
+    def _lose(self, tick: int, t: float, why: str) -> None:
+        self.lost = True
+        self.counts["link_lost"] += 1
+        self._events.append(Event(tick, t, "link_lost", why))
 
     def send(self, tick: int, t: float, values: Vector) -> None:
         self.counts["sends"] += 1
@@ -238,7 +259,6 @@ class MqttLink:
 
     def _drain(self, tick: int, t: float) -> tuple[Event, ...]:
         """Read every record the worker sent; keep the newest command, return the events."""
-        self._fresh = False
         sock = self._sock
         if sock is None or self._gone:
             return ()

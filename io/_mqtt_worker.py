@@ -257,7 +257,7 @@ class Worker:
         return aiomqtt.Client(
             s.host, s.port, identifier=s.client_id, username=s.username,
             password=s.resolved_password() if s.username is not None else None,
-            will=will, keepalive=s.keepalive, timeout=max(1.0, s.open_timeout),
+            will=will, keepalive=s.keepalive, timeout=s.timeout,
             protocol=aiomqtt.ProtocolVersion.V5, tls_context=tls_context(s),
             max_queued_incoming_messages=s.receive_queue, queue_type=self.queue_type,
             socket_options=(TCP_NODELAY,))
@@ -372,6 +372,7 @@ class Worker:
         await client.subscribe(self.topics["commands"], qos=self.s.qos["commands"])
         self.connected = self.established = True
         self.last_failure = None
+        self._send_health()  # before the event: the loop's counters agree with it
         self.event("link_connected" if first else "link_reconnected",
                    f"{self.s.host}:{self.s.port} as {self.s.client_id}")
         try:
@@ -387,10 +388,12 @@ class Worker:
         """Count and event a lost connection or a failed attempt (each new failure once)."""
         if self.established:
             self.inc("disconnects")
+            self._send_health()  # before the event, as on connect
             self.event("link_disconnected", str(exc) or type(exc).__name__)
             return
         kind, detail = connect_failure(exc)
         self.inc("auth_failures" if kind == "link_auth_failed" else "connect_failures")
+        self._send_health()
         if self.last_failure != detail:
             self.event(kind, detail)
             self.last_failure = detail

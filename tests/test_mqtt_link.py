@@ -1,0 +1,542 @@
+"""The MQTT link against a real mosquitto on loopback, the reference controller in its
+own process (`plantrig controller`), and test clients publishing what a broken or
+hostile controller might.
+
+The closed loop over the broker is checked against the same rig run fast with the law
+built in (plantrig.sim.simulate), as the serial link's tests do: JSON carries the
+shortest repr that round-trips a float64 (Python's json, like repr), so a JSON loop must
+equal the fast run exactly; binary payloads carry float32, so a binary loop must equal,
+bit for bit, the fast run whose sensor and actuator values are rounded to float32
+(numpy's round-to-nearest-even, the IEEE 754 default, as struct's '<f' packing is).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import os
+import struct
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import aiomqtt
+import numpy as np
+import pytest
+
+from plantrig._hil import wait_ready
+from plantrig.io import build_link, check_link_table, parse_link_table
+from plantrig.io._broker import LocalBroker
+from plantrig.io._cobs import cobs_decode
+from plantrig.io._crc import crc16
+from plantrig.io._frames import Kind, encode_frame
+from plantrig.io._mqtt_link import MqttLink
+from plantrig.io._mqtt_payload import Codec, PayloadError
+from plantrig.sim import Event, Rig, RunData, load_rig, simulate
+
+CONFIGS = Path(__file__).parents[1] / "configs"
+MQTT = (CONFIGS / "conveyor_mqtt.toml").read_text()
+VECTORS = json.loads((Path(__file__).parents[1] / "docs" / "protocol_vectors.json").read_text())
+STATE_COLUMNS = ["u:voltage", "y:belt_speed", "y:motor_current", "x:current",
+                 "x:motor_speed", "x:belt_speed"]
+
+
+def mqtt_rig(tmp_path: Path, broker: LocalBroker, *, duration: float = 1.0,
+             mode: str = "realtime", payload: str = "json", watchdog: float = 0.1,
+             extra: str = "") -> Rig:
+    """conveyor_mqtt.toml pointed at ``broker``, with quick reconnects and the changes."""
+    src = (MQTT.replace("duration = 3.0", f"duration = {duration}")
+           .replace('mode = "realtime"', f'mode = "{mode}"')
+           .replace("port = 1883", f"port = {broker.port}")
+           .replace('payload = "json"', f'payload = "{payload}"')
+           .replace("watchdog_timeout = 0.1", f"watchdog_timeout = {watchdog}")
+           .replace("reconnect_min = 0.1\nreconnect_max = 2.0",
+                    "reconnect_min = 0.05\nreconnect_max = 0.2\n" + extra))
+    path = tmp_path / "rig.toml"
+    path.write_text(src)
+    return load_rig(path)
+
+
+def builtin_twin(rig: Rig) -> Rig:
+    """The same rig with the reference controller's law built in and no link."""
+    import dataclasses
+    settings, issues = parse_link_table(rig)
+    assert settings is not None and not issues
+    return dataclasses.replace(rig, controller=settings.controller, link=None)
+
+
+class Float32:
+    """A signal chain that rounds to float32, as a binary payload does."""
+
+    def apply(self, tick: int, src: np.ndarray, dst: np.ndarray) -> None:
+        dst[:] = src.astype(np.float32)
+
+    def reset(self) -> None:
+        pass
+
+
+@contextlib.contextmanager
+def reference_controller(rig: Rig) -> Iterator[subprocess.Popen[str]]:
+    """`plantrig controller RIG` in its own process, connected before the run starts."""
+    proc = subprocess.Popen([sys.executable, "-m", "plantrig", "controller", str(rig.path),
+                             "--no-realtime"], stdout=subprocess.PIPE, text=True)
+    try:
+        assert wait_ready(proc, 30.0), "the reference controller did not start"
+        yield proc
+    finally:
+        try:  # it ends by itself when the rig announces a clean close
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+        assert proc.stdout is not None
+        proc.stdout.close()
+
+
+def assert_columns_equal(a: RunData, b: RunData, names: list[str], end: int | None = None,
+                         ) -> None:
+    for name in names:
+        diff = np.flatnonzero(a[name][:end] != b[name][:end])
+        assert diff.size == 0, f"{name} differs first at tick {diff[0]}: " \
+                               f"{a[name][diff[0]]!r} vs {b[name][diff[0]]!r}"
+
+
+def kinds(events: list[Event]) -> list[str]:
+    return [e.kind for e in events]
+
+
+# ---- closed loop ------------------------------------------------------------------------
+
+def test_lockstep_json_loop_equals_fast_builtin_exactly(tmp_path: Path,
+                                                        mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker, mode="fast", extra="lockstep = true")
+    with reference_controller(rig):
+        wire = simulate(rig, link=build_link(rig))
+    plain = simulate(builtin_twin(rig))
+    h = wire.outcome.link_health
+    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert h["commands_used"] == rig.n_ticks and h["latency_ticks_max"] == 1
+    assert h["link_lost"] == 0
+    # the loop really moved: the belt follows the 0.8 m/s step at 0.2 s
+    assert abs(wire["y:belt_speed"][-1] - 0.8) < 0.02
+    assert_columns_equal(wire, plain, STATE_COLUMNS + ["cmd:voltage"])
+
+
+def test_lockstep_binary_loop_equals_float32_fast_builtin(tmp_path: Path,
+                                                          mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker, mode="fast", payload="binary",
+                   extra="lockstep = true")
+    with reference_controller(rig):
+        wire = simulate(rig, link=build_link(rig))
+    twin = builtin_twin(rig)
+    rounded = simulate(twin, actuator_chain=Float32(), sensor_chain=Float32())
+    plain = simulate(twin)
+    assert wire.outcome.link_health["commands_used"] == rig.n_ticks
+    assert_columns_equal(wire, rounded, STATE_COLUMNS)
+    # float32 keeps 24 bits (IEEE 754 binary32): the rounded run stays close to the plain one
+    assert np.max(np.abs(wire["y:belt_speed"] - plain["y:belt_speed"])) < 2e-5
+
+
+class Observed:
+    """Wraps a link to note, per tick, what the loop sent and which sensor tick the
+    command in use answers (MqttLink.last_echo_tick); every call goes through."""
+
+    def __init__(self, link: MqttLink, rig: Rig, on_open: Any = None) -> None:
+        self.link = link
+        self.on_open = on_open
+        self.sent: dict[int, np.ndarray] = {}
+        self.echo = np.full(rig.n_ticks, -99, dtype=np.int64)
+        self.calls = {"receive": 0, "send": 0}
+
+    def open(self) -> None:
+        self.link.open()
+        if self.on_open is not None:
+            self.on_open()
+
+    def receive(self, tick: int, t: float, out: np.ndarray) -> bool:
+        fresh = self.link.receive(tick, t, out)
+        self.calls["receive"] += 1
+        self.echo[tick] = self.link.last_echo_tick
+        return fresh
+
+    def send(self, tick: int, t: float, values: np.ndarray) -> None:
+        self.link.send(tick, t, values)
+        self.calls["send"] += 1
+        self.sent[tick] = values.copy()
+
+    def drain_events(self) -> list[Event]:
+        return self.link.drain_events()
+
+    def health(self) -> dict[str, float]:
+        return self.link.health()
+
+    def close(self) -> None:
+        self.link.close()
+
+
+def law_answers(rig: Rig, sent: dict[int, np.ndarray]) -> dict[int, float]:
+    """The built-in law's answer to every sensor message, in order, as the reference
+    controller computes it: values of tick j -> command for tick j + 1 at t_(j+1)."""
+    from plantrig.sim import build_controller
+    twin = builtin_twin(rig)
+    law = build_controller(twin)
+    assert law is not None
+    r, u = np.zeros(len(rig.references)), np.array([s.safe for s in rig.inputs])
+    answers = {}
+    for j in sorted(sent):
+        t = (j + 1) * rig.tick
+        for i, ref in enumerate(rig.references):
+            r[i] = ref.waveform.value(t)
+        law.compute(t, sent[j], r, u)
+        answers[j] = float(u[0])
+    return answers
+
+
+def test_realtime_loop_uses_exactly_the_laws_answers(tmp_path: Path,
+                                                     mosquitto_broker: LocalBroker) -> None:
+    """At 500 Hz an answer can miss its tick (scheduling, a loaded machine); the rig then
+    holds the last command. Whatever the timing, every command used must be the law's
+    exact answer to the sensor tick it echoes, and the run must equal the fast run up to
+    the first tick without a fresh command."""
+    rig = mqtt_rig(tmp_path, mosquitto_broker)
+    link = Observed(build_link(rig), rig)  # type: ignore[arg-type]
+    with reference_controller(rig):
+        wire = simulate(rig, realtime=True, link=link)  # type: ignore[arg-type]
+    h = wire.outcome.link_health
+    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert link.calls == {"receive": rig.n_ticks, "send": rig.n_ticks + 1}
+    assert h["missed_ticks"] == rig.n_ticks - 1 - int(wire["fresh"][1:].sum())
+    answers = law_answers(rig, link.sent)
+    cmd, fresh = wire["cmd:voltage"], wire["fresh"]
+    for k in range(rig.n_ticks):
+        if fresh[k]:
+            assert -1 <= link.echo[k] < k and cmd[k] == answers[int(link.echo[k])], k
+        else:
+            assert cmd[k] == (cmd[k - 1] if k else 0.0), k
+    assert fresh.sum() > rig.n_ticks // 2  # the loop ran on the controller's answers
+    stale = np.flatnonzero(fresh == 0)
+    end = int(stale[0]) if stale.size else rig.n_ticks
+    assert_columns_equal(wire, simulate(builtin_twin(rig)), STATE_COLUMNS, end)
+
+
+def test_broker_restart_mid_run_keeps_the_tick(tmp_path: Path,
+                                               mosquitto_broker: LocalBroker) -> None:
+    """The broker crashes 0.6 s after the link connected and is back at 1.1 s: link_lost,
+    a reconnect on both ends, link_restored; the loop recorded every tick and every link
+    call returned."""
+    rig = mqtt_rig(tmp_path, mosquitto_broker, duration=2.4, watchdog=0.05)
+    crash = threading.Timer(0.6, lambda: mosquitto_broker.stop(kill=True))
+    back = threading.Timer(1.1, mosquitto_broker.start)
+
+    def start_timers() -> None:  # counted from the link's first connection
+        crash.start()
+        back.start()
+
+    link = Observed(build_link(rig), rig, on_open=start_timers)  # type: ignore[arg-type]
+    with reference_controller(rig):
+        try:
+            wire = simulate(rig, realtime=True, link=link)  # type: ignore[arg-type]
+        finally:
+            crash.cancel()
+            if back.is_alive():
+                back.join()
+    events, h = wire.outcome.events, wire.outcome.link_health
+    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert np.array_equal(wire.t, np.arange(rig.n_ticks) * rig.tick)
+    assert link.calls == {"receive": rig.n_ticks, "send": rig.n_ticks + 1}  # + the prime
+    order = kinds(events)
+    for kind in ("link_disconnected", "link_lost", "link_reconnected", "link_restored"):
+        assert kind in order, f"no {kind} in {order}"
+    lost = next(e for e in events if e.kind == "link_lost")
+    reconnected = next(e for e in events if e.kind == "link_reconnected")
+    restored = next(e for e in events if e.kind == "link_restored")
+    assert lost.tick < reconnected.tick <= restored.tick < rig.n_ticks
+    assert h["reconnects"] >= 1 and h["disconnects"] >= 1 and h["dropped_offline"] > 0
+    assert wire["fresh"][restored.tick] == 1
+    u = wire["u:voltage"]  # on_link_silence = "hold": the last good command is held
+    assert np.isfinite(u).all() and np.all(u[lost.tick:restored.tick] == u[lost.tick])
+
+
+# ---- status, last will, reconnect ----------------------------------------------------
+
+async def _first_message(host: str, port: int, topic: str,
+                         timeout: float = 3.0) -> tuple[dict[str, Any], bool]:
+    async with aiomqtt.Client(host, port) as client:
+        await client.subscribe(topic, qos=1)
+        async with asyncio.timeout(timeout):
+            async for message in client.messages:
+                return json.loads(message.payload), message.retain  # type: ignore[arg-type]
+    raise AssertionError("unreachable")
+
+
+def retained(broker: LocalBroker, topic: str) -> dict[str, Any]:
+    doc, was_retained = asyncio.run(_first_message(broker.host, broker.port, topic))
+    assert was_retained, f"{topic}: the message was not retained"
+    return doc
+
+
+def drain_until(link: MqttLink, kind: str, timeout: float = 5.0) -> list[Event]:
+    """Call receive() like the loop does (every 2 ms) until an event ``kind`` appears."""
+    seen: list[Event] = []
+    out = np.zeros(1)
+    end = time.monotonic() + timeout
+    k = 0
+    while time.monotonic() < end:
+        link.receive(k, k * 0.002, out)
+        seen += link.drain_events()
+        if any(e.kind == kind for e in seen):
+            return seen
+        k += 1
+        time.sleep(0.002)
+    raise AssertionError(f"no {kind} event within {timeout} s; saw {kinds(seen)}")
+
+
+def test_retained_status_republished_on_reconnect_and_last_will(
+        tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker)
+    topic = "plantrig/conveyor/status"
+    link = build_link(rig)
+    assert isinstance(link, MqttLink)
+    link.open()
+    try:
+        assert "link_connected" in kinds(link.drain_events())
+        online = retained(mosquitto_broker, topic)
+        assert online["state"] == "online" and online["connects"] == 1
+        assert online["inputs"] == ["voltage"] and online["tick_s"] == rig.tick
+        assert online["topics"]["commands"] == "plantrig/conveyor/commands"
+        # a broker without persistence forgets retained messages on restart
+        mosquitto_broker.restart()
+        drain_until(link, "link_reconnected")
+        again = retained(mosquitto_broker, topic)
+        assert again["state"] == "online" and again["connects"] == 2
+        # the worker dies without a word: the broker publishes the retained last will
+        link._worker.kill()
+        deadline = time.monotonic() + 5.0
+        while (will := retained(mosquitto_broker, topic))["state"] != "offline":
+            assert time.monotonic() < deadline, "no last will"
+            time.sleep(0.05)
+        assert will["reason"] == "connection lost (last will)"
+        assert will["session"] == online["session"]
+    finally:
+        link.close()
+
+
+def test_clean_close_says_offline(tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker, extra='worker = "thread"')
+    link = build_link(rig)
+    link.open()
+    link.close()
+    link.close()  # safe twice
+    doc = retained(mosquitto_broker, "plantrig/conveyor/status")
+    assert doc["state"] == "offline" and doc["reason"] == "link closed"
+
+
+# ---- untrusted commands ------------------------------------------------------------------
+
+async def _publish(host: str, port: int, topic: str, items: list[tuple[bytes, bool]]) -> None:
+    async with aiomqtt.Client(host, port) as client:
+        for payload, retain in items:
+            await client.publish(topic, payload, qos=1, retain=retain)
+
+
+def command(seq: int, tick: int, values: list[Any]) -> bytes:
+    return json.dumps({"seq": seq, "tick": tick, "values": values}).encode()
+
+
+def feed_commands(broker: LocalBroker, link: MqttLink, items: list[tuple[bytes, bool]],
+                  already: int = 0) -> tuple[list[np.ndarray], list[Event], dict[str, float]]:
+    """Publish ``items`` on the commands topic; run receive() until the worker has
+    looked at all of them (and ``already`` more); what reached the loop, the events
+    and the health."""
+    asyncio.run(_publish(broker.host, broker.port, "plantrig/conveyor/commands", items))
+    used: list[np.ndarray] = []
+    events: list[Event] = []
+    out = np.full(1, -99.0)
+    end = time.monotonic() + 5.0
+    k = 0
+    while time.monotonic() < end:
+        if link.receive(k, k * 0.002, out):
+            used.append(out.copy())
+        events += link.drain_events()
+        h = link.health()
+        if h.get("frames_in", 0) >= len(items) + already and k > 60:
+            return used, events, h
+        k += 1
+        time.sleep(0.002)
+    raise AssertionError(f"the worker saw {link.health().get('frames_in')} of {len(items)}")
+
+
+def opened(rig: Rig) -> MqttLink:
+    link = build_link(rig)
+    assert isinstance(link, MqttLink)
+    link.open()
+    link.send(-1, -rig.tick, np.zeros(2))  # the prime: commands may echo tick -1
+    return link
+
+
+def test_bad_json_commands_are_counted_evented_and_never_used(
+        tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker, extra="max_payload = 256")
+    # a retained command left on the broker reaches a new subscriber as stale news
+    stale = [(command(1, -1, [2.0]), True)]
+    asyncio.run(_publish(mosquitto_broker.host, mosquitto_broker.port,
+                         "plantrig/conveyor/commands", stale))
+    link = opened(rig)
+    items = [
+        (b"{not json", False),                                   # bad_json
+        (b"[1, 2, 3]", False),                                   # bad_json (not an object)
+        (b'{"seq": 1, "values": [1.0]}', False),                 # bad_schema (no tick)
+        (command(1, -1, [1.0, 2.0]), False),                     # bad_channels
+        (b'{"seq": 1, "tick": -1, "values": [NaN]}', False),     # bad_non_finite
+        (b'{"seq": 1, "tick": -1, "values": [1e999]}', False),   # bad_non_finite (inf)
+        (command(1, -1, [1.0]) + b" " * 300, False),             # bad_oversize
+        (command(1, -1, [100.0]), False),                        # rejected_range (24 V max)
+        (command(1, 7, [1.0]), False),                           # rejected_tick (not sent yet)
+        (command(5, -1, [3.0]), False),                          # valid
+        (command(5, -1, [4.0]), False),                          # duplicate seq
+        (command(4, -1, [5.0]), False),                          # out of order (replay)
+    ]
+    try:
+        used, events, h = feed_commands(mosquitto_broker, link, items, already=1)
+    finally:
+        link.close()
+    assert [u.tolist() for u in used] == [[3.0]]  # only the one valid command
+    for key in ("bad_schema", "bad_channels", "bad_oversize", "rejected_range",
+                "rejected_tick", "rejected_retained", "duplicates", "out_of_order"):
+        assert h[key] == 1, f"{key} = {h.get(key)}"
+    assert h["bad_json"] == 2 and h["bad_non_finite"] == 2 and h["commands_in"] == 1
+    k = kinds(events)
+    assert k.count("bad_frame") == 7 and k.count("rejected_command") == 3
+    assert k.count("duplicate_frame") == 1 and k.count("out_of_order_frame") == 1
+    details = " ".join(e.detail for e in events)
+    assert "voltage = 100.0, allowed -24.0..24.0" in details and "echoes tick 7" in details
+
+
+def test_bad_binary_commands(tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker, payload="binary")
+    link = opened(rig)
+    good = cobs_decode(encode_frame(Kind.COMMAND, 3, -1, [1.5])[:-1])
+    flipped = bytearray(good)
+    flipped[-3] ^= 0x40
+    header = struct.pack("<BBHIBB", 1, Kind.COMMAND, 2, 0xFFFFFFFF, 0, 1)
+    body = header + struct.pack("<f", float("nan"))
+    nan = body + struct.pack("<H", crc16(body))
+    sensor = cobs_decode(encode_frame(Kind.SENSOR, 2, -1, [1.0])[:-1])
+    items = [(bytes(flipped), False), (nan, False), (sensor, False), (b"\x01", False),
+             (good, False)]
+    try:
+        used, events, h = feed_commands(mosquitto_broker, link, items)
+    finally:
+        link.close()
+    assert [u.tolist() for u in used] == [[1.5]]
+    assert h["bad_crc"] == 1 and h["bad_non_finite"] == 1 and h["bad_kind"] == 1
+    assert h["bad_truncated"] == 1 and h["commands_in"] == 1
+
+
+def test_clamp_policy_and_event_flood_is_summarised(tmp_path: Path,
+                                                    mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker,
+                   extra='out_of_range = "clamp"\nevents_per_kind = 2')
+    link = opened(rig)
+    items = [(b"junk", False)] * 20 + [(command(1, -1, [99.0]), False)]
+    try:
+        used, events, h = feed_commands(mosquitto_broker, link, items)
+    finally:
+        link.close()
+    assert [u.tolist() for u in used] == [[24.0]] and h["clamped"] == 1
+    assert h["bad_json"] == 20
+    k = kinds(events)
+    assert k.count("bad_frame") == 2 and k.count("events_suppressed") == 1  # at 10x = 20
+
+
+# ---- credentials ---------------------------------------------------------------------
+
+def test_wrong_password_is_a_clear_event_and_the_right_one_connects(
+        tmp_path: Path, make_broker: Any, monkeypatch: pytest.MonkeyPatch) -> None:
+    broker = make_broker(users={"rig": "s3cret-for-tests"})
+    monkeypatch.setenv("PLANTRIG_TEST_MQTT_PASSWORD", "wrong")
+    rig = mqtt_rig(tmp_path, broker, extra='username = "rig"\n'
+                                           'password_env = "PLANTRIG_TEST_MQTT_PASSWORD"\n'
+                                           'worker = "thread"\nopen_timeout = 3.0')
+    link = build_link(rig)
+    link.open()
+    events = link.drain_events()
+    h = link.health()
+    link.close()
+    refused = [e for e in events if e.kind == "link_auth_failed"]
+    assert refused and "refused the credentials" in refused[0].detail
+    # MQTT 5 CONNACK reason 0x86 bad user name or password, or 0x87 not authorized
+    assert "code 134" in refused[0].detail or "code 135" in refused[0].detail
+    assert h["auth_failures"] >= 1 and "link_connected" not in kinds(events)
+    monkeypatch.setenv("PLANTRIG_TEST_MQTT_PASSWORD", "s3cret-for-tests")
+    link = build_link(rig)
+    link.open()
+    assert "link_connected" in kinds(link.drain_events())
+    link.close()
+
+
+# ---- rig file -------------------------------------------------------------------------
+
+def test_link_table_mistakes_one_message_each(tmp_path: Path) -> None:
+    src = MQTT.replace('host = "127.0.0.1"', 'hots = "127.0.0.1"') \
+              .replace("port = 1883", "port = 70000") \
+              .replace('payload = "json"', 'payload = "jsno"\n'
+                                           'password_env = "PLANTRIG_SURELY_UNSET_VAR"') \
+              .replace('prefix = "plantrig"', 'prefix = "plant/#"') \
+              .replace("sensors = 0", "sensors = 3\ncomands = 1")
+    src = src.replace("[link.qos]", "[link.tls]\nca_file = \"no-such-ca.pem\"\n"
+                                    "insecure = \"yes\"\n\n[link.qos]")
+    os.environ.pop("PLANTRIG_SURELY_UNSET_VAR", None)
+    path = tmp_path / "bad.toml"
+    path.write_text(src)
+    issues = check_link_table(load_rig(path))
+    by_key = {i.key: i.message for i in issues}
+    assert len(by_key) == len(issues), "one message per mistake"
+    assert "did you mean 'host'" in by_key["link.hots"]
+    assert "1..65535" in by_key["link.port"] and "70000" in by_key["link.port"]
+    assert "did you mean 'json'" in by_key["link.payload"]
+    assert "wildcards" in by_key["link.prefix"]
+    assert "0..2" in by_key["link.qos.sensors"]
+    assert "did you mean 'commands'" in by_key["link.qos.comands"]
+    assert "no-such-ca.pem" in by_key["link.tls.ca_file"]
+    assert "true or false" in by_key["link.tls.insecure"]
+    assert "'PLANTRIG_SURELY_UNSET_VAR' to be set" in by_key["link.password_env"]
+    assert "needs a username" in by_key["link.username"]
+    assert all(i.file == str(path) for i in issues)
+
+
+def test_codec_binary_payload_is_the_protocol_frame_without_cobs() -> None:
+    """docs/protocol_vectors.json pins the serial frames; an MQTT binary payload is the
+    same bytes before COBS and the delimiter."""
+    codec = Codec("binary")
+    checked = 0
+    for v in VECTORS["frames"]:
+        if v["encoding"] != "f32" or v["kind"] not in (Kind.SENSOR, Kind.COMMAND):
+            continue
+        wire = bytes.fromhex(v["wire"])
+        if v["kind"] == Kind.SENSOR:
+            payload = codec.sensors(v["seq"], v["tick"], 0.0, v["values"])
+        else:
+            payload = codec.command(v["seq"], v["tick"], v["values"])
+        assert payload == cobs_decode(wire[:-1]), v["name"]
+        seq, tick, values = codec.decode(Kind(v["kind"]), payload, len(v["values"]))
+        assert (seq, tick) == (v["seq"], v["tick"] % 2**32)
+        assert values == pytest.approx(v["values"], rel=2**-24)
+        checked += 1
+    assert checked >= 2
+
+
+def test_codec_json_round_trip_is_exact_and_rejects_non_finite() -> None:
+    codec = Codec("json")
+    values = [0.1, -2.5e-300, 1.7976931348623157e308]
+    assert codec.decode(Kind.COMMAND, codec.command(9, 41, values), 3) == (9, 41, tuple(values))
+    with pytest.raises(ValueError):  # never sends NaN either
+        codec.sensors(0, 0, 0.0, [float("nan")])
+    with pytest.raises(PayloadError) as err:
+        codec.decode(Kind.COMMAND, b'{"seq": 0, "tick": 0, "values": [Infinity]}', 1)
+    assert err.value.reason == "non_finite"
