@@ -46,13 +46,15 @@ def drain_full_ring(rows: int, folder: Path) -> float:
     events.end()
     journal = folder / "drain.journal"
     journal.unlink(missing_ok=True)
-    t0 = time.perf_counter()
-    drain_tape(str(tape.path), str(journal), str(folder / "drain.json"), str(events.path),
-               str(folder / "drain.jsonl"), os.getpid())
-    elapsed = time.perf_counter() - t0
-    assert journal.stat().st_size == rows * COLUMNS * 8
-    tape.close()
-    events.close(unlink=True)
+    try:
+        t0 = time.perf_counter()
+        drain_tape(str(tape.path), str(journal), str(folder / "drain.json"),
+                   str(events.path), str(folder / "drain.jsonl"), os.getpid())
+        elapsed = time.perf_counter() - t0
+        assert journal.stat().st_size == rows * COLUMNS * 8
+    finally:
+        tape.close()
+        events.close(unlink=True)
     return elapsed
 
 
@@ -63,20 +65,24 @@ def live(rows: int, folder: Path) -> tuple[float, float]:
     recorder = start_recorder(tape.path, folder / "live.journal", folder / "live.json",
                               events.path, folder / "live.jsonl")
     row = np.zeros(COLUMNS)
-    t0 = time.perf_counter()
-    for k in range(rows):
-        if tape.free() <= 0:
-            tape.wait_for_room()
-        row[1] = k
-        tape.append(row)
-    t_writer = time.perf_counter() - t0
-    tape.end()
-    events.end()
-    recorder.join(timeout=300)
-    elapsed = time.perf_counter() - t0
-    assert (folder / "live.journal").stat().st_size == rows * COLUMNS * 8
-    tape.close()
-    events.close(unlink=True)
+    try:
+        t0 = time.perf_counter()
+        for k in range(rows):
+            if tape.free() <= 0:
+                tape.wait_for_room()
+            row[1] = k
+            tape.append(row)
+        t_writer = time.perf_counter() - t0
+        tape.end()
+        events.end()
+        recorder.join(timeout=300)
+        elapsed = time.perf_counter() - t0
+        assert (folder / "live.journal").stat().st_size == rows * COLUMNS * 8
+    finally:
+        if recorder.is_alive():
+            recorder.kill()
+        tape.close()
+        events.close(unlink=True)
     return elapsed, t_writer
 
 
