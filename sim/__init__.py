@@ -10,9 +10,11 @@ from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
 from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
 from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._export import export_csv, export_mat
 from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultSpec, parse_fault
 from plantrig.sim._interlocks import InterlockSpec, SafetySettings
 from plantrig.sim._limits import LimitSpec
+from plantrig.sim._manifest import generate_keypair, sign_folder, verify_folder
 from plantrig.sim._plant import (
     DiscretePlant,
     LinearPlant,
@@ -25,7 +27,10 @@ from plantrig.sim._plant import (
     make_stepper,
     zoh,
 )
+from plantrig.sim._preflight import RecordError
+from plantrig.sim._reader import RunRecord, read_run
 from plantrig.sim._recorder import read_journal
+from plantrig.sim._records import recover_run
 from plantrig.sim._references import Ramp, Sine, Step, Table
 from plantrig.sim._rigfile import (
     ControllerSpec,
@@ -57,4 +62,7 @@ __all__ = [
     "FAULT_KINDS", "DisturbanceSpec", "FaultKind", "FaultSpec", "InterlockSpec", "LimitSpec",
     "SafetySettings", "Scenario", "ScenarioFileError", "Verdict", "build_scenario", "evaluate",
     "load_scenario", "parse_fault", "verdict_lines", "write_verdicts",
+    # run records
+    "RecordError", "RunRecord", "export_csv", "export_mat", "generate_keypair", "read_run",
+    "recover_run", "sign_folder", "verify_folder",
 ]
