@@ -11,10 +11,11 @@ the E-stop or reset, and checks expectations, each step when its trigger comes:
     delay = 0.2                    optional, seconds after a when/on_trip/on_phase trigger
 
 Steps act through the same operator commands the dashboard sends, at the start of a
-tick: a time trigger in the first tick with t >= at, any other trigger seen in tick k in
-the first tick that begins after it (k + 1, plus the delay). Everything counts ticks of
-plant time, so a fast run gives the same record every time and a real-time run against
-hardware follows the same timeline. ``[[verdicts]]`` (see _verdicts.py) judge the run.
+tick: a time trigger in the first tick with t >= at; any other trigger seen in tick k
+in tick k + 1 without a delay, in tick k + delay / tick with one (never before k + 1).
+Everything counts ticks of plant time, so a fast run gives the same record every time
+and a real-time run against hardware follows the same timeline. ``[[verdicts]]``
+(see _verdicts.py) judge the run.
 """
 
 from __future__ import annotations
@@ -317,7 +318,7 @@ class ScenarioRunner:
         self.watching = bool(self._waiting or self._expects)
 
     def _arm(self, i: int, tick: int) -> None:
-        self._due[i] = tick + round(self.scenario.steps[i].delay / self.tick)
+        self._due[i] = tick + max(1, round(self.scenario.steps[i].delay / self.tick))
 
     def due(self, k: int) -> list[Command]:
         """The commands of every step due by tick ``k`` (at its start), in step order."""

@@ -191,8 +191,8 @@ def _column(c: _Checker, e: dict[str, Any], key: str, where: str, columns: list[
     column, why = resolve_signal(value, groups)
     if column is None:
         close = difflib.get_close_matches(value, columns, n=1)
-        c.add(f"{where}.{key}", f"no tick column {value!r}" + (
-            f"; did you mean '{close[0]}'?" if close else f" ({why})"))
+        c.add(f"{where}.{key}", why if "more than one" in why or not close else
+              f"no tick column {value!r}; did you mean '{close[0]}'?")
     return column
 
 
