@@ -42,7 +42,7 @@ from plantrig.io._mqtt_controller import MqttControllerPeer
 from plantrig.io._mqtt_link import MqttLink
 from plantrig.io._mqtt_worker import TCP_NODELAY
 from plantrig.io._refcontroller import ReferenceController
-from plantrig.sim import Rig, load_rig, simulate
+from plantrig.sim import Rig, WallClock, load_rig, simulate
 
 RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_mqtt.toml"
 TICK = 0.002
@@ -143,11 +143,11 @@ def link_loop(rig: Rig, port: int, seconds: float) -> dict[str, object]:
         n = int(seconds / TICK)
         rtt: list[float] = []
         answered = 0
+        clock = WallClock()  # the engine's pacing: sleep, then spin the last 200 us
         start = time.perf_counter()
         for k in range(n):
             deadline = start + (k + 1) * TICK
-            while time.perf_counter() < start + k * TICK:
-                pass
+            clock.sleep_until_ns(int((start + k * TICK) * 1e9))
             sent = time.perf_counter_ns()
             link.send(k, k * TICK, values)
             while True:  # until the answer to k lands, or the next tick is due

@@ -23,8 +23,8 @@ MQTT keys (all optional; defaults in brackets)::
     open_timeout       how long opening waits for the first connection, s [5.0]
     timeout            longest wait for the broker (CONNACK, SUBACK, PUBACK, a clean
                        DISCONNECT) before the connection is given up and retried, s [2.0]
-    send_queue         sensor messages held for a slow broker (drop-oldest) [64]
-    receive_queue      commands held for the worker (drop-oldest) [64]
+    send_queue         sensor messages held for a slow broker (drop-oldest) [8]
+    receive_queue      commands held for the worker (drop-oldest) [8]
     max_payload        largest command payload accepted, bytes 64..1000000 [4096]
     worker             "process" or "thread": where the asyncio client runs ["process"]
     [link.qos]         sensors, commands, heartbeat, status: 0, 1 or 2 [0, 0, 0, 1]
@@ -92,8 +92,8 @@ class MqttSettings:
     out_of_range: str = "reject"
     events_per_kind: int = 20
     lockstep: bool = False
-    send_queue: int = 64
-    receive_queue: int = 64
+    send_queue: int = 8
+    receive_queue: int = 8
     max_payload: int = 4096
     worker: str = "process"
     qos: dict[str, int] = field(default_factory=lambda: dict(DEFAULT_QOS))
@@ -223,8 +223,8 @@ def check_mqtt_keys(rig: Rig, table: dict[str, Any], issues: Issues) -> dict[str
         "reconnect_max": k.seconds("reconnect_max", 5.0),
         "open_timeout": k.seconds("open_timeout", 5.0),
         "timeout": k.seconds("timeout", 2.0),
-        "send_queue": k.integer("send_queue", 64, 1, 100_000),
-        "receive_queue": k.integer("receive_queue", 64, 1, 100_000),
+        "send_queue": k.integer("send_queue", 8, 1, 100_000),
+        "receive_queue": k.integer("receive_queue", 8, 1, 100_000),
         "max_payload": k.integer("max_payload", 4096, 64, 1_000_000),
     }
     if out["password"] is not None and out["password_env"] is not None:

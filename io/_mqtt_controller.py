@@ -68,7 +68,7 @@ class MqttControllerPeer:
         return aiomqtt.Client(s.host, s.port, identifier=self.client_id, username=s.username,
                               password=s.resolved_password() if s.username else None,
                               keepalive=s.keepalive, timeout=s.timeout,
-                              protocol=aiomqtt.ProtocolVersion.V5,
+                              protocol=aiomqtt.ProtocolVersion.V311,
                               will=will, tls_context=tls_context(s),
                               socket_options=(TCP_NODELAY,))
 

@@ -258,7 +258,7 @@ class Worker:
             s.host, s.port, identifier=s.client_id, username=s.username,
             password=s.resolved_password() if s.username is not None else None,
             will=will, keepalive=s.keepalive, timeout=s.timeout,
-            protocol=aiomqtt.ProtocolVersion.V5, tls_context=tls_context(s),
+            protocol=aiomqtt.ProtocolVersion.V311, tls_context=tls_context(s),
             max_queued_incoming_messages=s.receive_queue, queue_type=self.queue_type,
             socket_options=(TCP_NODELAY,))
 

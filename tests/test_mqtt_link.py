@@ -202,8 +202,10 @@ def test_realtime_loop_uses_exactly_the_laws_answers(tmp_path: Path,
     """At 500 Hz an answer can miss its tick (scheduling, a loaded machine); the rig then
     holds the last command. Whatever the timing, every command used must be the law's
     exact answer to the sensor tick it echoes, and the run must equal the fast run up to
-    the first tick without a fresh command."""
-    rig = mqtt_rig(tmp_path, mosquitto_broker)
+    the first tick without a fresh command. The replay needs every sensor message to
+    reach the controller, so the worker may hold them all (send_queue) instead of
+    dropping the oldest as it would on a bench that must not fall behind."""
+    rig = mqtt_rig(tmp_path, mosquitto_broker, extra="send_queue = 100000")
     link = Observed(build_link(rig), rig)  # type: ignore[arg-type]
     with reference_controller(rig):
         wire = simulate(rig, realtime=True, link=link)  # type: ignore[arg-type]
@@ -211,6 +213,7 @@ def test_realtime_loop_uses_exactly_the_laws_answers(tmp_path: Path,
     assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
     assert link.calls == {"receive": rig.n_ticks, "send": rig.n_ticks + 1}
     assert h["missed_ticks"] == rig.n_ticks - 1 - int(wire["fresh"][1:].sum())
+    assert h.get("dropped_out", 0) == 0 and h.get("dropped_offline", 0) == 0
     answers = law_answers(rig, link.sent)
     cmd, fresh = wire["cmd:voltage"], wire["fresh"]
     for k in range(rig.n_ticks):
