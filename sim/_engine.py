@@ -339,8 +339,8 @@ class Engine:
                         for ev in link.drain_events():
                             self._record_event(ev)
                     else:
-                        controller.compute(t, faults.delivered if faults.link_out_on else sent,
-                                           r, cmd)  # type: ignore[union-attr]
+                        controller.compute(  # type: ignore[union-attr]
+                            t, faults.delivered if faults.link_out_on else sent, r, cmd)
                         fresh = True
                     if faults.link_in_on:
                         fresh = faults.incoming(k, t, cmd, fresh)

@@ -593,24 +593,24 @@ class Faults:
             counter = "frames_dropped" if kind == "link_drop" else "frames_corrupted"
             assert rng is not None
 
-            def fn(way: str, v: Vector, ok: bool, stamp: int) -> tuple[bool, int]:
+            def lose(way: str, v: Vector, ok: bool, stamp: int) -> tuple[bool, int]:
                 if ok and (prob >= 1.0 or rng.random() < prob):
                     self.counts[counter] += 1
                     return False, stamp
                 return ok, stamp
-            return fn
+            return lose
         if kind == "link_freeze":
             frozen: dict[str, Vector] = {}
 
-            def fn(way: str, v: Vector, ok: bool, stamp: int) -> tuple[bool, int]:
+            def freeze(way: str, v: Vector, ok: bool, stamp: int) -> tuple[bool, int]:
                 if ok:
                     v[:] = frozen.setdefault(way, v.copy())
                 return ok, stamp
-            return fn
+            return freeze
         d = int(p["ticks"])     # link_delay: per way, a ring of the last d (values, ok, stamp)
         rings: dict[str, tuple[Vector, list[bool], list[int], list[int]]] = {}
 
-        def fn(way: str, v: Vector, ok: bool, stamp: int) -> tuple[bool, int]:
+        def delay(way: str, v: Vector, ok: bool, stamp: int) -> tuple[bool, int]:
             if way not in rings:
                 rings[way] = (np.zeros((d, v.size)), [False] * d, [0] * d, [0])
             values, oks, stamps, pos = rings[way]
@@ -621,7 +621,7 @@ class Faults:
             pos[0] = (j + 1) % d
             v[:] = held
             return old_ok, old_stamp
-        return fn
+        return delay
 
     def incoming(self, k: int, t: float, cmd: Vector, fresh: bool) -> bool:
         """Link faults on the command from the controller; returns whether it is fresh."""
@@ -700,7 +700,9 @@ class Faults:
         if self._linear:
             a, b = self._a0.copy(), self._b0.copy()
             for f in faults:
-                (which, r, c), _ = plant_target(self.rig, f.spec.target)  # type: ignore[misc]
+                where, _ = plant_target(self.rig, f.spec.target)
+                assert isinstance(where, tuple)
+                which, r, c = where
                 mat = a if which == "A" else b
                 mat[r, c] = self._changed(f, float(mat[r, c]), t)
             stepper = self.stepper

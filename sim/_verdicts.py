@@ -278,16 +278,16 @@ def _judge(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> Verdict:
 def _measure(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> tuple[float, str]:
     crit = spec.criterion
     if crit == "trip_within":
-        start = next((tick for tick, kind, detail in rec.events if kind == "fault_injected"
+        began = next((tick for tick, kind, detail in rec.events if kind == "fault_injected"
                       and detail.split(": ", 1)[0] == spec.fault), None)
-        if start is None:
+        if began is None:
             raise _NotMeasured(f"fault {spec.fault!r} was never injected")
         trip = next((tick for tick, name in rec.trips()
-                     if name == spec.interlock and tick >= start), None)
+                     if name == spec.interlock and tick >= began), None)
         if trip is None:
             raise _NotMeasured(f"{spec.interlock} did not trip after {spec.fault} began "
-                               f"(t = {start * rec.tick:g} s)")
-        return (trip - start) * rec.tick * 1e3, (f"{spec.fault} at {start * rec.tick:g} s, "
+                               f"(t = {began * rec.tick:g} s)")
+        return (trip - began) * rec.tick * 1e3, (f"{spec.fault} at {began * rec.tick:g} s, "
                                                  f"{spec.interlock} tripped at "
                                                  f"{trip * rec.tick:g} s")
     if crit == "no_unexpected_trip":
@@ -341,7 +341,7 @@ def _measure(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> tuple[float
 
 
 def _expectations(scenario: Scenario, rec: _Record) -> list[Verdict]:
-    checked = {}
+    checked: dict[str, int] = {}
     for tick, kind, detail in rec.events:
         if kind == "expect":
             checked.setdefault(detail.split(": ", 1)[0], tick)
@@ -352,16 +352,16 @@ def _expectations(scenario: Scenario, rec: _Record) -> list[Verdict]:
         if cond is None:
             continue
         unit = rec.unit(cond.column)
-        tick = checked.get(step.label)
-        hits = np.flatnonzero(seq == tick) if tick is not None else np.zeros(0, dtype=int)
-        if not hits.size:
+        at = checked.get(step.label)
+        hits = np.flatnonzero(seq == at) if at is not None else np.zeros(0, dtype=int)
+        if at is None or not hits.size:
             out.append(Verdict(step.label, "expect", math.nan, cond.value, unit, False,
                                f"{cond}: never checked (its trigger did not come)"))
             continue
         row = rec.rows[hits[0]]
         value = float(row[rec.columns.index(cond.column)])
         out.append(Verdict(step.label, "expect", value, cond.value, unit, cond.holds(row),
-                           f"{cond} at {tick * rec.tick:g} s"))
+                           f"{cond} at {at * rec.tick:g} s"))
     return out
 
 
