@@ -4,20 +4,20 @@ Not a test: run `.venv/bin/python bench/bench_mqtt.py [--seconds 30]` and read t
 markdown it prints. Everything runs against one local mosquitto (loopback,
 set_tcp_nodelay true) started for the run, and every number sits beside its peer:
 
-1. bare echo: an aiomqtt client publishes a ping every 2 ms and an aiomqtt echo in
-   another process answers it; round trip measured in the client's event loop.
+1. bare echo (the peer): an aiomqtt client publishes a ping every 2 ms and an aiomqtt
+   echo in another process answers it; round trip timed in the client's event loop.
 2. the link: MqttLink (its worker process) and the reference controller's MQTT end
-   (PID law) in another process, driven at 500 Hz like the tick loop drives it. Two
-   round trips: in the worker (publish to answer, the same span as the bare echo) and
-   loop to loop (send() of tick k to the receive() that sees the answer to k; the bench
-   waits on the link's socket to see it the moment it lands, which the tick loop does
-   not do: it looks once per tick).
-3. where the asyncio client lives: the real engine at 500 Hz in real time against the
-   reference controller, worker in a process vs in a thread of the loop's process;
-   the loop's lateness shows what the thread costs (FIELD-NOTES.md: one GIL switch
-   interval per wake-up when a busy thread shares the process).
+   (PI law) in another process, driven at 500 Hz with the engine's pacing. Two round
+   trips: in the worker (publish to answer: the span the bare echo times) and loop to
+   loop (send() of tick k to the receive() that sees the answer; the bench waits on the
+   link's socket to see it land, where the tick loop looks once per tick).
+   The two loops alternate in one-second blocks, so both see the same machine load.
+3. where the asyncio client lives: the engine at 500 Hz in real time against the
+   reference controller, the worker in its own process vs in a thread of the loop's
+   process; the loop's lateness shows what the thread costs (FIELD-NOTES.md: a busy
+   thread delays every wake-up of the loop by about one GIL switch interval).
 
-Lost frames: sensor messages that got no answer within the run (QoS 0 on loopback).
+Lost: sensor messages (pings) that got no answer by the end of the run.
 """
 
 from __future__ import annotations
@@ -26,6 +26,7 @@ import argparse
 import asyncio
 import dataclasses
 import multiprocessing
+import multiprocessing.synchronize
 import select
 import struct
 import sys
@@ -46,13 +47,14 @@ from plantrig.sim import Rig, WallClock, load_rig, simulate
 
 RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_mqtt.toml"
 TICK = 0.002
+TICK_NS = 2_000_000
 PING = struct.Struct("<qq")
 
 
-def stats(ms: list[float] | np.ndarray) -> tuple[float, float, float]:
+def stats(ms: list[float]) -> tuple[float, float, float]:
     a = np.asarray(ms, dtype=float)
     if not a.size:
-        return (float("nan"),) * 3  # type: ignore[return-value]
+        return float("nan"), float("nan"), float("nan")
     return float(np.percentile(a, 50)), float(np.percentile(a, 99)), float(a.max())
 
 
@@ -70,42 +72,51 @@ def _echo_main(port: int, ready: multiprocessing.synchronize.Event) -> None:
     asyncio.run(serve())
 
 
-async def _bare_client(port: int, seconds: float) -> tuple[list[float], int, int]:
-    rtt: list[float] = []
-    got: set[int] = set()
-    async with aiomqtt.Client("127.0.0.1", port, socket_options=(TCP_NODELAY,)) as c:
-        await c.subscribe("bench/pong")
+class BareEcho:
+    """A connected aiomqtt client on its own event loop, run one block at a time."""
 
-        async def receive() -> None:
-            async for m in c.messages:
-                seq, sent = PING.unpack(m.payload)  # type: ignore[arg-type]
-                rtt.append((time.perf_counter_ns() - sent) / 1e6)
-                got.add(seq)
+    def __init__(self, port: int) -> None:
+        ctx = multiprocessing.get_context("spawn")
+        ready = ctx.Event()
+        self.peer = ctx.Process(target=_echo_main, args=(port, ready))
+        self.peer.start()
+        if not ready.wait(30):
+            raise SystemExit("the echo peer did not start")
+        self.loop = asyncio.new_event_loop()
+        self.loop.run_until_complete(self._connect(port))
+        self.rtt: list[float] = []
+        self.answered: set[int] = set()
+        self.sent = 0
 
-        reader = asyncio.create_task(receive())
-        n = int(seconds / TICK)
+    async def _connect(self, port: int) -> None:
+        self.client = aiomqtt.Client("127.0.0.1", port, socket_options=(TCP_NODELAY,))
+        await self.client.__aenter__()
+        await self.client.subscribe("bench/pong")
+        self.reader = asyncio.create_task(self._receive())
+
+    async def _receive(self) -> None:
+        async for m in self.client.messages:
+            seq, sent = PING.unpack(m.payload)  # type: ignore[arg-type]
+            self.rtt.append((time.perf_counter_ns() - sent) / 1e6)
+            self.answered.add(seq)
+
+    async def _block(self, seconds: float) -> None:
         start = time.perf_counter()
-        for k in range(n):
-            await asyncio.sleep(max(0.0, start + k * TICK - time.perf_counter()))
-            await c.publish("bench/ping", PING.pack(k, time.perf_counter_ns()))
-        await asyncio.sleep(0.2)
-        await c.publish("bench/ping", b"end")
-        reader.cancel()
-    return rtt, n, n - len(got)
+        for i in range(int(seconds / TICK)):
+            await asyncio.sleep(max(0.0, start + i * TICK - time.perf_counter()))
+            await self.client.publish("bench/ping", PING.pack(self.sent, time.perf_counter_ns()))
+            self.sent += 1
+        await asyncio.sleep(0.02)  # let the last answers in
 
+    def block(self, seconds: float) -> None:
+        self.loop.run_until_complete(self._block(seconds))
 
-def bare_echo(port: int, seconds: float) -> tuple[list[float], int, int]:
-    ctx = multiprocessing.get_context("spawn")
-    ready = ctx.Event()
-    peer = ctx.Process(target=_echo_main, args=(port, ready))
-    peer.start()
-    ready.wait(20)
-    try:
-        return asyncio.run(_bare_client(port, seconds))
-    finally:
-        peer.join(5)
-        if peer.is_alive():
-            peer.kill()
+    def close(self) -> None:
+        self.loop.run_until_complete(self.client.publish("bench/ping", b"end"))
+        self.reader.cancel()
+        self.loop.run_until_complete(self.client.__aexit__(None, None, None))
+        self.loop.close()
+        self.peer.join(5)
 
 
 # ---- 2. the link ----------------------------------------------------------------------
@@ -130,43 +141,49 @@ def start_controller(rig: Rig, port: int) -> multiprocessing.process.BaseProcess
     return proc
 
 
-def link_loop(rig: Rig, port: int, seconds: float) -> dict[str, object]:
-    """Drive MqttLink like the tick loop, at 500 Hz; loop-to-loop round trips."""
-    link = build_link(rig, port=port)
-    assert isinstance(link, MqttLink)
-    proc = start_controller(rig, port)
-    try:
+class LinkLoop:
+    """MqttLink driven like the tick loop (send tick k, then receive until tick k + 1)."""
+
+    def __init__(self, rig: Rig, port: int, seconds: float) -> None:
+        link = build_link(rig, port=port)
+        assert isinstance(link, MqttLink)
+        self.link = link
+        self.proc = start_controller(rig, port)
         link.open()
-        sock = link._sock
-        out = np.zeros(len(rig.inputs))
-        values = np.array([0.4, 1.0])
-        n = int(seconds / TICK)
-        rtt: list[float] = []
-        answered = 0
-        clock = WallClock()  # the engine's pacing: sleep, then spin the last 200 us
-        start = time.perf_counter()
-        for k in range(n):
-            deadline = start + (k + 1) * TICK
-            clock.sleep_until_ns(int((start + k * TICK) * 1e9))
-            sent = time.perf_counter_ns()
-            link.send(k, k * TICK, values)
-            while True:  # until the answer to k lands, or the next tick is due
-                left = deadline - time.perf_counter()
-                if left <= 0:
-                    break
-                select.select([sock], [], [], left)
-                link.receive(k, k * TICK, out)
-                if link.last_echo_tick == k:
-                    rtt.append((time.perf_counter_ns() - sent) / 1e6)
-                    answered += 1
-                    break
+        self.out = np.zeros(len(rig.inputs))
+        self.values = np.array([0.4, 1.0])
+        self.sent_ns = np.zeros(int(seconds / TICK) + 1000, dtype=np.int64)
+        self.rtt: list[float] = []
+        self.clock = WallClock()  # the engine's pacing: sleep, then spin the last 200 us
+        self.k = 0
+        self.seen = -2
+
+    def block(self, seconds: float, send: bool = True) -> None:
+        link, sock = self.link, self.link._sock
+        start = time.perf_counter_ns()
+        for i in range(int(seconds / TICK)):
+            self.clock.sleep_until_ns(start + i * TICK_NS)
+            k = self.k
+            if send:
+                self.sent_ns[k] = time.perf_counter_ns()
+                link.send(k, k * TICK, self.values)
+            while (left := start + (i + 1) * TICK_NS - time.perf_counter_ns()) > 0:
+                select.select([sock], [], [], left / 1e9)
+                if link.receive(k, k * TICK, self.out) and link.last_echo_tick != self.seen:
+                    self.seen = link.last_echo_tick
+                    self.rtt.append((time.perf_counter_ns() - self.sent_ns[self.seen]) / 1e6)
             link.drain_events()
-        health = link.health()
-    finally:
-        link.close()
-        proc.terminate()
-        proc.join(5)
-    return {"rtt": rtt, "sent": n, "answered": answered, "health": health}
+            self.k += 1 if send else 0
+        if send:  # the last answers of this block, before the peer's block starts
+            self.block(0.02, send=False)
+
+    def close(self) -> dict[str, float]:
+        self.block(0.1, send=False)  # the stragglers
+        health = self.link.health()
+        self.link.close()
+        self.proc.terminate()
+        self.proc.join(5)
+        return health
 
 
 # ---- 3. process vs thread --------------------------------------------------------------
@@ -180,53 +197,59 @@ def engine_run(rig: Rig, port: int, worker: str, seconds: float) -> dict[str, fl
     finally:
         proc.terminate()
         proc.join(5)
-    t = data.outcome.timing(rig.tick)
+    late = data.outcome.lateness_ns[:data.outcome.ticks] / 1e3
     h = data.outcome.link_health
-    return {"late_p50": float(t["lateness_p50_s"]) * 1e6,  # type: ignore[arg-type]
-            "late_p99": float(t["lateness_p99_s"]) * 1e6,  # type: ignore[arg-type]
-            "late_max": float(t["lateness_max_s"]) * 1e6,  # type: ignore[arg-type]
-            "overruns": float(t["overruns"]),  # type: ignore[arg-type]
+    return {"late_p50": float(np.percentile(late, 50)), "late_p99": float(np.percentile(late, 99)),
+            "late_max": float(late.max()), "overruns": float(data.outcome.overruns),
             "missed": h.get("missed_ticks", 0.0), "late_answers": h.get("late", 0.0),
             "rtt_p50": h.get("latency_ms_p50", float("nan"))}
 
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--seconds", type=float, default=30.0, help="length of each part (s)")
+    ap.add_argument("--seconds", type=float, default=30.0,
+                    help="seconds of each loop (alternating 1 s blocks)")
     args = ap.parse_args(argv)
     rig = dataclasses.replace(load_rig(RIG), tick=TICK)
+    blocks = max(1, round(args.seconds))
     with LocalBroker() as broker:
-        bare, bare_n, bare_lost = bare_echo(broker.port, args.seconds)
-        loop = link_loop(rig, broker.port, args.seconds)
-        placement = {w: engine_run(rig, broker.port, w, min(args.seconds, 10.0))
-                     for w in ("process", "thread")}
-    h = loop["health"]
-    assert isinstance(h, dict)
-    b50, b99, bmax = stats(bare)
-    w50, w99, wmax = h.get("latency_ms_p50", 0), h.get("latency_ms_p99", 0), \
-        h.get("latency_ms_max", 0)
-    l50, l99, lmax = stats(loop["rtt"])  # type: ignore[arg-type]
-    lost = int(loop["sent"]) - int(loop["answered"])  # type: ignore[call-overload]
-    print(f"## MQTT link (bench/bench_mqtt.py, {args.seconds:g} s per part, 500 Hz)\n")
-    print(f"mosquitto on 127.0.0.1 (set_tcp_nodelay true), QoS 0, JSON payloads; "
-          f"Python {sys.version.split()[0]}, aiomqtt {aiomqtt.__version__}.\n")
-    print("| round trip (ms) | p50 | p99 | max | sent | lost | p50 / bare | p99 / bare |")
+        bare = BareEcho(broker.port)
+        loop = LinkLoop(rig, broker.port, blocks)
+        for _ in range(blocks):
+            bare.block(1.0)
+            loop.block(1.0)
+        bare.close()
+        h = loop.close()
+        seconds = min(blocks, 10)
+        placement = {w: engine_run(rig, broker.port, w, seconds) for w in ("process", "thread")}
+    b50, b99, bmax = stats(bare.rtt)
+    w50, w99, wmax = (h.get(f"latency_ms_{q}", float("nan")) for q in ("p50", "p99", "max"))
+    l50, l99, lmax = stats(loop.rtt)
+    bare_lost = bare.sent - len(bare.answered)
+    lost = loop.k - int(h.get("commands_in", 0))
+    print(f"## MQTT link\n\nMeasured by `bench/bench_mqtt.py --seconds {args.seconds:g}` "
+          f"({blocks} one-second blocks of each loop, alternating; 500 Hz). mosquitto on "
+          f"127.0.0.1 with set_tcp_nodelay true, QoS 0, JSON payloads, MQTT 3.1.1; Python "
+          f"{sys.version.split()[0]}, aiomqtt {aiomqtt.__version__}.\n")
+    print("| round trip | sent | lost | p50 | p99 | max | p50 / peer | p99 / peer |")
     print("|---|---|---|---|---|---|---|---|")
-    print(f"| bare aiomqtt echo (peer) | {b50:.3f} | {b99:.3f} | {bmax:.3f} | {bare_n} | "
-          f"{bare_lost} | 1.00 | 1.00 |")
-    print(f"| link, in the worker (same span) | {w50:.3f} | {w99:.3f} | {wmax:.3f} | "
-          f"{loop['sent']} | {lost} | {w50 / b50:.2f} | {w99 / b99:.2f} |")
-    print(f"| link, loop to loop | {l50:.3f} | {l99:.3f} | {lmax:.3f} | {loop['sent']} | "
-          f"{lost} | {l50 / b50:.2f} | {l99 / b99:.2f} |")
-    print()
-    print("| worker placement (engine, 500 Hz real time) | lateness p50 (us) | p99 (us) | "
-          "max (us) | overruns | ticks without a fresh command | late answers | "
-          "round trip p50 (ms) |")
+    print(f"| bare aiomqtt echo (peer) | {bare.sent} | {bare_lost} | {b50:.3f} ms | "
+          f"{b99:.3f} ms | {bmax:.3f} ms | 1.00 | 1.00 |")
+    print(f"| link, in the worker (the same span) | {loop.k} | {lost} | {w50:.3f} ms | "
+          f"{w99:.3f} ms | {wmax:.3f} ms | {w50 / b50:.2f} | {w99 / b99:.2f} |")
+    print(f"| link, loop to loop | {loop.k} | {lost} | {l50:.3f} ms | {l99:.3f} ms | "
+          f"{lmax:.3f} ms | {l50 / b50:.2f} | {l99 / b99:.2f} |")
+    print(f"\nLink counters: superseded before the loop looked {h.get('superseded', 0):.0f}, "
+          f"dropped out {h.get('dropped_out', 0):.0f}, bad "
+          f"{sum(v for k, v in h.items() if k.startswith(('bad_', 'rejected_'))):.0f}. The "
+          "worker's span holds its last 4096 round trips.\n")
+    print(f"| worker placement (engine, 500 Hz real time, {seconds} s) | lateness p50 | p99 | "
+          "max | overruns | ticks without a fresh command | late answers | round trip p50 |")
     print("|---|---|---|---|---|---|---|---|")
     for w, r in placement.items():
-        print(f"| {w} | {r['late_p50']:.1f} | {r['late_p99']:.1f} | {r['late_max']:.1f} | "
-              f"{r['overruns']:.0f} | {r['missed']:.0f} | {r['late_answers']:.0f} | "
-              f"{r['rtt_p50']:.3f} |")
+        print(f"| {w} | {r['late_p50']:.1f} us | {r['late_p99']:.1f} us | "
+              f"{r['late_max']:.1f} us | {r['overruns']:.0f} | {r['missed']:.0f} | "
+              f"{r['late_answers']:.0f} | {r['rtt_p50']:.3f} ms |")
     return 0
 
 
