@@ -364,3 +364,13 @@ def test_bad_fault_commands_are_refused_with_reasons(tmp_path: Path) -> None:
     assert any(e.kind == "fault_injected" and "gain=1.5" in e.detail
                for e in run.outcome.events)
     assert run["sent:y"][5] == 1.5 * run["y:y"][5] and run["sent:y"][6] == run["y:y"][6]
+
+
+def test_the_catalogue_in_docs_lists_every_kind_and_its_parameters() -> None:
+    text = (Path(__file__).resolve().parents[1] / "docs" / "safety.md").read_text()
+    rows = {line.split("|")[1].strip(" `"): line for line in text.splitlines()
+            if line.startswith("| `")}
+    for kind, info in FAULT_KINDS.items():
+        assert kind in rows, kind
+        for param in info.params:
+            assert f"`{param}`" in rows[kind], (kind, param)
