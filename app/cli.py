@@ -1,6 +1,7 @@
 """The plantrig command line: the composition root that joins sim, io and gui.
 
-Exit codes: 0 success, 1 the run ended by fault, 2 a rig file or usage mistake.
+Exit codes: 0 success, 1 the run ended by fault, 2 a rig file or usage mistake,
+3 a scenario criterion failed.
 """
 
 from __future__ import annotations
@@ -12,13 +13,13 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from plantrig import CAUTION, __version__
+from plantrig import CAUTION, REALTIME_BANNER, __version__
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._records_cli import add_record_commands
 from plantrig.sim import RigFileError, load_rig, run_to_folder, summarize
 from plantrig.sim._preflight import RecordError  # public once sim/__init__ exports it
 
-EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
+EXIT_OK, EXIT_FAULT, EXIT_USAGE, EXIT_VERDICT = 0, 1, 2, 3
 
 
 def _load(path: str):  # type: ignore[no-untyped-def]
@@ -78,9 +79,20 @@ def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
 
 def cmd_run(args: argparse.Namespace) -> int:
     rig = _load(args.rig)
+    scenario = None
+    if args.scenario:
+        from plantrig.sim import load_scenario
+        try:
+            scenario = load_scenario(args.scenario, rig)
+        except RigFileError as exc:
+            for issue in exc.issues:
+                print(f"error: {issue}", file=sys.stderr)
+            print(f"{args.scenario}: {len(exc.issues)} mistake(s); nothing was run",
+                  file=sys.stderr)
+            return EXIT_USAGE
     realtime = True if args.realtime else False if args.fast else None
     if realtime or (realtime is None and rig.mode == "realtime"):
-        print(CAUTION, file=sys.stderr)
+        print(REALTIME_BANNER, file=sys.stderr)
     out = Path(args.out)
     try:
         out.mkdir(parents=True, exist_ok=True)
@@ -98,7 +110,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         link = build_link(rig, port=args.port)   # [link] was checked by _load
     try:
         folder, outcome, summary = run_to_folder(rig, out, realtime=realtime, **dashboard_args,
-                                                 link=link)
+                                                 link=link, scenario=scenario)
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -107,6 +119,12 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(json.dumps(summary["timing"]))
     if dashboard is not None:
         dashboard.after_run(folder)
+    if scenario is not None:
+        from plantrig.sim import verdict_lines
+        print(f"scenario: {scenario.name}")
+        print("\n".join(verdict_lines(summary["verdicts"])))
+        if not all(v["passed"] for v in summary["verdicts"]):
+            return EXIT_VERDICT
     return EXIT_OK if outcome.ended != "fault" else EXIT_FAULT
 
 
@@ -159,6 +177,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--gui", action="store_true",
                    help="open the live dashboard (needs dearpygui and a display)")
     p.add_argument("--port", help="where the controller is (overrides link.port)")
+    p.add_argument("--scenario", metavar="FILE",
+                   help="rehearse a scenario file (TOML): its steps fire during the run, "
+                        "its verdicts are judged after it; exit code 3 if one fails")
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)
     add_link_commands(sub, _load, _print_outcome)
