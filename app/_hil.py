@@ -18,7 +18,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from plantrig import CAUTION
+from plantrig import CAUTION, REALTIME_BANNER
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_hil.toml"
@@ -112,7 +112,7 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     if args.mqtt:
         from plantrig._mqtt_cli import cmd_demo_mqtt
         return cmd_demo_mqtt(args, load, print_outcome, wait_ready)
-    print(CAUTION)
+    print(REALTIME_BANNER)
     rig = load(args.rig or str(DEMO_RIG))
     link_settings(rig)
     out = Path(args.out)
