@@ -1,4 +1,4 @@
-"""A local mosquitto broker for the MQTT demo and the tests, on a free loopback port.
+"""A local mosquitto broker for the MQTT demo and the tests (only), on a free loopback port.
 
 The broker gets a generated configuration file: a listener on 127.0.0.1 only, no
 persistence, ``set_tcp_nodelay true`` (FIELD-NOTES.md: QoS 1 round trip 0.64 ms instead
@@ -45,8 +45,10 @@ def free_port() -> int:
 class LocalBroker:
     """mosquitto on 127.0.0.1:<port>; start(), stop(), restart() on the same port."""
 
-    def __init__(self, port: int | None = None, *,
-                 users: dict[str, str] | None = None) -> None:
+    def __init__(self, port: int | None = None, *, users: dict[str, str] | None = None,
+                 tls: tuple[Path, Path, Path] | None = None) -> None:
+        """``users``: name -> password (a password file instead of anonymous access);
+        ``tls``: (CA, certificate, key) files, PEM, for a TLS-only listener."""
         self.executable = find_mosquitto()
         self.host = "127.0.0.1"
         self.port = port or free_port()
@@ -54,7 +56,18 @@ class LocalBroker:
         self.log = self.dir / "mosquitto.log"
         self.conf = self.dir / "mosquitto.conf"
         self.process: subprocess.Popen[bytes] | None = None
-        lines = [f"listener {self.port} 127.0.0.1", "set_tcp_nodelay true",
+        # mosquitto started as root drops to its own user before it opens these
+        self.dir.chmod(0o755)
+        self.log.touch(mode=0o666)
+        self.log.chmod(0o666)
+        lines = [f"listener {self.port} 127.0.0.1"]
+        if tls:
+            for name, src in zip(("ca.pem", "cert.pem", "key.pem"), tls, strict=True):
+                shutil.copyfile(src, self.dir / name)
+                (self.dir / name).chmod(0o644)
+            lines += [f"cafile {self.dir / 'ca.pem'}", f"certfile {self.dir / 'cert.pem'}",
+                      f"keyfile {self.dir / 'key.pem'}"]
+        lines += ["set_tcp_nodelay true",
                  "persistence false", f"log_dest file {self.log}", "log_type error",
                  "log_type warning", "log_type notice"]
         if users:
@@ -64,8 +77,6 @@ class LocalBroker:
                 flags = ["-c"] if i == 0 else []
                 subprocess.run([passwd, *flags, "-b", str(pw_file), user, password],
                                check=True, capture_output=True)
-            # mosquitto started as root reads it after dropping to its own user
-            self.dir.chmod(0o755)
             pw_file.chmod(0o644)
             lines += ["allow_anonymous false", f"password_file {pw_file}"]
         else:
@@ -99,7 +110,7 @@ class LocalBroker:
             while time.monotonic() < deadline and self.process.poll() is None:
                 with contextlib.suppress(OSError), socket.create_connection(
                         (self.host, self.port), timeout=0.2):
-                    return
+                    return  # a TCP accept is enough: TLS and MQTT come after
                 time.sleep(0.02)
             # exited early (the port may still be held after a restart) or never listened
             err = self._stop_process()

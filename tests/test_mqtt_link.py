@@ -543,3 +543,81 @@ def test_codec_json_round_trip_is_exact_and_rejects_non_finite() -> None:
     with pytest.raises(PayloadError) as err:
         codec.decode(Kind.COMMAND, b'{"seq": 0, "tick": 0, "values": [Infinity]}', 1)
     assert err.value.reason == "non_finite"
+
+
+# ---- TLS ------------------------------------------------------------------------------
+
+def make_ca(name: str) -> tuple[Any, Any]:
+    """A self-signed CA (key, certificate), made with the cryptography package."""
+    import datetime
+
+    from cryptography import x509
+    from cryptography.hazmat.primitives import hashes
+    from cryptography.hazmat.primitives.asymmetric import ec
+    from cryptography.x509.oid import NameOID
+    key = ec.generate_private_key(ec.SECP256R1())
+    subject = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, name)])
+    now = datetime.datetime.now(datetime.UTC)
+    cert = (x509.CertificateBuilder().subject_name(subject).issuer_name(subject)
+            .public_key(key.public_key()).serial_number(x509.random_serial_number())
+            .not_valid_before(now - datetime.timedelta(minutes=5))
+            .not_valid_after(now + datetime.timedelta(days=1))
+            .add_extension(x509.BasicConstraints(ca=True, path_length=None), critical=True)
+            .sign(key, hashes.SHA256()))
+    return key, cert
+
+
+def write_pki(folder: Path) -> dict[str, Path]:
+    """ca.pem, other-ca.pem and a server certificate for IP 127.0.0.1 signed by ca."""
+    import datetime
+    import ipaddress
+
+    from cryptography import x509
+    from cryptography.hazmat.primitives import hashes, serialization
+    from cryptography.hazmat.primitives.asymmetric import ec
+    from cryptography.x509.oid import NameOID
+    folder.mkdir()
+    ca_key, ca = make_ca("plantrig test CA")
+    _, other = make_ca("someone else's CA")
+    key = ec.generate_private_key(ec.SECP256R1())
+    now = datetime.datetime.now(datetime.UTC)
+    cert = (x509.CertificateBuilder()
+            .subject_name(x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "127.0.0.1")]))
+            .issuer_name(ca.subject).public_key(key.public_key())
+            .serial_number(x509.random_serial_number())
+            .not_valid_before(now - datetime.timedelta(minutes=5))
+            .not_valid_after(now + datetime.timedelta(days=1))
+            .add_extension(x509.SubjectAlternativeName(
+                [x509.IPAddress(ipaddress.ip_address("127.0.0.1"))]), critical=False)
+            .sign(ca_key, hashes.SHA256()))
+    pem = serialization.Encoding.PEM
+    files = {"ca": folder / "ca.pem", "other": folder / "other-ca.pem",
+             "cert": folder / "server.pem", "key": folder / "server.key"}
+    files["ca"].write_bytes(ca.public_bytes(pem))
+    files["other"].write_bytes(other.public_bytes(pem))
+    files["cert"].write_bytes(cert.public_bytes(pem))
+    files["key"].write_bytes(key.private_bytes(pem, serialization.PrivateFormat.PKCS8,
+                                               serialization.NoEncryption()))
+    return files
+
+
+def test_tls_verifies_the_broker_and_insecure_skips_it(tmp_path: Path, make_broker: Any) -> None:
+    pki = write_pki(tmp_path / "pki")
+    broker = make_broker(tls=(pki["ca"], pki["cert"], pki["key"]))
+
+    def open_with(tls: str) -> list[Event]:
+        rig = mqtt_rig(tmp_path, broker, extra=f'worker = "thread"\nopen_timeout = 3.0\n'
+                                                f'\n[link.tls]\n{tls}\n')
+        link = build_link(rig)
+        link.open()
+        events = link.drain_events()
+        link.close()
+        return events
+
+    trusted = open_with(f'ca_file = "{pki["ca"]}"')
+    assert "link_connected" in kinds(trusted)
+    stranger = open_with(f'ca_file = "{pki["other"]}"')
+    failed = [e for e in stranger if e.kind == "link_connect_failed"]
+    assert failed and "certificate verify failed" in failed[0].detail
+    insecure = open_with(f'ca_file = "{pki["other"]}"\ninsecure = true')
+    assert "link_connected" in kinds(insecure)
