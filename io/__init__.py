@@ -1,5 +1,6 @@
 """Controller links, frame codecs and signal conditioning."""
 
+from plantrig.io._broker import BrokerError, LocalBroker
 from plantrig.io._cobs import CobsError, cobs_decode, cobs_encode
 from plantrig.io._conditioning import (
     ActuatorChain,
@@ -36,6 +37,7 @@ from plantrig.io._link_config import (
     check_link_table,
     parse_link_table,
 )
+from plantrig.io._mqtt_config import MqttSettings, TlsSettings
 from plantrig.io._pty import FdPort, PtyPair, open_pty_pair
 from plantrig.io._refcontroller import (
     TRANSPORTS,
@@ -107,4 +109,21 @@ __all__ = [
     "open_serial_port",
     "parse_link_table",
     "run_controller",
+    # MQTT (MqttLink and MqttControllerPeer load aiomqtt on first use)
+    "BrokerError",
+    "LocalBroker",
+    "MqttControllerPeer",
+    "MqttLink",
+    "MqttSettings",
+    "TlsSettings",
 ]
+
+_LAZY = {"MqttLink": "plantrig.io._mqtt_link", "MqttControllerPeer": "plantrig.io._mqtt_controller"}
+
+
+def __getattr__(name: str) -> object:
+    """Load the MQTT link's names when first used, so `plantrig check` needs no aiomqtt."""
+    if name in _LAZY:
+        import importlib
+        return getattr(importlib.import_module(_LAZY[name]), name)
+    raise AttributeError(f"module 'plantrig.io' has no attribute {name!r}")

@@ -6,7 +6,7 @@ from collections.abc import Callable, Iterator
 
 import pytest
 
-from plantrig.io._broker import BrokerError, LocalBroker
+from plantrig.io import BrokerError, LocalBroker
 
 
 @pytest.fixture

@@ -30,12 +30,17 @@ import numpy as np
 import pytest
 
 from plantrig._hil import wait_ready
-from plantrig.io import build_link, check_link_table, parse_link_table
-from plantrig.io._broker import LocalBroker
-from plantrig.io._cobs import cobs_decode
-from plantrig.io._crc import crc16
-from plantrig.io._frames import Kind, encode_frame
-from plantrig.io._mqtt_link import MqttLink
+from plantrig.io import (
+    Kind,
+    LocalBroker,
+    MqttLink,
+    build_link,
+    check_link_table,
+    cobs_decode,
+    crc16,
+    encode_frame,
+    parse_link_table,
+)
 from plantrig.io._mqtt_payload import Codec, PayloadError
 from plantrig.sim import Event, Rig, RunData, load_rig, simulate
 
