@@ -286,6 +286,8 @@ def parse_fault(args: Mapping[str, Any], rig: Rig) -> tuple[FaultSpec | None, li
         if problem:
             problems.append((key, problem))
         params[key] = value
+    if kind in ("sensor_dropout", "disturbance") and not math.isfinite(params.get("value", 0)):
+        problems.append(("value", f"expected a finite number, found {params['value']}"))
     if kind == "actuator_saturation" and params.get("low", 0) >= params.get("high", 1):
         problems.append(("high", f"expected more than low ({params.get('low')})"))
     duration = given.get("duration")
