@@ -438,6 +438,7 @@ class Engine:
                         self._record_event(ev)
                 finally:
                     link.close()
+            self.safety.finish(done)
             self._event(done, "run_end", f"{ended}: {reason}")
             if self.event_tape is not None:
                 self.event_tape.end()

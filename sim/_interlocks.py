@@ -320,6 +320,10 @@ class Safety:
                 if shown == WARN_EVENTS - 1 else ""
             self.emit(k, "limit_warn", f"{spec.name}: {spec.explain(value, rate)}{more}")
 
-    def health(self) -> dict[str, float]:
-        return {f"limit_warnings:{k}": float(v) for k, v in self.warnings_shown.items()}
+    def finish(self, k: int) -> None:
+        """At the end of a run: how many warnings each limit gave beyond the itemised ones."""
+        for name, count in self.warnings_shown.items():
+            if count > WARN_EVENTS:
+                self.emit(k, "limit_warn", f"{name}: {count} warnings in all, the first "
+                                           f"{WARN_EVENTS} itemised")
 

@@ -310,7 +310,6 @@ class ScenarioRunner:
             elif step.on_phase is not None:
                 self._on_phase.setdefault(step.on_phase, []).append(i)
         self._expects: list[int] = []
-        self.fired: list[tuple[int, str]] = []      # (tick, label)
         self._update()
 
     def _update(self) -> None:
@@ -326,7 +325,6 @@ class ScenarioRunner:
         for i in sorted(i for i, when in self._due.items() if when <= k):
             step = self.scenario.steps[i]
             del self._due[i]
-            self.fired.append((k, step.label))
             self.emit(k, "scenario_step", f"{step.label}: {_trigger_text(step)}")
             out.extend(step.commands)
             if step.expect is not None:

@@ -283,3 +283,17 @@ def test_a_name_shared_by_a_state_and_an_output_must_be_qualified(tmp_path: Path
                    "limits": [{"signal": "v", "warn_high": 1.0}]}, tmp_path / "v.toml")
     assert "limits[0].signal: 'v' names more than one signal; write one of 'y:v', 'x:v'" \
         in str(err.value)
+
+
+def test_warnings_beyond_the_first_twenty_are_counted(tmp_path: Path) -> None:
+    # a sine around the warn bound enters the warn band once per period: 25 times
+    sine = {"name": "r", "kind": "sine", "amplitude": 1.0, "frequency": 12.5}
+    rig = lag_rig(tmp_path, reference=sine, limits=[{"name": "u_warn", "signal": "u",
+                                                     "warn_high": 0.5}])
+    data = simulate(rig)
+    warns = [e for e in data.outcome.events if e.kind == "limit_warn"]
+    entries = int(np.sum(np.diff((data["limit:u_warn"] == 1).astype(int)) == 1)
+                  + (data["limit:u_warn"][0] == 1))
+    assert entries == 25 and len(warns) == 21
+    assert "further warnings of this limit are counted only" in warns[19].detail
+    assert warns[20].detail == "u_warn: 25 warnings in all, the first 20 itemised"
