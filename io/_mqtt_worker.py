@@ -392,6 +392,7 @@ class Worker:
             self.event("link_disconnected", str(exc) or type(exc).__name__)
             return
         kind, detail = connect_failure(exc)
+        detail = f"{self.s.host}:{self.s.port}: {detail}"
         self.inc("auth_failures" if kind == "link_auth_failed" else "connect_failures")
         self._send_health()
         if self.last_failure != detail:
