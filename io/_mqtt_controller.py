@@ -25,7 +25,7 @@ import aiomqtt
 from plantrig.io._frames import Kind, SeqTracker
 from plantrig.io._mqtt_config import MqttSettings
 from plantrig.io._mqtt_payload import Codec, PayloadError
-from plantrig.io._mqtt_worker import TCP_NODELAY, tls_context
+from plantrig.io._mqtt_worker import CLOSED, TCP_NODELAY, tls_context
 
 Compute = Callable[[int, tuple[float, ...]], Sequence[float] | None]
 STOP_POLL_S = 0.1
@@ -80,7 +80,7 @@ class MqttControllerPeer:
         except (TypeError, ValueError):
             return False
         return isinstance(doc, dict) and doc.get("state") == "offline" and (
-            doc.get("reason") == "link closed")
+            doc.get("reason") == CLOSED)
 
     async def _serve(self, client: aiomqtt.Client) -> None:
         s = self.s

@@ -53,6 +53,8 @@ LATENCY_WINDOW = 4096
 TCP_NODELAY = (socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 AUTH_CODES = {4, 5, 134, 135}  # bad user name or password / not authorised (v3.1.1, v5)
 REJECT_REASONS = ("range", "tick", "retained")  # well-formed, but must not be used
+CLOSED = "link closed"  # the reason in the 'offline' status after a clean close
+ABANDONED = "rig process ended without closing the link"
 
 
 @dataclass(frozen=True)
@@ -152,6 +154,7 @@ class Worker:
         self.established = False  # this attempt got as far as a live session
         self.last_failure: str | None = None
         self.gate: dict[str, int] = {}
+        self.close_reason = CLOSED
         self.session = f"{os.getpid():x}-{time.time_ns() & 0xFFFFFFFF:08x}"
         self.started = time.monotonic()
         self.queue_type: type[_DropOldestQueue] = type("_Queue", (_DropOldestQueue,),
@@ -172,7 +175,7 @@ class Worker:
         except BlockingIOError:
             self.inc("dropped_to_loop")
         except OSError:
-            self.stopping.set()  # the loop's end is gone: nothing left to serve
+            self._stop(ABANDONED)  # the loop's end is gone: nothing left to serve
 
     def event(self, kind: str, detail: str = "", reason: str = "") -> None:
         """Pass an event to the loop, itemised up to events_per_kind per kind and reason."""
@@ -213,8 +216,8 @@ class Worker:
                 return
             except OSError:
                 rec = b""
-            if not rec:  # the loop closed its end
-                self.stopping.set()
+            if not rec:  # the loop's process ended (or crashed) without closing the link
+                self._stop(ABANDONED)
                 return
             if rec[:1] == b"S" and len(rec) == self.sensor_rec.size:
                 _, tick, t, *values = self.sensor_rec.unpack(rec)
@@ -227,9 +230,14 @@ class Worker:
                 self.outbox.append((tick, t, tuple(values)))
                 self.outbox_ready.set()
             elif rec[:1] == b"Q":
-                self.stopping.set()
+                self._stop(CLOSED)
             else:
                 self.inc("bad_loop_records")
+
+    def _stop(self, reason: str) -> None:
+        if not self.stopping.is_set():
+            self.close_reason = reason
+            self.stopping.set()
 
     # ---- one connection ------------------------------------------------------------
     def _status(self, state: str, reason: str = "") -> bytes:
@@ -354,7 +362,7 @@ class Worker:
         await self.stopping.wait()
         with contextlib.suppress(aiomqtt.MqttError, asyncio.TimeoutError):
             await asyncio.wait_for(client.publish(
-                self.topics["status"], self._status("offline", "link closed"),
+                self.topics["status"], self._status("offline", self.close_reason),
                 qos=self.s.qos["status"], retain=True), timeout=1.0)
         raise _Closing
 

@@ -334,7 +334,7 @@ def test_retained_status_republished_on_reconnect_and_last_will(
         link.close()
 
 
-def test_clean_close_says_offline(tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+def test_clean_close_and_an_abandoned_link_say_offline(tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
     rig = mqtt_rig(tmp_path, mosquitto_broker, extra='worker = "thread"')
     link = build_link(rig)
     link.open()
@@ -342,6 +342,16 @@ def test_clean_close_says_offline(tmp_path: Path, mosquitto_broker: LocalBroker)
     link.close()  # safe twice
     doc = retained(mosquitto_broker, "plantrig/conveyor/status")
     assert doc["state"] == "offline" and doc["reason"] == "link closed"
+    # a rig process that dies leaves its end of the socket pair closed, not a close record
+    link = build_link(rig)
+    assert isinstance(link, MqttLink)
+    link.open()
+    assert link._sock is not None and isinstance(link._worker, threading.Thread)
+    link._sock.close()
+    link._worker.join(5)
+    doc = retained(mosquitto_broker, "plantrig/conveyor/status")
+    assert doc["state"] == "offline"
+    assert doc["reason"] == "rig process ended without closing the link"
 
 
 # ---- untrusted commands ------------------------------------------------------------------
