@@ -283,7 +283,8 @@ async def _first_message(host: str, port: int, topic: str,
 
 
 def retained(broker: LocalBroker, topic: str) -> dict[str, Any]:
-    doc, was_retained = asyncio.run(_first_message(broker.host, broker.port, topic))
+    host, port = broker
+    doc, was_retained = asyncio.run(_first_message(str(host), int(port), topic))
     assert was_retained, f"{topic}: the message was not retained"
     return doc
 
@@ -334,7 +335,8 @@ def test_retained_status_republished_on_reconnect_and_last_will(
         link.close()
 
 
-def test_clean_close_and_an_abandoned_link_say_offline(tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+def test_clean_close_and_an_abandoned_link_say_offline(tmp_path: Path,
+                                                       mosquitto_broker: LocalBroker) -> None:
     rig = mqtt_rig(tmp_path, mosquitto_broker, extra='worker = "thread"')
     link = build_link(rig)
     link.open()
