@@ -264,7 +264,6 @@ class Engine:
         poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick)))
         override = self.ref_override
         safety, faults, scenario = self.safety, self.faults, self.scenario
-        x_k = np.zeros(stepper.n_states)       # x_k kept while limits may repeat the step
         demand = np.zeros(len(rig.inputs))     # u before the safe values, for the limits
         streak, streak_trip = 0, rig.safety.overrun_streak
         wall_start = clock.now_ns()
@@ -362,31 +361,26 @@ class Engine:
                     if forced:
                         demand[:] = u
                         safety.force(u)
-                    # 4. plant step (x_k and u_k are already in the record)
-                    guarded = safety.checking or safety.freezing
-                    if guarded:
-                        x_k[:] = stepper.x
+                    # 4. plant step: y_k and x_{k+1} from (x_k, u_k), both already in the
+                    #    record; x moves to x_{k+1} only after the record (commit below)
                     if faults.plant_on:
                         faults.plant(k)
-                    stepper.output_and_advance(t)
+                    stepper.step(t)
                     if faults.disturbing:
                         faults.disturb()
                     y_rec[:] = stepper.y
-                    if guarded:
-                        if forced and safety.checking:
+                    if safety.checking:
+                        if forced:
                             u[:] = demand          # input limits judge what was asked for
-                        if safety.checking and safety.check(k):
+                        if safety.check(k):
                             # tripped in this tick: the same step again, with the safe inputs
                             safety.force(u)
-                            stepper.x[:] = x_k
-                            stepper.output_and_advance(t)
+                            stepper.step(t)
                             if faults.disturbing:
                                 faults.disturb()
                             y_rec[:] = stepper.y
                         elif forced:
                             safety.force(u)
-                        if safety.freezing:
-                            stepper.x[:] = x_k
                     # 5. sensor chain, 6. write link
                     if sensor is not None:
                         sensor.apply(k, stepper.y, sent)
@@ -411,15 +405,17 @@ class Engine:
                             ended, reason = "fault", "tape overflow"
                             done = k
                             break
-                    finite = math.isfinite(stepper.x.sum())
+                    finite = math.isfinite(stepper.x_next.sum())
                     if not finite:
-                        safety.cause(k, "non_finite", f"x = {stepper.x.tolist()}")
+                        safety.cause(k, "non_finite", f"x = {stepper.x_next.tolist()}")
                     tape.append(row)
                     done = k + 1
+                    if not safety.freezing:
+                        stepper.commit()
                     if scenario is not None and scenario.watching:
                         scenario.after_record(k, row)
                     if not finite:
-                        self._event(k, "non_finite_state", f"x = {stepper.x.tolist()}")
+                        self._event(k, "non_finite_state", f"x = {stepper.x_next.tolist()}")
                         ended, reason = "fault", "plant state became NaN or infinite"
                         break
                     if safety.stop_reason:

@@ -683,7 +683,7 @@ class Faults:
     def disturb(self) -> None:
         """x_{k+1} += Ed d_k (after the plant step; ZOH of the disturbance column)."""
         np.dot(self._ed, self._d, out=self._dx)
-        self.stepper.x += self._dx
+        self.stepper.x_next += self._dx
 
     def plant(self, k: int) -> None:
         """Before the plant step: apply drifting parameters when their update is due."""
@@ -709,13 +709,10 @@ class Faults:
                 mat[r, c] = self._changed(f, float(mat[r, c]), t)
             stepper = self.stepper
             assert isinstance(stepper, LinearStepper)
-            n = stepper.n_states
             if isinstance(self.rig.plant, DiscretePlant):
-                ad, bd = a, b
+                stepper.set_dynamics(a, b)
             else:
-                ad, bd = zoh(a, b, self.tick)
-            stepper._block[:n, :n] = ad          # the stepper's [[Ad, Bd], [C, D]] block
-            stepper._block[:n, n:] = bd
+                stepper.set_dynamics(*zoh(a, b, self.tick))
             self._ed = self._discrete_e(a)
         else:
             params = self.stepper.params  # type: ignore[union-attr]

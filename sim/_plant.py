@@ -199,7 +199,7 @@ class LinearStepper:
         self.x = self._xu[:n]
         self.u = self._xu[n:]
         self.y = self._next[n:]
-        self._x_next = self._next[:n]
+        self.x_next = self._next[:n]
         self.x0 = np.array(x0, dtype=np.float64)
         self.reset()
 
@@ -212,10 +212,24 @@ class LinearStepper:
         """Compute y from the present (x, u) without advancing."""
         np.dot(self._block[self.n_states:], self._xu, out=self.y)
 
-    def output_and_advance(self, t: float) -> None:
-        """Compute y_k from (x_k, u_k), then move x to x_{k+1}."""
+    def set_dynamics(self, Ad: Matrix, Bd: Matrix) -> None:
+        """Replace Ad and Bd in place (a parameter fault), keeping C, D and the state."""
+        n = self.n_states
+        self._block[:n, :n] = Ad
+        self._block[:n, n:] = Bd
+
+    def step(self, t: float) -> None:
+        """Compute y_k and x_{k+1} from (x_k, u_k); x keeps x_k until commit()."""
         np.dot(self._block, self._xu, out=self._next)
-        self.x[:] = self._x_next
+
+    def commit(self) -> None:
+        """Move x to x_{k+1} (after the tick has been recorded)."""
+        self.x[:] = self.x_next
+
+    def output_and_advance(self, t: float) -> None:
+        """step() then commit(), for loops that record nothing in between."""
+        np.dot(self._block, self._xu, out=self._next)
+        self.x[:] = self.x_next
 
 
 class OdeStepper:
@@ -237,8 +251,9 @@ class OdeStepper:
         self.x = xu[:n]
         self.u = xu[n:]
         self.y = np.zeros(self.n_outputs)
+        self.x_next = np.zeros(n)
         self.x0 = np.array(x0, dtype=np.float64)
-        self.params = plant.params
+        self.params = dict(plant.params)   # a run's parameter faults change only this copy
         self.reset()
 
     def reset(self) -> None:
@@ -250,7 +265,8 @@ class OdeStepper:
         """Compute y from the present (x, u) without advancing."""
         self.y[:] = self.plant.output(t, self.x, self.u, self.params)
 
-    def output_and_advance(self, t: float) -> None:
+    def step(self, t: float) -> None:
+        """Compute y_k and x_{k+1} from (x_k, u_k); x keeps x_k until commit()."""
         f, p, u, h = self.plant.dynamics, self.params, self.u, self.h_step
         self.y[:] = self.plant.output(t, self.x, u, p)
         x = self.x.copy()
@@ -265,7 +281,16 @@ class OdeStepper:
                 x = x + h / 6 * (k1 + 2 * k2 + 2 * k3 + k4)
             else:
                 x = x + h * f(ti, x, u, p)
-        self.x[:] = x
+        self.x_next[:] = x
+
+    def commit(self) -> None:
+        """Move x to x_{k+1} (after the tick has been recorded)."""
+        self.x[:] = self.x_next
+
+    def output_and_advance(self, t: float) -> None:
+        """step() then commit(), for loops that record nothing in between."""
+        self.step(t)
+        self.commit()
 
 
 Stepper = LinearStepper | OdeStepper

@@ -64,8 +64,10 @@ def test_open_loop_run_equals_scipy_dlsim(tmp_path: Path) -> None:
     u = data["u:u"]
     sysd = scipy.signal.cont2discrete(tuple(np.array(m) for m in ([[-2.0]], [[2.0]], [[1.0]],
                                                                   [[0.5]])), 0.01)
-    _, y_ref, _ = scipy.signal.dlsim(sysd, u)
+    _, y_ref, x_ref = scipy.signal.dlsim(sysd, u)
     np.testing.assert_allclose(data["y:y"], y_ref[:, 0], rtol=1e-9, atol=1e-12)
+    # each record holds x_k beside the u_k and y_k of the same tick
+    np.testing.assert_allclose(data["x:x"], x_ref[:, 0], rtol=1e-9, atol=1e-12)
 
 
 def test_builtin_controller_sees_previous_tick(tmp_path: Path) -> None:
