@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import CAUTION, REALTIME_BANNER, __version__
+from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._records_cli import add_record_commands
 from plantrig.sim import RigFileError, load_rig, run_to_folder, summarize
@@ -32,16 +33,25 @@ def _load(path: str):  # type: ignore[no-untyped-def]
                 raise RigFileError(issues)
         return rig
     except RigFileError as exc:
-        for issue in exc.issues:
-            print(f"error: {issue}", file=sys.stderr)
-        count = len(exc.issues)
-        print(f"{path}: {count} mistake{'s' if count != 1 else ''}; nothing was run",
-              file=sys.stderr)
+        _print_issues(path, exc)
         raise SystemExit(EXIT_USAGE) from None
+
+
+def _print_issues(path: str, exc: RigFileError) -> None:
+    for issue in exc.issues:
+        print(f"error: {issue}", file=sys.stderr)
+    count = len(exc.issues)
+    print(f"{path}: {count} mistake{'s' if count != 1 else ''}; nothing was run",
+          file=sys.stderr)
 
 
 def cmd_check(args: argparse.Namespace) -> int:
     rig = _load(args.rig)
+    try:
+        build_chains(rig)
+    except RigFileError as exc:
+        _print_issues(args.rig, exc)
+        return EXIT_USAGE
     model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
     print(f"{rig.path}: ok")
     print(f"rig: {rig.name} — {rig.description}" if rig.description else f"rig: {rig.name}")
@@ -104,13 +114,20 @@ def cmd_run(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     dashboard_args = {"commands": dashboard.commands,
                       "on_tapes_ready": dashboard.on_tapes_ready} if dashboard else {}
-    link = None
-    if rig.controller.kind == "external":
-        from plantrig.io import build_link
-        link = build_link(rig, port=args.port)   # [link] was checked by _load
+    try:
+        actuator_chain, sensor_chain = build_chains(rig)
+        link = None
+        if rig.controller.kind == "external":
+            from plantrig.io import build_link
+            link = build_link(rig, port=args.port)
+    except RigFileError as exc:
+        _print_issues(args.rig, exc)
+        return EXIT_USAGE
     try:
         folder, outcome, summary = run_to_folder(rig, out, realtime=realtime, **dashboard_args,
-                                                 link=link, scenario=scenario)
+                                                 actuator_chain=actuator_chain,
+                                                 sensor_chain=sensor_chain, link=link,
+                                                 scenario=scenario)
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -182,12 +199,12 @@ def build_parser() -> argparse.ArgumentParser:
                         "its verdicts are judged after it; exit code 3 if one fails")
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)
-    add_link_commands(sub, _load, _print_outcome)
     p = sub.add_parser("replay", help="open a run folder in the dashboard",
                        description="Open a recorded run folder in the dashboard, with a "
                                    "time slider (needs dearpygui and a display).")
     p.add_argument("folder", help="run folder written by plantrig run")
     p.set_defaults(func=cmd_replay)
+    add_link_commands(sub, _load, _print_outcome)
     return parser
 
 
