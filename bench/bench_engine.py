@@ -50,31 +50,34 @@ def best_of(fn, repeats: int = 5) -> float:  # type: ignore[no-untyped-def]
     return best
 
 
+def plant_step_row(n: int, samples: int) -> str:
+    """One table row: plantrig's step against dlsim and forced_response at n states."""
+    plant = random_plant(n)
+    stepper = make_stepper(plant, TICK)
+    u = np.random.default_rng(1).normal(size=(samples, 1))
+
+    def own() -> None:
+        stepper.reset()
+        su = stepper.u
+        advance = stepper.output_and_advance
+        for k in range(samples):
+            su[0] = u[k, 0]
+            advance(0.0)
+
+    sysd = scipy.signal.cont2discrete((plant.A, plant.B, plant.C, plant.D), TICK)
+    ctl = control.ss(*sysd[:4], TICK)
+    t = np.arange(samples) * TICK
+    t_own = best_of(own) / samples * 1e6
+    t_dlsim = best_of(lambda: scipy.signal.dlsim(sysd, u), 3) / samples * 1e6
+    t_fr = best_of(lambda: control.forced_response(ctl, T=t, U=u[:, 0]), 3) / samples * 1e6
+    return (f"| {n} | {t_own:.2f} | {t_dlsim:.2f} | {t_fr:.2f} | "
+            f"{t_own / t_dlsim:.2f}x | {t_own / t_fr:.2f}x |")
+
+
 def plant_step_table(samples: int) -> list[str]:
-    lines = ["| states | plantrig step (us) | dlsim per sample (us) | forced_response per "
-             "sample (us) | step / dlsim | step / forced_response |", "|---|---|---|---|---|---|"]
-    for n in (2, 10, 50):
-        plant = random_plant(n)
-        stepper = make_stepper(plant, TICK)
-        u = np.random.default_rng(1).normal(size=(samples, 1))
-
-        def own() -> None:
-            stepper.reset()
-            su = stepper.u
-            advance = stepper.output_and_advance
-            for k in range(samples):
-                su[0] = u[k, 0]
-                advance(0.0)
-
-        sysd = scipy.signal.cont2discrete((plant.A, plant.B, plant.C, plant.D), TICK)
-        ctl = control.ss(*sysd[:4], TICK)
-        t = np.arange(samples) * TICK
-        t_own = best_of(own) / samples * 1e6
-        t_dlsim = best_of(lambda: scipy.signal.dlsim(sysd, u), 3) / samples * 1e6
-        t_fr = best_of(lambda: control.forced_response(ctl, T=t, U=u[:, 0]), 3) / samples * 1e6
-        lines.append(f"| {n} | {t_own:.2f} | {t_dlsim:.2f} | {t_fr:.2f} | "
-                     f"{t_own / t_dlsim:.2f}x | {t_own / t_fr:.2f}x |")
-    return lines
+    return ["| states | plantrig step (us) | dlsim per sample (us) | forced_response per "
+            "sample (us) | step / dlsim | step / forced_response |",
+            "|---|---|---|---|---|---|"] + [plant_step_row(n, samples) for n in (2, 10, 50)]
 
 
 def pid_rig(n: int, duration: float, mode: str = "fast"):  # type: ignore[no-untyped-def]

@@ -7,6 +7,8 @@ import tracemalloc
 
 import numpy as np
 import pytest
+from scipy import stats
+
 from plantrig.io import _conditioning as cond
 from plantrig.io._conditioning import (
     ActuatorChain,
@@ -18,7 +20,6 @@ from plantrig.io._conditioning import (
     eng_to_counts,
 )
 from plantrig.sim._contracts import SignalChain
-from scipy import stats
 
 
 def run(chain: SignalChain, inputs: np.ndarray) -> np.ndarray:
