@@ -80,9 +80,10 @@ def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
               f"max {timing['lateness_max_s'] * 1e6:.1f} us; "
               f"overruns {timing['overruns']}, skipped slots {timing['skipped_slots']}; "
               f"scheduler {timing['scheduler']}")
-    if summary["link"]:
-        print("link: " + ", ".join(f"{k} {v:g}" if isinstance(v, float) else f"{k} {v}"
-                                   for k, v in summary["link"].items()))
+    counters = {k: v for k, v in summary["link"].items() if v}
+    if counters:  # zero counters are in summary.json; here only what happened
+        print("counters: " + ", ".join(f"{k} {v:g}" if isinstance(v, float) else f"{k} {v}"
+                                       for k, v in counters.items()))
     if summary["events"]:
         print("events: " + ", ".join(f"{k} x{v}" for k, v in sorted(summary["events"].items())))
 
