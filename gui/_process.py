@@ -1,7 +1,9 @@
 """The dashboard in its own supervised process.
 
 FIELD-NOTES.md: without a display dearpygui aborts its process (SIGABRT) instead of
-raising, and an uncapped GUI competes with the loop for the cores. So the dashboard
+raising (seen here too: sometimes it spins on GLFW errors instead), so the child checks
+for a display before it loads dearpygui; and an uncapped GUI competes with the loop for
+the cores. So the dashboard
 is spawned (no state shared by accident), lowered in priority and kept off the core
 the real-time loop pins itself to (the highest one, see sim's realtime setup). The
 parent only ever waits on the child's sentinel from an idle thread: whatever the
@@ -24,6 +26,7 @@ from typing import Any
 
 NICE_INCREMENT = 10
 EXIT_TAPE_GONE = 3        # the run ended (and removed its tapes) before the window opened
+EXIT_NO_DISPLAY = 4       # no display named: dearpygui would abort or spin on GLFW errors
 
 
 def display_available() -> bool:
@@ -46,6 +49,8 @@ def _dashboard_child(tape_path: str, event_tape_path: str | None, rig_path: str,
                      command_queue: Any, frame_cap_hz: float, screenshot: str | None,
                      exit_after_frames: int | None, frames: Any) -> None:
     _step_aside()
+    if not display_available():
+        sys.exit(EXIT_NO_DISPLAY)
     if not Path(tape_path).exists():
         sys.exit(EXIT_TAPE_GONE)
     from plantrig.gui._dashboard import run_dashboard
@@ -62,6 +67,8 @@ def _dashboard_child(tape_path: str, event_tape_path: str | None, rig_path: str,
 def _replay_child(folder: str, frame_cap_hz: float, screenshot: str | None,
                   exit_after_frames: int | None, frames: Any) -> None:
     _step_aside()
+    if not display_available():
+        sys.exit(EXIT_NO_DISPLAY)
     from plantrig.gui._replay import run_replay
     run_replay(folder, frame_cap_hz=frame_cap_hz, screenshot=screenshot,
                exit_after_frames=exit_after_frames, frame_counter=frames)
@@ -106,6 +113,9 @@ class DashboardProcess:
             return "dashboard closed"
         if code == EXIT_TAPE_GONE:
             return "the run ended before the dashboard could open its tape"
+        if code == EXIT_NO_DISPLAY:
+            return "dashboard not started: no display (DISPLAY is not set); " \
+                   "the run is not affected"
         if code < 0:
             name = signal.Signals(-code).name
             hint = " (no display? dearpygui aborts without one)" \
