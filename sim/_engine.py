@@ -6,15 +6,16 @@ Order inside tick k (DESIGN.md), at plant time t_k = k * tick:
                         computed from the values sent at tick k-1 and r(t_k))
     2. actuator chain   command -> plant input u_k (scaling, saturation, rate limit),
                         then actuator faults
-    3. safety           non-finite inputs never reach the plant (last good u is held);
-                        tripped interlocks force their inputs to the safe values
+    3. safety           non-finite inputs never reach the plant (last good u is held;
+                        the check is the squared norm, so |v| > 1e154 counts as
+                        non-finite too); tripped interlocks force inputs to safe values
     4. plant step       y_k = h(x_k, u_k), x_{k+1} = F(x_k, u_k) (+ disturbances); then the
                         limits are checked on x, u_k and y_k, and a trip in this tick
                         repeats the step with the safe inputs (safety acts in the tick
                         its cause appears); a frozen plant keeps x_k
     5. sensor chain     y_k -> values for the controller, then sensor faults
     6. write link       (link faults act on both directions at the boundary)
-    7. record           one row on the tape: time, timing, r, command, u, y, sent, x,
+    7. record           one row on the tape: time, timing, r, command, u, y, sent, x_k,
                         disturbances, limit codes, trip latches
 
 Scenario steps and operator commands act at the start of a tick (_scenario.py).
@@ -348,7 +349,7 @@ class Engine:
                     # 2. actuator chain, 3. safety: a non-finite command never reaches the
                     #    plant (u keeps last tick's good value); a latched stop forces the
                     #    safe state
-                    if not math.isfinite(cmd.sum()):  # NaN or inf anywhere makes the sum so
+                    if not math.isfinite(cmd.dot(cmd)):  # NaN/inf anywhere (or |v| > 1e154)
                         self._event(k, "non_finite_input",
                                     f"command {cmd.tolist()}; last good input held")
                     elif actuator is not None:
@@ -405,7 +406,8 @@ class Engine:
                             ended, reason = "fault", "tape overflow"
                             done = k
                             break
-                    finite = math.isfinite(stepper.x_next.sum())
+                    x_next = stepper.x_next
+                    finite = math.isfinite(x_next.dot(x_next))  # a dot is half a sum's cost
                     if not finite:
                         safety.cause(k, "non_finite", f"x = {stepper.x_next.tolist()}")
                     tape.append(row)

@@ -113,12 +113,13 @@ class MemoryTape:
         return len(self.rows) - self.written
 
     def append(self, row: NDArray[np.float64]) -> None:
-        if self.written >= len(self.rows):
+        n = self.written
+        if n >= len(self.rows):
             raise TapeOverflow("memory tape full: the run is longer than planned")
-        slot = self.rows[self.written]
-        slot[1:] = row[1:]
-        slot[0] = self.written
-        self.written += 1
+        rows = self.rows
+        rows[n] = row          # no reader in another process: no torn-row guard needed
+        rows[n, 0] = n
+        self.written = n + 1
 
     def recorder_error(self) -> int:
         return RECORDER_OK
