@@ -11,16 +11,15 @@ import argparse
 import sys
 from pathlib import Path
 
-from plantrig.sim._manifest import (
-    ManifestError,
-    extend_manifest,
+from plantrig.sim import (
+    RecordError,
     generate_keypair,
+    read_run,
+    recover_run,
     sign_folder,
     verify_folder,
 )
-from plantrig.sim._preflight import RecordError
-from plantrig.sim._reader import read_run
-from plantrig.sim._records import recover_run
+from plantrig.sim._manifest import ManifestError, extend_manifest
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 
@@ -129,7 +128,7 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    from plantrig.sim._export import export_csv, export_mat
+    from plantrig.sim import export_csv, export_mat
 
     folder = _folder(args.folder)
     if not (args.csv or args.mat):

@@ -17,8 +17,7 @@ from plantrig import CAUTION, REALTIME_BANNER, __version__
 from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._records_cli import add_record_commands
-from plantrig.sim import RigFileError, load_rig, run_to_folder, summarize
-from plantrig.sim._preflight import RecordError  # public once sim/__init__ exports it
+from plantrig.sim import RecordError, RigFileError, load_rig, run_to_folder, summarize
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE, EXIT_VERDICT = 0, 1, 2, 3
 

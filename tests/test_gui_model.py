@@ -19,16 +19,15 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-import plantrig.sim
 from plantrig.gui._columns import ColumnGroups
 from plantrig.gui._decimate import decimate_minmax
 from plantrig.gui._eventlog import EventLog, fault_edge, fault_name
-from plantrig.gui._faults import PLAIN_SENSOR_FAULTS, fault_catalogue, fault_targets
+from plantrig.gui._faults import fault_catalogue, fault_targets
 from plantrig.gui._model import DashboardModel, runs_nonzero
 from plantrig.gui._operator import MAX_TEXT, Operator
 from plantrig.gui._plots import plot_specs
 from plantrig.gui._store import LiveStore, RowStore
-from plantrig.sim import Command, load_rig, tick_columns
+from plantrig.sim import FAULT_KINDS, Command, load_rig, tick_columns
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 finite = st.floats(-1e6, 1e6, allow_nan=False)
@@ -200,20 +199,15 @@ def test_plots_pair_each_reference_with_the_output_its_loop_measures():
 
 
 # -- faults catalogue -------------------------------------------------------------------
-def test_fault_catalogue_follows_sim(monkeypatch):
-    class Entry:
-        target = "input"
-        params = {"factor": None}
-        description = "acts weaker"
-
-    monkeypatch.setattr(plantrig.sim, "FAULT_KINDS", {"weak_drive": Entry()}, raising=False)
-    (choice,) = fault_catalogue()
-    assert (choice.kind, choice.target, choice.parameter) == ("weak_drive", "input", "factor")
+def test_fault_catalogue_follows_sim():
+    choices = {c.kind: c for c in fault_catalogue()}
+    assert set(choices) == set(FAULT_KINDS)
+    stuck = choices["sensor_stuck"]
+    assert (stuck.target, stuck.parameter) == ("output", "value")
     rig = load_rig(CONFIGS / "tank.toml")
-    assert fault_targets(choice, rig) == ["inflow", "heater"]
-    monkeypatch.setattr(plantrig.sim, "FAULT_KINDS", [], raising=False)
-    assert fault_catalogue() == PLAIN_SENSOR_FAULTS
-    assert fault_targets(PLAIN_SENSOR_FAULTS[0], rig) == ["level", "temperature"]
+    assert fault_targets(stuck, rig) == ["level", "temperature"]
+    inputs = [c for c in choices.values() if c.target == "input"]
+    assert inputs and fault_targets(inputs[0], rig) == ["inflow", "heater"]
 
 
 # -- operator actions -----------------------------------------------------------------
