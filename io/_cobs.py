@@ -19,6 +19,14 @@ _CODE = tuple(bytes((n + 1,)) for n in range(254))
 
 def cobs_encode(data: bytes | bytearray | memoryview) -> bytes:
     """COBS-encode ``data``; the result holds no 0x00 and is not yet delimited."""
+    if len(data) < 254:
+        # no run can reach 254 bytes, so no 0xFF block: one code byte per zero, in place
+        buf = bytearray(1)
+        buf += data
+        buf.append(0)
+        stuff_short(buf)
+        del buf[-1]
+        return bytes(buf)
     blocks = []
     segments = bytes(data).split(b"\x00")
     for seg in segments:
@@ -32,6 +40,21 @@ def cobs_encode(data: bytes | bytearray | memoryview) -> bytes:
     return b"".join(blocks)
 
 
+def stuff_short(buf: bytearray) -> None:
+    """COBS-encode in place a packet framed as 0x00 + packet + 0x00 (packet < 254 bytes).
+
+    Every zero but the last becomes the distance to the next zero, so ``buf`` ends up as
+    the encoded packet followed by its delimiter; the frame encoder packs straight into it.
+    """
+    if len(buf) > 255:
+        raise ValueError(f"stuff_short takes packets under 254 bytes, got {len(buf) - 2}")
+    i = 0
+    for n in map(len, buf[1:-1].split(b"\x00")):  # split runs in C, the loop only stores
+        n += 1
+        buf[i] = n
+        i += n
+
+
 def cobs_decode(data: bytes | bytearray | memoryview) -> bytes:
     """Decode one COBS packet given without its 0x00 delimiter; raise CobsError if invalid."""
     data = bytes(data)
@@ -40,6 +63,24 @@ def cobs_decode(data: bytes | bytearray | memoryview) -> bytes:
         raise CobsError("empty COBS packet")
     if 0 in data:
         raise CobsError(f"zero byte at offset {data.index(0)} inside a COBS packet")
+    # fast path: a code below 0xFF always stands for its data and one zero (the last
+    # block's zero is the delimiter), so the zeros go back where the codes sit
+    out = bytearray(data)
+    i = 0
+    while i < n:
+        code = out[i]
+        if code == 0xFF:
+            return _decode_blocks(data, n)
+        if i + code > n:
+            raise CobsError(f"block at offset {i} needs {code - 1} bytes, {n - i - 1} left")
+        out[i] = 0
+        i += code
+    del out[0]
+    return bytes(out)
+
+
+def _decode_blocks(data: bytes, n: int) -> bytes:
+    """Block by block, for packets with 0xFF blocks (data runs of 254 bytes or more)."""
     out = bytearray()
     i = 0
     while i < n:

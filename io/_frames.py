@@ -26,7 +26,7 @@ from enum import IntEnum
 from math import isfinite
 from typing import ClassVar
 
-from plantrig.io._cobs import CobsError, cobs_decode, cobs_encode
+from plantrig.io._cobs import CobsError, cobs_decode, stuff_short
 from plantrig.io._crc import crc16
 
 PROTOCOL_VERSION = 1
@@ -101,7 +101,13 @@ _HEADER = struct.Struct("<BBHIBB")
 _CRC = struct.Struct("<H")
 _F32 = tuple(struct.Struct(f"<{n}f") for n in range(MAX_CHANNELS + 1))
 _I16 = tuple(struct.Struct(f"<{n}h") for n in range(MAX_CHANNELS + 1))
+# header and values in one pack, at offset 1 of a buffer that COBS then encodes in place
+_F32_BODY = tuple(struct.Struct(f"<BBHIBB{n}f") for n in range(MAX_CHANNELS + 1))
+_I16_BODY = tuple(struct.Struct(f"<BBHIBB{n}h") for n in range(MAX_CHANNELS + 1))
 _KINDS = {int(k): k for k in Kind}
+# plain ints on the hot path: comparing against IntEnum members costs an attribute lookup
+_F32_CODE, _I16_CODE = int(Encoding.F32), int(Encoding.I16)
+_HEARTBEAT, _STATUS = int(Kind.HEARTBEAT), int(Kind.STATUS)
 _I16_MIN, _I16_MAX = -(1 << 15), (1 << 15) - 1
 
 
@@ -115,9 +121,9 @@ def _check_shape(kind: int, encoding: int, count: int) -> None:
     """The rules that tie kind, encoding and count together (same order as the decoder)."""
     if count > MAX_CHANNELS:
         raise FrameError("channels", f"{count} channels, at most {MAX_CHANNELS}")
-    if kind == Kind.HEARTBEAT and count != 0:
+    if kind == _HEARTBEAT and count != 0:
         raise FrameError("channels", f"heartbeat carries no values, got {count}")
-    if kind == Kind.STATUS and (encoding != Encoding.F32 or count < STATUS_MIN_CHANNELS):
+    if kind == _STATUS and (encoding != _F32_CODE or count < STATUS_MIN_CHANNELS):
         raise FrameError("channels", f"status needs >= {STATUS_MIN_CHANNELS} float32 values")
 
 
@@ -145,17 +151,20 @@ def encode_frame(
     if kind not in _KINDS:
         raise FrameError("kind", f"unknown kind {kind!r}")
     count = len(values)
-    if encoding == Encoding.F32:
+    if encoding == _F32_CODE:
         _check_shape(kind, encoding, count)
         if count and not isfinite(sum(values)):
             detail = _first_non_finite(values)
             if detail:
                 raise FrameError("non_finite", detail)
+        body = _F32_BODY[count]
+        buf = bytearray(body.size + 4)  # 0x00 for COBS, header and values, CRC, delimiter
         try:
-            payload = _F32[count].pack(*values)
+            body.pack_into(buf, 1, PROTOCOL_VERSION, kind, seq & 0xFFFF, tick & 0xFFFFFFFF,
+                           encoding, count, *values)
         except OverflowError:
             raise FrameError("range", "value beyond the float32 range") from None
-    elif encoding == Encoding.I16:
+    elif encoding == _I16_CODE:
         _check_shape(kind, encoding, count)
         _check_scale(scale)
         detail = _first_non_finite(values)
@@ -165,14 +174,16 @@ def encode_frame(
         for i, r in enumerate(raws):
             if not _I16_MIN <= r <= _I16_MAX:
                 raise FrameError("range", f"value {i} is {r} counts, outside int16")
-        payload = _I16[count].pack(*raws)
+        body = _I16_BODY[count]
+        buf = bytearray(body.size + 4)
+        body.pack_into(buf, 1, PROTOCOL_VERSION, kind, seq & 0xFFFF, tick & 0xFFFFFFFF,
+                       encoding, count, *raws)
     else:
         raise FrameError("encoding", f"unknown encoding {encoding!r}")
-    body = (
-        _HEADER.pack(PROTOCOL_VERSION, kind, seq & 0xFFFF, tick & 0xFFFFFFFF, encoding, count)
-        + payload
-    )
-    return cobs_encode(body + _CRC.pack(crc16(body))) + FRAME_DELIMITER
+    end = body.size + 1
+    _CRC.pack_into(buf, end, crc16(buf[1:end]))
+    stuff_short(buf)  # MAX_RAW_SIZE < 254: a frame is always short enough
+    return bytes(buf)
 
 
 def decode_frame(buf: bytes | bytearray, *, scale: float = 1.0) -> Frame:
@@ -206,9 +217,9 @@ def decode_frame(buf: bytes | bytearray, *, scale: float = 1.0) -> Frame:
     kind = _KINDS.get(kind_code)
     if kind is None:
         raise FrameError("kind", f"unknown kind {kind_code}")
-    if encoding == Encoding.F32:
+    if encoding == _F32_CODE:
         width = 4
-    elif encoding == Encoding.I16:
+    elif encoding == _I16_CODE:
         width = 2
     else:
         raise FrameError("encoding", f"unknown encoding {encoding}")
@@ -260,37 +271,34 @@ class FrameSplitter:
 
     def feed(self, data: bytes | bytearray | memoryview) -> list[bytes]:
         """Add received bytes; return the frames they complete, oldest first."""
-        data = bytes(data)
-        delim, cap, buf = self.DELIMITER, self.MAX_LENGTH, self._buf
+        parts = bytes(data).split(self.DELIMITER)  # in C; the last part is still open
+        rest = parts.pop()
+        cap, buf = self.MAX_LENGTH, self._buf
         frames: list[bytes] = []
-        start = 0
-        while (end := data.find(delim, start)) >= 0:
+        if parts:
             if self._skipping:
-                self.dropped_bytes += end - start
+                self.dropped_bytes += len(parts[0])
+                parts[0] = b""
                 self._skipping = False
-            else:
-                if buf:
-                    buf += data[start:end]
-                    piece = bytes(buf)
-                    buf.clear()
-                else:
-                    piece = data[start:end]
+            elif buf:
+                buf += parts[0]
+                parts[0] = bytes(buf)
+                buf.clear()
+            for piece in parts:
                 if len(piece) > cap:
                     self.oversize += 1
                     self.dropped_bytes += len(piece)
                 elif piece:
                     frames.append(piece)
-            start = end + 1
-        rest = len(data) - start
         if self._skipping:
-            self.dropped_bytes += rest
-        elif len(buf) + rest > cap:
+            self.dropped_bytes += len(rest)
+        elif len(buf) + len(rest) > cap:
             self.oversize += 1
-            self.dropped_bytes += len(buf) + rest
+            self.dropped_bytes += len(buf) + len(rest)
             buf.clear()
             self._skipping = True
         else:
-            buf += data[start:]
+            buf += rest
         return frames
 
 

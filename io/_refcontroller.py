@@ -44,6 +44,9 @@ FIFO_PRIORITY = 5   # below the rig's loop (plantrig.sim uses 10), above ordinar
 
 # status frame values: [state, detail, rx_ok, rx_bad, answered]
 STATE_WAITING, STATE_RUNNING = 0.0, 1.0
+# enum members as module names: Kind.X is an attribute lookup on the enum class each time
+_SENSOR, _COMMAND = Kind.SENSOR, Kind.COMMAND
+_QUIET_KINDS = frozenset({int(Kind.HEARTBEAT), int(Kind.STATUS)})  # not answered, not bad
 
 
 class Transport(Protocol):
@@ -143,21 +146,25 @@ class ReferenceController:
     def on_bytes(self, data: bytes) -> list[bytes]:
         """Feed received bytes; return the frames to send in answer, oldest first."""
         replies = []
+        decode, rx_seq, counts, n_y = self.wire.decode, self.rx_seq, self.counts, len(self.y)
         for piece in self.splitter.feed(data):
             try:
-                frame = self.wire.decode(piece, Kind.SENSOR)
+                frame = decode(piece, _SENSOR)
             except FrameError:
-                self.counts.rx_bad += 1
+                counts.rx_bad += 1
                 continue
-            dups, late = self.rx_seq.duplicates, self.rx_seq.out_of_order
-            if not self.rx_seq.check(frame.seq):
-                self.counts.duplicates += self.rx_seq.duplicates - dups
-                self.counts.out_of_order += self.rx_seq.out_of_order - late
+            dups, late = rx_seq.duplicates, rx_seq.out_of_order
+            if not rx_seq.check(frame.seq):
+                counts.duplicates += rx_seq.duplicates - dups
+                counts.out_of_order += rx_seq.out_of_order - late
                 continue
-            if frame.kind in (Kind.HEARTBEAT, Kind.STATUS):
+            kind = frame.kind
+            if kind != _SENSOR:
+                if kind not in _QUIET_KINDS:
+                    counts.rx_bad += 1
                 continue
-            if frame.kind != Kind.SENSOR or len(frame.values) != len(self.y):
-                self.counts.rx_bad += 1
+            if len(frame.values) != n_y:
+                counts.rx_bad += 1
                 continue
             reply = self.answer(frame.tick, frame.values)
             if reply is not None:
@@ -185,7 +192,7 @@ class ReferenceController:
         """The command frame answering the sensor frame stamped ``stamp``."""
         self.command_for(stamp, values)
         try:
-            return self.wire.encode(Kind.COMMAND, self._next_seq(), stamp, self.u.tolist())
+            return self.wire.encode(_COMMAND, self._next_seq(), stamp, self.u.tolist())
         except FrameError:
             self.counts.tx_errors += 1
             return None

@@ -38,6 +38,8 @@ RTT_RING = 1 << 16     # round-trip samples kept for percentiles
 LATENCY_BINS = 256     # latency histogram in ticks; the last bin holds everything above
 HALF = TICK_MODULUS // 2
 REJECT_REASONS = ("count", "range", "echo", "kind")
+# enum members as module names: Kind.X is an attribute lookup on the enum class each time
+_SENSOR, _COMMAND, _HEARTBEAT, _STATUS = Kind.SENSOR, Kind.COMMAND, Kind.HEARTBEAT, Kind.STATUS
 
 
 class BytePort(Protocol):
@@ -240,7 +242,7 @@ class SerialLink:
             out = self.sent_buf
         try:
             # a list packs faster than numpy scalars one by one
-            data = self.wire.encode(Kind.SENSOR, self.tx_seq, stamp, out.tolist())
+            data = self.wire.encode(_SENSOR, self.tx_seq, stamp, out.tolist())
         except FrameError as exc:
             self.n["encode_errors"] += 1
             self._event("encode_error", f"sensor frame for tick {tick} not sent: {exc}",
@@ -263,8 +265,9 @@ class SerialLink:
             return
         if done < len(data):
             self.pending = data[done:]
-        self.n["frames_out"] += 1
-        self.n["bytes_out"] += len(data)
+        n = self.n
+        n["frames_out"] += 1
+        n["bytes_out"] += len(data)
         self.last_sent_stamp = stamp
         if tick >= 0:  # the prime waits out the run's start-up: no round-trip sample
             i = stamp % STAMP_RING
@@ -349,12 +352,13 @@ class SerialLink:
     def _accept(self, piece: bytes) -> None:
         """Decode one piece and, if it is a usable command, make it the newest."""
         try:
-            frame = self.wire.decode(piece, Kind.COMMAND)
+            frame = self.wire.decode(piece, _COMMAND)
         except FrameError as exc:
             self.n[f"bad_{exc.reason}"] += 1
             self._event("bad_frame", str(exc), exc.reason)
             return
-        self.n["frames_in"] += 1
+        n = self.n
+        n["frames_in"] += 1
         seq = self.seq
         dups = seq.duplicates
         if not seq.check(frame.seq):
@@ -364,22 +368,23 @@ class SerialLink:
                 self._event("out_of_order_frame", f"seq {frame.seq} is older than seq "
                                                   f"{seq.last}; dropped")
             return
-        if frame.kind == Kind.HEARTBEAT:
-            self.n["heartbeats_in"] += 1
+        kind = frame.kind
+        if kind != _COMMAND:
+            if kind == _HEARTBEAT:
+                n["heartbeats_in"] += 1
+            elif kind == _STATUS:
+                n["status_in"] += 1
+                self.status = frame.values
+            else:
+                self._reject("kind", f"a {kind.name} frame from the controller")
             return
-        if frame.kind == Kind.STATUS:
-            self.n["status_in"] += 1
-            self.status = frame.values
-            return
-        if frame.kind != Kind.COMMAND:
-            self._reject("kind", f"a {frame.kind.name} frame from the controller")
-            return
-        age = (self._k - frame.tick) % TICK_MODULUS
+        tick = frame.tick
+        age = (self._k - tick) % TICK_MODULUS
         if age == 0 or age >= HALF or self.last_sent_stamp is None:
-            self._reject("echo", f"answers tick {frame.tick}, which was never sent")
+            self._reject("echo", f"answers tick {tick}, which was never sent")
             return
-        if self.last_echo is not None and (frame.tick - self.last_echo) % TICK_MODULUS >= HALF:
-            self._reject("echo", f"answers tick {frame.tick}, older than the command in use "
+        if self.last_echo is not None and (tick - self.last_echo) % TICK_MODULUS >= HALF:
+            self._reject("echo", f"answers tick {tick}, older than the command in use "
                                  f"(tick {self.last_echo})")
             return
         values = frame.values
@@ -387,8 +392,7 @@ class SerialLink:
             self._reject("count", f"{len(values)} values, the rig has {self.n_inputs} inputs")
             return
         clamped = False
-        for i, v in enumerate(values):
-            lo, hi = self.lo[i], self.hi[i]
+        for i, (v, lo, hi) in enumerate(zip(values, self.lo, self.hi, strict=True)):
             if v < lo or v > hi:
                 if not self.clamp:
                     self._reject("range", f"value {i} = {v:g} outside [{lo:g}, {hi:g}]")
@@ -397,16 +401,16 @@ class SerialLink:
         self.cmd[:] = values
         if clamped:
             np.clip(self.cmd, self.lo, self.hi, out=self.cmd)
-            self.n["clamped"] += 1
+            n["clamped"] += 1
             self._event("clamped_command", f"clamped to the input range: {list(values)}")
         self.fresh = True
-        self.last_echo = frame.tick
-        self.n["commands_in"] += 1
-        self.latency_hist[min(age, LATENCY_BINS - 1)] += 1
+        self.last_echo = tick
+        n["commands_in"] += 1
+        self.latency_hist[age if age < LATENCY_BINS else LATENCY_BINS - 1] += 1
         if age > 1:
-            self.n["late"] += 1
-        i = frame.tick % STAMP_RING
-        if self.sent_stamp[i] == frame.tick:
+            n["late"] += 1
+        i = tick % STAMP_RING
+        if self.sent_stamp[i] == tick:
             self.rtt_ms[self.rtt_count % RTT_RING] = (self.clock_ns() - self.sent_ns[i]) / 1e6
             self.rtt_count += 1
 

@@ -22,6 +22,9 @@ from plantrig.io._frames import (
 from plantrig.io._textline import LineSplitter, decode_line, encode_line
 
 I16_MAX = (1 << 15) - 1
+# enum members as module names: Kind.X is an attribute lookup on the enum class each time
+_STATUS, _HEARTBEAT, _F32 = Kind.STATUS, Kind.HEARTBEAT, Encoding.F32
+_VALUE_KINDS = frozenset({int(Kind.SENSOR), int(Kind.COMMAND)})
 
 
 class WireFormat:
@@ -57,11 +60,11 @@ class WireFormat:
         with no values and a text STATUS is not sent (the caller checks ``can_status``).
         """
         if self.text:
-            if kind == Kind.STATUS:
+            if kind == _STATUS:
                 raise FrameError("kind", "text lines carry no status")
-            return encode_line(seq, tick, values if kind != Kind.HEARTBEAT else (),
+            return encode_line(seq, tick, values if kind != _HEARTBEAT else (),
                                checksum=self.checksum)
-        encoding = self.encoding if kind in (Kind.SENSOR, Kind.COMMAND) else Encoding.F32
+        encoding = self.encoding if kind in _VALUE_KINDS else _F32
         return encode_frame(kind, seq, tick, values, encoding=encoding, scale=self.scale)
 
     @property
