@@ -137,6 +137,7 @@ class SerialLink:
         self.wire = WireFormat(settings.protocol, settings.encoding, settings.scale,
                                settings.checksum)
         self.splitter = self.wire.splitter()
+        self.clip_sensors = math.isfinite(self.wire.limit)
         self.seq = SeqTracker()
         self.clock_ns = clock_ns
         self.tick_s = rig.tick
@@ -150,7 +151,7 @@ class SerialLink:
         self.gate = _EventGate(settings.events_per_kind)
         self.events: list[Event] = []
         self.io: BytePort | None = None
-        self.cmd = np.zeros(self.n_inputs)
+        self.cmd: tuple[float, ...] = (0.0,) * self.n_inputs  # the newest valid command
         self.sent_buf = np.zeros(len(rig.outputs))
         self.fresh = False
         self.lost = False
@@ -162,10 +163,11 @@ class SerialLink:
         self.tx_seq = 0
         self.pending = b""
         self.status: tuple[float, ...] = ()
-        self.sent_stamp = np.full(STAMP_RING, -1, dtype=np.int64)
-        self.sent_ns = np.zeros(STAMP_RING, dtype=np.int64)
-        self.latency_hist = np.zeros(LATENCY_BINS, dtype=np.int64)
-        self.rtt_ms = np.zeros(RTT_RING)
+        # plain lists: one element at a time they cost a fraction of a numpy scalar access
+        self.sent_stamp = [-1] * STAMP_RING
+        self.sent_ns = [0] * STAMP_RING
+        self.latency_hist = [0] * LATENCY_BINS
+        self.rtt_ms = [0.0] * RTT_RING
         self.rtt_count = 0
         self.oversize_seen = 0
         self.n: dict[str, int] = dict.fromkeys(
@@ -235,7 +237,7 @@ class SerialLink:
             return
         stamp = tick % TICK_MODULUS
         out = values
-        if math.isfinite(self.wire.limit):
+        if self.clip_sensors:
             np.clip(values, -self.wire.limit, self.wire.limit, out=self.sent_buf)
             if not np.array_equal(self.sent_buf, values):
                 self.n["sensor_clipped"] += 1
@@ -288,14 +290,15 @@ class SerialLink:
         h["out_of_order"] = float(self.seq.out_of_order)
         h["lost_in"] = float(self.seq.lost)
         h["resyncs"] = float(self.seq.resyncs)
-        total = int(self.latency_hist.sum())
+        hist = np.array(self.latency_hist)
+        total = int(hist.sum())
         if total:
-            cum = np.cumsum(self.latency_hist)
+            cum = np.cumsum(hist)
             h["latency_ticks_p50"] = float(np.searchsorted(cum, (total + 1) // 2))
-            h["latency_ticks_max"] = float(np.flatnonzero(self.latency_hist)[-1])
+            h["latency_ticks_max"] = float(np.flatnonzero(hist)[-1])
         n = min(self.rtt_count, RTT_RING)
         if n:
-            samples = self.rtt_ms[:n]
+            samples = np.array(self.rtt_ms[:n])
             h["latency_ms_p50"] = float(np.percentile(samples, 50))
             h["latency_ms_p99"] = float(np.percentile(samples, 99))
             h["latency_ms_max"] = float(samples.max())
@@ -398,11 +401,13 @@ class SerialLink:
                     self._reject("range", f"value {i} = {v:g} outside [{lo:g}, {hi:g}]")
                     return
                 clamped = True
-        self.cmd[:] = values
         if clamped:
-            np.clip(self.cmd, self.lo, self.hi, out=self.cmd)
+            self.cmd = tuple(min(max(v, lo), hi)
+                             for v, lo, hi in zip(values, self.lo, self.hi, strict=True))
             n["clamped"] += 1
             self._event("clamped_command", f"clamped to the input range: {list(values)}")
+        else:
+            self.cmd = values
         self.fresh = True
         self.last_echo = tick
         n["commands_in"] += 1
