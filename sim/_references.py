@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import bisect
 import math
 from dataclasses import dataclass
 
@@ -67,12 +68,19 @@ class Table:
         self.times = times
         self.values = np.array([p[1] for p in points], dtype=np.float64)
         self.interpolation = interpolation
+        # plain lists and bisect: evaluated every tick, where numpy's call cost dominates
+        self._t = times.tolist()
+        self._v = self.values.tolist()
 
     def value(self, t: float) -> float:
-        if self.interpolation == "linear":
-            return float(np.interp(t, self.times, self.values))
-        index = int(np.searchsorted(self.times, t, side="right")) - 1
-        return float(self.values[max(index, 0)])
+        ts, vs = self._t, self._v
+        i = bisect.bisect_right(ts, t)         # points at or before t
+        if i == 0:
+            return vs[0]
+        if i == len(ts) or self.interpolation == "hold":
+            return vs[i - 1]
+        t0, t1 = ts[i - 1], ts[i]
+        return vs[i - 1] + (vs[i] - vs[i - 1]) * (t - t0) / (t1 - t0)
 
 
 Reference = Step | Ramp | Sine | Table
