@@ -27,6 +27,7 @@ from __future__ import annotations
 import dataclasses
 import gc
 import os
+import select
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -36,6 +37,7 @@ import numpy as np
 
 from plantrig.io._frames import TICK_MODULUS, FrameError, Kind, SeqTracker
 from plantrig.io._link_config import LinkSettings
+from plantrig.io._pty import FdPort
 from plantrig.io._wire import WireFormat
 from plantrig.sim import Rig, RigFileError, RigIssue, build_controller
 
@@ -74,14 +76,25 @@ class SerialTransport:
                                          stopbits=options["stop_bits"], timeout=poll_s,
                                          write_timeout=WRITE_TIMEOUT_S)
         self.name = port
+        self.poll_s = poll_s
+        # A POSIX device is driven through its fd: one select and one read per frame,
+        # where pyserial spends an in_waiting ioctl, its read loop and a second ioctl.
+        self._fd: FdPort | None = None
+        if os.name == "posix" and isinstance(self.ser, serial.Serial):
+            self._fd = FdPort(self.ser.fileno(), name=port, owns_fd=False)
 
     def read(self) -> bytes:
+        if self._fd is not None:
+            self._fd.wait_readable(self.poll_s)
+            return self._fd.read_some()
         data = self.ser.read(max(1, self.ser.in_waiting))   # waits up to poll_s
         if data and self.ser.in_waiting:
             data += self.ser.read(self.ser.in_waiting)
         return bytes(data)
 
     def write(self, data: bytes) -> bool:
+        if self._fd is not None:
+            return _write_all(self._fd, data, WRITE_TIMEOUT_S)
         try:
             self.ser.write(data)
         except self._timeout_error:
@@ -90,6 +103,22 @@ class SerialTransport:
 
     def close(self) -> None:
         self.ser.close()
+
+
+def _write_all(port: FdPort, data: bytes, timeout_s: float) -> bool:
+    """Write all of ``data``, waiting for room at most ``timeout_s``; False if it did not
+    fit in time (the rest is dropped; the far end resynchronises at the next delimiter)."""
+    view = memoryview(data)
+    deadline = time.monotonic() + timeout_s
+    while view:
+        n = port.write_some(view)
+        view = view[n:]
+        if view:
+            remaining = deadline - time.monotonic()
+            if remaining <= 0:
+                return False
+            select.select([], [port.fd], [], remaining)
+    return True
 
 
 def law_spec(rig: Rig, settings: LinkSettings):  # type: ignore[no-untyped-def]
