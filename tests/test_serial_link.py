@@ -17,6 +17,7 @@ import signal
 import subprocess
 import sys
 import threading
+import time
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -321,3 +322,34 @@ def test_unknown_link_kind_gets_a_did_you_mean(tmp_path: Path) -> None:
     issues = check_link_table(load_rig(path))
     assert len(issues) == 1 and issues[0].key == "link.kind"
     assert "did you mean 'serial'" in issues[0].message
+
+
+def test_controller_write_waits_for_room_then_gives_up():
+    # a real pty nobody reads: the kernel buffer fills, a frame then waits its timeout and
+    # is reported as dropped; once the far end drains, whole frames go out again
+    from plantrig.io._pty import FdPort, open_pty_pair
+    from plantrig.io._refcontroller import _write_all
+
+    pair = open_pty_pair()
+    try:
+        writer = FdPort(pair.slave_fd, owns_fd=False)
+        reader = FdPort(pair.master_fd, owns_fd=False)
+        frame = bytes(range(1, 19)) + b"\x00"
+        refused = 0
+        while refused < 20:        # full once the kernel's buffers on both sides are
+            if writer.write_some(frame):
+                refused = 0
+            else:
+                refused += 1
+                time.sleep(0.005)
+        assert _write_all(writer, frame, 0.01) is False
+        while reader.read_some():
+            pass
+        assert _write_all(writer, frame, 0.5) is True
+        got = b""
+        while not got.endswith(frame):
+            got += reader.read_some()
+        assert got.endswith(frame)
+    finally:
+        pair.close_slave()
+        pair.close_master()
