@@ -48,6 +48,7 @@ from plantrig.sim import (
     RigFileError,
     RigIssue,
     check_controller_table,
+    describe_value,
 )
 
 COMMON_DEFAULTS: dict[str, Any] = {
@@ -112,44 +113,37 @@ class Issues:
         return table[key]
 
 
-def _found(v: Any) -> str:
-    if isinstance(v, bool):
-        return f"boolean {str(v).lower()}"
-    if isinstance(v, dict):
-        return "a table"
-    if isinstance(v, list):
-        return f"a list of {len(v)}"
-    return f"{type(v).__name__} {v!r}"
-
-
 def one_of(options: tuple[Any, ...]) -> Callable[[Any], str | None]:
     def check(v: Any) -> str | None:
         if v in options and not isinstance(v, bool):
             return None
         close = difflib.get_close_matches(str(v), [str(o) for o in options], n=1)
         hint = f"; did you mean '{close[0]}'?" if close else ""
-        return f"expected one of {', '.join(str(o) for o in options)}, found {_found(v)}{hint}"
+        listed = ", ".join(str(o) for o in options)
+        return f"expected one of {listed}, found {describe_value(v)}{hint}"
     return check
 
 
 def positive_number(v: Any) -> str | None:
     if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v) or v <= 0:
-        return f"expected a positive number, found {_found(v)}"
+        return f"expected a positive number, found {describe_value(v)}"
     return None
 
 
 def positive_int(v: Any) -> str | None:
     if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
-        return f"expected a positive whole number, found {_found(v)}"
+        return f"expected a positive whole number, found {describe_value(v)}"
     return None
 
 
 def boolean(v: Any) -> str | None:
-    return None if isinstance(v, bool) else f"expected true or false, found {_found(v)}"
+    return None if isinstance(v, bool) else f"expected true or false, found {describe_value(v)}"
 
 
 def text(v: Any) -> str | None:
-    return None if isinstance(v, str) and v else f"expected a non-empty string, found {_found(v)}"
+    if isinstance(v, str) and v:
+        return None
+    return f"expected a non-empty string, found {describe_value(v)}"
 
 
 def _check_serial(rig: Rig, table: dict[str, Any], issues: Issues) -> dict[str, Any]:

@@ -121,6 +121,8 @@ class MqttSettings:
 
 
 def _found(v: Any) -> str:
+    # plantrig.sim.describe_value's wording; a copy, because this module is imported by
+    # the MQTT worker process, which must boot without the simulator (scipy) behind it
     if isinstance(v, bool):
         return f"boolean {str(v).lower()}"
     if isinstance(v, dict):

@@ -9,7 +9,7 @@ from plantrig.sim._commands import Command, CommandInbox
 from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
 from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
-from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
 from plantrig.sim._export import export_csv, export_mat
 from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultSpec, parse_fault
 from plantrig.sim._interlocks import InterlockSpec, SafetySettings
@@ -62,6 +62,7 @@ __all__ = [
     "FAULT_KINDS", "DisturbanceSpec", "FaultKind", "FaultSpec", "InterlockSpec", "LimitSpec",
     "SafetySettings", "Scenario", "ScenarioFileError", "Verdict", "build_scenario", "evaluate",
     "load_scenario", "parse_fault", "verdict_lines", "write_verdicts",
+    "describe_value", "one_of",
     # run records
     "RecordError", "RunRecord", "export_csv", "export_mat", "generate_keypair", "read_run",
     "recover_run", "sign_folder", "verify_folder",

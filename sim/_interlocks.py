@@ -33,6 +33,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim._contracts import Event
+from plantrig.sim._errors import one_of
 from plantrig.sim._limits import LimitBank, LimitSpec
 
 if TYPE_CHECKING:
@@ -127,7 +128,7 @@ def parse_interlocks(c: _Checker, doc: dict[str, Any], limits: list[LimitSpec],
         if on is not None and not on:
             c.add(f"{where}.on", "expected at least one cause")
         action = c.take(entry, "action", where, "str", default="safe_inputs",
-                        check=_one_of(ACTIONS)) or "safe_inputs"
+                        check=one_of(ACTIONS)) or "safe_inputs"
         chosen = c.take(entry, "inputs", where, "list", default=[]) or []
         for j, inp in enumerate(chosen):
             if inp not in input_names:
@@ -149,16 +150,6 @@ def parse_interlocks(c: _Checker, doc: dict[str, Any], limits: list[LimitSpec],
                                   f"lists 'limit:{spec.name}' in its `on`; add it to one "
                                   "(or keep warn bounds only)")
     return out
-
-
-def _one_of(options: tuple[str, ...]) -> Callable[[Any], str | None]:
-    def check(v: Any) -> str | None:
-        if v in options:
-            return None
-        close = difflib.get_close_matches(str(v), options, n=1)
-        hint = f"; did you mean '{close[0]}'?" if close else ""
-        return f"expected one of {', '.join(options)}, found {v!r}{hint}"
-    return check
 
 
 class Safety:

@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 
-from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
 from plantrig.sim._faults import DisturbanceSpec, parse_disturbances
 from plantrig.sim._interlocks import (
     InterlockSpec,
@@ -125,7 +125,7 @@ class _Checker:
                 self.add(_join(path, key), "missing table")
             return {}
         if not isinstance(value, dict):
-            self.add(_join(path, key), f"expected a table, found {_describe(value)}")
+            self.add(_join(path, key), f"expected a table, found {describe_value(value)}")
             return {}
         return value
 
@@ -168,24 +168,12 @@ def _join(path: str, key: str) -> str:
     return f"{path}.{key}" if path else key
 
 
-def _describe(value: Any) -> str:
-    if isinstance(value, bool):
-        return f"boolean {str(value).lower()}"
-    if isinstance(value, dict):
-        return "a table"
-    if isinstance(value, list):
-        return f"a list of {len(value)}"
-    if isinstance(value, str):
-        return f"string {value!r}"
-    return f"{type(value).__name__} {value!r}"
-
-
 def _is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
 def _check_kind(kind: str, value: Any) -> str | None:
-    expected = f"expected {_KIND_TEXT[kind]}, found {_describe(value)}"
+    expected = f"expected {_KIND_TEXT[kind]}, found {describe_value(value)}"
     if kind == "number":
         if not _is_number(value):
             return expected
@@ -224,16 +212,6 @@ def _positive(value: Any) -> str | None:
     return None if value > 0 else f"expected a positive number, found {value!r}"
 
 
-def _one_of(options: tuple[str, ...]) -> Callable[[Any], str | None]:
-    def check(value: Any) -> str | None:
-        if value in options:
-            return None
-        close = difflib.get_close_matches(str(value), options, n=1)
-        hint = f"; did you mean '{close[0]}'?" if close else ""
-        return f"expected one of {', '.join(options)}, found {value!r}{hint}"
-    return check
-
-
 RIG_KEYS = {"name", "description", "tick", "duration", "mode", "seed", "on_overrun",
             "on_link_silence"}
 TOP_KEYS = {"rig", "plant", "controller", "references", "link", "sensors", "actuators",
@@ -269,12 +247,12 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     description = c.take(rig_t, "description", "rig", "str", default="") or ""
     tick = c.take(rig_t, "tick", "rig", "number", check=_positive)
     duration = c.take(rig_t, "duration", "rig", "number", check=_positive)
-    mode = c.take(rig_t, "mode", "rig", "str", default="fast", check=_one_of(MODES)) or "fast"
+    mode = c.take(rig_t, "mode", "rig", "str", default="fast", check=one_of(MODES)) or "fast"
     seed = c.take(rig_t, "seed", "rig", "int", default=0)
     on_overrun = c.take(rig_t, "on_overrun", "rig", "str", default="skip",
-                        check=_one_of(OVERRUN_POLICIES)) or "skip"
+                        check=one_of(OVERRUN_POLICIES)) or "skip"
     on_silence = c.take(rig_t, "on_link_silence", "rig", "str", default="hold",
-                        check=_one_of(("hold", "safe_value"))) or "hold"
+                        check=one_of(("hold", "safe_value"))) or "hold"
     if tick and duration and duration < tick:
         c.add("rig.duration", f"expected at least one tick ({tick} s), found {duration}")
 
@@ -316,7 +294,7 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
 def _list_of_tables(c: _Checker, doc: dict[str, Any], key: str) -> list[dict[str, Any]]:
     value = doc.get(key, [])
     if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
-        c.add(key, f"expected an array of tables ([[{key}]]), found {_describe(value)}")
+        c.add(key, f"expected an array of tables ([[{key}]]), found {describe_value(value)}")
         return []
     return value
 
@@ -332,7 +310,7 @@ def _signals(c: _Checker, plant_t: dict[str, Any], group: str) -> list[Signal]:
         where = f"{path}[{i}]"
         if not isinstance(entry, dict):
             c.add(where, f"expected a table like {{ name = \"...\", unit = \"...\" }}, "
-                         f"found {_describe(entry)}")
+                         f"found {describe_value(entry)}")
             continue
         c.no_unknown(entry, SIGNAL_KEYS, where)
         name = c.take(entry, "name", where, "str")
@@ -368,7 +346,7 @@ PLANT_COMMON = {"kind", "states", "inputs", "outputs", "x0"}
 
 def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: int, m: int,
            p: int) -> tuple[Plant | None, str, int]:
-    kind = c.take(t, "kind", "plant", "str", check=_one_of(PLANT_KINDS))
+    kind = c.take(t, "kind", "plant", "str", check=one_of(PLANT_KINDS))
     if kind is None:
         return None, "rk4", 1
     c.no_unknown(t, PLANT_COMMON | PLANT_KEYS[kind], "plant")
@@ -416,7 +394,7 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
     h_name = c.take(t, "output", "plant", "str")
     params = c.take(t, "params", "plant", "table", default={})
     method = c.take(t, "method", "plant", "str", default="rk4",
-                    check=_one_of(("rk4", "euler"))) or "rk4"
+                    check=one_of(("rk4", "euler"))) or "rk4"
     substeps = c.take(t, "substeps", "plant", "int", default=1,
                       check=lambda v: None if v >= 1 else f"expected >= 1, found {v}") or 1
     if module_name is None or f_name is None or h_name is None:
@@ -488,7 +466,7 @@ def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
         where = f"references[{i}]"
         name = c.take(entry, "name", where, "str")
         unit = c.take(entry, "unit", where, "str", default="") or ""
-        kind = c.take(entry, "kind", where, "str", check=_one_of(REFERENCE_KINDS))
+        kind = c.take(entry, "kind", where, "str", check=one_of(REFERENCE_KINDS))
         if kind is None:
             continue
         c.no_unknown(entry, {"name", "unit", "kind"} | REFERENCE_KEYS[kind], where)
@@ -510,7 +488,7 @@ def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
         else:
             points = c.take(entry, "points", where, "matrix")
             interp = c.take(entry, "interpolation", where, "str", default="linear",
-                            check=_one_of(("linear", "hold")))
+                            check=one_of(("linear", "hold")))
             waveform = None
             if points is not None and interp is not None:
                 if not all(isinstance(p, list) and len(p) == 2 for p in points):
@@ -540,7 +518,7 @@ CONTROLLER_KEYS = {
 def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs: list[Signal],
                 references: list[NamedReference], plant: Plant | None) -> ControllerSpec:
     t = c.table(doc, "controller", "", required=True)
-    kind = c.take(t, "kind", "controller", "str", check=_one_of(CONTROLLER_KINDS))
+    kind = c.take(t, "kind", "controller", "str", check=one_of(CONTROLLER_KINDS))
     if kind is None:
         return ControllerSpec("external")
     c.no_unknown(t, {"kind"} | CONTROLLER_KEYS[kind], "controller")
@@ -565,7 +543,8 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
         for i, loop in enumerate(loops or []):
             where = f"controller.loops[{i}]"
             if not isinstance(loop, dict):
-                c.add(where, f"expected a table ([[controller.loops]]), found {_describe(loop)}")
+                c.add(where, "expected a table ([[controller.loops]]), found "
+                             f"{describe_value(loop)}")
                 continue
             c.no_unknown(loop, PID_KEYS, where)
             ls: dict[str, Any] = {
@@ -582,7 +561,7 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                 ls[key] = c.take(loop, key, where, "number", default=default)
             ls["anti_windup"] = c.take(loop, "anti_windup", where, "str",
                                        default="back_calculation",
-                                       check=_one_of(("back_calculation", "clamp", "none")))
+                                       check=one_of(("back_calculation", "clamp", "none")))
             settings["loops"].append(ls)
         drives = [ls["drive"] for ls in settings["loops"] if ls["drive"]]
         for d in {d for d in drives if drives.count(d) > 1}:
@@ -594,7 +573,7 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
         if refs is not None:
             for j, r in enumerate(refs):
                 problem = name_in(ref_names, "references")(r) if isinstance(r, str) else \
-                    f"expected a reference name, found {_describe(r)}"
+                    f"expected a reference name, found {describe_value(r)}"
                 if problem:
                     c.add(f"controller.references[{j}]", problem)
         m, p = len(inputs), len(outputs)
@@ -622,7 +601,7 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                 elif not isinstance(ref, str) or ref not in ref_names:
                     c.add(f"controller.drive.{inp}", name_in(ref_names, "references")(ref)
                           if isinstance(ref, str) else f"expected a reference name, "
-                                                       f"found {_describe(ref)}")
+                                                       f"found {describe_value(ref)}")
             settings["drive"] = drive
     return ControllerSpec(kind, settings)
 

@@ -36,10 +36,10 @@ from numpy.typing import NDArray
 
 from plantrig.sim._commands import Command
 from plantrig.sim._contracts import Event
-from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._errors import RigFileError, RigIssue, describe_value
 from plantrig.sim._faults import parse_fault
 from plantrig.sim._interlocks import ESTOP
-from plantrig.sim._rigfile import Rig, _Checker, _describe
+from plantrig.sim._rigfile import Rig, _Checker
 from plantrig.sim._verdicts import VerdictSpec, parse_verdicts
 
 TRIGGERS = ("at", "when", "on_trip", "on_phase")
@@ -76,7 +76,7 @@ class Condition:
 def parse_condition(text: Any, columns: list[str]) -> tuple[Condition | None, str]:
     """A condition such as ``"y:level >= 0.4"``; (None, why) when it is not one."""
     if not isinstance(text, str):
-        return None, f"expected a condition such as \"y:level > 0.4\", found {_describe(text)}"
+        return None, f"expected a condition such as \"y:level > 0.4\", found {describe_value(text)}"
     m = _CONDITION.match(text)
     if m is None:
         return None, (f"expected '<column> <op> <number>' with op one of "
@@ -172,7 +172,7 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
     columns = tick_columns(dataclasses.replace(rig, duration=duration or rig.duration))[0]
     entries = doc.get("steps", [])
     if not isinstance(entries, list) or not all(isinstance(e, dict) for e in entries):
-        c.add("steps", f"expected an array of tables ([[steps]]), found {_describe(entries)}")
+        c.add("steps", f"expected an array of tables ([[steps]]), found {describe_value(entries)}")
         entries = []
     steps = [_step(c, e, f"steps[{i}]", rig, columns, interlocks)
              for i, e in enumerate(entries)]
@@ -232,7 +232,7 @@ def _step(c: _Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[st
         elif not isinstance(value, int | float) or isinstance(value, bool) \
                 or not math.isfinite(value):
             c.add(f"{where}.set_reference.{ref}", f"expected a finite number, found "
-                                                  f"{_describe(value)}")
+                                                  f"{describe_value(value)}")
         else:
             commands.append(Command("set_reference", {"name": ref, "value": float(value)}))
     param = c.take(e, "set_parameter", where, "table", default=None)
