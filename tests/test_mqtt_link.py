@@ -28,6 +28,7 @@ from typing import Any
 import aiomqtt
 import numpy as np
 import pytest
+from hil_helpers import Float32, builtin_twin
 
 from plantrig._hil import wait_ready
 from plantrig.io import (
@@ -39,7 +40,6 @@ from plantrig.io import (
     cobs_decode,
     crc16,
     encode_frame,
-    parse_link_table,
 )
 from plantrig.io._mqtt_payload import Codec, PayloadError
 from plantrig.sim import Event, Rig, RunData, load_rig, simulate
@@ -65,24 +65,6 @@ def mqtt_rig(tmp_path: Path, broker: LocalBroker, *, duration: float = 1.0,
     path = tmp_path / "rig.toml"
     path.write_text(src)
     return load_rig(path)
-
-
-def builtin_twin(rig: Rig) -> Rig:
-    """The same rig with the reference controller's law built in and no link."""
-    import dataclasses
-    settings, issues = parse_link_table(rig)
-    assert settings is not None and not issues
-    return dataclasses.replace(rig, controller=settings.controller, link=None)
-
-
-class Float32:
-    """A signal chain that rounds to float32, as a binary payload does."""
-
-    def apply(self, tick: int, src: np.ndarray, dst: np.ndarray) -> None:
-        dst[:] = src.astype(np.float32)
-
-    def reset(self) -> None:
-        pass
 
 
 @contextlib.contextmanager

@@ -7,53 +7,28 @@ The bench rig is configs/rehearsals/conveyor_guarded_hil.toml: link.watchdog_tim
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import os
 import signal
-import subprocess
 import threading
-from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+from hil_helpers import pty_controller
 
-from plantrig._hil import controller_command, wait_ready
-from plantrig.io import FdPort, PtyPair, build_link, open_pty_pair
+from plantrig.io import FdPort, build_link, open_pty_pair
 from plantrig.sim import evaluate, load_rig, load_scenario, simulate
 
 REHEARSALS = Path(__file__).resolve().parents[1] / "configs" / "rehearsals"
 BENCH = REHEARSALS / "conveyor_guarded_hil.toml"
 
 
-@contextlib.contextmanager
-def controller(rig_path: Path, pair: PtyPair) -> Iterator[subprocess.Popen[str]]:
-    proc = subprocess.Popen(controller_command(rig_path, pair.slave_path),
-                            stdout=subprocess.PIPE, text=True)
-    try:
-        assert wait_ready(proc, 30.0), "the reference controller did not start"
-        pair.close_slave()
-        yield proc
-    finally:
-        pair.close_slave()
-        pair.close_master()
-        with contextlib.suppress(ProcessLookupError):
-            os.kill(proc.pid, signal.SIGCONT)
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
-        assert proc.stdout is not None
-        proc.stdout.close()
-
-
 def bench_run(duration: float, action: Any = None, at: float = 0.8,
               scenario: Any = None) -> Any:
     rig = dataclasses.replace(load_rig(BENCH), duration=duration)
     pair = open_pty_pair()
-    with controller(BENCH, pair) as proc:
+    with pty_controller(BENCH, pair) as proc:
         link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
         timer = threading.Timer(at, action, (proc,)) if action else None
         if timer:

@@ -10,28 +10,23 @@ round-trips a float64, so a text link must equal the fast run exactly.
 
 from __future__ import annotations
 
-import contextlib
-import dataclasses
 import os
 import signal
 import subprocess
 import sys
 import threading
 import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
+from hil_helpers import Float32, builtin_twin, pty_controller
 
-from plantrig._hil import controller_command, wait_ready
 from plantrig.io import (
     FdPort,
-    PtyPair,
     SerialLink,
     build_link,
     check_link_table,
     open_pty_pair,
-    parse_link_table,
 )
 from plantrig.sim import Rig, RunData, load_rig, simulate
 
@@ -63,51 +58,11 @@ def hil_rig(tmp_path: Path, *, duration: float = 2.0, fast_lockstep: bool = Fals
     return load_rig(path)
 
 
-def builtin_twin(rig: Rig) -> Rig:
-    """The same rig with the reference controller's law built in and no link."""
-    settings, issues = parse_link_table(rig)
-    assert settings is not None and not issues
-    return dataclasses.replace(rig, controller=settings.controller, link=None)
-
-
-class Float32:
-    """A signal chain that rounds to float32, as the binary wire does."""
-
-    def apply(self, tick: int, src: np.ndarray, dst: np.ndarray) -> None:
-        dst[:] = src.astype(np.float32)
-
-    def reset(self) -> None:
-        pass
-
-
-@contextlib.contextmanager
-def reference_controller(rig: Rig, pair: PtyPair) -> Iterator[subprocess.Popen[str]]:
-    """`plantrig controller` on the slave end, in its own process."""
-    proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
-                            stdout=subprocess.PIPE, text=True)
-    try:
-        assert wait_ready(proc, 30.0), "the reference controller did not start"
-        pair.close_slave()
-        yield proc
-    finally:
-        pair.close_slave()
-        pair.close_master()
-        with contextlib.suppress(ProcessLookupError):
-            os.kill(proc.pid, signal.SIGCONT)
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
-        assert proc.stdout is not None
-        proc.stdout.close()
-
-
 def run_over_pty(rig: Rig, action=None, at: float = 0.8) -> tuple[RunData, dict]:  # type: ignore[no-untyped-def]
     """Run ``rig`` against the reference controller over a pty; ``action(proc)`` runs
     ``at`` seconds into the run from a timer thread (it sleeps until then)."""
     pair = open_pty_pair()
-    with reference_controller(rig, pair) as proc:
+    with pty_controller(rig.path, pair) as proc:
         link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
         timer = threading.Timer(at, action, (proc,)) if action else None
         if timer:
