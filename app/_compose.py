@@ -49,21 +49,20 @@ def build_chains(rig: Rig) -> tuple[SignalChain | None, SignalChain | None]:
     from plantrig.io import ChainSpecError, build_actuator_chain, build_sensor_chain
 
     issues: list[RigIssue] = []
-    actuator = sensor = None
-    if rig.actuators:
-        spec, origin = _ordered(rig, "actuators", rig.actuators, [s.name for s in rig.inputs],
-                                issues)
-        try:
-            actuator = build_actuator_chain(spec, rig.tick)
-        except ChainSpecError as exc:
-            issues.append(_issue(rig, exc, origin))
-    if rig.sensors:
-        spec, origin = _ordered(rig, "sensors", rig.sensors, [s.name for s in rig.outputs],
-                                issues)
-        try:
-            sensor = build_sensor_chain(spec, rig.seed)
-        except ChainSpecError as exc:
-            issues.append(_issue(rig, exc, origin))
+    chains: list[SignalChain | None] = []
+    for group, tables, signals, build in (
+            ("actuators", rig.actuators, rig.inputs,
+             lambda spec: build_actuator_chain(spec, rig.tick)),
+            ("sensors", rig.sensors, rig.outputs,
+             lambda spec: build_sensor_chain(spec, rig.seed))):
+        chain = None
+        if tables:
+            spec, origin = _ordered(rig, group, tables, [s.name for s in signals], issues)
+            try:
+                chain = build(spec)
+            except ChainSpecError as exc:
+                issues.append(_issue(rig, exc, origin))
+        chains.append(chain)
     if issues:
         raise RigFileError(issues)
-    return actuator, sensor
+    return chains[0], chains[1]
