@@ -316,14 +316,15 @@ class Engine:
                         if room < 0:
                             tape.wait_for_room()
                             room = tape.free() - 1
-                    if k % poll_every == 0 and tape.recorder_error():
-                        self._event(k, "record_failed", "the recorder cannot write the run "
-                                    "record (disk full or write error); run stopped")
-                        ended, reason = "fault", "run record cannot be written"
-                        break
-                    if commands is not None and k % poll_every == 0:
-                        for command in commands.take():
-                            self._apply_command(k, command)
+                    if k % poll_every == 0:        # slow checks, every 5 ms of plant time
+                        if tape.recorder_error():
+                            self._event(k, "record_failed", "the recorder cannot write the "
+                                        "run record (disk full or write error); run stopped")
+                            ended, reason = "fault", "run record cannot be written"
+                            break
+                        if commands is not None:
+                            for command in commands.take():
+                                self._apply_command(k, command)
                     if faults.on and k >= faults.next_end:
                         faults.expire(k)
                     if scenario is not None and k >= scenario.next_tick:
