@@ -5,7 +5,6 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
-import shutil
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -24,6 +23,7 @@ from plantrig.sim._recorder import read_journal, start_recorder
 from plantrig.sim._records import finish_record, start_record
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._scenario import Scenario
+from plantrig.sim._sources import copy_sources
 from plantrig.sim._summary import summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, tape_dir
 from plantrig.sim._verdicts import evaluate, write_verdicts
@@ -129,14 +129,7 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     preflight(folder or out_dir, rig.n_ticks, len(columns),
               ring_capacity(rig) * len(columns) * 8, tape_dir())
     folder = folder or new_run_folder(rig, out_dir)
-    shutil.copyfile(rig.path, folder / "rig.toml")
-    if scenario is not None:
-        (folder / "scenario.toml").write_text(scenario.text, encoding="utf-8")
-    module = getattr(rig.plant, "f", None)
-    if module is not None:
-        source = Path(module.__code__.co_filename)
-        if source.is_file():
-            shutil.copyfile(source, folder / source.name)
+    copy_sources(rig, scenario, folder)  # rig.toml points at its module copy
     (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
     tape_path = tape_dir() / f"plantrig-{folder.name}-{id(folder):x}.tape"
     tape = Tape(tape_path, columns, ring_capacity(rig), units)

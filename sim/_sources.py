@@ -1,0 +1,120 @@
+"""A run folder's own copy of what defined the run: rig file, scenario and model module.
+
+Run folders travel (to a reviewer, to another bench PC), so the folder's rig.toml must
+name its model module by the copy beside it, not by a path that only exists on the
+machine that ran it. Only the ``module`` value under ``[plant]`` is rewritten; every other
+byte of the rig file is kept. ``sources.json`` (covered by the manifest) records where
+each copy came from and the SHA-256 of the original bytes.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+import tomllib
+from pathlib import Path
+from typing import Any
+
+from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._rigfile import Rig
+from plantrig.sim._scenario import Scenario
+
+SOURCES = "sources.json"
+RIG_COPY = "rig.toml"
+SCENARIO_COPY = "scenario.toml"
+
+# A table header line: [plant], [ plant ] # comment, [[limits]].
+_HEADER = re.compile(r"^\s*\[\[?\s*([^\[\]]*?)\s*\]\]?\s*(#.*)?$")
+# The module key inside [plant] (or as a dotted key at the top): one string value.
+_MODULE = re.compile(r"""^(?P<lead>\s*(?:plant\s*\.\s*)?module\s*=\s*)"""
+                     r"""(?P<value>"(?:[^"\\\r\n]|\\.)*"|'[^'\r\n]*')""")
+
+
+def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str, Any]:
+    """Copy the rig file, the scenario and an ODE model's module into ``folder``.
+
+    The copied rig.toml points at the module copy in the folder, so check and rerun
+    work from the folder alone. Writes sources.json and returns its content.
+    """
+    folder = Path(folder)
+    original = rig.path.read_bytes()
+    files: dict[str, dict[str, Any]] = {}
+    rig_bytes = original
+    module = _module_source(rig)
+    if module is not None:
+        rig_bytes = point_module_at(original, module.name, rig.path)
+        (folder / module.name).write_bytes(module.read_bytes())
+        files[module.name] = _entry("model", module, module.read_bytes())
+    (folder / RIG_COPY).write_bytes(rig_bytes)
+    files[RIG_COPY] = _entry("rig", rig.path, original)
+    if rig_bytes != original:
+        files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
+        files[RIG_COPY]["rewritten"] = {"plant.module": module.name if module else None}
+    if scenario is not None:
+        path = Path(scenario.path)
+        data = path.read_bytes() if path.is_file() else scenario.text.encode("utf-8")
+        (folder / SCENARIO_COPY).write_bytes(data)
+        files[SCENARIO_COPY] = _entry("scenario", path, data)
+    doc = {"format": "plantrig sources", "version": 1, "files": files}
+    (folder / SOURCES).write_text(json.dumps(doc, indent=2) + "\n", encoding="utf-8")
+    return doc
+
+
+def point_module_at(text: bytes, name: str, file: Path) -> bytes:
+    """The rig file bytes with ``[plant] module`` set to ``name``, all else unchanged.
+
+    Raises RigFileError when the key is not written as a plain ``module = "..."`` line
+    (the copy would otherwise point nowhere).
+    """
+    lines = text.decode("utf-8").splitlines(keepends=True)
+    table = ""
+    hits = []
+    for i, line in enumerate(lines):
+        header = _HEADER.match(line)
+        if header:
+            table = header.group(1)
+            continue
+        match = _MODULE.match(line)
+        dotted = "." in match.group("lead") if match else False
+        if match and ((table == "plant" and not dotted) or (table == "" and dotted)):
+            hits.append((i, match))
+    if len(hits) == 1:
+        i, match = hits[0]
+        lines[i] = (match.group("lead") + json.dumps(name)
+                    + lines[i][match.end("value"):])
+        out = "".join(lines)
+        if _same_apart_from_module(text.decode("utf-8"), out, name):
+            return out.encode("utf-8")
+    raise RigFileError([RigIssue(str(file), "plant.module",
+                                 "cannot point the run folder's copy at its model module; "
+                                 "write it on one line as module = \"file.py\" under "
+                                 "[plant]")])
+
+
+def _same_apart_from_module(before: str, after: str, name: str) -> bool:
+    try:
+        old, new = tomllib.loads(before), tomllib.loads(after)
+    except tomllib.TOMLDecodeError:
+        return False
+    if new.get("plant", {}).get("module") != name:
+        return False
+    old.setdefault("plant", {})["module"] = name
+    return old == new
+
+
+def _module_source(rig: Rig) -> Path | None:
+    """The model module file the rig file names (resolved as load_rig resolves it)."""
+    if getattr(rig.plant, "f", None) is None:
+        return None
+    doc = tomllib.loads(rig.path.read_text(encoding="utf-8"))
+    plant = doc.get("plant", {})
+    if plant.get("kind") != "ode" or not isinstance(plant.get("module"), str):
+        return None
+    path = (rig.path.parent / plant["module"]).resolve()
+    return path if path.is_file() else None
+
+
+def _entry(role: str, path: Path, data: bytes) -> dict[str, Any]:
+    return {"role": role, "original": str(Path(path).resolve()),
+            "sha256": hashlib.sha256(data).hexdigest(), "bytes": len(data)}
