@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import CAUTION, REALTIME_BANNER
+from plantrig.sim import EXIT_CODE_HELP
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_hil.toml"
@@ -147,9 +148,10 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     print_outcome(folder, summary)
     health = summary["link"]
     print(link_report(health, rig.tick))
-    ok = outcome.ended == "completed" and health.get("link_lost", 1) == 0
-    print("demo: ok" if ok else "demo: the link was lost or the run did not complete")
-    return EXIT_OK if ok else EXIT_FAULT
+    code = int(summary["exit_code"])
+    print("demo: ok" if code == EXIT_OK else
+          f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")
+    return code
 
 
 def link_report(h: dict[str, float], tick: float) -> str:
@@ -189,8 +191,10 @@ def add_parsers(sub: Any, load: Callable[[str], Any],
 
     p = sub.add_parser("demo", help="rig and reference controller over a pty, in real time",
                        description="Run a rig in real time against the reference controller "
-                                   "in another process, over a pseudo-terminal pair.",
-                       epilog=CAUTION)
+                                   "in another process, over a pseudo-terminal pair. The exit "
+                                   "code is the run's outcome, as for `plantrig run`.",
+                       epilog=f"{EXIT_CODE_HELP}\n\n{CAUTION}",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--rig", help=f"rig file (default: {DEMO_RIG.name}, or "
                                  "conveyor_mqtt.toml with --mqtt)")
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")

@@ -130,6 +130,7 @@ def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any],
     print_outcome(folder, summary)
     health = summary["link"]
     print(link_report(health))
-    ok = outcome.ended == "completed" and health.get("link_lost", 1) == 0
-    print("demo: ok" if ok else "demo: the link was lost or the run did not complete")
-    return EXIT_OK if ok else EXIT_FAULT
+    code = int(summary["exit_code"])
+    print("demo: ok" if code == EXIT_OK else
+          f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")
+    return code

@@ -188,6 +188,7 @@ class Safety:
         self.forcing = False
         self.freezing = False
         self.stop_reason = ""
+        self.trips: list[tuple[int, str]] = []   # (tick, interlock) of every latch, in order
         self.warnings_shown: dict[str, int] = {}
 
     # -- the tick --------------------------------------------------------------------
@@ -282,6 +283,7 @@ class Safety:
     def _latch(self, k: int, i: int, cause: str, why: str) -> None:
         spec = self.specs[i]
         self.latched[i] = True
+        self.trips.append((k, spec.name))
         self._update()
         if i == 0:
             self.emit(k, "estop", "operator E-stop: inputs forced to safe values")

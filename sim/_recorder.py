@@ -19,6 +19,7 @@ import errno
 import json
 import multiprocessing as mp
 import os
+import signal
 import time
 from multiprocessing.process import BaseProcess
 from pathlib import Path
@@ -129,6 +130,15 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
     reader.close()
 
 
+def _recorder_main(*args: Any) -> None:
+    """The recorder process: deaf to SIGINT and SIGTERM, which are the rig's to act on
+    (a Ctrl-C reaches the whole process group); it ends when the tapes end or the rig
+    process is gone, so a signal never costs a recorded row."""
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, signal.SIG_IGN)
+    drain_tape(*args)
+
+
 def _sync(disk: _Disk, *files: BinaryIO) -> None:
     for f in files:
         try:
@@ -144,7 +154,7 @@ def start_recorder(tape_path: Path, journal_path: Path, status_path: Path,
     and a real-time loop must not fill the ring meanwhile."""
     ctx = mp.get_context("spawn")
     ready = ctx.Event()
-    proc = ctx.Process(target=drain_tape, name="plantrig-recorder",
+    proc = ctx.Process(target=_recorder_main, name="plantrig-recorder",
                        args=(str(tape_path), str(journal_path), str(status_path),
                              str(event_tape_path), str(events_path), os.getpid(), ready),
                        daemon=True)

@@ -16,6 +16,7 @@ import hashlib
 import json
 import math
 import os
+import shutil
 import time
 from pathlib import Path
 from typing import Any
@@ -26,6 +27,7 @@ from numpy.typing import NDArray
 from plantrig import __version__
 from plantrig.sim._hdf5 import write_run_h5
 from plantrig.sim._manifest import write_atomic, write_manifest
+from plantrig.sim._outcome import INTERRUPTED
 from plantrig.sim._preflight import RecordError
 from plantrig.sim._recorder import RESERVE_NAME, read_journal
 from plantrig.sim._rigfile import Rig
@@ -35,6 +37,7 @@ from plantrig.sim._tape import EventTape, TapeReader
 RUN_START = "run_start.json"
 RESERVE_BYTES = 256 * 1024
 RECORDER_EXIT_WAIT_S = 10.0
+H5_SLACK = 1 << 20                 # HDF5 metadata and the event table, generously
 META_DESCRIPTIONS = {
     "seq": "tick number",
     "t": "plant time at the start of the tick",
@@ -126,6 +129,13 @@ def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, An
                                   f"{recorder.get('rows_not_written')} ticks ran but are "
                                   "not in the record")
     journal = folder / "ticks.journal"
+    # the summary first: it is small (the freed reserve holds it) and keeps the outcome
+    # for `plantrig recover` if anything after it fails
+    try:
+        write_atomic(folder / "summary.json", (json.dumps(summary, indent=2) + "\n").encode())
+    except OSError as exc:
+        raise RecordError(folder, f"summary not written ({exc.strerror}); ticks.journal kept: "
+                                  "free space, then run plantrig recover") from None
     try:
         structured = np.ascontiguousarray(rows).view(
             np.dtype([(name, np.float64) for name in columns])).reshape(-1)
@@ -141,6 +151,7 @@ def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, An
         sources = {p.name: p.read_text(encoding="utf-8", errors="replace")
                    for p in sorted(folder.iterdir())
                    if p.suffix in (".toml", ".py") and p.is_file()}
+        _check_room(folder, rows.nbytes + sum(len(v) for v in sources.values()) + H5_SLACK)
         write_run_h5(folder / "run.h5", rows, info, events, sources, {
             "software_version": __version__, "rig": summary["rig"]["name"],
             "started_utc": summary["started_utc"], "ended": summary["ended"],
@@ -149,14 +160,68 @@ def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, An
         record["files"].append("run.h5")
     except ImportError:
         record["problems"].append("run.h5 not written: h5py is not installed")
-    except OSError as exc:
-        record["problems"].append(f"run.h5 not written ({exc.strerror or exc})")
+    except Exception as exc:  # h5py raises several kinds on a failing disk; none may escape
+        text = getattr(exc, "strerror", None) or str(exc)
+        record["problems"].append(f"run.h5 not written ({text}); free space, then run "
+                                  "plantrig recover")
     try:
         write_atomic(folder / "summary.json", (json.dumps(summary, indent=2) + "\n").encode())
         write_manifest(folder)
     except OSError as exc:
         raise RecordError(folder, f"summary or manifest not written ({exc.strerror}); "
                                   "free space, then run plantrig recover") from None
+
+
+def _check_room(folder: Path, needed: int) -> None:
+    """Refuse to start a large write the disk cannot hold (HDF5 fails badly when the
+    disk fills under it)."""
+    free = shutil.disk_usage(folder).free
+    if free < needed:
+        raise OSError(errno.ENOSPC, f"disk full: {needed / 1e6:.1f} MB needed, "
+                                    f"{free / 1e6:.1f} MB free")
+
+
+def salvage_rows(journal: Path, tape_path: Path, n_columns: int) -> dict[str, Any]:
+    """Append to ``journal`` the rows the tape still holds beyond it.
+
+    A torn last journal row is cut first. Nothing is taken when the ring has lapped the
+    journal (that would leave a gap). Returns what the tape said: rows produced by the
+    rig, rows taken, and whether the tape was there at all.
+    """
+    row_bytes = n_columns * 8
+    size = journal.stat().st_size if journal.exists() else 0
+    whole = size - size % row_bytes
+    if whole != size:
+        os.truncate(journal, whole)
+    have = whole // row_bytes
+    if not tape_path.exists():
+        return {"tape_found": False, "produced_rows": None, "tape_rows": 0,
+                "torn_bytes_dropped": size - whole}
+    reader = TapeReader(tape_path)
+    taken = 0
+    try:
+        if reader.n_columns != n_columns:
+            return {"tape_found": False, "produced_rows": None, "tape_rows": 0,
+                    "torn_bytes_dropped": size - whole}
+        produced = reader.written
+        reader.next_seq = have
+        blocks = []
+        while reader.next_seq < produced:
+            block = reader.read_new()
+            if not block.size:
+                break
+            blocks.append(block)
+        if blocks and not reader.lost:
+            with open(journal, "ab") as f:
+                for block in blocks:
+                    f.write(block.tobytes())
+                    taken += block.shape[0]
+                f.flush()
+                os.fsync(f.fileno())
+    finally:
+        reader.close()
+    return {"tape_found": True, "produced_rows": produced, "tape_rows": taken,
+            "torn_bytes_dropped": size - whole}
 
 
 def read_events(path: Path) -> list[dict[str, Any]]:
@@ -203,7 +268,7 @@ def recover_run(folder: Path) -> dict[str, Any]:
         raise RecordError(folder, f"no {RUN_START}: not a plantrig run folder")
     journal = folder / "ticks.journal"
     summary_path = folder / "summary.json"
-    if summary_path.exists() and not journal.exists():
+    if summary_path.exists() and not journal.exists() and _finished(folder):
         raise RecordError(folder, "the run ended cleanly; nothing to recover")
     start = json.loads(start_path.read_text())
     _wait_for_exit(folder, start)
@@ -212,38 +277,33 @@ def recover_run(folder: Path) -> dict[str, Any]:
     n = len(columns)
     tick = float(start["rig"]["tick_s"])
     if summary_path.exists():
-        # the run ended but its finish did not (disk full): finish it now, as it ended
+        # the run ended but its finish did not (disk full): finish it now, as it ended,
+        # keeping its outcome and what went wrong the first time
         summary = json.loads(summary_path.read_text())
-        rows = read_journal(journal, n)
+        if journal.exists():
+            rows = read_journal(journal, n)
+        else:
+            rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, n)
+        earlier = (summary.get("record") or {}).get("problems") or []
+        summary["finished_again_by"] = {
+            "name": "plantrig", "version": __version__,
+            "utc": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
+            "earlier_problems": earlier}
         finish_record(folder, rows, summary)
         return {"finished_again": True, "recovered_rows": int(rows.shape[0]),
-                "lost_rows": summary["ticks_recorded"] - int(rows.shape[0])}
-    if journal.exists():
-        rows = read_journal(journal, n)
-        torn_bytes = journal.stat().st_size - rows.size * 8
-    elif (folder / "ticks.npy").exists():
-        rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, n)
-        torn_bytes = 0
-    else:
-        rows, torn_bytes = np.empty((0, n)), 0
-    from_journal = rows.shape[0]
-    events = read_events(folder / "events.jsonl")
-    produced: int | None = None
-    salvaged = np.empty((0, n))
+                "lost_rows": summary["ticks_recorded"] - int(rows.shape[0]),
+                "ended": summary["ended"], "reason": summary["reason"]}
     tape_path, event_path = Path(start["tape"]), Path(start["event_tape"])
-    if tape_path.exists():
-        reader = TapeReader(tape_path)
-        if reader.n_columns == n:
-            produced = reader.written
-            reader.next_seq = from_journal
-            while reader.next_seq < produced:
-                block = reader.read_new()
-                if not block.size:
-                    break
-                salvaged = np.concatenate([salvaged, block])
-            if reader.lost:   # the ring lapped the journal: a gap, so take nothing from it
-                salvaged = np.empty((0, n))
-        reader.close()
+    if journal.exists() or not (folder / "ticks.npy").exists():
+        from_journal = journal.stat().st_size // (n * 8) if journal.exists() else 0
+        taken = salvage_rows(journal, tape_path, n)
+        rows = read_journal(journal, n)
+        produced, torn_bytes = taken["produced_rows"], taken["torn_bytes_dropped"]
+        from_tape = taken["tape_rows"]
+    else:  # an older finish removed the journal after ticks.npy: start from that
+        rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, n)
+        from_journal, produced, torn_bytes, from_tape = rows.shape[0], None, 0, 0
+    events = read_events(folder / "events.jsonl")
     if event_path.exists():
         etape = EventTape(event_path, create=False)
         etape.next_seq = len(events)
@@ -252,12 +312,11 @@ def recover_run(folder: Path) -> dict[str, Any]:
         etape.close()
     else:
         events_salvaged = []
-    rows = np.concatenate([rows, salvaged]) if salvaged.size else rows
     recovered = rows.shape[0]
     lost = None if produced is None else produced - recovered
     report = {
         "produced_rows": produced, "journal_rows": from_journal,
-        "tape_rows": int(salvaged.shape[0]), "recovered_rows": recovered,
+        "tape_rows": from_tape, "recovered_rows": recovered,
         "lost_rows": lost, "lost_ms": None if lost is None else lost * tick * 1e3,
         "journal_only_lost_rows": None if produced is None else produced - from_journal,
         "journal_only_lost_ms": None if produced is None else (produced - from_journal)
@@ -288,7 +347,8 @@ def recover_run(folder: Path) -> dict[str, Any]:
         "rig": {**start["rig"], "sha256": hashlib.sha256(rig_file.read_bytes()).hexdigest()
                 if rig_file.exists() else None},
         "started_utc": start["started_utc"], "mode": start["mode"],
-        "ended": "fault", "reason": "run did not end cleanly (recovered)",
+        "ended": INTERRUPTED, "reason": "the rig process died before the run ended "
+                                        "(rebuilt by plantrig recover)",
         "ticks_planned": start["ticks_planned"], "ticks_recorded": recovered,
         "timing": timing_from_rows(rows, columns),
         "recorder": json.loads(recorder_status.read_text()) if recorder_status.exists() else {},
@@ -301,6 +361,18 @@ def recover_run(folder: Path) -> dict[str, Any]:
     for path in (tape_path, tape_path.with_suffix(".json"), event_path):
         path.unlink(missing_ok=True)
     return report
+
+
+def _finished(folder: Path) -> bool:
+    """True when the finish wrote everything it meant to (the manifest is last)."""
+    if not (folder / "manifest.json").exists():
+        return False
+    try:
+        summary = json.loads((folder / "summary.json").read_text())
+    except (OSError, ValueError):
+        return False
+    problems = (summary.get("record") or {}).get("problems") or []
+    return not any("recover" in p for p in problems)
 
 
 def _save_npy(path: Path, array: NDArray[Any]) -> None:

@@ -17,12 +17,15 @@ from plantrig.sim._clock import Clock
 from plantrig.sim._commands import CommandInbox
 from plantrig.sim._contracts import ControllerLink, SignalChain
 from plantrig.sim._engine import Engine, RunOutcome, tick_columns
+from plantrig.sim._manifest import write_atomic
+from plantrig.sim._outcome import COMPLETED, EXIT_CODES, EXIT_VERDICT, FAULT
 from plantrig.sim._plant import Plant, from_state_space_object, make_stepper
-from plantrig.sim._preflight import preflight
+from plantrig.sim._preflight import RecordError, preflight
 from plantrig.sim._recorder import read_journal, start_recorder
-from plantrig.sim._records import finish_record, start_record
+from plantrig.sim._records import finish_record, salvage_rows, start_record
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._scenario import Scenario
+from plantrig.sim._signals import SignalStop, stop_on_signals
 from plantrig.sim._sources import copy_sources
 from plantrig.sim._summary import summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, tape_dir
@@ -30,6 +33,7 @@ from plantrig.sim._verdicts import evaluate, write_verdicts
 
 RING_SECONDS = 10.0
 RING_MIN_ROWS = 4096
+RECORDER_JOIN_S = 60.0
 
 
 @dataclass
@@ -128,7 +132,18 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     columns, units = tick_columns(rig)
     preflight(folder or out_dir, rig.n_ticks, len(columns),
               ring_capacity(rig) * len(columns) * 8, tape_dir())
-    folder = folder or new_run_folder(rig, out_dir)
+    with stop_on_signals() as stopper:
+        return _run_and_record(rig, folder or new_run_folder(rig, out_dir), stopper,
+                               realtime=realtime, link=link, actuator_chain=actuator_chain,
+                               sensor_chain=sensor_chain, commands=commands,
+                               on_tapes_ready=on_tapes_ready, scenario=scenario)
+
+
+def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bool | None,
+                    link: ControllerLink | None, actuator_chain: SignalChain | None,
+                    sensor_chain: SignalChain | None, commands: Any, on_tapes_ready: Any,
+                    scenario: Scenario | None) -> tuple[Path, RunOutcome, dict[str, Any]]:
+    columns, units = tick_columns(rig)
     copy_sources(rig, scenario, folder)  # rig.toml points at its module copy
     (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
     tape_path = tape_dir() / f"plantrig-{folder.name}-{id(folder):x}.tape"
@@ -139,6 +154,7 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     status = folder / "recorder.json"
     recorder = start_recorder(tape_path, journal, status, event_tape_path,
                               folder / "events.jsonl")
+    tape.watch_recorder(recorder.is_alive)
     start_record(folder, rig, columns, units, tape_path, event_tape_path, recorder.pid,
                  rig.mode == "realtime" if realtime is None else realtime)
     if on_tapes_ready is not None:
@@ -149,13 +165,24 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                         actuator_chain=actuator_chain, sensor_chain=sensor_chain,
                         commands=CommandInbox(commands) if commands is not None else None,
                         event_tape=event_tape, scenario=scenario)
+        stopper.attach(engine.request_stop)
         outcome = engine.run()
     finally:
+        stopper.finish()
         tape.end()
         event_tape.end()
-        recorder.join(timeout=60)
+        recorder.join(timeout=RECORDER_JOIN_S)
+        if recorder.exitcode != 0:   # died, or hung: the rig writes what the ring holds
+            if recorder.is_alive():
+                recorder.kill()
+                recorder.join()
+            salvage_rows(journal, tape_path, len(columns))
         tape.close(unlink=True)
         event_tape.close(unlink=True)
+    if recorder.exitcode != 0:   # events.jsonl from the loop's own complete list
+        write_atomic(folder / "events.jsonl", "".join(
+            json.dumps({"tick": e.tick, "time": e.time, "kind": e.kind, "detail": e.detail})
+            + "\n" for e in outcome.events).encode())
     rows = read_journal(journal, len(columns))
     recorder_status = json.loads(status.read_text()) if status.exists() else {}
     status.unlink(missing_ok=True)
@@ -168,7 +195,9 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         "started_utc": started.isoformat(timespec="seconds"),
         "mode": "realtime" if engine.realtime else "fast",
         "ended": outcome.ended, "reason": outcome.reason,
-        "ticks_planned": rig.n_ticks, "ticks_recorded": int(rows.shape[0]),
+        "ticks_planned": rig.n_ticks, "ticks_run": outcome.ticks,
+        "ticks_recorded": int(rows.shape[0]),
+        "acceptance": [r.as_dict() for r in outcome.rules],
         "timing": outcome.timing(rig.tick),
         "recorder": recorder_status,
         "link": outcome.link_health,
@@ -176,11 +205,20 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         "model": model.as_dict(),
         "columns": columns, "units": units,
     }
+    verdicts_passed = True
     if scenario is not None:
         verdicts = evaluate(scenario, columns, units, rows, outcome.events, rig.tick)
         write_verdicts(folder, verdicts)
         summary["verdicts"] = [v.as_dict() for v in verdicts]
-    finish_record(folder, rows, summary)  # ticks.npy, run.h5, summary.json, manifest.json
+        verdicts_passed = all(v.passed for v in verdicts)
+    summary["exit_code"] = outcome.exit_code if outcome.ended != COMPLETED or verdicts_passed \
+        else EXIT_VERDICT
+    try:
+        finish_record(folder, rows, summary)  # summary.json, ticks.npy, run.h5, manifest
+    except RecordError as exc:
+        summary["record"]["problems"].append(str(exc))
+    if summary["record"]["problems"] and summary["exit_code"] == EXIT_CODES[COMPLETED]:
+        summary["exit_code"] = EXIT_CODES[FAULT]   # the run did its work; its record did not
     return folder, outcome, summary
 
 

@@ -10,7 +10,8 @@ copying, so a row overwritten during the copy is detected, never read torn.
 Header words: magic, version, n_columns, capacity, written, consumed (the slowest
 reader's acknowledged count, so a fast-mode writer can wait instead of overwriting),
 state (0 running, 1 ended), recorder (0 writing, else a RECORDER_* code: the recorder
-cannot write the record, and the loop stops safely).
+cannot write the record, and the loop stops safely). The writer also watches the
+recorder process itself (``watch_recorder``): a recorder that died reads as RECORDER_DIED.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ import json
 import os
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -29,7 +31,7 @@ VERSION = 1
 HEADER_WORDS = 8
 W_MAGIC, W_VERSION, W_COLUMNS, W_CAPACITY, W_WRITTEN, W_CONSUMED, W_STATE, W_RECORDER = range(8)
 STATE_RUNNING, STATE_ENDED = 0, 1
-RECORDER_OK, RECORDER_DISK_FULL, RECORDER_WRITE_ERROR = 0, 1, 2
+RECORDER_OK, RECORDER_DISK_FULL, RECORDER_WRITE_ERROR, RECORDER_DIED = 0, 1, 2, 3
 
 
 def tape_dir() -> Path:
@@ -63,6 +65,11 @@ class Tape:
         self.meta_path = self.path.with_suffix(".json")
         self.meta_path.write_text(json.dumps(meta))
         self.written = 0
+        self._recorder_alive: Callable[[], bool] | None = None
+
+    def watch_recorder(self, alive: Callable[[], bool]) -> None:
+        """Let ``recorder_error`` also report a recorder process that has died."""
+        self._recorder_alive = alive
 
     def free(self) -> int:
         """Rows that can be written before unread rows would be overwritten."""
@@ -78,16 +85,37 @@ class Tape:
         self.header[W_WRITTEN] = self.written
 
     def recorder_error(self) -> int:
-        """RECORDER_OK, or the code the recorder set when it could not write."""
-        return int(self.header[W_RECORDER])
+        """RECORDER_OK, the code the recorder set when it could not write, or
+        RECORDER_DIED when the watched recorder process is gone."""
+        code = int(self.header[W_RECORDER])
+        if code == RECORDER_OK and self._recorder_alive is not None \
+                and not self._recorder_alive():
+            return RECORDER_DIED
+        return code
 
     def wait_for_room(self, timeout_s: float = 30.0) -> None:
-        """Fast mode only: block until a reader has freed a row (never in real time)."""
+        """Fast mode only: block until a reader has freed a row (never in real time);
+        return at once, without room, when the recorder has stopped."""
         deadline = time.monotonic() + timeout_s
         while self.free() <= 0:
+            if self.recorder_error() != RECORDER_OK:
+                return
             if time.monotonic() > deadline:
                 raise TapeOverflow(f"{self.path}: no reader consumed rows for {timeout_s} s")
             time.sleep(0.0005)
+
+    def wait_drained(self, timeout_s: float = 30.0) -> int:
+        """Wait until the recorder has taken every row (or stopped); its error code.
+
+        The loop calls this before it declares how the run ended, so that a record
+        the recorder could not write is never announced as complete.
+        """
+        deadline = time.monotonic() + timeout_s
+        while int(self.header[W_CONSUMED]) < self.written:
+            if self.recorder_error() != RECORDER_OK or time.monotonic() > deadline:
+                break
+            time.sleep(0.001)
+        return self.recorder_error()
 
     def end(self) -> None:
         self.header[W_STATE] = STATE_ENDED
@@ -127,6 +155,9 @@ class MemoryTape:
     def wait_for_room(self, timeout_s: float = 30.0) -> None:
         if self.free() <= 0:
             raise TapeOverflow("memory tape full: the run is longer than planned")
+
+    def wait_drained(self, timeout_s: float = 30.0) -> int:
+        return RECORDER_OK
 
     def end(self) -> None:
         self.rows = self.rows[:self.written]
