@@ -1,12 +1,13 @@
 """The plantrig command line: the composition root that joins sim, io and gui.
 
-Exit codes: 0 success, 1 the run ended by fault, 2 a rig file or usage mistake,
-3 a scenario criterion failed.
+Exit codes: each command lists its own in --help; `run` and `demo` give the outcome
+class of the run (plantrig.sim.EXIT_CODE_HELP), 2 is always a rig file or usage mistake.
 """
 
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import signal
 import sys
@@ -17,9 +18,20 @@ from plantrig import CAUTION, REALTIME_BANNER, __version__
 from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._records_cli import add_record_commands
-from plantrig.sim import RecordError, RigFileError, load_rig, run_to_folder, summarize
+from plantrig.sim import (
+    EXIT_CODE_HELP,
+    RecordError,
+    RigFileError,
+    load_rig,
+    model_module,
+    run_folder_of,
+    run_to_folder,
+    summarize,
+)
 
-EXIT_OK, EXIT_FAULT, EXIT_USAGE, EXIT_VERDICT = 0, 1, 2, 3
+EXIT_OK, EXIT_FAULT, EXIT_USAGE, EXIT_VERDICT, EXIT_STOPPED = 0, 1, 2, 3, 5
+EXIT_MEANINGS = {0: "completed", 1: "fault", 2: "usage mistake", 3: "a verdict failed",
+                 4: "tripped", 5: "stopped", 6: "interrupted"}
 
 
 def _load(path: str):  # type: ignore[no-untyped-def]
@@ -45,6 +57,21 @@ def _print_issues(path: str, exc: RigFileError) -> None:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
+    try:
+        module = model_module(args.rig)
+    except RigFileError as exc:
+        _print_issues(args.rig, exc)
+        return EXIT_USAGE
+    if module is not None and module.is_file():
+        digest = hashlib.sha256(module.read_bytes()).hexdigest()
+        record = run_folder_of(args.rig) or run_folder_of(module)
+        if record is not None and not args.trust_model:
+            print(f"error: {args.rig}: plant.module: {module} (SHA-256 {digest}) came with "
+                  f"the run folder {record}; checking this rig would run that code. replay, "
+                  "verify, report and export read a run folder without running it; pass "
+                  "--trust-model to load the module anyway", file=sys.stderr)
+            return EXIT_USAGE
+        print(f"loading model module {module} (SHA-256 {digest}): this runs its code")
     rig = _load(args.rig)
     try:
         build_chains(rig)
@@ -69,8 +96,14 @@ def cmd_check(args: argparse.Namespace) -> int:
 def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
     timing = summary["timing"]
     print(f"run folder: {folder}")
-    print(f"ended: {summary['ended']} ({summary['reason']}); "
-          f"{summary['ticks_recorded']} of {summary['ticks_planned']} ticks recorded")
+    print(f"outcome: {summary['ended'].upper()} ({summary['reason']})")
+    print(f"ticks: {summary.get('ticks_run', summary['ticks_recorded'])} of "
+          f"{summary['ticks_planned']} planned ran, {summary['ticks_recorded']} recorded")
+    if summary.get("acceptance"):
+        print("acceptance:")
+        for rule in summary["acceptance"]:
+            mark = {True: "held", False: "FAILED", None: "n/a"}[rule["passed"]]
+            print(f"  {mark:<7} {rule['rule']}: {rule['measured']} (needs {rule['needed']})")
     print(f"mode: {summary['mode']}; wall time {timing['wall_s']:.3f} s "
           f"({timing['ticks_per_s']:.0f} ticks/s)")
     if summary["mode"] == "realtime":
@@ -85,6 +118,9 @@ def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
                                        for k, v in counters.items()))
     if summary["events"]:
         print("events: " + ", ".join(f"{k} x{v}" for k, v in sorted(summary["events"].items())))
+    problems = (summary.get("record") or {}).get("problems") or []
+    for problem in problems:
+        print(f"record: {problem}")
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -124,25 +160,26 @@ def cmd_run(args: argparse.Namespace) -> int:
         _print_issues(args.rig, exc)
         return EXIT_USAGE
     try:
-        folder, outcome, summary = run_to_folder(rig, out, realtime=realtime, **dashboard_args,
-                                                 actuator_chain=actuator_chain,
-                                                 sensor_chain=sensor_chain, link=link,
-                                                 scenario=scenario)
+        folder, _outcome, summary = run_to_folder(rig, out, realtime=realtime,
+                                                  **dashboard_args,
+                                                  actuator_chain=actuator_chain,
+                                                  sensor_chain=sensor_chain, link=link,
+                                                  scenario=scenario)
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
     _print_outcome(folder, summary)
     if args.json:
         print(json.dumps(summary["timing"]))
-    if dashboard is not None:
-        dashboard.after_run(folder)
     if scenario is not None:
         from plantrig.sim import verdict_lines
         print(f"scenario: {scenario.name}")
         print("\n".join(verdict_lines(summary["verdicts"])))
-        if not all(v["passed"] for v in summary["verdicts"]):
-            return EXIT_VERDICT
-    return EXIT_OK if outcome.ended != "fault" else EXIT_FAULT
+    code = int(summary["exit_code"])
+    print(f"exit code {code}: {EXIT_MEANINGS[code]}")
+    if dashboard is not None:
+        dashboard.after_run(folder)
+    return code
 
 
 def _open_dashboard(rig: Any) -> Any:
@@ -164,7 +201,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     except ImportError as exc:
         print(f"error: replay needs dearpygui ({exc}); install plantrig[gui]", file=sys.stderr)
         return EXIT_USAGE
-    return replay(args.folder)
+    return replay(args.folder, screenshot=args.screenshot)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -176,14 +213,26 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("check", help="check a rig file and print the model summary",
                        description="Check a rig file (every mistake at once) and print the "
-                                   "model summary: modes, stability, ranks, tick warnings.")
+                                   "model summary: modes, stability, ranks, tick warnings. "
+                                   "An ODE plant's module is Python code and is imported "
+                                   "(its path and SHA-256 are printed first). Exit codes: "
+                                   "0 the rig file is sound, 2 a mistake in it, or a model "
+                                   "module that came with a run folder (see --trust-model).")
     p.add_argument("rig", help="rig file (TOML)")
+    p.add_argument("--trust-model", action="store_true",
+                   help="import the model module even though it came with a run folder "
+                        "(someone else's code: read it first)")
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("run", help="run a rig and write a run folder",
                        description="Run a rig closed-loop and write a run folder with the "
-                                   "tick data, a copy of the rig file and a summary.",
-                       epilog=CAUTION)
+                                   "tick data, a copy of the rig file and a summary. The run "
+                                   "ends as one outcome: completed, stopped, tripped or "
+                                   "fault, judged by the rig's [acceptance] rules "
+                                   "(docs/records.md). SIGINT (Ctrl-C) and SIGTERM stop it "
+                                   "at the next tick and finish the record.",
+                       epilog=f"{EXIT_CODE_HELP}\n\n{CAUTION}",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("rig", help="rig file (TOML)")
     mode = p.add_mutually_exclusive_group()
     mode.add_argument("--fast", action="store_true", help="as fast as possible (overrides rig)")
@@ -201,8 +250,14 @@ def build_parser() -> argparse.ArgumentParser:
     add_record_commands(sub)
     p = sub.add_parser("replay", help="open a run folder in the dashboard",
                        description="Open a recorded run folder in the dashboard, with a "
-                                   "time slider (needs dearpygui and a display).")
+                                   "time slider (needs dearpygui and a display). Reads "
+                                   "data only: a model module in the folder is never "
+                                   "imported. Exit codes: 0 the window was closed (or the "
+                                   "screenshot saved), 1 the window failed, 2 not a "
+                                   "readable run folder, no display or no dearpygui.")
     p.add_argument("folder", help="run folder written by plantrig run")
+    p.add_argument("--screenshot", metavar="PNG",
+                   help="draw the run once, save the window as a PNG and exit")
     p.set_defaults(func=cmd_replay)
     add_link_commands(sub, _load, _print_outcome)
     return parser
@@ -211,8 +266,14 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    signal.signal(signal.SIGTERM, lambda *_: sys.exit(EXIT_FAULT))
-    return int(args.func(args))
+    # outside a run, SIGTERM is treated as Ctrl-C: stop quietly (a run installs its own
+    # graceful handlers, plantrig.sim.run_to_folder)
+    signal.signal(signal.SIGTERM, signal.default_int_handler)
+    try:
+        return int(args.func(args))
+    except KeyboardInterrupt:
+        print("plantrig: stopped by a signal", file=sys.stderr)
+        return EXIT_STOPPED
 
 
 if __name__ == "__main__":

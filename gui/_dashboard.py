@@ -22,7 +22,7 @@ from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
 from plantrig.gui._store import LiveStore
 from plantrig.gui._view import DashboardView
-from plantrig.sim import load_rig
+from plantrig.sim import load_rig_as_data
 
 MAX_SPAN_S = 30.0
 MAX_KEEP_ROWS = 200_000
@@ -67,7 +67,7 @@ class Dashboard:
                  rig_path: str | Path, command_queue: Any | None, *,
                  frame_cap_hz: float = 30.0, span_s: float = 10.0) -> None:
         prepare_renderer()
-        rig = load_rig(rig_path)
+        rig = load_rig_as_data(rig_path)  # names and ranges; the run owns the model
         keep = int(min(MAX_KEEP_ROWS, math.ceil(MAX_SPAN_S / rig.tick) + 16))
         self.feed = LiveFeed(tape_path, event_tape_path, keep)
         groups = ColumnGroups(self.feed.columns, self.feed.units, rig)

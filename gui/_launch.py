@@ -21,6 +21,7 @@ from plantrig.gui._process import (
 from plantrig.gui._replay import RunFolderError, load_run
 from plantrig.sim import RigFileError
 
+SCREENSHOT_FRAMES = 8       # frames drawn before a --screenshot is taken
 NO_DISPLAY = ("no display: the dashboard needs an X or Wayland display (DISPLAY is not set); "
               "run without --gui, or under Xvfb")
 
@@ -67,8 +68,13 @@ class LiveDashboard:
             process.stop()
 
 
-def replay(folder: str | Path, *, frame_cap_hz: float = 30.0) -> int:
-    """Open a run folder; 0 when the window is closed, 2 for a bad folder or no display."""
+def replay(folder: str | Path, *, frame_cap_hz: float = 30.0,
+           screenshot: str | Path | None = None) -> int:
+    """Open a run folder; 0 when the window is closed, 2 for a bad folder or no display.
+
+    With ``screenshot`` the window draws a few frames, saves itself as that PNG and
+    closes; 1 if no picture was saved.
+    """
     try:
         load_run(folder)
     except RunFolderError as exc:
@@ -81,7 +87,8 @@ def replay(folder: str | Path, *, frame_cap_hz: float = 30.0) -> int:
     if not display_available():
         _say(f"error: {NO_DISPLAY}")
         return 2
-    process = start_replay_process(folder, frame_cap_hz=frame_cap_hz)
+    process = start_replay_process(folder, frame_cap_hz=frame_cap_hz, screenshot=screenshot,
+                                   exit_after_frames=SCREENSHOT_FRAMES if screenshot else None)
     try:
         process.wait()
     except KeyboardInterrupt:
@@ -89,5 +96,8 @@ def replay(folder: str | Path, *, frame_cap_hz: float = 30.0) -> int:
         return 0
     if process.process.exitcode != 0:
         _say(process.describe_exit())
+        return 1
+    if screenshot is not None and not Path(screenshot).is_file():
+        _say(f"error: the replay window saved no picture at {screenshot}")
         return 1
     return 0

@@ -3,6 +3,10 @@
 A run folder holds ticks.npy (one float64 field per column), columns.json (units),
 events.jsonl and rig.toml (with an ODE model's module beside it). The same panels as
 the live dashboard show the moment under the slider and the window before it.
+
+A folder may come from someone else, so a replay reads data only: rig.toml is read
+without importing its model module, the values are the recorded ones and the model
+summary is the one in summary.json.
 """
 
 from __future__ import annotations
@@ -26,7 +30,7 @@ from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
 from plantrig.gui._store import RowStore
 from plantrig.gui._view import DashboardView
-from plantrig.sim import Rig, load_rig
+from plantrig.sim import Rig, load_rig_as_data
 
 DEFAULT_SCREENSHOT_FRAME = 30
 
@@ -70,7 +74,7 @@ def load_run(folder: str | Path) -> RunRecord:
     units = [""] * len(columns)
     meta_path = folder / "columns.json"
     if meta_path.is_file():
-        meta = json.loads(meta_path.read_text())
+        meta = _json(folder, meta_path)
         if meta.get("columns") == columns:
             units = list(meta.get("units", units))
     events: list[EventRow] = []
@@ -87,9 +91,19 @@ def load_run(folder: str | Path) -> RunRecord:
                 raise RunFolderError(folder, f"events.jsonl line {n} is not an event "
                                              "record") from None
     summary_path = folder / "summary.json"
-    summary = json.loads(summary_path.read_text()) if summary_path.is_file() else {}
-    return RunRecord(folder, load_rig(folder / "rig.toml"), columns, units, rows, events,
-                     summary)
+    summary = _json(folder, summary_path) if summary_path.is_file() else {}
+    return RunRecord(folder, load_rig_as_data(folder / "rig.toml"), columns, units, rows,
+                     events, summary)
+
+
+def _json(folder: Path, path: Path) -> dict[str, Any]:
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise RunFolderError(folder, f"{path.name} unreadable: {exc}") from None
+    if not isinstance(doc, dict):
+        raise RunFolderError(folder, f"{path.name} is not a JSON object")
+    return doc
 
 
 class Replay:

@@ -15,6 +15,13 @@ from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultS
 from plantrig.sim._interlocks import InterlockSpec, SafetySettings
 from plantrig.sim._limits import LimitSpec
 from plantrig.sim._manifest import generate_keypair, sign_folder, verify_folder
+from plantrig.sim._outcome import (
+    EXIT_CODE_HELP,
+    EXIT_CODES,
+    OUTCOMES,
+    AcceptanceRules,
+    RuleResult,
+)
 from plantrig.sim._plant import (
     DiscretePlant,
     LinearPlant,
@@ -32,6 +39,7 @@ from plantrig.sim._reader import RunRecord, read_run
 from plantrig.sim._recorder import read_journal
 from plantrig.sim._records import recover_run
 from plantrig.sim._references import Ramp, Sine, Step, Table
+from plantrig.sim._rigdata import ModelNotLoaded, load_rig_as_data, model_module, run_folder_of
 from plantrig.sim._rigfile import (
     ControllerSpec,
     NamedReference,
@@ -63,7 +71,10 @@ __all__ = [
     "SafetySettings", "Scenario", "ScenarioFileError", "Verdict", "build_scenario", "evaluate",
     "load_scenario", "parse_fault", "verdict_lines", "write_verdicts",
     "describe_value", "one_of",
+    # outcomes
+    "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "AcceptanceRules", "RuleResult",
     # run records
     "RecordError", "RunRecord", "export_csv", "export_mat", "generate_keypair", "read_run",
     "recover_run", "sign_folder", "verify_folder",
+    "ModelNotLoaded", "load_rig_as_data", "model_module", "run_folder_of",
 ]

@@ -1,0 +1,104 @@
+"""A rig file read as data only: its model module is located, never imported.
+
+Run folders travel, so a rig.toml inside one may name a module that came with the
+folder from someone else. Reading such a record (replay, the dashboard) needs the
+names, units, ranges, loops and limits, never the model's code: an ODE plant here is a
+placeholder whose functions refuse to run, and the model summary comes from the
+record (summary.json, run_start.json, run.h5).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import tomllib
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._plant import OdePlant
+from plantrig.sim._rigfile import Rig, build_rig
+
+# Files only plantrig writes, into every run folder at its start; either marks a record.
+RUN_FOLDER_MARKERS = ("run_start.json", "sources.json")
+ODE_ONLY_KEYS = ("module", "dynamics", "output", "params", "method", "substeps")
+
+
+class ModelNotLoaded(RuntimeError):
+    """The rig was read as data; its model's code was deliberately not imported."""
+
+
+def _refuse(*_: Any) -> Any:
+    raise ModelNotLoaded("this rig was read as data: its model module was not imported "
+                         "(use the recorded values, or load_rig to run the model)")
+
+
+def load_rig_as_data(path: str | Path) -> Rig:
+    """Read and check a rig file as load_rig does, without importing an ODE model.
+
+    The returned Rig's plant has the right shape and parameters; calling its dynamics
+    or output raises ModelNotLoaded.
+    """
+    path = Path(path)
+    text, doc = _read(path)
+    plant_t = doc.get("plant")
+    if not (isinstance(plant_t, dict) and plant_t.get("kind") == "ode"):
+        return build_rig(doc, path, text)
+    counts = [len(plant_t.get(group, [])) if isinstance(plant_t.get(group), list) else 0
+              for group in ("states", "inputs", "outputs")]
+    n, m, p = counts
+    stand_in = {k: v for k, v in plant_t.items() if k not in ODE_ONLY_KEYS}
+    stand_in.update(kind="lti", A=np.zeros((n, n)).tolist(), B=np.zeros((n, m)).tolist(),
+                    C=np.zeros((p, n)).tolist(), D=np.zeros((p, m)).tolist())
+    rig = build_rig({**doc, "plant": stand_in}, path, text)
+    params = plant_t.get("params", {})
+    method = plant_t.get("method", "rk4")
+    substeps = plant_t.get("substeps", 1)
+    plant = OdePlant(_refuse, _refuse, n, m, p, dict(params) if isinstance(params, dict)
+                     else {})
+    return dataclasses.replace(rig, plant=plant,
+                               method=method if isinstance(method, str) else "rk4",
+                               substeps=substeps if isinstance(substeps, int) else 1)
+
+
+def model_module(path: str | Path) -> Path | None:
+    """The Python file an ODE rig file names as its model (resolved), or None."""
+    path = Path(path)
+    _, doc = _read(path)
+    plant_t = doc.get("plant")
+    if not (isinstance(plant_t, dict) and plant_t.get("kind") == "ode"
+            and isinstance(plant_t.get("module"), str)):
+        return None
+    return (path.parent / plant_t["module"]).resolve()
+
+
+def run_folder_of(path: str | Path) -> Path | None:
+    """The run folder that holds ``path`` (a file or folder), or None."""
+    for folder in Path(path).resolve().parents:
+        if any((folder / marker).is_file() for marker in RUN_FOLDER_MARKERS) or \
+                _plantrig_manifest(folder / "manifest.json"):
+            return folder
+    return None
+
+
+def _plantrig_manifest(path: Path) -> bool:
+    """A manifest.json of ours (the name alone is common elsewhere)."""
+    try:
+        return path.is_file() and b'"plantrig manifest"' in path.read_bytes()[:4096]
+    except OSError:
+        return False
+
+
+def _read(path: Path) -> tuple[str, dict[str, Any]]:
+    file = str(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise RigFileError([RigIssue(file, "", f"cannot read: {exc.strerror or exc}")]) from None
+    except UnicodeDecodeError as exc:
+        raise RigFileError([RigIssue(file, "", f"not UTF-8 text: {exc.reason}")]) from None
+    try:
+        return text, tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise RigFileError([RigIssue(file, "", f"not valid TOML: {exc}")]) from None
