@@ -88,10 +88,10 @@ def pid_rig(n: int, duration: float, mode: str = "fast"):  # type: ignore[no-unt
                   "C": plant.C.tolist(), "states": [{"name": f"x{i}"} for i in range(n)],
                   "inputs": [{"name": "u", "min": -10.0, "max": 10.0}],
                   "outputs": [{"name": "y"}]},
-        "references": [{"name": "r", "kind": "sine", "amplitude": 1.0, "frequency": 2.0}],
+        "references": [{"name": "r", "kind": "sine", "low": -1.0, "high": 1.0, "hz": 2.0}],
         "controller": {"kind": "pid", "loops": [{"measure": "y", "drive": "u",
                                                   "reference": "r", "kp": 1.0, "ki": 5.0,
-                                                  "kd": 0.01, "derivative_filter": 0.005}]},
+                                                  "kd": 0.01, "derivative_lag": 0.005}]},
     }, Path(f"bench{n}.toml"))
 
 

@@ -15,6 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 Vector = NDArray[np.float64]
+WINDUP = ("unwind", "freeze", "off")   # what the integrator does at an output limit
 
 
 class Controller(Protocol):
@@ -43,34 +44,39 @@ class Pid:
     """Discrete PID on one measured output driving one input.
 
     u = kp*e + I + D, e = r - y, with
-      - derivative on the measurement (no kick on reference steps), filtered by a
-        first-order lag of time constant ``tf``, discretised by backward difference:
-        D_k = tf/(tf+dt) * D_{k-1} - kd/(tf+dt) * (y_k - y_{k-1});
-      - anti-windup by back-calculation: dI = (ki*e + (u_sat - u)/tt) * dt, or by
-        clamping (integration stops while the output saturates in the same direction);
-      - output limits [u_min, u_max].
-    The structure follows Astrom & Murray, Feedback Systems (2008), section 10.5
-    (filtering, integrator windup, discrete implementation).
+      - derivative on the measurement (no kick on reference steps), passed through a
+        first-order lag of time constant ``derivative_lag`` (s), discretised by backward
+        difference: D_k = Tf/(Tf+dt) * D_{k-1} - kd/(Tf+dt) * (y_k - y_{k-1});
+      - integrator windup handled by ``windup``: "unwind" (the textbook's
+        back-calculation: dI = (ki*e + (u_lim - u)/Tt) * dt, Tt = ``unwind_time``),
+        "freeze" (conditional integration, also called clamping: the integral stops
+        while the output is at a limit and the error pushes further) or "off";
+      - output held within [``drive_low``, ``drive_high``].
+    The structure follows Astrom & Murray, Feedback Systems (2008), section 10.4
+    (integrator windup) and 10.5 (filtering, discrete implementation).
     """
 
     def __init__(self, *, measure: int, drive: int, reference: int, kp: float, ki: float,
-                 kd: float, dt: float, tf: float = 0.0, u_min: float = -math.inf,
-                 u_max: float = math.inf, anti_windup: str = "back_calculation",
-                 tt: float | None = None) -> None:
-        if anti_windup not in ("back_calculation", "clamp", "none"):
-            raise ValueError(f"anti_windup: unknown kind {anti_windup!r}")
+                 kd: float, dt: float, derivative_lag: float = 0.0,
+                 drive_low: float = -math.inf, drive_high: float = math.inf,
+                 windup: str = "unwind", unwind_time: float | None = None) -> None:
+        if windup not in WINDUP:
+            raise ValueError(f"windup: unknown kind {windup!r}")
         self.measure, self.drive, self.reference = measure, drive, reference
-        self.kp, self.ki, self.kd, self.dt, self.tf = kp, ki, kd, dt, tf
-        self.u_min, self.u_max = u_min, u_max
-        self.anti_windup = anti_windup
+        self.kp, self.ki, self.kd, self.dt = kp, ki, kd, dt
+        self.derivative_lag = derivative_lag
+        self.drive_low, self.drive_high = drive_low, drive_high
+        self.windup = windup
+        tt = unwind_time
         if tt is None:
             # Tt = sqrt(Ti * Td) = sqrt(kd / ki), or Ti = kp / ki without derivative action
             # (Astrom & Murray, section 10.4, rule of thumb).
             tt = math.sqrt(kd / ki) if ki and kd else (kp / ki if ki and kp else dt)
-        self.tt = max(tt, dt)
+        self.unwind_time = max(tt, dt)
+        tf = derivative_lag
         self._d_pole = tf / (tf + dt)
         self._d_gain = kd / (tf + dt)
-        self._tracking_gain = dt / self.tt
+        self._unwind_gain = dt / self.unwind_time
         self.reset()
 
     def reset(self) -> None:
@@ -87,12 +93,12 @@ class Pid:
         if self.kd:
             self.derivative = self._d_pole * self.derivative - self._d_gain * (yk - y_prev)
         v = self.kp * e + self.integral + self.derivative
-        lo, hi = self.u_min, self.u_max
+        lo, hi = self.drive_low, self.drive_high
         out = lo if v < lo else hi if v > hi else v
         ki_e_dt = self.ki * e * self.dt
-        if self.anti_windup == "back_calculation":
-            self.integral += ki_e_dt + (out - v) * self._tracking_gain
-        elif self.anti_windup == "clamp":
+        if self.windup == "unwind":
+            self.integral += ki_e_dt + (out - v) * self._unwind_gain
+        elif self.windup == "freeze":
             if not ((v > hi and e > 0) or (v < lo and e < 0)):
                 self.integral += ki_e_dt
         else:

@@ -88,12 +88,13 @@ def build_controller(rig: Rig) -> Controller | None:
         loops = []
         for ls in s["loops"]:
             drive = inputs.index(ls["drive"])
-            lo = ls["u_min"] if ls["u_min"] is not None else rig.inputs[drive].min
-            hi = ls["u_max"] if ls["u_max"] is not None else rig.inputs[drive].max
+            lo = ls["drive_low"] if ls["drive_low"] is not None else rig.inputs[drive].min
+            hi = ls["drive_high"] if ls["drive_high"] is not None else rig.inputs[drive].max
             loops.append(Pid(measure=outputs.index(ls["measure"]), drive=drive,
                              reference=refs.index(ls["reference"]), kp=ls["kp"], ki=ls["ki"],
-                             kd=ls["kd"], dt=rig.tick, tf=ls["derivative_filter"], u_min=lo,
-                             u_max=hi, anti_windup=ls["anti_windup"], tt=ls["tracking_time"]))
+                             kd=ls["kd"], dt=rig.tick, derivative_lag=ls["derivative_lag"],
+                             drive_low=lo, drive_high=hi, windup=ls["windup"],
+                             unwind_time=ls["unwind_time"]))
         return loops[0] if len(loops) == 1 else PidLoops(loops)  # one call less per tick
     if spec.kind == "state_feedback":
         order = [refs.index(r) for r in s["references"]]

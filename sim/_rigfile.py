@@ -1,7 +1,8 @@
 """Rig files (TOML): read, check every key, and build the models they describe.
 
 All mistakes in a file are collected and reported together (RigFileError); unknown
-keys are mistakes too, with a did-you-mean where a known key is close. Sections that
+keys are mistakes too, with a did-you-mean where a known key is close, and a key of an
+earlier plantrig version names the key that replaced it. Sections that
 belong to other parts (``link``, ``sensors``, ``actuators``) are kept as plain data here
 and checked by the part that owns them, through the same issue list.
 """
@@ -19,6 +20,7 @@ from typing import Any
 
 import numpy as np
 
+from plantrig.sim._controllers import WINDUP
 from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
 from plantrig.sim._faults import DisturbanceSpec, parse_disturbances
 from plantrig.sim._interlocks import (
@@ -35,7 +37,7 @@ from plantrig.sim._plant import (
     OdePlant,
     Plant,
 )
-from plantrig.sim._references import Ramp, Reference, Sine, Step, Table
+from plantrig.sim._references import TABLE_BETWEEN, Ramp, Reference, Sine, Step, Table
 
 PLANT_KINDS = ("lti", "transfer_function", "discrete_lti", "ode")
 CONTROLLER_KINDS = ("pid", "state_feedback", "open_loop", "external")
@@ -148,9 +150,17 @@ class _Checker:
             return None
         return value
 
-    def no_unknown(self, table: dict[str, Any], known: set[str], path: str) -> None:
+    def no_unknown(self, table: dict[str, Any], known: set[str], path: str,
+                   renamed: dict[str, str] | None = None) -> None:
+        """Every key not in ``known`` is a mistake; ``renamed`` maps keys of earlier
+        versions to the text naming what replaced them."""
         for key in table:
-            if key not in known:
+            if key in known:
+                continue
+            if renamed and key in renamed:
+                self.add(_join(path, key), f"old key name, no longer read; did you mean "
+                                           f"{renamed[key]}?")
+            else:
                 close = difflib.get_close_matches(key, sorted(known), n=1, cutoff=0.6)
                 hint = f"; did you mean '{close[0]}'?" if close else (
                     f"; known keys: {', '.join(sorted(known))}")
@@ -452,12 +462,22 @@ def _initial_state(c: _Checker, t: dict[str, Any], plant: Plant | None) -> np.nd
 
 
 REFERENCE_KEYS = {
-    "step": {"time", "initial", "final"},
-    "ramp": {"start", "slope", "initial", "limit"},
-    "sine": {"amplitude", "frequency", "offset", "phase"},
-    "table": {"points", "interpolation"},
+    "step": {"at", "from", "to"},
+    "ramp": {"at", "from", "rate", "to"},
+    "sine": {"low", "high", "hz", "phase_deg"},
+    "table": {"points", "between"},
     "constant": {"value"},
 }
+_SINE_BOUNDS = "'low' and 'high' (low = offset - amplitude, high = offset + amplitude)"
+RENAMED_REFERENCE_KEYS = {     # keys of earlier versions -> the key(s) to write now
+    "step": {"time": "'at'", "initial": "'from'", "final": "'to'"},
+    "ramp": {"start": "'at'", "initial": "'from'", "slope": "'rate'", "limit": "'to'"},
+    "sine": {"amplitude": _SINE_BOUNDS, "offset": _SINE_BOUNDS, "frequency": "'hz'",
+             "phase": "'phase_deg'"},
+    "table": {"interpolation": "'between'"},
+    "constant": {},
+}
+_FIELDS = {"from": "from_"}    # rig-file key -> waveform field ('from' is a Python keyword)
 
 
 def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
@@ -469,33 +489,34 @@ def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
         kind = c.take(entry, "kind", where, "str", check=one_of(REFERENCE_KINDS))
         if kind is None:
             continue
-        c.no_unknown(entry, {"name", "unit", "kind"} | REFERENCE_KEYS[kind], where)
-        values: dict[str, Any] = {}
-        for key in REFERENCE_KEYS[kind] - {"points", "interpolation"}:
+        c.no_unknown(entry, {"name", "unit", "kind"} | REFERENCE_KEYS[kind], where,
+                     renamed=RENAMED_REFERENCE_KEYS[kind])
+        values: dict[str, float] = {}
+        for key in sorted(REFERENCE_KEYS[kind] - {"points", "between"}):
             v = c.take(entry, key, where, "number", default=None)
             if v is not None:
-                values[key] = float(v)
+                values[_FIELDS.get(key, key)] = float(v)
         waveform: Reference | None
         if kind == "step":
             waveform = Step(**values)
         elif kind == "ramp":
-            waveform = Ramp(**values)
+            waveform = _ramp(c, where, Ramp(**values))
         elif kind == "sine":
-            waveform = Sine(**values)
+            waveform = _sine(c, where, Sine(**values))
         elif kind == "constant":
-            waveform = Step(time=0.0, initial=values.get("value", 0.0),
-                            final=values.get("value", 0.0))
+            value = values.get("value", 0.0)
+            waveform = Step(at=0.0, from_=value, to=value)
         else:
             points = c.take(entry, "points", where, "matrix")
-            interp = c.take(entry, "interpolation", where, "str", default="linear",
-                            check=one_of(("linear", "hold")))
+            between = c.take(entry, "between", where, "str", default="linear",
+                             check=one_of(TABLE_BETWEEN))
             waveform = None
-            if points is not None and interp is not None:
+            if points is not None and between is not None:
                 if not all(isinstance(p, list) and len(p) == 2 for p in points):
                     c.add(f"{where}.points", "expected [[time, value], ...] pairs")
                 else:
                     try:
-                        waveform = Table([(p[0], p[1]) for p in points], interp)
+                        waveform = Table([(p[0], p[1]) for p in points], between)
                     except ValueError as exc:
                         c.add(f"{where}.points", str(exc).split(": ", 1)[-1])
         if name is not None and waveform is not None:
@@ -505,8 +526,35 @@ def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
     return out
 
 
-PID_KEYS = {"measure", "drive", "reference", "kp", "ki", "kd", "derivative_filter",
-            "anti_windup", "tracking_time", "u_min", "u_max"}
+def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
+    """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
+    if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
+        return ramp
+    c.add(f"{where}.rate", f"a rate of {ramp.rate:g} per s never takes the ramp from "
+                           f"{ramp.from_:g} to {ramp.to:g}; give the rate the other sign, "
+                           "or leave 'to' out")
+    return None
+
+
+def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
+    ok = True
+    if sine.high < sine.low:
+        c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
+        ok = False
+    if sine.hz < 0:
+        c.add(f"{where}.hz", f"expected a frequency >= 0 Hz, found {sine.hz:g}")
+        ok = False
+    return sine if ok else None
+
+
+PID_KEYS = {"measure", "drive", "reference", "kp", "ki", "kd", "derivative_lag", "windup",
+            "unwind_time", "drive_low", "drive_high"}
+RENAMED_WINDUP = {"back_calculation": "unwind", "clamp": "freeze", "none": "off"}
+RENAMED_PID_KEYS = {           # keys of earlier versions -> the key to write now
+    "derivative_filter": "'derivative_lag'", "tracking_time": "'unwind_time'",
+    "u_min": "'drive_low'", "u_max": "'drive_high'",
+    "anti_windup": "'windup' (back_calculation -> unwind, clamp -> freeze, none -> off)",
+}
 CONTROLLER_KEYS = {
     "pid": {"loops"},
     "state_feedback": {"K", "N", "references"},
@@ -546,7 +594,7 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                 c.add(where, "expected a table ([[controller.loops]]), found "
                              f"{describe_value(loop)}")
                 continue
-            c.no_unknown(loop, PID_KEYS, where)
+            c.no_unknown(loop, PID_KEYS, where, renamed=RENAMED_PID_KEYS)
             ls: dict[str, Any] = {
                 "measure": c.take(loop, "measure", where, "str",
                                   check=name_in(out_names, "plant outputs")),
@@ -556,12 +604,11 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                                     check=name_in(ref_names, "references")),
             }
             for key, default in (("kp", _MISSING), ("ki", 0.0), ("kd", 0.0),
-                                 ("derivative_filter", 0.0), ("tracking_time", None),
-                                 ("u_min", None), ("u_max", None)):
+                                 ("derivative_lag", 0.0), ("unwind_time", None),
+                                 ("drive_low", None), ("drive_high", None)):
                 ls[key] = c.take(loop, key, where, "number", default=default)
-            ls["anti_windup"] = c.take(loop, "anti_windup", where, "str",
-                                       default="back_calculation",
-                                       check=one_of(("back_calculation", "clamp", "none")))
+            ls["windup"] = c.take(loop, "windup", where, "str", default="unwind",
+                                  check=_windup)
             settings["loops"].append(ls)
         drives = [ls["drive"] for ls in settings["loops"] if ls["drive"]]
         for d in {d for d in drives if drives.count(d) > 1}:
@@ -604,6 +651,14 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                                                        f"found {describe_value(ref)}")
             settings["drive"] = drive
     return ControllerSpec(kind, settings)
+
+
+def _windup(value: str) -> str | None:
+    """One of WINDUP; a value of an earlier version names its replacement."""
+    if value in RENAMED_WINDUP:
+        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
+                f"did you mean '{RENAMED_WINDUP[value]}'?")
+    return one_of(WINDUP)(value)
 
 
 def check_controller_table(rig: Rig, table: Any, path: str) -> tuple[ControllerSpec | None,

@@ -41,7 +41,7 @@ def lag_rig(tmp_path: Path, controller: dict, duration: float = 1.0, tick: float
         "plant": {"kind": "lti", "A": [[-2.0]], "B": [[2.0]], "C": [[1.0]], "D": [[D]],
                   "states": [{"name": "x"}], "inputs": [{"name": "u", "min": -5.0, "max": 5.0}],
                   "outputs": [{"name": "y"}]},
-        "references": [{"name": "r", "kind": "step", "time": 0.0, "final": 1.0}]
+        "references": [{"name": "r", "kind": "step", "at": 0.0, "to": 1.0}]
         + (extra_refs or []),
         "controller": controller,
     }
@@ -59,7 +59,7 @@ def test_fast_runs_are_bit_identical() -> None:
 def test_open_loop_run_equals_scipy_dlsim(tmp_path: Path) -> None:
     # u = r (open loop): the engine's records must equal scipy.signal.dlsim on the ZOH model
     rig = lag_rig(tmp_path, {"kind": "open_loop", "drive": {"u": "s"}}, extra_refs=[
-        {"name": "s", "kind": "sine", "amplitude": 2.0, "frequency": 1.5}], D=0.5)
+        {"name": "s", "kind": "sine", "low": -2.0, "high": 2.0, "hz": 1.5}], D=0.5)
     data = simulate(rig)
     u = data["u:u"]
     sysd = scipy.signal.cont2discrete(tuple(np.array(m) for m in ([[-2.0]], [[2.0]], [[1.0]],
@@ -98,23 +98,24 @@ def test_state_feedback_reaches_predicted_steady_state(tmp_path: Path) -> None:
     assert data["y:y"][-1] == pytest.approx(bd * 2.0 / (1 - ad + bd * 1.5), rel=1e-9)
 
 
-def test_pid_output_limits_and_anti_windup(tmp_path: Path) -> None:
-    # a saturated integrator must not wind up: with back-calculation the output leaves the
-    # limit soon after the error changes sign; without it, it stays saturated far longer
+def test_pid_output_limits_and_windup(tmp_path: Path) -> None:
+    # a saturated integrator must not wind up: unwinding it (back-calculation) lets the
+    # output leave the limit soon after the error changes sign; without it, it stays
+    # saturated far longer
     steps = [[0.0, 8.0], [1.0, 0.0]]  # 8 is out of reach: u sits at its limit 5
     times = {}
-    for aw in ("back_calculation", "none"):
+    for windup in ("unwind", "off"):
         rig = lag_rig(tmp_path, {"kind": "pid", "loops": [
             {"measure": "y", "drive": "u", "reference": "p", "kp": 1.0, "ki": 5.0,
-             "anti_windup": aw}]}, duration=3.0,
-            extra_refs=[{"name": "p", "kind": "table", "interpolation": "hold",
+             "windup": windup}]}, duration=3.0,
+            extra_refs=[{"name": "p", "kind": "table", "between": "hold",
                          "points": steps}])
         data = simulate(rig)
         u = data["u:u"]
         assert u.max() <= 5.0 and u.min() >= -5.0
         after = np.nonzero((data.t >= 1.0) & (u < 4.999))[0]
-        times[aw] = data.t[after[0]]
-    assert times["back_calculation"] < times["none"]
+        times[windup] = data.t[after[0]]
+    assert times["unwind"] < times["off"]
 
 
 class ScriptedQueue:

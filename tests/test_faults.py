@@ -41,8 +41,8 @@ def rig_for(tmp_path: Path, controller: dict | None = None, reference: dict | No
         "plant": {"kind": "lti", "A": [[-2.0]], "B": [[2.0]], "C": [[1.0]],
                   "states": [{"name": "x"}], "inputs": [{"name": "u", "safe": 0.0}],
                   "outputs": [{"name": "y"}]},
-        "references": [reference or {"name": "r", "kind": "sine", "amplitude": 1.0,
-                                     "frequency": 1.3, "offset": 0.2}],
+        "references": [reference or {"name": "r", "kind": "sine", "low": -0.8, "high": 1.2,
+                                     "hz": 1.3}],
         "controller": controller or {"kind": "open_loop", "drive": {"u": "r"}},
     }
     doc.update(extra or {})
@@ -173,7 +173,7 @@ def test_actuator_delay_shifts_the_input(tmp_path: Path) -> None:
 
 # -- link faults: at the boundary between controller and plant ----------------------------
 P = {"kind": "pid", "loops": [{"measure": "y", "drive": "u", "reference": "r", "kp": 2.0}]}
-STEP = {"name": "r", "kind": "step", "time": 0.0, "final": 1.0}
+STEP = {"name": "r", "kind": "step", "at": 0.0, "to": 1.0}
 
 
 def test_link_drop_from_controller_holds_the_last_command(tmp_path: Path) -> None:

@@ -31,12 +31,18 @@ def test_hold_table_equals_the_last_point_at_or_before_t() -> None:
 
 
 def test_step_ramp_sine_closed_forms() -> None:
-    assert Step(1.0, 2.0, 5.0).value(0.999) == 2.0 and Step(1.0, 2.0, 5.0).value(1.0) == 5.0
-    ramp = Ramp(start=1.0, slope=2.0, initial=1.0, limit=4.0)
+    step = Step(at=1.0, from_=2.0, to=5.0)
+    assert step.value(0.999) == 2.0 and step.value(1.0) == 5.0
+    ramp = Ramp(at=1.0, from_=1.0, rate=2.0, to=4.0)
     assert [ramp.value(t) for t in (0.5, 1.0, 2.0, 3.0)] == [1.0, 1.0, 3.0, 4.0]
-    sine = Sine(amplitude=2.0, frequency=0.5, offset=1.0, phase=90.0)
+    down = Ramp(at=0.0, from_=5.0, rate=-2.0, to=1.0)
+    assert [down.value(t) for t in (-1.0, 0.0, 1.0, 2.0, 9.0)] == [5.0, 5.0, 3.0, 1.0, 1.0]
+    assert Ramp(rate=-1.0).value(100.0) == -100.0          # no 'to': it never stops
+    # between -1 and 3 at 0.5 Hz, a quarter period ahead: 1 + 2 cos(pi t)
+    sine = Sine(low=-1.0, high=3.0, hz=0.5, phase_deg=90.0)
     for t in (0.0, 0.3, 1.7):
         assert sine.value(t) == pytest.approx(1.0 + 2.0 * math.cos(math.pi * t), abs=1e-12)
+    assert Sine(low=0.2, high=0.6, hz=2.0).value(0.125) == pytest.approx(0.6, abs=1e-12)
 
 
 def test_table_refuses_decreasing_times() -> None:

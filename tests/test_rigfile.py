@@ -30,8 +30,8 @@ outputs = [{ name = "y", unit = "V" }]
 [[references]]
 name = "r"
 kind = "step"
-time = 0.1
-final = 1.0
+at = 0.1
+to = 1.0
 
 [controller]
 kind = "pid"
@@ -138,6 +138,131 @@ def test_cli_check_exit_2_without_traceback(tmp_path: Path) -> None:
     assert proc.returncode == 2
     assert "Traceback" not in proc.stderr
     assert f"{path}: plant.B: has shape (2, 1)" in proc.stderr
+
+
+# Keys of earlier versions: each is a mistake whose message names the key to write now.
+# (reference kind and its keys, old key, the new key(s) the message must name)
+SINE_BOUNDS = "'low' and 'high' (low = offset - amplitude, high = offset + amplitude)"
+OLD_REFERENCE_KEYS = [
+    ("kind = \"step\"\ntime = 0.1", "time", "'at'"),
+    ("kind = \"step\"\ninitial = 0.0", "initial", "'from'"),
+    ("kind = \"step\"\nfinal = 1.0", "final", "'to'"),
+    ("kind = \"ramp\"\nstart = 0.1", "start", "'at'"),
+    ("kind = \"ramp\"\ninitial = 0.0", "initial", "'from'"),
+    ("kind = \"ramp\"\nslope = 1.0", "slope", "'rate'"),
+    ("kind = \"ramp\"\nlimit = 2.0", "limit", "'to'"),
+    ("kind = \"sine\"\namplitude = 1.0", "amplitude", SINE_BOUNDS),
+    ("kind = \"sine\"\noffset = 1.0", "offset", SINE_BOUNDS),
+    ("kind = \"sine\"\nfrequency = 1.0", "frequency", "'hz'"),
+    ("kind = \"sine\"\nphase = 90.0", "phase", "'phase_deg'"),
+    ("kind = \"table\"\npoints = [[0.0, 1.0]]\ninterpolation = \"hold\"", "interpolation",
+     "'between'"),
+]
+REFERENCE_BLOCK = 'kind = "step"\nat = 0.1\nto = 1.0'
+OLD_PID_KEYS = [
+    ("anti_windup = \"back_calculation\"", "anti_windup",
+     "'windup' (back_calculation -> unwind, clamp -> freeze, none -> off)"),
+    ("tracking_time = 0.5", "tracking_time", "'unwind_time'"),
+    ("derivative_filter = 0.01", "derivative_filter", "'derivative_lag'"),
+    ("u_min = -5.0", "u_min", "'drive_low'"),
+    ("u_max = 5.0", "u_max", "'drive_high'"),
+]
+
+
+@pytest.mark.parametrize(("block", "old", "new"), OLD_REFERENCE_KEYS,
+                         ids=[f"{b.split(chr(34))[1]}.{o}" for b, o, _ in OLD_REFERENCE_KEYS])
+def test_old_reference_keys_name_their_new_key(tmp_path: Path, block: str, old: str,
+                                               new: str) -> None:
+    assert REFERENCE_BLOCK in GOOD
+    path = write(tmp_path, GOOD.replace(REFERENCE_BLOCK, block))
+    with pytest.raises(RigFileError) as info:
+        load_rig(path)
+    assert [(i.key, i.message) for i in info.value.issues] == [
+        (f"references[0].{old}", f"old key name, no longer read; did you mean {new}?")]
+
+
+@pytest.mark.parametrize(("line", "old", "new"), OLD_PID_KEYS,
+                         ids=[o for _, o, _ in OLD_PID_KEYS])
+def test_old_pid_keys_name_their_new_key(tmp_path: Path, line: str, old: str,
+                                         new: str) -> None:
+    path = write(tmp_path, GOOD.replace("ki = 2.0", f"ki = 2.0\n{line}"))
+    with pytest.raises(RigFileError) as info:
+        load_rig(path)
+    assert [(i.key, i.message) for i in info.value.issues] == [
+        (f"controller.loops[0].{old}", f"old key name, no longer read; did you mean {new}?")]
+
+
+def test_old_windup_values_name_their_new_value(tmp_path: Path) -> None:
+    for old, new in (("back_calculation", "unwind"), ("clamp", "freeze"), ("none", "off")):
+        path = write(tmp_path, GOOD.replace("ki = 2.0", f"ki = 2.0\nwindup = \"{old}\""))
+        with pytest.raises(RigFileError) as info:
+            load_rig(path)
+        assert [(i.key, i.message) for i in info.value.issues] == [
+            ("controller.loops[0].windup", f"expected one of unwind, freeze, off, found "
+                                           f"'{old}' (an old value); did you mean '{new}'?")]
+
+
+def test_new_reference_and_pid_keys_load(tmp_path: Path) -> None:
+    text = GOOD.replace(REFERENCE_BLOCK, 'kind = "ramp"\nat = 0.2\nfrom = 1.0\nrate = -0.5\n'
+                                         'to = 0.5')
+    text = text.replace("ki = 2.0", "ki = 2.0\nkd = 0.1\nderivative_lag = 0.02\n"
+                                    'windup = "freeze"\nunwind_time = 0.3\n'
+                                    "drive_low = -4.0\ndrive_high = 6.0")
+    rig = load_rig(write(tmp_path, text))
+    ramp = rig.references[0].waveform
+    assert [ramp.value(t) for t in (0.0, 0.2, 1.2, 5.0)] == [1.0, 1.0, 0.5, 0.5]
+    loop = rig.controller.settings["loops"][0]
+    assert (loop["derivative_lag"], loop["windup"], loop["unwind_time"], loop["drive_low"],
+            loop["drive_high"]) == (0.02, "freeze", 0.3, -4.0, 6.0)
+    sine = load_rig(write(tmp_path, GOOD.replace(
+        REFERENCE_BLOCK, 'kind = "sine"\nlow = 0.2\nhigh = 0.6\nhz = 2.0\nphase_deg = 90.0')))
+    assert sine.references[0].waveform.value(0.0) == pytest.approx(0.6, abs=1e-12)
+
+
+@pytest.mark.parametrize(("block", "key", "words"), [
+    ('kind = "ramp"\nfrom = 1.0\nrate = 0.5\nto = 0.0', "references[0].rate",
+     "a rate of 0.5 per s never takes the ramp from 1 to 0; give the rate the other sign"),
+    ('kind = "sine"\nlow = 1.0\nhigh = 0.5', "references[0].high",
+     "expected high >= low (1), found 0.5"),
+    ('kind = "sine"\nhz = -2.0', "references[0].hz", "expected a frequency >= 0 Hz"),
+    ('kind = "table"\npoints = [[0.0, 1.0]]\nbetween = "step"', "references[0].between",
+     "expected one of linear, hold, found 'step'"),
+], ids=["ramp_away_from_to", "sine_high_below_low", "sine_negative_hz", "table_between"])
+def test_reference_values_that_cannot_work(tmp_path: Path, block: str, key: str,
+                                           words: str) -> None:
+    with pytest.raises(RigFileError) as info:
+        load_rig(write(tmp_path, GOOD.replace(REFERENCE_BLOCK, block)))
+    assert any(i.key == key and words in i.message for i in info.value.issues), \
+        [str(i) for i in info.value.issues]
+
+
+def test_cli_check_names_the_new_key_for_an_old_one(tmp_path: Path) -> None:
+    text = GOOD.replace(REFERENCE_BLOCK, 'kind = "step"\ntime = 0.1\nfinal = 1.0')
+    text = text.replace("ki = 2.0", 'ki = 2.0\nanti_windup = "clamp"')
+    path = write(tmp_path, text)
+    proc = subprocess.run([sys.executable, "-m", "plantrig", "check", str(path)],
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 2 and proc.stdout == ""
+    assert "Traceback" not in proc.stderr
+    for line in (f"{path}: references[0].time: old key name, no longer read; did you mean "
+                 "'at'?",
+                 f"{path}: references[0].final: old key name, no longer read; did you mean "
+                 "'to'?",
+                 f"{path}: controller.loops[0].anti_windup: old key name, no longer read; "
+                 "did you mean 'windup' (back_calculation -> unwind, clamp -> freeze, "
+                 "none -> off)?"):
+        assert line in proc.stderr.splitlines(), proc.stderr
+
+
+def test_every_shipped_rig_file_checks_clean() -> None:
+    rigs = sorted((REPO / "configs").glob("*.toml")) + [
+        p for p in sorted((REPO / "configs" / "rehearsals").glob("*.toml"))
+        if "[rig]" in p.read_text()]
+    assert len(rigs) >= 7
+    for path in rigs:
+        proc = subprocess.run([sys.executable, "-m", "plantrig", "check", str(path)],
+                              capture_output=True, text=True, timeout=60)
+        assert proc.returncode == 0, f"{path}: {proc.stderr}"
 
 
 def test_cli_check_prints_summary() -> None:

@@ -42,7 +42,7 @@ def lag_rig(tmp_path: Path, *, limits: list | None = None, interlocks: list | No
                   "C": [[1.0]], "states": [{"name": "x"}],
                   "inputs": inputs or [{"name": "u", "safe": -0.25}],
                   "outputs": [{"name": "y"}]},
-        "references": [reference or {"name": "r", "kind": "ramp", "slope": 1.0}],
+        "references": [reference or {"name": "r", "kind": "ramp", "rate": 1.0}],
         "controller": {"kind": "open_loop", "drive": {"u": "r"}},
         "limits": limits or [], "interlocks": interlocks or [],
     }
@@ -110,7 +110,7 @@ def test_trip_in_the_tick_an_output_limit_is_crossed_and_the_step_is_repeated(
 
 def test_state_limit_and_rate_limit(tmp_path: Path) -> None:
     # r steps from 0 to 1 at 1 s: u jumps by 1 in one tick, a rate of 1 / DT = 100 /s
-    step = {"name": "r", "kind": "step", "time": 1.0, "final": 1.0}
+    step = {"name": "r", "kind": "step", "at": 1.0, "to": 1.0}
     rig = lag_rig(tmp_path, reference=step, limits=[
         {"name": "u_rate", "signal": "u:u", "rate_warn": 10.0, "rate_trip": 50.0},
         {"name": "x_low", "signal": "x:x", "trip_low": -0.1}],
@@ -287,7 +287,7 @@ def test_a_name_shared_by_a_state_and_an_output_must_be_qualified(tmp_path: Path
 
 def test_warnings_beyond_the_first_twenty_are_counted(tmp_path: Path) -> None:
     # a sine around the warn bound enters the warn band once per period: 25 times
-    sine = {"name": "r", "kind": "sine", "amplitude": 1.0, "frequency": 12.5}
+    sine = {"name": "r", "kind": "sine", "low": -1.0, "high": 1.0, "hz": 12.5}
     rig = lag_rig(tmp_path, reference=sine, limits=[{"name": "u_warn", "signal": "u",
                                                      "warn_high": 0.5}])
     data = simulate(rig)
