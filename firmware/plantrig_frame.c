@@ -213,7 +213,8 @@ int pr_encode(const pr_frame *f, uint8_t *out, size_t out_cap, size_t *out_len)
     return PR_OK;
 }
 
-int pr_decode(const uint8_t *enc, size_t len, pr_frame *f)
+/* link_encoding: PR_ENC_F32 or PR_ENC_I16, or -1 for either (pr_decode) */
+static int decode(const uint8_t *enc, size_t len, int link_encoding, pr_frame *f)
 {
     uint8_t raw[PR_MAX_RAW];
     size_t n;
@@ -270,6 +271,10 @@ int pr_decode(const uint8_t *enc, size_t len, pr_frame *f)
     if (r != PR_OK) {
         return r;
     }
+    if (link_encoding >= 0 && (int)f->encoding != link_encoding &&
+        (f->kind == PR_KIND_SENSOR || f->kind == PR_KIND_COMMAND)) {
+        return PR_ERR_ENCODING_MISMATCH;
+    }
     for (i = 0; i < f->count; ++i) {
         const uint8_t *p = raw + PR_HEADER_SIZE + i * width;
         if (width == 4) {
@@ -283,6 +288,16 @@ int pr_decode(const uint8_t *enc, size_t len, pr_frame *f)
         }
     }
     return PR_OK;
+}
+
+int pr_decode(const uint8_t *enc, size_t len, pr_frame *f)
+{
+    return decode(enc, len, -1, f);
+}
+
+int pr_decode_link(const uint8_t *enc, size_t len, uint8_t link_encoding, pr_frame *f)
+{
+    return decode(enc, len, (int)link_encoding, f);
 }
 
 void pr_deframer_init(pr_deframer *d)
@@ -326,7 +341,8 @@ const char *pr_result_name(int result)
 {
     static const char *const names[] = {"ok",      "cobs",     "crc",     "truncated",
                                         "length",  "oversize", "version", "kind",
-                                        "encoding", "channels", "non_finite", "buffer"};
+                                        "encoding", "channels", "non_finite", "buffer",
+                                        "encoding_mismatch"};
     if (result < 0 || result >= (int)(sizeof names / sizeof names[0])) {
         return "unknown";
     }

@@ -47,7 +47,8 @@ enum pr_result {
     PR_ERR_ENCODING,
     PR_ERR_CHANNELS,
     PR_ERR_NON_FINITE,
-    PR_ERR_BUFFER /* the caller's output buffer is too small */
+    PR_ERR_BUFFER,           /* the caller's output buffer is too small */
+    PR_ERR_ENCODING_MISMATCH /* values in the other encoding than the link's */
 };
 
 typedef struct {
@@ -84,6 +85,12 @@ int pr_encode(const pr_frame *f, uint8_t *out, size_t out_cap, size_t *out_len);
 /* Decode one frame: the bytes between two delimiters (a trailing 0x00 is allowed).
  * On PR_OK *f holds it; on any error *f is unspecified and must not be used. */
 int pr_decode(const uint8_t *enc, size_t len, pr_frame *f);
+
+/* pr_decode for a link set up with link_encoding (PR_ENC_F32 or PR_ENC_I16, from the rig
+ * file): a SENSOR or COMMAND frame in the other encoding is refused with
+ * PR_ERR_ENCODING_MISMATCH, so counts are never read as floats nor floats as counts.
+ * Use this one in firmware; pr_decode is for tools that accept either encoding. */
+int pr_decode_link(const uint8_t *enc, size_t len, uint8_t link_encoding, pr_frame *f);
 
 /* Streaming deframer: push received bytes one at a time (from the main loop, not the
  * ISR). A run longer than PR_MAX_ENCODED is dropped whole and counted in oversize. */

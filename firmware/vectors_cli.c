@@ -9,6 +9,8 @@
  *                                -> OK <wire hex, delimiter included> | ERR <reason>
  *   D <hex>                      -> OK <version> <kind> <seq> <tick> <enc> <count> <v>...
  *                                   | ERR <reason>
+ *   L <link enc> <hex>           -> as D, decoded with pr_decode_link for a link set up
+ *                                   with <link enc> (0 float32, 1 int16)
  *   S [<hex>]                    -> S [<frame hex>]... #<oversize runs so far>
  *                                   (one deframer kept across S lines)
  *
@@ -101,11 +103,13 @@ static void cmd_encode(char *args)
     printf("\n");
 }
 
-static void cmd_decode(long n)
+/* link_encoding -1: pr_decode (either encoding), else pr_decode_link */
+static void cmd_decode(long n, int link_encoding)
 {
     pr_frame f;
     unsigned i;
-    int r = pr_decode(bytes, (size_t)n, &f);
+    int r = link_encoding < 0 ? pr_decode(bytes, (size_t)n, &f)
+                              : pr_decode_link(bytes, (size_t)n, (uint8_t)link_encoding, &f);
     if (r != PR_OK) {
         printf("ERR %s\n", pr_result_name(r));
         return;
@@ -147,14 +151,19 @@ int main(void)
 
     while (fgets(line, sizeof line, stdin)) {
         char cmd = line[0];
+        char *args = line + 1;
+        int link_encoding = -1;
         long n = 0;
         size_t len = 0;
         if (cmd == 'E') {
             cmd_encode(line + 1);
             continue;
         }
-        if (cmd == 'C' || cmd == 'B' || cmd == 'U' || cmd == 'D' || cmd == 'S') {
-            n = parse_hex(line + 1, bytes, sizeof bytes);
+        if (cmd == 'L') {
+            link_encoding = (int)strtol(args, &args, 10);
+        }
+        if (cmd == 'C' || cmd == 'B' || cmd == 'U' || cmd == 'D' || cmd == 'S' || cmd == 'L') {
+            n = parse_hex(args, bytes, sizeof bytes);
             if (n < 0) {
                 printf("BAD hex\n");
                 continue;
@@ -180,7 +189,8 @@ int main(void)
             }
             break;
         case 'D':
-            cmd_decode(n);
+        case 'L':
+            cmd_decode(n, link_encoding);
             break;
         case 'S':
             cmd_split(&deframer, n);

@@ -51,6 +51,7 @@ REASONS = frozenset(
         "version",  # protocol version other than PROTOCOL_VERSION
         "kind",  # unknown message kind
         "encoding",  # unknown value encoding
+        "encoding_mismatch",  # values in the other encoding than the link's (1.4)
         "channels",  # too many channels, or a count the kind does not allow
         "non_finite",  # NaN or infinity among the values
         "range",  # a value does not fit the encoding (encoder only)
@@ -108,6 +109,8 @@ _KINDS = {int(k): k for k in Kind}
 # plain ints on the hot path: comparing against IntEnum members costs an attribute lookup
 _F32_CODE, _I16_CODE = int(Encoding.F32), int(Encoding.I16)
 _HEARTBEAT, _STATUS = int(Kind.HEARTBEAT), int(Kind.STATUS)
+_VALUE_KINDS = frozenset({int(Kind.SENSOR), int(Kind.COMMAND)})
+_ENCODING_NAMES = {_F32_CODE: "float32", _I16_CODE: "int16"}
 _I16_MIN, _I16_MAX = -(1 << 15), (1 << 15) - 1
 
 
@@ -186,10 +189,15 @@ def encode_frame(
     return bytes(buf)
 
 
-def decode_frame(buf: bytes | bytearray, *, scale: float = 1.0) -> Frame:
+def decode_frame(buf: bytes | bytearray, *, scale: float = 1.0,
+                 link_encoding: Encoding | int | None = None) -> Frame:
     """Decode one COBS frame (its trailing 0x00 optional); raise FrameError if unusable.
 
     ``scale`` converts int16 counts to engineering values and is ignored for float32.
+    ``link_encoding`` is the encoding the link was set up with: a SENSOR or COMMAND frame
+    in the other one is refused ("encoding_mismatch"), since int16 counts read as
+    engineering values (or floats read as counts) are wrong by the scale. Every link
+    passes it; None (any encoding) is for tools that only inspect frames.
     """
     n = len(buf)
     if n and buf[-1] == 0:
@@ -230,6 +238,10 @@ def decode_frame(buf: bytes | bytearray, *, scale: float = 1.0) -> Frame:
         reason = "truncated" if payload < count * width else "length"
         raise FrameError(reason, f"{payload} payload bytes for {count} x {width}")
     _check_shape(kind, encoding, count)
+    if link_encoding is not None and encoding != link_encoding and kind_code in _VALUE_KINDS:
+        raise FrameError("encoding_mismatch", f"{kind.name} frame carries "
+                         f"{_ENCODING_NAMES[encoding]}, the link is set up for "
+                         f"{_ENCODING_NAMES.get(int(link_encoding), '?')}")
     if width == 4:
         values = _F32[count].unpack_from(raw, HEADER_SIZE)
         # at most 32 float32 values cannot overflow a float64 sum: finite sum <=> all finite

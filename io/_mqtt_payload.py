@@ -1,6 +1,6 @@
 """MQTT payloads for the rig's topics: JSON or compact binary, and their untrusted decoding.
 
-Topics under ``<prefix>/<rig_id>/`` (docs/mqtt.md has the full spec)::
+Topics under ``<prefix>/<rig_id>/`` (docs/mqtt_link.md has the full spec)::
 
     sensors    rig -> controller   {"seq": 17, "tick": 342, "t": 0.684, "values": [0.41, 2.0]}
     commands   controller -> rig   {"seq": 9, "tick": 342, "values": [11.5]}
@@ -10,9 +10,10 @@ Topics under ``<prefix>/<rig_id>/`` (docs/mqtt.md has the full spec)::
 ``seq`` counts the messages of one topic from one sender, modulo 2**16. ``tick`` is the
 rig's tick (-1 for the values before tick 0); a command's ``tick`` echoes the sensor tick
 it was computed from, which gives the rig its latency estimate.
-Binary payloads are the frame of docs/protocol.md (plantrig.io._frames, float32 values)
-without COBS and delimiter: MQTT keeps message boundaries, the CRC still catches a
-broken bridge or firmware bug. Status is always JSON (people read it).
+Binary payloads are the frame of docs/protocol.md (plantrig.io._frames, values in the
+link's encoding) without COBS and delimiter: MQTT keeps message boundaries, the CRC still
+catches a broken bridge or firmware bug, and a frame in the other encoding is refused
+(encoding_mismatch). Status is always JSON (people read it).
 """
 
 from __future__ import annotations
@@ -119,7 +120,8 @@ class Codec:
 
     def _decode_binary(self, kind: Kind, payload: bytes) -> tuple[int, int, tuple[float, ...]]:
         try:
-            frame = decode_frame(cobs_encode(payload), scale=self.scale)
+            frame = decode_frame(cobs_encode(payload), scale=self.scale,
+                                 link_encoding=self.encoding)
         except FrameError as exc:
             raise PayloadError(exc.reason, exc.detail) from None
         if frame.kind != kind:

@@ -76,4 +76,4 @@ class WireFormat:
         values means in this direction (COMMAND at the rig, SENSOR at the controller)."""
         if self.text:
             return decode_line(piece, kind=values_kind, require_checksum=self.checksum)
-        return decode_frame(piece, scale=self.scale)
+        return decode_frame(piece, scale=self.scale, link_encoding=self.encoding)

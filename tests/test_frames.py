@@ -85,9 +85,34 @@ def test_layout_byte_by_byte() -> None:
 
 @pytest.mark.parametrize("vec", VECTORS["bad_frames"], ids=lambda v: v["name"])
 def test_rejects_with_reason(vec: dict) -> None:
+    link = ENCODINGS.get(vec.get("link_encoding", ""))
     with pytest.raises(FrameError) as info:
-        decode_frame(bytes.fromhex(vec["wire"]))
+        decode_frame(bytes.fromhex(vec["wire"]), link_encoding=link)
     assert info.value.reason == vec["reason"]
+
+
+def test_encoding_mismatch_is_the_links_rule_not_the_frames() -> None:
+    """An int16 command is a good frame; on a float32 link its counts would become
+    engineering values (raw 12 read as 12 V at any scale), so the link refuses it."""
+    wire = encode_frame(Kind.COMMAND, 7, 8, [0.12], encoding=Encoding.I16, scale=0.01)
+    assert decode_frame(wire, scale=0.01, link_encoding=Encoding.I16).values == (0.12,)
+    assert decode_frame(wire).values == (12.0,)       # what slipped through before
+    with pytest.raises(FrameError) as info:
+        decode_frame(wire, link_encoding=Encoding.F32)
+    assert info.value.reason == "encoding_mismatch"
+    assert str(info.value) == ("encoding_mismatch: COMMAND frame carries int16, the link is "
+                               "set up for float32")
+    # heartbeats carry no values and status is float32 by definition: either link takes them
+    for link in Encoding:
+        beat = encode_frame(Kind.HEARTBEAT, 1, 2, encoding=Encoding.I16)
+        assert decode_frame(beat, link_encoding=link).kind == Kind.HEARTBEAT
+        status = encode_frame(Kind.STATUS, 1, 2, [1.0, 0.0])
+        assert decode_frame(status, link_encoding=link).values == (1.0, 0.0)
+    # the check comes after the shape checks, before the float32 values are looked at
+    nan = build(1, Kind.COMMAND, 1, 2, Encoding.F32, 1, struct.pack("<f", math.nan))
+    with pytest.raises(FrameError) as info:
+        decode_frame(nan, link_encoding=Encoding.I16)
+    assert info.value.reason == "encoding_mismatch"
 
 
 def test_every_decoder_reason_has_a_vector() -> None:
