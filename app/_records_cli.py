@@ -1,8 +1,13 @@
 """Command-line subcommands for run records: recover, verify, keygen, sign, report, export.
 
 Kept apart from cli.py so that file stays the short composition root; cli.py calls
-``add_record_commands``. Exit codes as in cli.py: 0 success, 1 a record that fails its
-check, 2 a usage mistake or a folder that cannot be read or written.
+``add_record_commands``. Exit codes are in each command's --help (EXIT_CODES below).
+
+report, export and sign work only on a folder fit for sign-off (sim/_signoff.py): the
+run is over, its record finished, and it passes verify. report and export make a marked
+draft of any other folder with --draft. Reports and exports go to RUN_FOLDER/derived/
+(or outside the folder with --out), which the manifest never covers: making them never
+changes what the manifest or a signature covers.
 """
 
 from __future__ import annotations
@@ -10,6 +15,7 @@ from __future__ import annotations
 import argparse
 import sys
 from pathlib import Path
+from typing import Any
 
 from plantrig.sim import (
     RecordError,
@@ -19,9 +25,20 @@ from plantrig.sim import (
     sign_folder,
     verify_folder,
 )
-from plantrig.sim._manifest import ManifestError, extend_manifest
+from plantrig.sim._manifest import DERIVED, ManifestError
+from plantrig.sim._signoff import DRAFT_MARK, Readiness, check_folder
 
-EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
+EXIT_OK, EXIT_NOT_INTACT, EXIT_USAGE, EXIT_NOT_FINISHED = 0, 1, 2, 4
+SIGNOFF_EXIT_CODES = """exit codes:
+  0  written
+  1  the folder fails verify (a file changed, missing or added, a damaged manifest,
+     a malformed or invalid signature)
+  2  usage mistake, or a folder or key that cannot be read or written
+  4  the folder is still being written (its rig or recorder process runs) or its
+     record is not finished (no summary or manifest yet, or a journal left for
+     plantrig recover)"""
+DRAFT_HELP = ("make a draft of a folder not fit for sign-off: every page is marked "
+              f"'{DRAFT_MARK}' and the files are named DRAFT-*; never sealed")
 
 
 def _folder(path: str) -> Path:
@@ -30,6 +47,30 @@ def _folder(path: str) -> Path:
         print(f"error: {folder}: no such run folder", file=sys.stderr)
         raise SystemExit(EXIT_USAGE)
     return folder
+
+
+def _refused(folder: Path, readiness: Readiness, what: str, draft_hint: bool) -> int:
+    """Say why ``folder`` is not fit for ``what``; the exit code for it."""
+    for problem in readiness.problems:
+        print(f"error: {folder}: {problem}", file=sys.stderr)
+    print(f"{folder}: not fit for sign-off; nothing {what}"
+          + (" (--draft makes a marked draft)" if draft_hint else ""), file=sys.stderr)
+    return EXIT_NOT_FINISHED if readiness.unfinished else EXIT_NOT_INTACT
+
+
+def _out_dir(folder: Path, out: str | None) -> Path | None:
+    """Where reports and exports go: RUN_FOLDER/derived/ by default; --out may point
+    outside the folder or inside derived/, never elsewhere in the record."""
+    if out is None:
+        return folder / DERIVED
+    target = Path(out)
+    inside = target.resolve().is_relative_to(folder.resolve())
+    if inside and not target.resolve().is_relative_to((folder / DERIVED).resolve()):
+        print(f"error: --out {target}: inside the run folder but not in {DERIVED}/; the "
+              "record must not change (use a folder outside it, or the default)",
+              file=sys.stderr)
+        return None
+    return target
 
 
 def cmd_recover(args: argparse.Namespace) -> int:
@@ -42,7 +83,7 @@ def cmd_recover(args: argparse.Namespace) -> int:
     if report.get("finished_again"):
         print(f"{folder}: finished the record of an ended run: "
               f"{report['recovered_rows']} ticks")
-        return EXIT_OK
+        return _recovered_outcome(report)
     print(f"{folder}: recovered {report['recovered_rows']} ticks "
           f"({report['journal_rows']} from the journal, {report['tape_rows']} from the tape; "
           f"{report['torn_bytes_dropped']} torn bytes dropped)")
@@ -53,6 +94,19 @@ def cmd_recover(args: argparse.Namespace) -> int:
         print(f"the rig had produced {report['produced_rows']} ticks: {report['lost_rows']} "
               f"lost ({report['lost_ms']:.1f} ms); from the journal alone "
               f"{report['journal_only_lost_rows']} ({report['journal_only_lost_ms']:.1f} ms)")
+    return _recovered_outcome(report)
+
+
+def _recovered_outcome(report: dict[str, Any]) -> int:
+    """Print the outcome the record keeps and what is still missing (then
+    EXIT_NOT_FINISHED)."""
+    print(f"outcome: {report['ended'].upper()} ({report['reason']})")
+    for problem in report["problems"]:
+        print(f"record: {problem}", file=sys.stderr)
+    if report["problems"]:
+        print("the record is not finished: free space, then run plantrig recover again",
+              file=sys.stderr)
+        return EXIT_NOT_FINISHED
     return EXIT_OK
 
 
@@ -62,17 +116,23 @@ def cmd_verify(args: argparse.Namespace) -> int:
         result = verify_folder(folder, Path(args.public_key) if args.public_key else None)
     except ManifestError as exc:
         print(f"error: {exc}", file=sys.stderr)
-        return EXIT_FAULT
+        print(f"{folder}: FAILED", file=sys.stderr)
+        return EXIT_NOT_INTACT
+    print(f"manifest.json SHA-256: {result.manifest_sha256} (written {result.created_utc})")
     for label, names in (("changed", result.changed), ("missing", result.missing),
                          ("extra", result.extra)):
         for name in names:
             print(f"{label}: {name}")
-    print(f"signature: {result.signature}")
+    print(f"signature: {result.signature}"
+          + (f" ({result.signature_detail})" if result.signature_detail else ""))
+    if result.not_covered:
+        print(f"not covered: {DERIVED}/ ({len(result.not_covered)} files: reports and "
+              "exports made from the record, not part of it)")
     if result.ok:
         print(f"{folder}: ok, {result.checked} files match the manifest")
         return EXIT_OK
     print(f"{folder}: FAILED", file=sys.stderr)
-    return EXIT_FAULT
+    return EXIT_NOT_INTACT
 
 
 def cmd_keygen(args: argparse.Namespace) -> int:
@@ -90,6 +150,9 @@ def cmd_keygen(args: argparse.Namespace) -> int:
 
 def cmd_sign(args: argparse.Namespace) -> int:
     folder = _folder(args.folder)
+    readiness = check_folder(folder)
+    if not readiness.ok:
+        return _refused(folder, readiness, "signed", draft_hint=False)
     try:
         fingerprint = sign_folder(folder, Path(args.key))
     except ManifestError as exc:
@@ -99,31 +162,26 @@ def cmd_sign(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _record_added(folder: Path, added: list[Path]) -> None:
-    """List new files of a finished folder in its manifest, and say what that did."""
-    try:
-        signed = extend_manifest(folder, [p.relative_to(folder).as_posix() for p in added])
-    except ManifestError as exc:
-        print(f"warning: {exc}", file=sys.stderr)
-        return
-    if signed:
-        print("note: the manifest changed, so its signature was removed; sign it again "
-              "(plantrig sign)")
-
-
 def cmd_report(args: argparse.Namespace) -> int:
     from plantrig._report import write_report
 
     folder = _folder(args.folder)
+    readiness = check_folder(folder, Path(args.public_key) if args.public_key else None)
+    if not (readiness.ok or args.draft):
+        return _refused(folder, readiness, "written", draft_hint=True)
+    out = _out_dir(folder, args.out)
+    if out is None:
+        return EXIT_USAGE
     try:
         record = read_run(folder)
-        paths = write_report(record, operator=args.operator, witness=args.witness)
+        paths = write_report(record, out, operator=args.operator, witness=args.witness,
+                             readiness=readiness, draft=args.draft)
     except (OSError, ValueError) as exc:
         print(f"error: {folder}: cannot make the report ({exc})", file=sys.stderr)
         return EXIT_USAGE
     for p in paths:
         print(f"wrote {p}")
-    _record_added(folder, paths)
+    _say_draft(args.draft, readiness)
     return EXIT_OK
 
 
@@ -134,62 +192,112 @@ def cmd_export(args: argparse.Namespace) -> int:
     if not (args.csv or args.mat):
         print("error: say what to export: --csv, --mat or both", file=sys.stderr)
         return EXIT_USAGE
-    out = Path(args.out) if args.out else folder / "export"
+    readiness = check_folder(folder)
+    if not (readiness.ok or args.draft):
+        return _refused(folder, readiness, "exported", draft_hint=True)
+    out = _out_dir(folder, args.out)
+    if out is None:
+        return EXIT_USAGE
+    if args.draft:
+        status = f"{DRAFT_MARK}: " + ("; ".join(readiness.problems) or "made with --draft")
+    else:
+        assert readiness.verification is not None
+        status = ("verified record, manifest.json SHA-256 "
+                  f"{readiness.verification.manifest_sha256}")
     try:
         record = read_run(folder)
-        paths = (export_csv(record, out) if args.csv else []) + (
-            export_mat(record, out) if args.mat else [])
+        paths = (export_csv(record, out, draft=args.draft) if args.csv else []) + (
+            export_mat(record, out, status, draft=args.draft) if args.mat else [])
     except (OSError, ValueError) as exc:
         print(f"error: {folder}: cannot export ({exc})", file=sys.stderr)
         return EXIT_USAGE
     for p in paths:
         print(f"wrote {p}")
-    if out.resolve().is_relative_to(folder.resolve()):
-        _record_added(folder, paths)
+    _say_draft(args.draft, readiness)
     return EXIT_OK
+
+
+def _say_draft(draft: bool, readiness: Readiness) -> None:
+    if draft:
+        print(f"{DRAFT_MARK}: " + ("; ".join(readiness.problems) or "made with --draft"))
 
 
 def add_record_commands(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     """Register the run-record subcommands on the main parser's subparsers."""
+    raw = argparse.RawDescriptionHelpFormatter
     p = sub.add_parser("recover", help="rebuild the record of a run that died",
                        description="Rebuild run.h5, ticks.npy, summary.json and the manifest "
                                    "of a run folder whose rig was killed, from the journal, "
                                    "events.jsonl and the tapes left in shared memory; "
-                                   "report the ticks lost.")
+                                   "report the ticks lost. A run that ended but could not "
+                                   "finish its record (disk full) is finished as it ended, "
+                                   "its outcome kept; a run whose rig died is 'interrupted'.",
+                       epilog="exit codes:\n  0  the record is finished\n"
+                              "  2  not a run folder, the run still going, or nothing to "
+                              "recover\n  4  still not finished (the disk is still full): "
+                              "free space and run recover again", formatter_class=raw)
     p.add_argument("folder", help="run folder")
     p.set_defaults(func=cmd_recover)
 
     p = sub.add_parser("verify", help="check a run folder against its manifest",
-                       description="Report files changed, missing or added since the "
-                                   "manifest was written (exit 1 on any), and check the "
-                                   "signature with a public key.")
+                       description="Check every field of manifest.json (it must be intact "
+                                   "to the bit), then the size and SHA-256 of every file of "
+                                   "the record; report files changed, missing or added, "
+                                   "and print manifest.json's own SHA-256. A signature "
+                                   "file must be well formed; with --public-key it must "
+                                   f"also be valid. Files under {DERIVED}/ (reports, "
+                                   "exports) are not covered.",
+                       epilog="exit codes:\n  0  ok\n  1  the folder fails verify (or has no "
+                              "manifest)\n  2  no such folder", formatter_class=raw)
     p.add_argument("folder", help="run folder")
     p.add_argument("--public-key", metavar="FILE", help="Ed25519 public key (PEM)")
     p.set_defaults(func=cmd_verify)
 
-    p = sub.add_parser("keygen", help="make an Ed25519 key pair for signing run folders")
+    p = sub.add_parser("keygen", help="make an Ed25519 key pair for signing run folders",
+                       epilog="exit codes: 0 written, 2 a key file exists or cannot be "
+                              "written", formatter_class=raw)
     p.add_argument("--out", default="plantrig-key", metavar="PREFIX",
                    help="writes PREFIX.private.pem and PREFIX.public.pem "
                         "(default: plantrig-key)")
     p.set_defaults(func=cmd_keygen)
 
-    p = sub.add_parser("sign", help="sign a run folder's manifest (Ed25519)")
+    p = sub.add_parser("sign", help="sign a run folder's manifest (Ed25519)",
+                       description="Sign manifest.json of a finished run folder that passes "
+                                   "verify. A folder already signed is not signed again.",
+                       epilog=SIGNOFF_EXIT_CODES, formatter_class=raw)
     p.add_argument("folder", help="run folder")
     p.add_argument("--key", required=True, metavar="FILE", help="private key (PEM)")
     p.set_defaults(func=cmd_sign)
 
     p = sub.add_parser("report", help="write report.html and report.pdf for a run",
                        description="Write a sign-off report (self-contained HTML and PDF) "
-                                   "into the run folder and add it to the manifest.")
+                                   f"into RUN_FOLDER/{DERIVED}/ (not covered by the "
+                                   "manifest, so it never changes it). Refuses a folder "
+                                   "still being written, not finished, or failing verify, "
+                                   "unless --draft.",
+                       epilog=SIGNOFF_EXIT_CODES, formatter_class=raw)
     p.add_argument("folder", help="run folder")
     p.add_argument("--operator", default="", metavar="NAME", help="who ran the test")
     p.add_argument("--witness", default="", metavar="NAME", help="who witnessed it")
+    p.add_argument("--public-key", metavar="FILE",
+                   help="also check the signature with this Ed25519 public key (PEM)")
+    p.add_argument("--out", metavar="DIR",
+                   help=f"where to write (default: RUN_FOLDER/{DERIVED}; outside the run "
+                        f"folder or inside {DERIVED}/)")
+    p.add_argument("--draft", action="store_true", help=DRAFT_HELP)
     p.set_defaults(func=cmd_report)
 
-    p = sub.add_parser("export", help="export a run as CSV and/or MATLAB .mat")
+    p = sub.add_parser("export", help="export a run as CSV and/or MATLAB .mat",
+                       description=f"Export a run into RUN_FOLDER/{DERIVED}/ (not covered by "
+                                   "the manifest). Refuses a folder still being written, "
+                                   "not finished, or failing verify, unless --draft.",
+                       epilog=SIGNOFF_EXIT_CODES, formatter_class=raw)
     p.add_argument("folder", help="run folder")
     p.add_argument("--csv", action="store_true", help="ticks.csv (names and units rows) "
                                                       "and events.csv")
     p.add_argument("--mat", action="store_true", help="run.mat (scipy.io.savemat)")
-    p.add_argument("--out", metavar="DIR", help="where to write (default: RUN_FOLDER/export)")
+    p.add_argument("--out", metavar="DIR",
+                   help=f"where to write (default: RUN_FOLDER/{DERIVED}; outside the run "
+                        f"folder or inside {DERIVED}/)")
+    p.add_argument("--draft", action="store_true", help=DRAFT_HELP)
     p.set_defaults(func=cmd_export)

@@ -118,9 +118,11 @@ def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
                                        for k, v in counters.items()))
     if summary["events"]:
         print("events: " + ", ".join(f"{k} x{v}" for k, v in sorted(summary["events"].items())))
-    problems = (summary.get("record") or {}).get("problems") or []
-    for problem in problems:
+    record = summary.get("record") or {}
+    for problem in [*record.get("lost", []), *record.get("problems", [])]:
         print(f"record: {problem}")
+    if record.get("problems"):
+        print(f"record: not finished; free space, then: plantrig recover {folder}")
 
 
 def cmd_run(args: argparse.Namespace) -> int:

@@ -51,6 +51,7 @@ from plantrig.sim._rigfile import (
 )
 from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
 from plantrig.sim._scenario import Scenario, ScenarioFileError, build_scenario, load_scenario
+from plantrig.sim._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
 from plantrig.sim._summary import ModelSummary, summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
 from plantrig.sim._verdicts import Verdict, evaluate, verdict_lines, write_verdicts
@@ -71,6 +72,8 @@ __all__ = [
     "SafetySettings", "Scenario", "ScenarioFileError", "Verdict", "build_scenario", "evaluate",
     "load_scenario", "parse_fault", "verdict_lines", "write_verdicts",
     "describe_value", "one_of",
+    # what people read for each kind of signal
+    "SIGNAL_LABELS", "SIGNAL_MEANINGS",
     # outcomes
     "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "AcceptanceRules", "RuleResult",
     # run records

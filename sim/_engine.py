@@ -40,11 +40,21 @@ from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import Controller, OpenLoop, Pid, PidLoops, StateFeedback
 from plantrig.sim._faults import Faults
 from plantrig.sim._interlocks import ESTOP, Safety
+from plantrig.sim._outcome import (
+    COMPLETED,
+    FAULT,
+    STOPPED,
+    TRIPPED,
+    RuleResult,
+    RunFacts,
+    judge,
+    settle,
+)
 from plantrig.sim._plant import Stepper, make_stepper
 from plantrig.sim._realtime import RealtimeReport, realtime_process
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._scenario import Scenario, ScenarioRunner
-from plantrig.sim._tape import EventTape
+from plantrig.sim._tape import RECORDER_DIED, RECORDER_DISK_FULL, RECORDER_OK, EventTape
 
 Vector = NDArray[np.float64]
 START_LEAD_NS = 5_000_000
@@ -56,6 +66,7 @@ class TapeLike(Protocol):
     def free(self) -> int: ...
     def wait_for_room(self, timeout_s: float = 30.0) -> None: ...
     def recorder_error(self) -> int: ...
+    def wait_drained(self, timeout_s: float = 30.0) -> int: ...
     def end(self) -> None: ...
 
 
@@ -112,7 +123,7 @@ class RunOutcome:
     """How a run ended and what its timing was."""
 
     ticks: int
-    ended: str                     # "completed", "stopped" or "fault"
+    ended: str                     # an outcome class of sim/_outcome.py
     reason: str
     events: list[Event]
     lateness_ns: NDArray[np.int64]
@@ -122,6 +133,14 @@ class RunOutcome:
     wall_s: float
     realtime: RealtimeReport | None = None
     link_health: dict[str, float] = field(default_factory=dict)
+    rules: list[RuleResult] = field(default_factory=list)
+    answered: int = 0
+
+    @property
+    def exit_code(self) -> int:
+        """The exit code of the outcome class (sim/_outcome.py)."""
+        from plantrig.sim._outcome import EXIT_CODES
+        return EXIT_CODES[self.ended]
 
     def timing(self, tick: float) -> dict[str, float | int | str | None]:
         """Timing statistics for the summary (lateness only means something in real time)."""
@@ -181,6 +200,8 @@ class Engine:
         self.safe_u = np.array([i.safe for i in rig.inputs], dtype=np.float64)
         self.events: list[Event] = []
         self.stop_requested = False
+        self.stop_why = ""
+        self.expected_trips = scenario.expected_trips if scenario else set()
         self.safety = Safety(rig.interlocks, rig.limits, rig.safety,
                              [i.name for i in rig.inputs], self.safe_u, self.columns, self.row,
                              rig.tick, self._event)
@@ -192,8 +213,11 @@ class Engine:
         self.any_override = False
         self.ref_names = [r.name for r in rig.references]
 
-    def request_stop(self) -> None:
-        """Ask the loop to end after the current tick (from a signal handler, say)."""
+    def request_stop(self, why: str = "stop requested") -> None:
+        """Ask the loop to end at the next tick boundary (from a signal handler, say);
+        the first reason given is the one recorded."""
+        if not self.stop_requested:
+            self.stop_why = why
         self.stop_requested = True
 
     def _event(self, tick: int, kind: str, detail: str = "") -> None:
@@ -211,8 +235,9 @@ class Engine:
         """Act on one operator command; every command becomes an event."""
         a = command.args
         if command.kind == "stop":
-            self.stop_requested = True
-            self._event(k, "operator_stop", str(a.get("reason", "")))
+            why = str(a.get("reason", ""))
+            self.request_stop(f"operator stop: {why}" if why else "operator stop")
+            self._event(k, "operator_stop", why)
         elif command.kind == "estop":
             self.safety.estop(k)
         elif command.kind == "reset":
@@ -246,8 +271,8 @@ class Engine:
         tick_ns = int(round(rig.tick * 1e9))
         lateness = np.zeros(n_ticks, dtype=np.int64)
         exec_ns = np.zeros(n_ticks, dtype=np.int64)
-        overruns = skipped = done = 0
-        ended, reason = "completed", "duration reached"
+        overruns = skipped = done = answered = 0
+        ended, reason = COMPLETED, "duration reached"
         report: RealtimeReport | None = None
         self.cmd[:] = self.safe_u
         # what the controller sees before tick 0: the output at x0 with the safe input
@@ -282,7 +307,7 @@ class Engine:
                 slot = 0
                 for k in range(n_ticks):
                     if self.stop_requested:
-                        ended, reason = "stopped", "stop requested"
+                        ended, reason = STOPPED, self.stop_why
                         break
                     t = k * rig.tick
                     if realtime:
@@ -300,7 +325,8 @@ class Engine:
                             if rig.on_overrun == "stop":
                                 self._event(k, "overrun", f"tick started {late / 1e6:.3f} ms "
                                                           "late; on_overrun = 'stop'")
-                                ended, reason = "fault", "overrun"
+                                ended, reason = FAULT, "real time not held: a tick " \
+                                                       "started late and on_overrun = 'stop'"
                                 break
                             if rig.on_overrun == "skip":
                                 missed = late // tick_ns
@@ -315,13 +341,12 @@ class Engine:
                         began = 0
                         room -= 1
                         if room < 0:
-                            tape.wait_for_room()
+                            tape.wait_for_room()   # returns early if the recorder stops
                             room = tape.free() - 1
-                    if k % poll_every == 0:        # slow checks, every 5 ms of plant time
-                        if tape.recorder_error():
-                            self._event(k, "record_failed", "the recorder cannot write the "
-                                        "run record (disk full or write error); run stopped")
-                            ended, reason = "fault", "run record cannot be written"
+                    if k % poll_every == 0 or room < 0:  # slow checks, every 5 ms of plant time
+                        problem = tape.recorder_error()
+                        if problem != RECORDER_OK:
+                            ended, reason = FAULT, self._recorder_stopped(k, problem)
                             break
                         if commands is not None:
                             for command in commands.take():
@@ -338,6 +363,7 @@ class Engine:
                         np.copyto(r, override, where=~np.isnan(override))
                     if link is not None:
                         fresh = link.receive(k, t, cmd)
+                        answered += fresh
                         for ev in link.drain_events():
                             self._record_event(ev)
                     else:
@@ -405,7 +431,8 @@ class Engine:
                         row[3] = work / 1e9
                         if tape.free() <= 0:
                             self._event(k, "tape_overflow", "recorder fell a full ring behind")
-                            ended, reason = "fault", "tape overflow"
+                            ended, reason = FAULT, "tape overflow: the recorder fell a full " \
+                                                   "ring behind"
                             done = k
                             break
                     x_next = stepper.x_next
@@ -420,15 +447,15 @@ class Engine:
                         scenario.after_record(k, row)
                     if not finite:
                         self._event(k, "non_finite_state", f"x = {stepper.x_next.tolist()}")
-                        ended, reason = "fault", "plant state became NaN or infinite"
+                        ended, reason = FAULT, "model error: plant state became NaN or infinite"
                         break
                     if safety.stop_reason:
-                        ended, reason = "stopped", safety.stop_reason
+                        ended, reason = TRIPPED, safety.stop_reason
                         break
         except Exception as exc:  # the one stop path for model, controller and link errors
             self._event(done, "error", "".join(
                 traceback.format_exception_only(type(exc), exc)).strip())
-            ended, reason = "fault", f"{type(exc).__name__}: {exc}"
+            ended, reason = FAULT, f"{type(exc).__name__}: {exc}"
         finally:
             health: dict[str, float] = {k: v for k, v in faults.health().items() if v}
             if link is not None:
@@ -439,13 +466,36 @@ class Engine:
                 finally:
                     link.close()
             self.safety.finish(done)
+            tape.end()
+            problem = tape.wait_drained()   # a record the recorder lost is not complete
+            if problem != RECORDER_OK and ended != FAULT:
+                ended, reason = FAULT, self._recorder_stopped(done, problem)
+            facts = RunFacts(n_ticks, done, link is not None, answered if link else done,
+                             int(health.get("link_lost", 0)), self.realtime, overruns, skipped,
+                             tuple(self.safety.trips))
+            outcome = settle(ended, reason, judge(rig.acceptance, facts, self.expected_trips))
+            for rule in outcome.rules if ended == COMPLETED else ():  # they decide it
+                if rule.passed is False:
+                    self._event(done, "rule_failed", f"{rule.rule}: {rule.measured} "
+                                                     f"(needs {rule.needed})")
+            ended, reason = outcome.ended, outcome.reason
             self._event(done, "run_end", f"{ended}: {reason}")
             if self.event_tape is not None:
                 self.event_tape.end()
-            tape.end()
         wall_s = (clock.now_ns() - wall_start) / 1e9
         return RunOutcome(done, ended, reason, self.events, lateness, exec_ns, overruns,
-                          skipped, wall_s, report, health)
+                          skipped, wall_s, report, health, outcome.rules, answered)
+
+    def _recorder_stopped(self, k: int, problem: int) -> str:
+        """Record why the recorder stopped; the reason the run ends with."""
+        if problem == RECORDER_DIED:
+            self._event(k, "recorder_died", "the recorder process ended during the run; "
+                                            "run stopped, the rig writes the rest itself")
+            return "run record: the recorder process died"
+        what = "disk full" if problem == RECORDER_DISK_FULL else "write error"
+        self._event(k, "record_failed", f"the recorder cannot write the run record ({what}); "
+                                        "run stopped")
+        return f"run record cannot be written ({what})"
 
 
 class _NoRealtime:

@@ -46,10 +46,10 @@ META_DESCRIPTIONS = {
     "fresh": "1 when a fresh command arrived in this tick",
 }
 PREFIX_DESCRIPTIONS = {
-    "ref": "reference", "cmd": "command as received from the controller (raw link value)",
-    "u": "plant input after the actuator chain and safety",
-    "y": "plant output", "sent": "value sent to the controller (raw link value)",
-    "x": "plant state at the start of the tick", "limit": "limit", "trip": "interlock trip",
+    # the signal labels of plantrig.sim.SIGNAL_LABELS (tests/test_signal_labels.py)
+    "ref": "reference", "cmd": "controller command", "u": "plant input (applied)",
+    "y": "plant output (true)", "sent": "controller reads", "x": "plant state (true)",
+    "d": "disturbance", "limit": "limit", "trip": "interlock trip",
     "fault": "injected fault",
 }
 
@@ -121,13 +121,16 @@ def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, An
     info = start.get("columns") or [{"name": c, "unit": u} for c, u in
                                     zip(columns, summary["units"], strict=True)]
     (folder / RESERVE_NAME).unlink(missing_ok=True)
-    record: dict[str, Any] = {"files": [], "problems": []}
+    # "problems": what is still missing (recover finishes it once there is room);
+    # "lost": what can never be recovered, kept in every later finish
+    record: dict[str, Any] = {"files": [], "problems": [], "lost": []}
     summary["record"] = record
     recorder = summary.get("recorder") or {}
     if recorder.get("disk_error"):   # a fast run can end before the loop hears of it
-        record["problems"].append(f"the recorder stopped writing ({recorder['disk_error']}): "
-                                  f"{recorder.get('rows_not_written')} ticks ran but are "
-                                  "not in the record")
+        not_written = recorder.get("rows_not_written") or 0
+        record["lost"].append(f"the recorder stopped writing ({recorder['disk_error']}): "
+                              + (f"{not_written} ticks ran but are not in the record"
+                                 if not_written else "every tick that ran is in the record"))
     journal = folder / "ticks.journal"
     # the summary first: it is small (the freed reserve holds it) and keeps the outcome
     # for `plantrig recover` if anything after it fails
@@ -292,7 +295,8 @@ def recover_run(folder: Path) -> dict[str, Any]:
         finish_record(folder, rows, summary)
         return {"finished_again": True, "recovered_rows": int(rows.shape[0]),
                 "lost_rows": summary["ticks_recorded"] - int(rows.shape[0]),
-                "ended": summary["ended"], "reason": summary["reason"]}
+                "ended": summary["ended"], "reason": summary["reason"],
+                "problems": summary["record"]["problems"]}
     tape_path, event_path = Path(start["tape"]), Path(start["event_tape"])
     if journal.exists() or not (folder / "ticks.npy").exists():
         from_journal = journal.stat().st_size // (n * 8) if journal.exists() else 0
@@ -358,6 +362,8 @@ def recover_run(folder: Path) -> dict[str, Any]:
     }
     recorder_status.unlink(missing_ok=True)
     finish_record(folder, rows, summary)
+    report.update(ended=summary["ended"], reason=summary["reason"],
+                  problems=summary["record"]["problems"])
     for path in (tape_path, tape_path.with_suffix(".json"), event_path):
         path.unlink(missing_ok=True)
     return report
@@ -371,8 +377,7 @@ def _finished(folder: Path) -> bool:
         summary = json.loads((folder / "summary.json").read_text())
     except (OSError, ValueError):
         return False
-    problems = (summary.get("record") or {}).get("problems") or []
-    return not any("recover" in p for p in problems)
+    return not (summary.get("record") or {}).get("problems")
 
 
 def _save_npy(path: Path, array: NDArray[Any]) -> None:

@@ -21,15 +21,18 @@ from typing import Any
 import numpy as np
 
 from plantrig.sim._controllers import WINDUP
+from plantrig.sim._controllers import WINDUP
 from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
 from plantrig.sim._faults import DisturbanceSpec, parse_disturbances
 from plantrig.sim._interlocks import (
+    ESTOP,
     InterlockSpec,
     SafetySettings,
     parse_interlocks,
     parse_safety,
 )
 from plantrig.sim._limits import LimitSpec, parse_limits
+from plantrig.sim._outcome import AcceptanceRules, parse_acceptance
 from plantrig.sim._plant import (
     DiscretePlant,
     LinearPlant,
@@ -101,6 +104,7 @@ class Rig:
     interlocks: tuple[InterlockSpec, ...] = ()
     safety: SafetySettings = SafetySettings()
     disturbances: tuple[DisturbanceSpec, ...] = ()
+    acceptance: AcceptanceRules = AcceptanceRules()
 
     @property
     def n_ticks(self) -> int:
@@ -225,7 +229,7 @@ def _positive(value: Any) -> str | None:
 RIG_KEYS = {"name", "description", "tick", "duration", "mode", "seed", "on_overrun",
             "on_link_silence"}
 TOP_KEYS = {"rig", "plant", "controller", "references", "link", "sensors", "actuators",
-            "limits", "interlocks", "safety", "disturbances"}
+            "limits", "interlocks", "safety", "disturbances", "acceptance"}
 SIGNAL_KEYS = {"name", "unit", "min", "max", "description", "safe"}
 
 
@@ -284,6 +288,7 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     limits = parse_limits(c, doc, states, inputs, outputs)
     interlocks = parse_interlocks(c, doc, limits, inputs)
     safety = parse_safety(c, doc)
+    acceptance = parse_acceptance(c, doc, [ESTOP, *(i.name for i in interlocks)])
     disturbances = parse_disturbances(c, doc, plant, states)
     actuators = _list_of_tables(c, doc, "actuators")
     if controller.kind == "external" and link is None:
@@ -298,7 +303,8 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
                inputs=tuple(inputs), outputs=tuple(outputs), references=tuple(references),
                controller=controller, link=link, sensors=tuple(sensors),
                actuators=tuple(actuators), on_link_silence=on_silence, limits=tuple(limits),
-               interlocks=tuple(interlocks), safety=safety, disturbances=tuple(disturbances))
+               interlocks=tuple(interlocks), safety=safety, disturbances=tuple(disturbances),
+               acceptance=acceptance)
 
 
 def _list_of_tables(c: _Checker, doc: dict[str, Any], key: str) -> list[dict[str, Any]]:
@@ -547,6 +553,69 @@ def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
     return sine if ok else None
 
 
+def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
+    """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
+    if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
+        return ramp
+    c.add(f"{where}.rate", f"a rate of {ramp.rate:g} per s never takes the ramp from "
+                           f"{ramp.from_:g} to {ramp.to:g}; give the rate the other sign, "
+                           "or leave 'to' out")
+    return None
+
+
+def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
+    ok = True
+    if sine.high < sine.low:
+        c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
+        ok = False
+    if sine.hz < 0:
+        c.add(f"{where}.hz", f"expected a frequency >= 0 Hz, found {sine.hz:g}")
+        ok = False
+    return sine if ok else None
+
+
+def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
+    """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
+    if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
+        return ramp
+    c.add(f"{where}.rate", f"a rate of {ramp.rate:g} per s never takes the ramp from "
+                           f"{ramp.from_:g} to {ramp.to:g}; give the rate the other sign, "
+                           "or leave 'to' out")
+    return None
+
+
+def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
+    ok = True
+    if sine.high < sine.low:
+        c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
+        ok = False
+    if sine.hz < 0:
+        c.add(f"{where}.hz", f"expected a frequency >= 0 Hz, found {sine.hz:g}")
+        ok = False
+    return sine if ok else None
+
+
+def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
+    """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
+    if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
+        return ramp
+    c.add(f"{where}.rate", f"a rate of {ramp.rate:g} per s never takes the ramp from "
+                           f"{ramp.from_:g} to {ramp.to:g}; give the rate the other sign, "
+                           "or leave 'to' out")
+    return None
+
+
+def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
+    ok = True
+    if sine.high < sine.low:
+        c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
+        ok = False
+    if sine.hz < 0:
+        c.add(f"{where}.hz", f"expected a frequency >= 0 Hz, found {sine.hz:g}")
+        ok = False
+    return sine if ok else None
+
+
 PID_KEYS = {"measure", "drive", "reference", "kp", "ki", "kd", "derivative_lag", "windup",
             "unwind_time", "drive_low", "drive_high"}
 RENAMED_WINDUP = {"back_calculation": "unwind", "clamp": "freeze", "none": "off"}
@@ -651,6 +720,30 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                                                        f"found {describe_value(ref)}")
             settings["drive"] = drive
     return ControllerSpec(kind, settings)
+
+
+def _windup(value: str) -> str | None:
+    """One of WINDUP; a value of an earlier version names its replacement."""
+    if value in RENAMED_WINDUP:
+        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
+                f"did you mean '{RENAMED_WINDUP[value]}'?")
+    return one_of(WINDUP)(value)
+
+
+def _windup(value: str) -> str | None:
+    """One of WINDUP; a value of an earlier version names its replacement."""
+    if value in RENAMED_WINDUP:
+        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
+                f"did you mean '{RENAMED_WINDUP[value]}'?")
+    return one_of(WINDUP)(value)
+
+
+def _windup(value: str) -> str | None:
+    """One of WINDUP; a value of an earlier version names its replacement."""
+    if value in RENAMED_WINDUP:
+        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
+                f"did you mean '{RENAMED_WINDUP[value]}'?")
+    return one_of(WINDUP)(value)
 
 
 def _windup(value: str) -> str | None:

@@ -34,7 +34,8 @@ TANK = REPO / "configs" / "tank.toml"
 
 def lag_rig(tmp_path: Path, controller: dict, duration: float = 1.0, tick: float = 0.01,
             extra_refs: list | None = None, D: float = 0.0, mode: str = "fast",
-            on_overrun: str = "skip"):  # type: ignore[no-untyped-def]
+            on_overrun: str = "skip",
+            acceptance: dict | None = None):  # type: ignore[no-untyped-def]
     doc = {
         "rig": {"name": "lag", "tick": tick, "duration": duration, "mode": mode,
                 "on_overrun": on_overrun},
@@ -45,6 +46,8 @@ def lag_rig(tmp_path: Path, controller: dict, duration: float = 1.0, tick: float
         + (extra_refs or []),
         "controller": controller,
     }
+    if acceptance is not None:
+        doc["acceptance"] = acceptance
     return build_rig(doc, tmp_path / "lag.toml")
 
 
@@ -157,20 +160,28 @@ def test_operator_commands_become_events(tmp_path: Path) -> None:
     assert outcome.ended == "stopped" and len(rows) == dict(kinds)["operator_stop"] + 1
 
 
-@pytest.mark.parametrize(("policy", "ended", "overruns", "skipped"),
-                         [("skip", "completed", 1, 3), ("catch_up", "completed", 3, 0),
-                          ("stop", "fault", 1, 0)])
-def test_overrun_policies_on_a_virtual_clock(tmp_path: Path, policy: str, ended: str,
-                                             overruns: int, skipped: int) -> None:
+@pytest.mark.parametrize(("policy", "max_late", "ended", "overruns", "skipped"),
+                         [("skip", 0.05, "completed", 1, 3), ("catch_up", 0.05, "completed", 3, 0),
+                          ("skip", 0.03, "fault", 1, 3), ("catch_up", 0.02, "fault", 3, 0),
+                          ("stop", 0.05, "fault", 1, 0)])
+def test_overrun_policies_on_a_virtual_clock(tmp_path: Path, policy: str, max_late: float,
+                                             ended: str, overruns: int, skipped: int) -> None:
+    # 100 ticks: skip loses 4 slots (1 late tick, 3 skipped), catch_up has 3 late ticks;
+    # the acceptance rule "real time held" compares that share with max_late
     rig = lag_rig(tmp_path, {"kind": "pid", "loops": [
         {"measure": "y", "drive": "u", "reference": "r", "kp": 1.0}]}, on_overrun=policy,
-        mode="realtime")
+        mode="realtime", acceptance={"max_late": max_late})
     tick_ns = 10_000_000
     clock = VirtualClock(delays_ns={20: int(3.5 * tick_ns)})  # tick 20 starts 3.5 ticks late
     tape = MemoryTape(tick_columns(rig)[0], rig.n_ticks)
     outcome = Engine(rig, tape, clock=clock).run()
     assert outcome.ended == ended
     assert outcome.overruns == overruns and outcome.skipped_slots == skipped
+    rule = next(r for r in outcome.rules if r.rule == "real time held")
+    assert rule.passed == (policy == "stop" or ended == "completed")
+    if ended == "fault" and policy != "stop":
+        assert outcome.reason.startswith("acceptance rule 'real time held' not met")
+        assert outcome.events[-2].kind == "rule_failed" and outcome.events[-1].kind == "run_end"
     late = outcome.lateness_ns
     assert late[20] == int(3.5 * tick_ns)
     if policy == "catch_up":

@@ -112,7 +112,7 @@ def check_recovered(folder: Path, rig_path: Path) -> dict:
     np.testing.assert_array_equal(record["seq"], np.arange(len(record.rows)))
     same_as_fast_run(record.rows, record.columns, rig_path)
     assert record.events[-1]["kind"] == "recovered"
-    assert summary["ended"] == "fault" and verify_folder(folder).ok
+    assert summary["ended"] == "interrupted" and verify_folder(folder).ok
     assert not (folder / "ticks.journal").exists() and not (folder / ".reserve").exists()
     return report
 
@@ -162,7 +162,8 @@ def test_stalled_recorder_overflows_the_tape_into_a_clean_stop(
 
     _, outcome, summary = run_to_folder(load_rig(rig_path), tmp_path, realtime=True,
                                         folder=folder, on_tapes_ready=stall)
-    assert (outcome.ended, outcome.reason) == ("fault", "tape overflow")
+    assert (outcome.ended, outcome.reason) == (
+        "fault", "tape overflow: the recorder fell a full ring behind")
     assert outcome.ticks == 256 and summary["ticks_recorded"] == 256
     assert summary["recorder"]["max_backlog_rows"] >= 200      # the lag is reported
     kinds = [e["kind"] for e in read_run(folder).events]
@@ -181,14 +182,15 @@ def test_disk_filling_mid_run_stops_safely_and_keeps_the_rows(tmp_path: Path) ->
 
         folder, outcome, summary = run_to_folder(rig, disk, realtime=False,
                                                  on_tapes_ready=fill)
-        assert (outcome.ended, outcome.reason) == ("fault", "run record cannot be written")
+        assert (outcome.ended, outcome.reason) == ("fault",
+                                                   "run record cannot be written (disk full)")
         assert summary["recorder"]["disk_error"] == "disk full"
         record = read_run(folder)
         kept = len(record.rows)
         assert 0 < kept < outcome.ticks < rig.n_ticks
         assert summary["ticks_recorded"] == kept
         assert summary["recorder"]["rows_not_written"] == outcome.ticks - kept
-        assert "the recorder stopped writing (disk full)" in summary["record"]["problems"][0]
+        assert "the recorder stopped writing (disk full)" in summary["record"]["lost"][0]
         assert record.rows.tobytes() == simulate(rig).rows[:kept].tobytes()
         kinds = [e["kind"] for e in record.events]
         assert "record_failed" in kinds and kinds[-1] == "run_end"

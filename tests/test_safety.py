@@ -187,7 +187,7 @@ def test_freeze_holds_the_state_and_stop_ends_the_run(tmp_path: Path) -> None:
     stopped = simulate(lag_rig(tmp_path, limits=limits, interlocks=[
         {"name": "guard", "on": ["limit:y"], "action": "stop"}]))
     assert stopped.rows.shape[0] == k + 1
-    assert stopped.outcome.ended == "stopped" and "guard" in stopped.outcome.reason
+    assert stopped.outcome.ended == "tripped" and "guard" in stopped.outcome.reason
 
 
 def test_link_lost_from_a_link_fault_trips_the_watchdog_interlock(tmp_path: Path) -> None:
