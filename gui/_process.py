@@ -48,6 +48,7 @@ def _step_aside() -> None:
 def _dashboard_child(tape_path: str, event_tape_path: str | None, rig_path: str,
                      command_queue: Any, frame_cap_hz: float, screenshot: str | None,
                      exit_after_frames: int | None, frames: Any) -> None:
+    signal.signal(signal.SIGINT, signal.SIG_IGN)   # Ctrl-C is the run's; it closes us
     _step_aside()
     if not display_available():
         sys.exit(EXIT_NO_DISPLAY)

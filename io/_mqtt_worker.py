@@ -32,6 +32,7 @@ import json
 import math
 import os
 import random
+import signal
 import socket
 import ssl
 import struct
@@ -464,7 +465,9 @@ def setup_record(settings: MqttSettings, spec: ChannelSpec) -> bytes:
 def process_main(argv: list[str]) -> int:
     """Worker process entry (see plantrig.io._mqtt_link.WORKER_BOOT); argv[1] is the fd of
     its end of the socket pair. The settings arrive as the first record, never on the
-    command line, which other users can read."""
+    command line, which other users can read. A Ctrl-C reaches the whole process
+    group: the worker leaves it to the rig, which closes the link when it has stopped."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     sock = socket.socket(fileno=int(argv[1]))
     try:
         setup = json.loads(sock.recv(1 << 16))

@@ -221,3 +221,24 @@ def test_link_loss_with_a_trip_is_not_completed(tmp_path: Path) -> None:
     assert data.outcome.ended == "tripped"
     assert data.outcome.reason.startswith("acceptance rule 'no unexpected trip' not met: "
                                           "link_watchdog at tick")
+
+
+def test_acceptance_table_mistakes_are_rig_file_mistakes(tmp_path: Path) -> None:
+    rig_path = tmp_path / "conveyor.toml"
+    rig_path.write_text((REPO / "configs" / "conveyor.toml").read_text() + """
+[acceptance]
+min_answerd = 0.95
+max_late = 1.5
+allowed_trips = ["overspeed"]
+allow_link_loss = "yes"
+""")
+    checked = subprocess.run([sys.executable, "-m", "plantrig", "check", str(rig_path)],
+                             capture_output=True, text=True, timeout=60)
+    assert checked.returncode == 2 and "Traceback" not in checked.stderr
+    for needle in ("acceptance.min_answerd: unknown key; did you mean 'min_answered'?",
+                   "acceptance.max_late: expected a share from 0 to 1, found 1.5",
+                   "acceptance.allowed_trips[0]: expected the name of an interlock (estop), "
+                   "found 'overspeed'",
+                   "acceptance.allow_link_loss: expected true or false, found"):
+        assert needle in checked.stderr, (needle, checked.stderr)
+    assert "4 mistakes; nothing was run" in checked.stderr
