@@ -1,10 +1,17 @@
 """The sign-off report of a run: report.html (self-contained) and report.pdf.
 
 Both carry the same content, in this order: identity of the run (rig, date, operator,
-witness, software, manifest hashes), model summary, verdicts, event timeline, signal
-plots with their range bands and fault and trip windows marked, limit use, link and
-timing statistics with a lateness histogram. Images are rendered once with matplotlib
-(Agg) and embedded in the HTML as base64 PNG; the PDF is written with PdfPages.
+witness, software, outcome), the manifest (its own SHA-256, what verify found when the
+report was made, the signature, the hash of every file), model summary, verdicts, event
+timeline, signal plots with their range bands and fault and trip windows marked, limit
+use, link and timing statistics with a lateness histogram. Images are rendered once with
+matplotlib (Agg) and embedded in the HTML as base64 PNG; the PDF is written with PdfPages.
+
+A report is written beside the record (``derived/``), never into what the manifest
+covers, so making one never changes the manifest or voids a signature; it names the
+manifest's SHA-256 instead, which ties it to exactly one state of the record. A draft
+(a folder that is still being written, not finished or fails verify) is named
+``DRAFT-report.*`` and says so on every page and in every image.
 
 Column meanings (shared with the dashboard): ``fault:<name>`` and ``trip:<name>`` are
 non-zero while the fault or interlock is active; ``limit:<name>`` is the fraction of a
@@ -27,31 +34,44 @@ from numpy.typing import NDArray
 
 from plantrig import CAUTION, __version__
 from plantrig.sim._reader import RunRecord
+from plantrig.sim._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
 
 PLOT_POINTS = 4000           # per trace, min/max envelope beyond this
 PANELS_PER_PAGE = 5
-GROUPS = (("reference", "ref"), ("plant input", "u"), ("plant output", "y"),
-          ("plant state", "x"), ("command received", "cmd"), ("value sent", "sent"))
+GROUPS = (("reference", "ref"), ("plant input (applied)", "u"), ("plant output (true)", "y"),
+          ("plant state (true)", "x"), ("controller command", "cmd"),
+          ("controller reads", "sent"))        # plantrig.sim.SIGNAL_LABELS' words
 INK, BAND, FAULT, TRIP, LIMIT = "#1f3b57", "#d9534f", "#f0ad4e", "#8e44ad", "#2a9d8f"
+DRAFT_INK = "#c0392b"
 PAGE = (8.27, 11.69)         # A4 portrait, inches
 TEXT_LINES_PER_PAGE = 80
 
 
-def write_report(record: RunRecord, operator: str = "", witness: str = "") -> list[Path]:
-    """Write report.html and report.pdf into the run folder; return their paths."""
+def write_report(record: RunRecord, out_dir: Path, operator: str = "", witness: str = "",
+                 readiness: Readiness | None = None, draft: bool = False) -> list[Path]:
+    """Write report.html and report.pdf (DRAFT-report.* for a draft) into ``out_dir``;
+    return their paths. ``readiness``: what check_folder found (checked here if None)."""
     import matplotlib
 
     matplotlib.use("Agg")
     from matplotlib.backends.backend_pdf import PdfPages
 
-    sections = _sections(record, operator, witness)
+    readiness = readiness if readiness is not None else check_folder(record.folder)
+    sections = _sections(record, operator, witness, readiness, draft)
     figures = _figures(record)
-    folder = record.folder
-    html_path, pdf_path = folder / "report.html", folder / "report.pdf"
-    html_path.write_text(_html(record, sections, figures), encoding="utf-8")
-    with PdfPages(pdf_path, metadata={"Title": f"plantrig run {folder.name}",
+    if draft:
+        for _title, fig in figures:
+            _mark_draft(fig)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    name = f"{DRAFT_PREFIX if draft else ''}report"
+    html_path, pdf_path = out_dir / f"{name}.html", out_dir / f"{name}.pdf"
+    html_path.write_text(_html(record, sections, figures, draft), encoding="utf-8")
+    title = f"{'DRAFT ' if draft else ''}plantrig run {record.folder.name}"
+    with PdfPages(pdf_path, metadata={"Title": title,
                                       "Creator": f"plantrig {__version__}"}) as pdf:
         for page in _text_pages(sections):
+            if draft:
+                _mark_draft(page)
             pdf.savefig(page)
             _close(page)
         for _title, fig in figures:
@@ -66,8 +86,9 @@ def write_report(record: RunRecord, operator: str = "", witness: str = "") -> li
 Section = tuple[str, list[tuple[str, str]]]
 
 
-def _sections(record: RunRecord, operator: str, witness: str) -> list[Section]:
-    s = record.summary
+def _sections(record: RunRecord, operator: str, witness: str, readiness: Readiness,
+              draft: bool) -> list[Section]:
+    s = record.summary or _start_of(record.folder)   # a run not over: what it started as
     rig = s.get("rig", {})
     description = ""
     rig_file = record.folder / "rig.toml"
@@ -82,7 +103,8 @@ def _sections(record: RunRecord, operator: str, witness: str) -> list[Section]:
         ("run folder", record.folder.name),
         ("started (UTC)", str(s.get("started_utc", "?"))),
         ("mode", str(s.get("mode", "?"))),
-        ("ended", f"{s.get('ended', '?')}: {s.get('reason', '')}"),
+        ("ended", f"{s['ended']}: {s.get('reason', '')}" if "ended" in s else
+                  "not recorded: the run has no summary (not over, or it died)"),
         ("ticks", f"{s.get('ticks_recorded', len(record.rows))} of "
                   f"{s.get('ticks_planned', '?')} planned, tick {rig.get('tick_s', '?')} s"),
         ("operator", operator or "________________"),
@@ -97,15 +119,8 @@ def _sections(record: RunRecord, operator: str, witness: str) -> list[Section]:
         r = s["recovery"]
         identity.append(("recovered", f"rebuilt after the rig died: {r.get('lost_rows')} "
                                       f"ticks lost ({r.get('lost_ms')} ms)"))
-    manifest = [("manifest", "none: this folder has no manifest.json")]
-    mpath = record.folder / "manifest.json"
-    if mpath.exists():
-        files = json.loads(mpath.read_text()).get("files", {})
-        manifest = [(name, str(entry.get("sha256", ""))) for name, entry in sorted(files.items())
-                    if name not in ("report.html", "report.pdf")]   # not this report itself
-        if (record.folder / "manifest.sig").exists():
-            manifest.append(("manifest.sig", "present (check with plantrig verify "
-                                             "--public-key)"))
+    if isinstance(s.get("record"), dict):
+        identity += [("record problem", str(p)) for p in s["record"].get("problems", [])]
     model = s.get("model", {})
     model_rows = [(k, _fmt(model.get(k))) for k in
                   ("kind", "states", "inputs", "outputs", "stability",
@@ -116,7 +131,9 @@ def _sections(record: RunRecord, operator: str, witness: str) -> list[Section]:
         model_rows.append(("time constants [s]",
                            ", ".join(f"{v:.4g}" for v in model["time_constants_s"])))
     model_rows += [("warning", w) for w in model.get("warnings", [])]
-    return [("Run identity", identity), ("Manifest (SHA-256)", manifest),
+    head = [(DRAFT_MARK, [("why", p) for p in readiness.problems] or [
+        ("why", "made with --draft")])] if draft else []
+    return head + [("Run identity", identity), _manifest_section(record.folder, readiness),
             ("Model summary", model_rows or [("model", "not recorded")]),
             ("Verdicts", _verdict_rows(record.folder)),
             ("Events", [(f"{ev['time']:.4f} s (tick {ev['tick']})",
@@ -124,6 +141,43 @@ def _sections(record: RunRecord, operator: str, witness: str) -> list[Section]:
              or [("events", "none")]),
             ("Link and timing", _stat_rows(record)),
             ("Caution", [("", CAUTION)])]
+
+
+def _start_of(folder: Path) -> dict[str, Any]:
+    try:
+        start = json.loads((folder / "run_start.json").read_text())
+    except (OSError, ValueError):
+        return {}
+    return start if isinstance(start, dict) else {}
+
+
+def _manifest_section(folder: Path, readiness: Readiness) -> Section:
+    """The manifest's own hash, what verify found when the report was made, and the hash
+    of every file, labelled as not valid when the folder fails verify."""
+    v = readiness.verification
+    if v is None:
+        why = "; ".join(readiness.problems) or "not checked"
+        return ("Manifest: NONE", [("manifest", f"no verified manifest ({why})")])
+    rows = [("manifest.json SHA-256", v.manifest_sha256),
+            ("manifest written (UTC)", v.created_utc)]
+    if readiness.not_intact:
+        rows.append(("verify at report time", "FAILED: " + "; ".join(readiness.not_intact)))
+    else:
+        rows.append(("verify at report time", f"ok, {v.checked} files match"))
+    signature = {"absent": "none (plantrig sign adds one)",
+                 "not checked": "present, not checked here (check it with plantrig verify "
+                                "--public-key)"}.get(v.signature, v.signature)
+    rows.append(("signature", signature + (f"; {v.signature_detail}"
+                                           if v.signature_detail else "")))
+    try:
+        files = json.loads((folder / "manifest.json").read_text()).get("files", {})
+    except (OSError, ValueError):
+        files = {}
+    rows += [(name, str(entry.get("sha256", ""))) for name, entry in sorted(files.items())
+             if isinstance(entry, dict)]
+    title = ("Manifest (FAILS VERIFY: the hashes below are as listed, not as found)"
+             if readiness.not_intact else "Manifest (SHA-256)")
+    return (title, rows)
 
 
 def _verdict_rows(folder: Path) -> list[tuple[str, str]]:
@@ -393,6 +447,14 @@ def _text_pages(sections: list[Section]) -> list[Any]:
     return pages
 
 
+def _mark_draft(fig: Any) -> None:
+    """The draft mark at the top and bottom of a page and across it."""
+    for x, y, ha, va in ((0.97, 0.998, "right", "top"), (0.5, 0.004, "center", "bottom")):
+        fig.text(x, y, DRAFT_MARK, ha=ha, va=va, fontsize=9, weight="bold", color=DRAFT_INK)
+    fig.text(0.5, 0.5, DRAFT_MARK, ha="center", va="center", rotation=55, fontsize=44,
+             weight="bold", color=DRAFT_INK, alpha=0.13)
+
+
 def _png(fig: Any) -> str:
     with tempfile.SpooledTemporaryFile(max_size=1 << 24) as buf:   # no name "io" here:
         fig.savefig(buf, format="png", dpi=90)                      # ./io shadows it for
@@ -400,28 +462,38 @@ def _png(fig: Any) -> str:
         return base64.b64encode(buf.read()).decode("ascii")
 
 
-def _html(record: RunRecord, sections: list[Section], figures: list[tuple[str, Any]]) -> str:
+def _html(record: RunRecord, sections: list[Section], figures: list[tuple[str, Any]],
+          draft: bool) -> str:
+    """One page; a draft has a bar fixed at the top (printed on every sheet) and the
+    mark again before every section and image."""
     esc = html.escape
+    mark = f"<p class='draft'>{DRAFT_MARK}</p>" if draft else ""
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
-        f"<title>plantrig run {esc(record.folder.name)}</title><style>",
+        f"<title>{DRAFT_MARK + ': ' if draft else ''}plantrig run "
+        f"{esc(record.folder.name)}</title><style>",
         "body{font-family:sans-serif;max-width:60em;margin:2em auto;color:#1d2630}",
         "table{border-collapse:collapse;margin-bottom:1.5em;width:100%}",
         "td{border-bottom:1px solid #d5dbe1;padding:2px 8px;vertical-align:top;"
         "font-size:0.9em}td:first-child{white-space:nowrap;color:#4a5866;width:14em}",
         "td.hash{font-family:monospace;font-size:0.8em}img{max-width:100%}",
         "h1{font-size:1.5em}h2{font-size:1.15em;border-bottom:2px solid #1f3b57}",
-        "</style></head><body>",
-        f"<h1>Run record: {esc(record.folder.name)}</h1>",
+        f".draft,.draft-bar{{text-align:center;font-weight:bold;color:{DRAFT_INK};"
+        f"background:#fdecea;border:2px solid {DRAFT_INK};padding:4px}}",
+        ".draft-bar{position:fixed;top:0;left:0;right:0}body.draft-page{padding-top:3em}",
+        "</style></head>",
+        f"<body class='draft-page'><div class='draft-bar'>{DRAFT_MARK}</div>" if draft
+        else "<body>",
+        f"<h1>{DRAFT_MARK + ': ' if draft else ''}Run record: {esc(record.folder.name)}</h1>",
     ]
     for title, rows in sections:
-        parts.append(f"<h2>{esc(title)}</h2><table>")
+        parts.append(f"{mark}<h2>{esc(title)}</h2><table>")
         cls = " class='hash'" if title.startswith("Manifest") else ""
         for key, value in rows:
             parts.append(f"<tr><td>{esc(key)}</td><td{cls}>{esc(value)}</td></tr>")
         parts.append("</table>")
     for title, fig in figures:
-        parts.append(f"<h2>{esc(title)}</h2><img alt='{esc(title)}' "
+        parts.append(f"{mark}<h2>{esc(title)}</h2><img alt='{esc(title)}' "
                      f"src='data:image/png;base64,{_png(fig)}'>")
     parts.append("</body></html>\n")
     return "\n".join(parts)

@@ -4,7 +4,9 @@ CSV: one file of tick records (a row of column names, a row of units, then one r
 tick, every value written with 17 significant digits so it reads back bit for bit) and
 one file of events. MATLAB: scipy.io.savemat (format 5), one column vector per tick
 column under a valid MATLAB name, plus cell arrays ``columns`` (the original names),
-``names`` (the MATLAB names, same order) and ``units``, and a struct ``events``.
+``names`` (the MATLAB names, same order) and ``units``, a struct ``events`` and a string
+``status`` (whether the record was verified). A draft (a folder not fit for sign-off)
+carries the draft mark in its file names and in ``status``.
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from plantrig.sim._reader import RunRecord
+from plantrig.sim._signoff import DRAFT_PREFIX
 
 MATLAB_NAME_MAX = 63   # namelengthmax in MATLAB (from memory of its documentation)
 MATLAB_KEYWORDS = {
@@ -24,7 +27,7 @@ MATLAB_KEYWORDS = {
     "function", "global", "if", "otherwise", "parfor", "persistent", "return", "spmd",
     "switch", "try", "while",
 }
-RESERVED = {"columns", "names", "units", "events"}
+RESERVED = {"columns", "names", "units", "events", "status"}
 
 
 def matlab_names(columns: list[str]) -> list[str]:
@@ -49,10 +52,12 @@ def matlab_names(columns: list[str]) -> list[str]:
     return out
 
 
-def export_csv(record: RunRecord, out_dir: Path) -> list[Path]:
-    """Write ``ticks.csv`` and ``events.csv`` into ``out_dir``; return their paths."""
+def export_csv(record: RunRecord, out_dir: Path, draft: bool = False) -> list[Path]:
+    """Write ``ticks.csv`` and ``events.csv`` (``DRAFT-...`` for a draft) into ``out_dir``;
+    return their paths."""
     out_dir.mkdir(parents=True, exist_ok=True)
-    ticks, events = out_dir / "ticks.csv", out_dir / "events.csv"
+    prefix = DRAFT_PREFIX if draft else ""
+    ticks, events = out_dir / f"{prefix}ticks.csv", out_dir / f"{prefix}events.csv"
     with open(ticks, "w", newline="", encoding="utf-8") as f:
         w = csv.writer(f)
         w.writerow(record.columns)
@@ -69,18 +74,21 @@ def export_csv(record: RunRecord, out_dir: Path) -> list[Path]:
     return [ticks, events]
 
 
-def export_mat(record: RunRecord, out_dir: Path) -> list[Path]:
-    """Write ``run.mat`` into ``out_dir``; return its path in a list."""
+def export_mat(record: RunRecord, out_dir: Path, status: str, draft: bool = False
+               ) -> list[Path]:
+    """Write ``run.mat`` (``DRAFT-run.mat`` for a draft) into ``out_dir``, with ``status``
+    saying what was checked; return its path in a list."""
     import scipy.io
 
     out_dir.mkdir(parents=True, exist_ok=True)
-    path = out_dir / "run.mat"
+    path = out_dir / f"{DRAFT_PREFIX if draft else ''}run.mat"
     names = matlab_names(record.columns)
     data: dict[str, object] = {n: np.ascontiguousarray(record.rows[:, i])
                                for i, n in enumerate(names)}
     data["columns"] = np.array(record.columns, dtype=object)
     data["names"] = np.array(names, dtype=object)
     data["units"] = np.array(record.units, dtype=object)
+    data["status"] = status
     data["events"] = {
         "tick": np.array([ev["tick"] for ev in record.events], dtype=np.float64),
         "time": np.array([ev["time"] for ev in record.events], dtype=np.float64),

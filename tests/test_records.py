@@ -142,7 +142,7 @@ def test_signature_from_one_key_is_rejected_under_another(conveyor_run: Path, tm
     assert "signature: invalid" in capsys.readouterr().out
     # a manifest edited to match a changed file no longer matches its signature
     manifest = (folder / "manifest.json").read_text()
-    (folder / "manifest.json").write_text(manifest.replace('"version": 1', '"version": 1 '))
+    (folder / "manifest.json").write_text(manifest.replace('"version": 2', '"version": 2 '))
     assert main(["verify", str(folder), "--public-key", f"{alice}.public.pem"]) == 1
 
 
@@ -150,15 +150,15 @@ def test_csv_and_mat_exports_read_back_equal(conveyor_run: Path, tmp_path: Path)
     folder = copy_of(conveyor_run, tmp_path)
     record = read_run(folder)
     assert main(["export", str(folder), "--csv", "--mat"]) == 0
-    with open(folder / "export" / "ticks.csv", newline="") as f:
+    with open(folder / "derived" / "ticks.csv", newline="") as f:
         table = list(csv.reader(f))
     assert table[0] == record.columns and table[1] == record.units
     back = np.array([[float(v) for v in row] for row in table[2:]])
     assert back.tobytes() == record.rows.tobytes()        # 17 digits round-trip exactly
-    with open(folder / "export" / "events.csv", newline="") as f:
+    with open(folder / "derived" / "events.csv", newline="") as f:
         events = list(csv.reader(f))
     assert events[-1][2] == "run_end"
-    mat = scipy.io.loadmat(folder / "export" / "run.mat")
+    mat = scipy.io.loadmat(folder / "derived" / "run.mat")
     names = [str(n[0]) for n in mat["names"].ravel()]
     assert [str(c[0]) for c in mat["columns"].ravel()] == record.columns
     assert [str(u[0]) if u.size else "" for u in mat["units"].ravel()] == record.units
@@ -166,7 +166,7 @@ def test_csv_and_mat_exports_read_back_equal(conveyor_run: Path, tmp_path: Path)
         assert re.fullmatch(r"[A-Za-z][A-Za-z0-9_]{0,62}", name), name
         assert mat[name].shape == (len(record.rows), 1)
         assert mat[name].ravel().tobytes() == record.rows[:, i].tobytes()
-    assert main(["verify", str(folder)]) == 0             # exports joined the manifest
+    assert main(["verify", str(folder)]) == 0             # exports are not in the record
 
 
 def test_matlab_names_are_valid_and_distinct() -> None:
@@ -203,7 +203,7 @@ def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> 
     write_manifest(folder)
     assert main(["report", str(folder), "--operator", "R. Okafor", "--witness",
                  "L. Brandt"]) == 0
-    page = (folder / "report.html").read_text()
+    page = (folder / "derived" / "report.html").read_text()
     assert "R. Okafor" in page and "L. Brandt" in page
     assert "belt speed settles" in page and "no acceptance criteria" not in page
     assert "1 of 2 criteria passed — NOT ACCEPTED" in page
@@ -213,7 +213,7 @@ def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> 
     assert json.loads((folder / "manifest.json").read_text())["files"]["ticks.npy"][
         "sha256"] in page
     assert main(["verify", str(folder)]) == 0
-    subprocess.run(["pdftoppm", "-r", "50", "-png", str(folder / "report.pdf"),
+    subprocess.run(["pdftoppm", "-r", "50", "-png", str(folder / "derived" / "report.pdf"),
                     str(tmp_path / "page")], check=True, timeout=60)
     pages = [matplotlib.image.imread(p)[..., :3]
              for p in sorted(tmp_path.glob("page-*.png"))]
@@ -254,7 +254,7 @@ def test_report_marks_fault_and_trip_windows(tmp_path: Path) -> None:
     record = RunRecord(tmp_path, columns, [i["unit"] for i in info], rows,
                        [{"tick": 300, "time": 0.3, "kind": "fault_on", "detail": "stuck"}],
                        {"rig": {"name": "demo"}}, info, "memory")
-    write_report(record, operator="R. Okafor")
+    write_report(record, tmp_path, operator="R. Okafor")
     subprocess.run(["pdftoppm", "-r", "50", "-png", str(tmp_path / "report.pdf"),
                     str(tmp_path / "page")], check=True, timeout=60)
     pages = [matplotlib.image.imread(p)[..., :3] for p in sorted(tmp_path.glob("page-*.png"))]
