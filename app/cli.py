@@ -180,7 +180,10 @@ def cmd_run(args: argparse.Namespace) -> int:
     code = int(summary["exit_code"])
     print(f"exit code {code}: {EXIT_MEANINGS[code]}")
     if dashboard is not None:
-        dashboard.after_run(folder)
+        if summary["reason"].startswith("signal "):
+            dashboard.close()
+        else:
+            dashboard.after_run(folder)
     return code
 
 

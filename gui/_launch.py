@@ -45,6 +45,11 @@ class LiveDashboard:
                                                self.commands,
                                                frame_cap_hz=self.frame_cap_hz, on_exit=_say)
 
+    def close(self) -> None:
+        """Close the window now (the run was stopped by a signal: nobody waits to look)."""
+        if self.process is not None:
+            self.process.stop()
+
     def after_run(self, folder: Path) -> None:
         """Keep the window up for a look at the end of the run, until it is closed.
 

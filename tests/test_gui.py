@@ -14,7 +14,6 @@ from __future__ import annotations
 import json
 import multiprocessing as mp
 import os
-import shutil
 import signal
 import subprocess
 import sys
@@ -31,41 +30,35 @@ from matplotlib import image as mpimg
 from plantrig.cli import main as cli_main
 from plantrig.gui import Dashboard, Replay, start_dashboard_process, start_replay_process
 from plantrig.gui._model import fmt
+from plantrig.gui._operator import MOMENT_PRESETS
 from plantrig.gui._process import EXIT_NO_DISPLAY
-from plantrig.gui._theme import BANNER_BG, BANNER_TEXT, SERIES
+from plantrig.gui._theme import (
+    ALARM,
+    BANNER_BG,
+    BANNER_TEXT,
+    FIELD,
+    PANEL,
+    PAPER,
+    ROLES,
+    SERIES,
+)
 from plantrig.gui._view import T
-from plantrig.sim import Command, EventTape, Tape, TapeReader, load_rig, run_to_folder, tick_columns
+from plantrig.sim import (
+    Command,
+    EventTape,
+    Tape,
+    TapeReader,
+    load_rig,
+    load_scenario,
+    run_to_folder,
+    tick_columns,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 CONVEYOR = ROOT / "configs" / "conveyor.toml"
+GUARDED = ROOT / "configs" / "rehearsals" / "conveyor_guarded.toml"
+SENSOR_STUCK = ROOT / "configs" / "rehearsals" / "belt_sensor_stuck.toml"
 GUARD_S = 60.0          # a hang guard only; nothing here measures time
-
-
-@pytest.fixture(scope="module")
-def xvfb():
-    """A real X server on a display number it picks itself (-displayfd)."""
-    exe = shutil.which("Xvfb")
-    if exe is None:
-        pytest.fail("Xvfb is needed for the dashboard tests (apt-get install xvfb)")
-    read_fd, write_fd = os.pipe()
-    proc = subprocess.Popen([exe, "-displayfd", str(write_fd), "-screen", "0", "1400x900x24",
-                             "-nolisten", "tcp"], pass_fds=(write_fd,),
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    os.close(write_fd)
-    with os.fdopen(read_fd) as f:
-        number = f.readline().strip()
-    if not number:
-        proc.kill()
-        pytest.fail("Xvfb did not report a display number")
-    old = os.environ.get("DISPLAY")
-    os.environ["DISPLAY"] = f":{number}"
-    yield os.environ["DISPLAY"]
-    if old is None:
-        os.environ.pop("DISPLAY", None)
-    else:
-        os.environ["DISPLAY"] = old
-    proc.terminate()
-    proc.wait(10)
 
 
 def frames_until(window, condition, what: str) -> None:
@@ -109,7 +102,98 @@ def check_screenshot(path: Path, regions: dict, series: dict[str, str]) -> None:
     for plot, prefix in series.items():
         area = crop(img, regions[plot])
         assert area.std() > 10, f"{plot} is empty"
-        assert near(area, SERIES[prefix], 30).sum() > 40, f"{plot}: no {prefix} series drawn"
+        assert near(area, SERIES[prefix][0], 30).sum() > 40, f"{plot}: no {prefix} series drawn"
+
+
+# widget areas of a screenshot that the theme must cover (the banner has its own test)
+WIDGET_AREAS = ("estop_lamp", "controls", "plots", "panels", "span", "show.0")
+
+
+def widget_pixels(img: np.ndarray, regions: dict) -> np.ndarray:
+    """Every pixel inside the dashboard's widget areas, once."""
+    mask = np.zeros(img.shape[:2], dtype=bool)
+    for name, (x, y, w, h) in regions.items():
+        if name in WIDGET_AREAS or name.startswith(("lamp.", "plot.")):
+            mask[y:y + h, x:x + w] = True
+    return img[mask]
+
+
+def check_theme(path: Path, stock: list[list[int]]) -> dict[str, float]:
+    """No colour of the toolkit's stock theme is left in the widget areas (each covers
+    under 0.1 % of them, where the stock frame has it on 0.1 % or more); the palette's
+    own surfaces fill most of them. Returns each stock colour's share, for the log."""
+    regions = json.loads(path.with_suffix(".regions.json").read_text())
+    pixels = widget_pixels(load_png(path), regions)
+    assert len(pixels) > 200_000, "the widget areas are missing from the regions"
+    shares = {str(tuple(c)): float(near(pixels, c, 2).mean()) for c in stock}
+    left = {c: share for c, share in shares.items() if share >= 0.001}
+    assert not left, f"stock theme colours left in {path.name}: {left}"
+    ours = near(pixels, PAPER, 3) | near(pixels, PANEL, 3) | near(pixels, FIELD, 3)
+    assert ours.mean() > 0.5, f"the palette's surfaces cover only {ours.mean():.0%}"
+    return shares
+
+
+def stock_case(tmp_path: Path) -> None:
+    """The toolkit's own theme, measured: an unthemed window with every kind of widget
+    the dashboard uses; prints the colours that fill 0.1 % or more of the frame."""
+    dpg.create_context()
+    with dpg.window(tag="main"), dpg.child_window(height=-1, width=600):
+        dpg.add_text("stock theme")
+        dpg.add_button(label="button", width=200)
+        dpg.add_slider_double(label="slider", width=200, default_value=0.3)
+        dpg.add_checkbox(label="check", default_value=True)
+        dpg.add_combo(["a", "b"], default_value="a", width=200)
+        dpg.add_input_text(hint="text", width=200)
+        dpg.add_progress_bar(default_value=0.4, width=200, overlay="40 %")
+        dpg.add_separator()
+        with dpg.table(header_row=True, row_background=True, height=120):
+            for name in ("a", "b"):
+                dpg.add_table_column(label=name)
+            for i in range(4):
+                with dpg.table_row():
+                    dpg.add_text(str(i))
+                    dpg.add_text("x")
+        with dpg.plot(label="plot", height=250, width=-1):
+            dpg.add_plot_legend()
+            dpg.add_plot_axis(dpg.mvXAxis, label="t")
+            with dpg.plot_axis(dpg.mvYAxis):
+                dpg.add_line_series([0.0, 1.0, 2.0], [0.0, 1.0, 0.0], label="s")
+    dpg.create_viewport(width=640, height=760)
+    dpg.setup_dearpygui()
+    dpg.show_viewport()
+    dpg.set_primary_window("main", True)
+    for _ in range(5):
+        dpg.render_dearpygui_frame()
+    shot = tmp_path / "stock.png"
+    dpg.output_frame_buffer(file=str(shot))
+    dpg.render_dearpygui_frame()
+    dpg.render_dearpygui_frame()
+    dpg.destroy_context()
+    pixels = load_png(shot).reshape(-1, 3)
+    colours, counts = np.unique(pixels, axis=0, return_counts=True)
+    common = colours[counts >= 0.001 * len(pixels)]
+    print(json.dumps(common.tolist()))
+
+
+@pytest.fixture(scope="module")
+def stock_colours(xvfb, tmp_path_factory) -> list[list[int]]:
+    """The stock theme's colours, less those the palette names on purpose (white text
+    on the alarm red and the E-stop)."""
+    out = run_fresh("stock_case", tmp_path_factory.mktemp("stock"))
+    measured = json.loads(out.strip().splitlines()[-1])
+    palette = [np.array(c[:3]) for c in ROLES.values()] + [np.array((255, 255, 255))]
+    stock = [c for c in measured if not any(np.abs(np.array(c) - p).max() <= 2
+                                            for p in palette)]
+    assert len(stock) >= 4, f"the stock frame gave too few colours: {measured}"
+    return stock
+
+
+def test_the_stock_theme_is_measured_as_dark_slate_with_blue_accents(stock_colours):
+    # the toolkit's defaults, as the issue describes them: dark grey surfaces, blue
+    # accents; so the check below compares against the real stock theme
+    grey = [c for c in stock_colours if max(c) - min(c) <= 6 and max(c) < 90]
+    blue = [c for c in stock_colours if c[2] > c[0] + 60]
+    assert grey and blue, stock_colours
 
 
 def run_in_thread(rig, out: Path, commands):
@@ -152,14 +236,19 @@ def run_fresh(case: str, tmp_path: Path) -> str:
     return done.stdout
 
 
-def test_live_dashboard_draws_and_its_commands_reach_the_engine(xvfb, tmp_path):
+def test_live_dashboard_draws_and_its_commands_reach_the_engine(xvfb, tmp_path,
+                                                                stock_colours):
     out = run_fresh("live_case", tmp_path)
     print(out)
     assert "fault answer:" in out
+    for shot in ("live.png", "live_after.png"):
+        print(shot, check_theme(tmp_path / shot, stock_colours))
 
 
-def test_replay_shows_the_moment_under_the_slider(xvfb, tmp_path):
+def test_replay_shows_the_moment_under_the_slider(xvfb, tmp_path, stock_colours):
     run_fresh("replay_case", tmp_path)
+    for shot in ("replay_trip.png", "process.png"):
+        print(shot, check_theme(tmp_path / shot, stock_colours))
 
 
 def live_case(tmp_path: Path) -> None:
@@ -175,12 +264,29 @@ def live_case(tmp_path: Path) -> None:
         regions = dash.view.screenshot(shot)
         check_screenshot(shot, regions, {"plot.0": "y", "plot.1": "y", "plot.2": "u"})
         assert dpg.get_item_configuration(T + "estop")["label"] == "E-STOP"
+        # legends name the true plant value and what the controller reads
+        label = lambda tag: dpg.get_item_configuration(T + tag)["label"]  # noqa: E731
+        assert label("plot.0.y:belt_speed") == "plant output (true)"
+        assert label("plot.0.sent:belt_speed") == "controller reads"
+        assert label("plot.0.ref:speed_setpoint") == "reference speed_setpoint"
+        assert label("plot.2.cmd:voltage") == "controller command"
+        assert label("plot.2.u:voltage") == "plant input (applied)"
+        # nothing latched: the lamps are quiet (no alarm colour anywhere in them)
+        img = load_png(shot)
+        assert label("lamp.0") == "estop: normal"
+        for quiet in ("lamp.0", "estop_lamp"):
+            assert not near(crop(img, regions[quiet]), ALARM, 12).any(), quiet
+        # the run buttons: no arm or start markers, one stop (asked first), one mark
+        assert not dpg.does_item_exist(T + "arm") and not dpg.does_item_exist(T + "start")
 
         press("estop")
         frames_until(dash, lambda: dash.model.log.kinds.get("estop"), "estop event")
         dash.frame()
         assert dpg.get_item_configuration(T + "estop_lamp")["label"].startswith(
             "E-STOP LATCHED")
+        t_estop = dash.model.log.latches["estop"].t
+        assert label("lamp.0") == (f"estop: TRIPPED at t = {t_estop:.3f} s, latched\n"
+                                   "cause: operator E-stop")
 
         dpg.set_value(T + "fault_kind", "sensor_stuck")
         dash.view.on_fault_kind(None, "sensor_stuck")
@@ -194,13 +300,26 @@ def live_case(tmp_path: Path) -> None:
             dash.frame()
             assert "FAULT ACTIVE: sensor_stuck:belt_speed" in \
                 dpg.get_item_configuration(T + "plot.0")["label"]
-        dash.view.screenshot(tmp_path / "live_after.png")
+        after = tmp_path / "live_after.png"
+        regions = dash.view.screenshot(after)
+        img = load_png(after)
+        assert near(crop(img, regions["lamp.0"]), ALARM, 12).mean() > 0.5   # latched: red
+        assert near(crop(img, regions["estop_lamp"]), ALARM, 12).mean() > 0.5
         dpg.set_value(T + "ref_value", 0.25)
         press("set_reference")
-        dpg.set_value(T + "phase_name", "after the E-stop")
-        press("mark_phase")
-        press("start")
+        dpg.set_value(T + "moment_preset", MOMENT_PRESETS[1])
+        press("mark_moment")
+        dpg.set_value(T + "moment_text", "after the E-stop")
+        press("mark_moment")
+        assert dpg.get_value(T + "moment_text") == ""          # ready for the next one
+        press("stop")                                           # asks first ...
+        assert dpg.get_item_configuration(T + "stop_confirm_row")["show"]
+        press("stop_cancel")                                    # ... and can be cancelled
+        assert not dpg.get_item_configuration(T + "stop_confirm_row")["show"]
+        assert all(c.kind != "stop" for _, c in dash.operator.sent)
         press("stop")
+        press("stop_confirm")
+        assert dash.operator.sent[-1][1].kind == "stop"
         frames_until(dash, lambda: dash.model.log.ended is not None, "run_end event")
         dash.frame()
     finally:
@@ -214,7 +333,9 @@ def live_case(tmp_path: Path) -> None:
     events = read_events(folder)
     kinds = [e["kind"] for e in events]
     assert {"estop", "reference_set", "phase", "operator_stop"} <= set(kinds)
-    assert any(e["kind"] == "phase" and e["detail"] == "after the E-stop" for e in events)
+    assert kinds.count("operator_stop") == 1
+    phases = [e["detail"] for e in events if e["kind"] == "phase"]
+    assert MOMENT_PRESETS[1] in phases and "after the E-stop" in phases
     ticks = np.load(folder / "ticks.npy")
     assert np.array_equal(ticks["t"], np.arange(len(ticks)) * rig.tick)   # row k is tick k
     k_stop = next(e["tick"] for e in events if e["kind"] == "estop")
@@ -234,7 +355,14 @@ def live_case(tmp_path: Path) -> None:
 
 
 def replay_case(tmp_path: Path) -> None:
-    folder, _, summary = run_to_folder(load_rig(CONVEYOR), tmp_path, realtime=False)
+    # the stuck belt sensor rehearsal: the overspeed interlock trips, and is reset later
+    rig = load_rig(GUARDED)
+    folder, _, summary = run_to_folder(rig, tmp_path, realtime=False,
+                                       scenario=load_scenario(SENSOR_STUCK, rig))
+    events = read_events(folder)
+    trip = next(e for e in events if e["kind"] == "trip")
+    name, _, rest = trip["detail"].partition(": ")         # "<name>: <cause>; <action>"
+    cause = rest.rsplit("; ", 1)[0]
     replay = Replay(folder)
     try:
         for _ in range(3):
@@ -248,6 +376,26 @@ def replay_case(tmp_path: Path) -> None:
         x = np.asarray(dpg.get_value(T + "plot.0.y:belt_speed")[0])
         assert x.max() == row["t"] and x.min() >= 1.0 - replay.view.span
         assert not dpg.does_item_exist(T + "estop")            # no controls in replay
+        names = [c.name for c in replay.model.groups.group("trip")]
+        i = names.index(name)
+        lamp = lambda j: dpg.get_item_configuration(f"{T}lamp.{j}")["label"]  # noqa: E731
+        assert lamp(i) == f"{name}: normal"                    # before the trip: quiet
+        replay.seek(trip["time"] + 0.1)
+        for _ in range(3):
+            replay.frame()
+        text = lamp(i)
+        assert text.startswith(f"{name}: TRIPPED at t = {trip['time']:.3f} s, latched\n")
+        assert " ".join(text.split("\n", 1)[1].split()).startswith(
+            " ".join(f"cause: {cause}".split())[:40])           # says why (wrapped)
+        assert all(lamp(j).endswith(": normal") for j in range(len(names)) if j != i)
+        shot = tmp_path / "replay_trip.png"
+        regions = replay.view.screenshot(shot)
+        img = load_png(shot)
+        assert near(crop(img, regions[f"lamp.{i}"]), ALARM, 12).mean() > 0.5
+        for j in range(len(names)):
+            if j != i:
+                assert not near(crop(img, regions[f"lamp.{j}"]), ALARM, 12).any()
+        check_screenshot(shot, regions, {"plot.0": "sent", "plot.2": "cmd"})
     finally:
         replay.close()
     assert summary["ticks_recorded"] == len(ticks)

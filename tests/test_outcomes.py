@@ -242,3 +242,16 @@ allow_link_loss = "yes"
                    "acceptance.allow_link_loss: expected true or false, found"):
         assert needle in checked.stderr, (needle, checked.stderr)
     assert "4 mistakes; nothing was run" in checked.stderr
+
+
+def test_a_signal_stops_a_run_with_the_dashboard_open(tmp_path: Path, xvfb: str) -> None:
+    rig_path = realtime_rig(tmp_path, duration=30.0)
+    runs = tmp_path / "runs"
+    proc = start_run(rig_path, runs, "--gui")
+    folder = wait_recording(proc, runs)
+    time.sleep(1.0)
+    os.kill(proc.pid, signal.SIGTERM)
+    code, out, err = finished(proc)        # ends without waiting for the window
+    assert "Traceback" not in err and "SystemExit" not in err, err
+    assert code == 5 and "outcome: STOPPED (signal SIGTERM)" in out, (out, err)
+    check_agrees(folder, "stopped", "signal SIGTERM")

@@ -56,7 +56,9 @@ def test_watchdog_interlock_trips_within_timeout_plus_one_tick() -> None:
     tripped = data["trip:link_watchdog"]
     assert not tripped[:trip.tick].any() and tripped[trip.tick:].all()
     assert np.all(data["u:voltage"][trip.tick:] == 0.0)  # the safe value, held
-    assert data.outcome.ended == "completed" and data.rows.shape[0] == rig.n_ticks
+    # every tick ran, but the link was lost: never "completed" (docs/records.md)
+    assert data.outcome.ended == "fault" and data.rows.shape[0] == rig.n_ticks
+    assert data.outcome.reason.startswith("acceptance rule 'link kept' not met")
 
 
 def test_the_fast_rehearsal_runs_unchanged_on_the_bench() -> None:
