@@ -232,45 +232,96 @@ class TapeReader:
         self._map._mmap.close()  # type: ignore[attr-defined]
 
 
+EVENT_VERSION = 2
+EVENT_HEADER_WORDS = HEADER_WORDS + 2
+W_HEAP_SIZE, W_HEAP_WRITTEN = HEADER_WORDS, HEADER_WORDS + 1
 EVENT_DTYPE = np.dtype([("seq", np.int64), ("tick", np.int64), ("time", np.float64),
-                        ("kind", "S32"), ("detail", "S200")])
+                        ("kind", "S32"), ("at", np.int64), ("size", np.int64)])
+HEAP_BYTES = 1 << 20
+
+
+def _cut(data: bytes, limit: int) -> bytes:
+    """The first ``limit`` bytes of ``data`` (whole UTF-8 characters), and a marker."""
+    head = data[:limit].decode("utf-8", "ignore").encode()
+    return head + (f" [... cut: {len(data)} bytes in all, the event record keeps the "
+                   f"first {len(head)}]").encode()
 
 
 class EventTape:
-    """A ring of fixed-size event records beside the tick tape (same header rules).
+    """A ring of event records beside the tick tape, each detail kept whole.
 
-    Readers (recorder, dashboard) see trips, bad frames and operator actions while the
-    run goes on; a crash keeps what the recorder has drained.
+    Layout: the tick tape's eight header words (written counts rows), two more words
+    (heap size, heap bytes written so far), ``capacity`` fixed-size rows (seq, tick,
+    time, kind, at, size), then the heap: a byte ring of ``heap_bytes`` that holds each
+    detail as UTF-8 at byte position ``at`` (modulo its size). A fixed-size field would
+    cut long details (a model error's traceback); the heap keeps them up to a quarter of
+    its size, and a longer one is cut with a marker that says so. The writer claims heap
+    bytes (advances the heap count) before it overwrites them, so a reader that finds the
+    count more than a heap ahead of a detail after copying it knows the copy is torn and
+    says so in place of the text. Readers (recorder, dashboard) see trips, bad frames and
+    operator actions while the run goes on; a crash keeps what the recorder has drained.
     """
 
-    def __init__(self, path: Path, capacity: int = 4096, create: bool = True) -> None:
+    def __init__(self, path: Path, capacity: int = 4096, create: bool = True,
+                 heap_bytes: int = HEAP_BYTES) -> None:
         self.path = Path(path)
+        rows_at = EVENT_HEADER_WORDS * 8
         if create:
-            size = HEADER_WORDS * 8 + capacity * EVENT_DTYPE.itemsize
+            size = rows_at + capacity * EVENT_DTYPE.itemsize + heap_bytes
             with open(self.path, "wb") as f:
                 f.truncate(size)
         self._header_map = np.memmap(self.path, dtype=np.int64, mode="r+",
-                                     shape=(HEADER_WORDS,))
+                                     shape=(EVENT_HEADER_WORDS,))
         self.header = self._header_map
         if create:
-            self.header[:] = [MAGIC, VERSION, 0, capacity, 0, 0, STATE_RUNNING, 0]
+            self.header[:] = [MAGIC, EVENT_VERSION, 0, capacity, 0, 0, STATE_RUNNING, 0,
+                              heap_bytes, 0]
+        elif int(self.header[W_MAGIC]) != MAGIC or int(self.header[W_VERSION]) != EVENT_VERSION:
+            self._header_map._mmap.close()  # type: ignore[attr-defined]
+            raise ValueError(f"{self.path}: not a plantrig event tape of version "
+                             f"{EVENT_VERSION}")
         self.capacity = int(self.header[W_CAPACITY])
-        self.rows = np.memmap(self.path, dtype=EVENT_DTYPE, mode="r+",
-                              offset=HEADER_WORDS * 8, shape=(self.capacity,))
+        self.heap_bytes = int(self.header[W_HEAP_SIZE])
+        self.max_detail = self.heap_bytes // 4
+        self.rows = np.memmap(self.path, dtype=EVENT_DTYPE, mode="r+", offset=rows_at,
+                              shape=(self.capacity,))
+        self.heap = np.memmap(self.path, dtype=np.uint8, mode="r+",
+                              offset=rows_at + self.capacity * EVENT_DTYPE.itemsize,
+                              shape=(self.heap_bytes,))
         if create:
             self.rows["seq"] = -1
         self.next_seq = 0
 
     def append(self, tick: int, time_s: float, kind: str, detail: str) -> None:
+        data = detail.encode("utf-8", "replace")
+        if len(data) > self.max_detail:
+            data = _cut(data, self.max_detail - 120)  # room for the marker
         n = int(self.header[W_WRITTEN])
+        at = int(self.header[W_HEAP_WRITTEN])
         slot = self.rows[n % self.capacity]
         slot["seq"] = -1
+        self.header[W_HEAP_WRITTEN] = at + len(data)   # claim the bytes, then write them
+        start = at % self.heap_bytes
+        first = min(len(data), self.heap_bytes - start)
+        buf = np.frombuffer(data, dtype=np.uint8)
+        self.heap[start:start + first] = buf[:first]
+        self.heap[:len(data) - first] = buf[first:]
         slot["tick"] = tick
         slot["time"] = time_s
         slot["kind"] = kind.encode("utf-8", "replace")[:32]
-        slot["detail"] = detail.encode("utf-8", "replace")[:200]
+        slot["at"] = at
+        slot["size"] = len(data)
         slot["seq"] = n
         self.header[W_WRITTEN] = n + 1
+
+    def _detail(self, at: int, size: int) -> str:
+        start = at % self.heap_bytes
+        first = min(size, self.heap_bytes - start)
+        data = self.heap[start:start + first].tobytes() + self.heap[:size - first].tobytes()
+        if int(self.header[W_HEAP_WRITTEN]) - at > self.heap_bytes:
+            return (f"[detail of {size} bytes overwritten before it was read: the event "
+                    "heap is full of newer details]")
+        return data.decode("utf-8", "replace")
 
     def read_new(self) -> list[tuple[int, float, str, str]]:
         """Events since the last call as (tick, time, kind, detail)."""
@@ -282,7 +333,7 @@ class EventTape:
             if int(slot["seq"]) == self.next_seq:
                 out.append((int(slot["tick"]), float(slot["time"]),
                             slot["kind"].decode("utf-8", "replace"),
-                            slot["detail"].decode("utf-8", "replace")))
+                            self._detail(int(slot["at"]), int(slot["size"]))))
             self.next_seq += 1
         return out
 
@@ -294,7 +345,8 @@ class EventTape:
         return int(self.header[W_STATE]) == STATE_ENDED
 
     def close(self, unlink: bool = False) -> None:
-        del self.rows, self.header
-        self._header_map._mmap.close()  # type: ignore[attr-defined]
+        for view in (self.rows, self.heap, self._header_map):
+            view._mmap.close()  # type: ignore[attr-defined]
+        del self.rows, self.heap, self.header
         if unlink:
             self.path.unlink(missing_ok=True)
