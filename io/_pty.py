@@ -5,11 +5,19 @@ path like any serial port (pyserial); the other keeps the master fd, which has n
 of its own, so it is wrapped in FdPort. The slave starts in cooked mode with echo on:
 bytes written to the master before anyone set it raw would come straight back as
 garbage, so the pair is made raw at once (FIELD-NOTES.md: the pty and its failure modes).
+
+How a hang-up shows on Linux (checked on both ends by tests/test_pty_hangup.py): a read
+on the master fails with EIO once the slave side is closed and drained; a slave whose
+master closed reads b"" and polls POLLHUP | POLLERR. An empty read alone proves nothing:
+a port in raw mode with VMIN = 0 (as pyserial sets it) also reads b"" when it is merely
+empty, and bytes may arrive just after, so readiness after an empty read is no sign of
+a hang-up either.
 """
 
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
 import select
 import tty
@@ -52,27 +60,34 @@ class FdPort:
 
     ``read_some`` returns b"" when nothing is waiting; ``write_some`` returns how many
     bytes the kernel took (0 when its buffer is full). Both raise OSError when the far
-    end is gone (EIO on a pty whose other side closed).
+    end is gone: EIO from the kernel, or an empty read on an fd that polls POLLHUP or
+    POLLERR (see the module doc).
     """
 
     READ_SIZE = 4096
+    GONE = select.POLLHUP | select.POLLERR | select.POLLNVAL
 
     def __init__(self, fd: int, *, name: str = "", owns_fd: bool = True) -> None:
         os.set_blocking(fd, False)
         self.fd = fd
         self.name = name or f"fd {fd}"
         self._owns = owns_fd
+        self._poll = select.poll()
+        self._poll.register(fd, select.POLLIN)
 
     def read_some(self) -> bytes:
         try:
             data = os.read(self.fd, self.READ_SIZE)
         except BlockingIOError:
             return b""
-        # a tty in raw mode with VMIN = 0 (as pyserial sets it) reads b"" when empty; it
-        # is a hang-up only if the fd also polls readable (pyserial's own test)
-        if not data and select.select([self.fd], [], [], 0)[0]:
-            raise OSError(f"{self.name}: end of file (the far end hung up)")
+        if not data and self.hung_up():
+            raise OSError(errno.EIO, "the far end hung up")
         return data
+
+    def hung_up(self) -> bool:
+        """True if the kernel says the far end is gone (POLLHUP, POLLERR or POLLNVAL)."""
+        ready = self._poll.poll(0)
+        return bool(ready) and bool(ready[0][1] & self.GONE)
 
     def write_some(self, data: bytes | memoryview) -> int:
         try:
