@@ -55,6 +55,15 @@ class PayloadError(ValueError):
         self.detail = detail
 
 
+def quoted(value: object, limit: int = 80) -> str:
+    """repr of an untrusted value for an event detail: at most ``limit`` characters of
+    it, and a marker with its full length when it is longer."""
+    text = repr(value)
+    if len(text) <= limit:
+        return text
+    return f"{text[:limit]}... ({len(text)} characters)"
+
+
 def _reject_constant(name: str) -> float:
     raise PayloadError("non_finite", f"JSON constant {name}")
 
@@ -135,18 +144,18 @@ def _decode_json(payload: bytes) -> tuple[int, int, tuple[float, ...]]:
     except PayloadError:
         raise
     except (UnicodeDecodeError, ValueError) as exc:
-        raise PayloadError("json", str(exc)[:80]) from None
+        raise PayloadError("json", str(exc)) from None
     except RecursionError:
         raise PayloadError("json", "nested too deeply") from None
     if not isinstance(doc, dict):
         raise PayloadError("json", f"expected a JSON object, found {type(doc).__name__}")
     seq, tick, raw = doc.get("seq"), doc.get("tick"), doc.get("values")
     if not isinstance(seq, int) or isinstance(seq, bool) or seq < 0:
-        raise PayloadError("schema", f"seq must be a whole number >= 0, found {seq!r}"[:120])
+        raise PayloadError("schema", f"seq must be a whole number >= 0, found {quoted(seq)}")
     if not isinstance(tick, int) or isinstance(tick, bool) or tick < -1:
-        raise PayloadError("schema", f"tick must be a whole number >= -1, found {tick!r}"[:120])
+        raise PayloadError("schema", f"tick must be a whole number >= -1, found {quoted(tick)}")
     if not isinstance(raw, list):
-        raise PayloadError("schema", f"values must be a list, found {raw!r}"[:120])
+        raise PayloadError("schema", f"values must be a list, found {quoted(raw)}")
     if not all(isinstance(v, int | float) and not isinstance(v, bool) for v in raw):
         raise PayloadError("schema", "values must all be numbers")
     try:

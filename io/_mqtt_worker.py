@@ -54,6 +54,7 @@ LATENCY_WINDOW = 4096
 TCP_NODELAY = (socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 AUTH_CODES = {4, 5, 134, 135}  # bad user name or password / not authorised (v3.1.1, v5)
 REJECT_REASONS = ("range", "tick", "retained")  # well-formed, but must not be used
+EVENT_RECORD_MAX = 60_000  # bytes of an event record: the loop receives into 64 KiB
 CLOSED = "link closed"  # the reason in the 'offline' status after a clean close
 ABANDONED = "rig process ended without closing the link"
 
@@ -116,6 +117,17 @@ def tls_context(settings: MqttSettings) -> ssl.SSLContext | None:
         ctx.check_hostname = False
         ctx.verify_mode = ssl.CERT_NONE
     return ctx
+
+
+def event_record(kind: str, detail: str) -> bytes:
+    """``kind`` TAB ``detail`` as UTF-8, at most EVENT_RECORD_MAX bytes: a longer detail
+    is cut at a character boundary, with a marker that says how long it was."""
+    data = f"{kind}\t{detail}".encode()
+    if len(data) <= EVENT_RECORD_MAX:
+        return data
+    head = data[:EVENT_RECORD_MAX - 100].decode(errors="ignore")
+    return (head + f" [... cut: {len(data)} bytes in all, the link passes the first "
+                   f"{len(head.encode())}]").encode()
 
 
 def admit(counts: dict[str, int], key: str, per_kind: int) -> str:
@@ -183,7 +195,7 @@ class Worker:
         key = f"{kind}:{reason}" if reason else kind
         verdict = admit(self.gate, key, self.s.events_per_kind)
         if verdict == "item":
-            self._to_loop(b"E" + f"{kind}\t{detail}".encode()[:2000])
+            self._to_loop(b"E" + event_record(kind, detail))
         elif verdict == "summary":
             self._to_loop(b"E" + (f"events_suppressed\t{key}: {self.gate[key]} so far; the "
                                   f"first {self.s.events_per_kind} are itemised, link health "

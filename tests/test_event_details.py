@@ -101,3 +101,24 @@ def test_a_5000_byte_detail_arrives_whole_in_events_jsonl_and_run_h5(tmp_path: P
     h5_phases = [e for e in record["events"] if e["kind"] == "phase"]
     assert len(h5_phases) == 1 and h5_phases[0]["detail"] == detail
     assert np.isfinite(record["rows"]).all()
+
+
+def test_mqtt_worker_events_are_cut_only_with_a_marker() -> None:
+    """The MQTT worker hands events to the loop as datagrams the loop reads into 64 KiB;
+    a longer detail is cut at a character boundary and says so (it was cut at 2000
+    bytes without a word), and untrusted values quoted in a detail say their length."""
+    from plantrig.io import Kind
+    from plantrig.io._mqtt_payload import Codec, PayloadError
+    from plantrig.io._mqtt_worker import EVENT_RECORD_MAX, event_record
+
+    assert event_record("bad_frame", TEXT[:2000]) == f"bad_frame\t{TEXT[:2000]}".encode()
+    long = event_record("bad_frame", TEXT * 3)
+    whole = len(f"bad_frame\t{TEXT * 3}".encode())
+    assert len(long) <= EVENT_RECORD_MAX
+    head, marker = long.decode().split(" [... cut: ")   # decodes: no character was split
+    assert f"bad_frame\t{TEXT * 3}".startswith(head)
+    assert marker == f"{whole} bytes in all, the link passes the first {len(head.encode())}]"
+    with pytest.raises(PayloadError) as info:
+        Codec("json").decode(Kind.COMMAND, b'{"seq": 1, "tick": 1, "values": "' + b"a" * 500
+                             + b'"}', 1)
+    assert info.value.detail.endswith("... (502 characters)")
