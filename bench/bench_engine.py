@@ -135,9 +135,10 @@ def pacing_table(seconds: float) -> list[str]:
         rig = pid_rig(10, seconds, mode="realtime")
         rig = rig.__class__(**{**rig.__dict__, "tick": tick_s,
                                "duration": seconds})  # same model at this rate
-        outcome = Engine(rig, MemoryTape(tick_columns(rig)[0], rig.n_ticks)).run()
-        for name, late in (("bare sleep+spin", floor),
-                           ("plantrig engine", outcome.lateness_ns[:outcome.ticks])):
+        tape = MemoryTape(tick_columns(rig)[0], rig.n_ticks)
+        outcome = Engine(rig, tape).run()
+        recorded = tape.rows[:, tape.columns.index("lateness")] * 1e9   # every tick's lateness
+        for name, late in (("bare sleep+spin", floor), ("plantrig engine", recorded)):
             us = late / 1e3
             missed = int(np.sum(late >= tick_s * 1e9))
             lines.append(f"| {rate} Hz | {name} | {len(late)} | {missed} | "

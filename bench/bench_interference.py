@@ -45,12 +45,13 @@ def main() -> None:
         proc = subprocess.Popen([sys.executable, "-c", pinned]) if code else None
         time.sleep(0.5)
         try:
-            out = Engine(rig, MemoryTape(tick_columns(rig)[0], rig.n_ticks)).run()
+            tape = MemoryTape(tick_columns(rig)[0], rig.n_ticks)
+            out = Engine(rig, tape).run()
         finally:
             if proc is not None:
                 proc.kill()
                 proc.wait()
-        late = out.lateness_ns[:out.ticks] / 1e3
+        late = tape.rows[:, tape.columns.index("lateness")] * 1e6
         print(f"| {name} | {np.percentile(late, 50):.1f} | {np.percentile(late, 99):.1f} | "
               f"{late.max():.0f} | {out.overruns} |")
 

@@ -197,7 +197,7 @@ def engine_run(rig: Rig, port: int, worker: str, seconds: float) -> dict[str, fl
     finally:
         proc.terminate()
         proc.join(5)
-    late = data.outcome.lateness_ns[:data.outcome.ticks] / 1e3
+    late = data["lateness"] * 1e6
     h = data.outcome.link_health
     return {"late_p50": float(np.percentile(late, 50)), "late_p99": float(np.percentile(late, 99)),
             "late_max": float(late.max()), "overruns": float(data.outcome.overruns),

@@ -55,6 +55,7 @@ from plantrig.sim._realtime import RealtimeReport, realtime_process
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._scenario import Scenario, ScenarioRunner
 from plantrig.sim._tape import RECORDER_DIED, RECORDER_DISK_FULL, RECORDER_OK, EventTape
+from plantrig.sim._timing import FINE_NS, DurationHistogram
 
 Vector = NDArray[np.float64]
 START_LEAD_NS = 5_000_000
@@ -126,8 +127,8 @@ class RunOutcome:
     ended: str                     # an outcome class of sim/_outcome.py
     reason: str
     events: list[Event]
-    lateness_ns: NDArray[np.int64]
-    exec_ns: NDArray[np.int64]
+    lateness: DurationHistogram   # real time only; every tick's value is in the record
+    work: DurationHistogram
     overruns: int
     skipped_slots: int
     wall_s: float
@@ -143,21 +144,18 @@ class RunOutcome:
         return EXIT_CODES[self.ended]
 
     def timing(self, tick: float) -> dict[str, float | int | str | None]:
-        """Timing statistics for the summary (lateness only means something in real time)."""
-        late = self.lateness_ns[:self.ticks] / 1e9
-        work = self.exec_ns[:self.ticks] / 1e9
-
-        def pct(values: NDArray[np.float64], q: float) -> float:
-            return float(np.percentile(values, q)) if values.size else 0.0
-
+        """Timing statistics for the summary (lateness only means something in real time;
+        quantiles to the histogram's resolution, sim/_timing.py)."""
+        late, work = self.lateness, self.work
         return {
             "ticks": self.ticks,
             "wall_s": self.wall_s,
             "ticks_per_s": self.ticks / self.wall_s if self.wall_s > 0 else 0.0,
-            "lateness_p50_s": pct(late, 50), "lateness_p99_s": pct(late, 99),
-            "lateness_max_s": float(late.max()) if late.size else 0.0,
-            "exec_p50_s": pct(work, 50), "exec_p99_s": pct(work, 99),
-            "exec_max_s": float(work.max()) if work.size else 0.0,
+            "lateness_p50_s": late.quantile_s(50), "lateness_p99_s": late.quantile_s(99),
+            "lateness_max_s": late.max_s,
+            "exec_p50_s": work.quantile_s(50), "exec_p99_s": work.quantile_s(99),
+            "exec_max_s": work.max_s,
+            "timing_resolution_s": FINE_NS / 1e9,
             "overruns": self.overruns, "skipped_slots": self.skipped_slots,
             "scheduler": self.realtime.scheduler if self.realtime else None,
             "cpu": self.realtime.cpu if self.realtime else None,
@@ -269,8 +267,7 @@ class Engine:
         rig = self.rig
         n_ticks = rig.n_ticks
         tick_ns = int(round(rig.tick * 1e9))
-        lateness = np.zeros(n_ticks, dtype=np.int64)
-        exec_ns = np.zeros(n_ticks, dtype=np.int64)
+        lateness, work_time = DurationHistogram(), DurationHistogram()
         overruns = skipped = done = answered = 0
         ended, reason = COMPLETED, "duration reached"
         report: RealtimeReport | None = None
@@ -315,7 +312,7 @@ class Engine:
                         clock.sleep_until_ns(deadline)
                         began = clock.now_ns()
                         late = began - deadline
-                        lateness[k] = late
+                        lateness.add(late)
                         if late >= tick_ns:
                             overruns += 1
                             streak += 1
@@ -425,9 +422,9 @@ class Engine:
                     row[1] = t
                     row[4] = 1.0 if fresh else 0.0
                     if realtime:
-                        row[2] = lateness[k] / 1e9
+                        row[2] = late / 1e9
                         work = clock.now_ns() - began
-                        exec_ns[k] = work
+                        work_time.add(work)
                         row[3] = work / 1e9
                         if tape.free() <= 0:
                             self._event(k, "tape_overflow", "recorder fell a full ring behind")
@@ -483,7 +480,7 @@ class Engine:
             if self.event_tape is not None:
                 self.event_tape.end()
         wall_s = (clock.now_ns() - wall_start) / 1e9
-        return RunOutcome(done, ended, reason, self.events, lateness, exec_ns, overruns,
+        return RunOutcome(done, ended, reason, self.events, lateness, work_time, overruns,
                           skipped, wall_s, report, health, outcome.rules, answered)
 
     def _recorder_stopped(self, k: int, problem: int) -> str:

@@ -1,0 +1,36 @@
+"""The bounded timing histogram against numpy's percentiles (nearest rank, numpy's
+``inverted_cdf`` method: Hyndman and Fan, Sample quantiles in statistical packages,
+The American Statistician 50 (1996), definition 1)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from plantrig.sim._timing import COARSE_NS, FINE_LIMIT_NS, FINE_NS, DurationHistogram
+
+
+@pytest.mark.parametrize("scale_ns", [3_000, 400_000, 40_000_000])
+def test_quantiles_are_within_one_bin_above_numpy(scale_ns: int) -> None:
+    rng = np.random.default_rng(11)
+    values = rng.lognormal(0.0, 1.2, 20_000) * scale_ns
+    values = np.append(values, [0, 12 * 10**9]).astype(np.int64)  # a zero and a 12 s stall
+    hist = DurationHistogram()
+    for v in values.tolist():
+        hist.add(v)
+    assert hist.count == values.size and hist.max_ns == values.max()
+    for q in (1, 50, 90, 99, 99.9):
+        exact = float(np.percentile(values, q, method="inverted_cdf"))
+        got = hist.quantile_s(q) * 1e9
+        bin_ns = FINE_NS if exact < FINE_LIMIT_NS else COARSE_NS
+        assert exact <= got <= exact + bin_ns, (q, exact, got)
+    assert hist.quantile_s(100) == hist.max_s == 12.0
+
+
+def test_memory_does_not_grow_with_the_count() -> None:
+    hist = DurationHistogram()
+    sizes = (len(hist.fine), len(hist.coarse))
+    for v in range(0, 50_000_000, 997):
+        hist.add(v)
+    assert (len(hist.fine), len(hist.coarse)) == sizes
+    assert DurationHistogram().quantile_s(50) == 0.0
