@@ -41,16 +41,23 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
     original = rig.path.read_bytes()
     files: dict[str, dict[str, Any]] = {}
     rig_bytes = original
-    module = _module_source(rig)
+    named, module = _module_source(rig)
     if module is not None:
         rig_bytes = point_module_at(original, module.name, rig.path)
-        (folder / module.name).write_bytes(module.read_bytes())
-        files[module.name] = _entry("model", module, module.read_bytes())
+        data = module.read_bytes()
+        (folder / module.name).write_bytes(data)
+        files[module.name] = _entry("model", module, data)
+    if rig.overrides:  # the effective document, so the folder says what really ran
+        from plantrig.sim._overrides import effective_copy
+        rig_bytes = effective_copy(rig, module.name if module is not None else None)
     (folder / RIG_COPY).write_bytes(rig_bytes)
     files[RIG_COPY] = _entry("rig", rig.path, original)
-    if rig_bytes != original:
+    if rig.overrides:
         files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
-        files[RIG_COPY]["rewritten"] = {"plant.module": module.name if module else None}
+        files[RIG_COPY]["overrides"] = list(rig.overrides)
+    if module is not None and rig_bytes != original:
+        files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
+        files[RIG_COPY]["rewritten"] = {"plant.module": {"from": named, "to": module.name}}
     if scenario is not None:
         path = Path(scenario.path)
         data = path.read_bytes() if path.is_file() else scenario.text.encode("utf-8")
@@ -103,16 +110,16 @@ def _same_apart_from_module(before: str, after: str, name: str) -> bool:
     return old == new
 
 
-def _module_source(rig: Rig) -> Path | None:
-    """The model module file the rig file names (resolved as load_rig resolves it)."""
+def _module_source(rig: Rig) -> tuple[str, Path | None]:
+    """The rig file's ``module`` value and the file it names (resolved as load_rig does)."""
     if getattr(rig.plant, "f", None) is None:
-        return None
-    doc = tomllib.loads(rig.path.read_text(encoding="utf-8"))
+        return "", None
+    doc = tomllib.loads(rig.text or rig.path.read_text(encoding="utf-8"))
     plant = doc.get("plant", {})
     if plant.get("kind") != "ode" or not isinstance(plant.get("module"), str):
-        return None
+        return "", None
     path = (rig.path.parent / plant["module"]).resolve()
-    return path if path.is_file() else None
+    return plant["module"], path if path.is_file() else None
 
 
 def _entry(role: str, path: Path, data: bytes) -> dict[str, Any]:
