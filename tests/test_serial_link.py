@@ -160,7 +160,9 @@ def test_far_end_closed_mid_run(tmp_path: Path) -> None:
     rig = hil_rig(tmp_path)
     wire, health = run_over_pty(rig, action=lambda proc: proc.kill())
     events = wire.outcome.events
-    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    # every tick ran, but a lost link is a fault (sim/_outcome.py)
+    assert wire.outcome.ended == "fault" and "'link kept' not met" in wire.outcome.reason
+    assert wire.rows.shape[0] == rig.n_ticks
     assert [e.kind for e in events].count("port_error") == 1
     lost = [e for e in events if e.kind == "link_lost"][-1]    # the one never restored
     assert "port error" in lost.detail and health["port_errors"] >= 1
@@ -181,7 +183,8 @@ def test_watchdog_fires_within_timeout_plus_one_tick(tmp_path: Path) -> None:
     last_fresh = int(np.flatnonzero(wire["fresh"][:lost.tick] == 1)[-1])
     assert lost.tick - last_fresh == timeout_ticks + 1
     assert not wire["fresh"][lost.tick:].any()
-    assert wire.rows.shape[0] == rig.n_ticks and wire.outcome.ended == "completed"
+    assert wire.rows.shape[0] == rig.n_ticks
+    assert wire.outcome.ended == "fault" and "'link kept' not met" in wire.outcome.reason
 
 
 def test_bad_input_is_counted_evented_and_kept_from_the_plant(tmp_path: Path) -> None:
@@ -222,7 +225,10 @@ def test_bad_input_is_counted_evented_and_kept_from_the_plant(tmp_path: Path) ->
     assert crc_events == min(3, h["bad_crc"])                 # events_per_kind = 3
     u = data["u:voltage"]
     assert np.isin(u, [0.0, 0.5]).all()          # only the good commands (or the safe 0)
-    assert data.outcome.ended == "completed"
+    # bad input costs neither the link nor a tick; whether enough ticks were answered
+    # in time depends on the machine's load, so that rule is not this test's business
+    rules = {r.rule: r.passed for r in data.outcome.rules}
+    assert rules["ran to the end"] and rules["link kept"] and rules["no unexpected trip"]
 
 
 def test_a_flood_of_garbage_keeps_events_bounded(tmp_path: Path) -> None:
