@@ -25,7 +25,8 @@ from plantrig.sim import (
     sign_folder,
     verify_folder,
 )
-from plantrig.sim._manifest import DERIVED, ManifestError
+from plantrig.sim._manifest import DERIVED, MANIFEST, ManifestError
+from plantrig.sim._records import RUN_START
 from plantrig.sim._signoff import DRAFT_MARK, Readiness, check_folder
 
 EXIT_OK, EXIT_NOT_INTACT, EXIT_USAGE, EXIT_NOT_FINISHED = 0, 1, 2, 4
@@ -46,6 +47,20 @@ def _folder(path: str) -> Path:
     if not folder.is_dir():
         print(f"error: {folder}: no such run folder", file=sys.stderr)
         raise SystemExit(EXIT_USAGE)
+    return folder
+
+
+def _run_folder(path: str, public_key: str | None = None) -> Path | None:
+    """A folder that is a run folder at all (and a readable key, if one is named); None
+    after saying why not."""
+    folder = _folder(path)
+    if not any((folder / name).is_file() for name in (RUN_START, "summary.json", MANIFEST)):
+        print(f"error: {folder}: not a plantrig run folder (no {RUN_START}, summary.json "
+              f"or {MANIFEST})", file=sys.stderr)
+        return None
+    if public_key is not None and not Path(public_key).is_file():
+        print(f"error: {public_key}: no such key file", file=sys.stderr)
+        return None
     return folder
 
 
@@ -149,7 +164,9 @@ def cmd_keygen(args: argparse.Namespace) -> int:
 
 
 def cmd_sign(args: argparse.Namespace) -> int:
-    folder = _folder(args.folder)
+    folder = _run_folder(args.folder)
+    if folder is None:
+        return EXIT_USAGE
     readiness = check_folder(folder)
     if not readiness.ok:
         return _refused(folder, readiness, "signed", draft_hint=False)
@@ -165,7 +182,9 @@ def cmd_sign(args: argparse.Namespace) -> int:
 def cmd_report(args: argparse.Namespace) -> int:
     from plantrig._report import write_report
 
-    folder = _folder(args.folder)
+    folder = _run_folder(args.folder, args.public_key)
+    if folder is None:
+        return EXIT_USAGE
     readiness = check_folder(folder, Path(args.public_key) if args.public_key else None)
     if not (readiness.ok or args.draft):
         return _refused(folder, readiness, "written", draft_hint=True)
@@ -188,7 +207,9 @@ def cmd_report(args: argparse.Namespace) -> int:
 def cmd_export(args: argparse.Namespace) -> int:
     from plantrig.sim import export_csv, export_mat
 
-    folder = _folder(args.folder)
+    folder = _run_folder(args.folder)
+    if folder is None:
+        return EXIT_USAGE
     if not (args.csv or args.mat):
         print("error: say what to export: --csv, --mat or both", file=sys.stderr)
         return EXIT_USAGE

@@ -1,8 +1,9 @@
 """The sign-off report of a run: report.html (self-contained) and report.pdf.
 
 Both carry the same content, in this order: identity of the run (rig, date, operator,
-witness, software, outcome), the manifest (its own SHA-256, what verify found when the
-report was made, the signature, the hash of every file), model summary, verdicts, event
+witness, software, outcome and exit code), the manifest (its own SHA-256, what verify
+found when the report was made, the signature, the hash of every file), the acceptance
+rules as judged after the run, model summary, verdicts, event
 timeline, signal plots with their range bands and fault and trip windows marked, limit
 use, link and timing statistics with a lateness histogram. Images are rendered once with
 matplotlib (Agg) and embedded in the HTML as base64 PNG; the PDF is written with PdfPages.
@@ -105,6 +106,7 @@ def _sections(record: RunRecord, operator: str, witness: str, readiness: Readine
         ("mode", str(s.get("mode", "?"))),
         ("ended", f"{s['ended']}: {s.get('reason', '')}" if "ended" in s else
                   "not recorded: the run has no summary (not over, or it died)"),
+        ("exit code", str(s.get("exit_code", "?"))),
         ("ticks", f"{s.get('ticks_recorded', len(record.rows))} of "
                   f"{s.get('ticks_planned', '?')} planned, tick {rig.get('tick_s', '?')} s"),
         ("operator", operator or "________________"),
@@ -134,6 +136,7 @@ def _sections(record: RunRecord, operator: str, witness: str, readiness: Readine
     head = [(DRAFT_MARK, [("why", p) for p in readiness.problems] or [
         ("why", "made with --draft")])] if draft else []
     return head + [("Run identity", identity), _manifest_section(record.folder, readiness),
+            ("Acceptance rules", _acceptance_rows(s)),
             ("Model summary", model_rows or [("model", "not recorded")]),
             ("Verdicts", _verdict_rows(record.folder)),
             ("Events", [(f"{ev['time']:.4f} s (tick {ev['tick']})",
@@ -178,6 +181,17 @@ def _manifest_section(folder: Path, readiness: Readiness) -> Section:
     title = ("Manifest (FAILS VERIFY: the hashes below are as listed, not as found)"
              if readiness.not_intact else "Manifest (SHA-256)")
     return (title, rows)
+
+
+def _acceptance_rows(summary: dict[str, Any]) -> list[tuple[str, str]]:
+    """The run's acceptance rules as judged after it (summary "acceptance")."""
+    rules = summary.get("acceptance")
+    if not isinstance(rules, list) or not rules:
+        return [("acceptance", "not judged (no acceptance results in the summary)")]
+    mark = {True: "held", False: "FAILED", None: "n/a"}
+    return [(str(r.get("rule", "?")), f"{mark.get(r.get('passed'), '?')}: "
+             f"{r.get('measured', '')} (needs {r.get('needed', '')})")
+            for r in rules if isinstance(r, dict)]
 
 
 def _verdict_rows(folder: Path) -> list[tuple[str, str]]:

@@ -22,6 +22,11 @@ from plantrig.sim._outcome import (
     AcceptanceRules,
     RuleResult,
 )
+from plantrig.sim._overrides import (
+    apply_overrides,
+    load_rig_with_overrides,
+    shortcut_assignments,
+)
 from plantrig.sim._plant import (
     DiscretePlant,
     LinearPlant,
@@ -39,7 +44,13 @@ from plantrig.sim._reader import RunRecord, read_run
 from plantrig.sim._recorder import read_journal
 from plantrig.sim._records import recover_run
 from plantrig.sim._references import Ramp, Sine, Step, Table
-from plantrig.sim._rigdata import ModelNotLoaded, load_rig_as_data, model_module, run_folder_of
+from plantrig.sim._rigdata import (
+    ModelNotLoaded,
+    load_rig_as_data,
+    model_module,
+    rig_from_record,
+    run_folder_of,
+)
 from plantrig.sim._rigfile import (
     ControllerSpec,
     NamedReference,
@@ -79,5 +90,7 @@ __all__ = [
     # run records
     "RecordError", "RunRecord", "export_csv", "export_mat", "generate_keypair", "read_run",
     "recover_run", "sign_folder", "verify_folder",
-    "ModelNotLoaded", "load_rig_as_data", "model_module", "run_folder_of",
+    "ModelNotLoaded", "load_rig_as_data", "model_module", "rig_from_record", "run_folder_of",
+    # overrides
+    "apply_overrides", "load_rig_with_overrides", "shortcut_assignments",
 ]
