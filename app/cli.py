@@ -17,12 +17,13 @@ from typing import Any
 from plantrig import CAUTION, REALTIME_BANNER, __version__
 from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
+from plantrig._override_options import add_override_options, overrides_of
 from plantrig._records_cli import add_record_commands
 from plantrig.sim import (
     EXIT_CODE_HELP,
     RecordError,
     RigFileError,
-    load_rig,
+    load_rig_with_overrides,
     model_module,
     run_folder_of,
     run_to_folder,
@@ -34,9 +35,9 @@ EXIT_MEANINGS = {0: "completed", 1: "fault", 2: "usage mistake", 3: "a verdict f
                  4: "tripped", 5: "stopped", 6: "interrupted"}
 
 
-def _load(path: str):  # type: ignore[no-untyped-def]
+def _load(path: str, overrides: list[str] | None = None):  # type: ignore[no-untyped-def]
     try:
-        rig = load_rig(path)
+        rig = load_rig_with_overrides(path, overrides or ())
         if rig.link is not None:
             from plantrig.io import check_link_table  # links load only when a rig has one
             issues = check_link_table(rig)
@@ -126,7 +127,7 @@ def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    rig = _load(args.rig)
+    rig = _load(args.rig, overrides_of(args))
     scenario = None
     if args.scenario:
         from plantrig.sim import load_scenario
@@ -251,6 +252,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scenario", metavar="FILE",
                    help="rehearse a scenario file (TOML): its steps fire during the run, "
                         "its verdicts are judged after it; exit code 3 if one fails")
+    add_override_options(p)
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)
     p = sub.add_parser("replay", help="open a run folder in the dashboard",

@@ -105,6 +105,7 @@ class Rig:
     safety: SafetySettings = SafetySettings()
     disturbances: tuple[DisturbanceSpec, ...] = ()
     acceptance: AcceptanceRules = AcceptanceRules()
+    overrides: tuple[str, ...] = ()    # KEY=VALUE assignments applied (sim/_overrides.py)
 
     @property
     def n_ticks(self) -> int:
