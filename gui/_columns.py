@@ -15,8 +15,6 @@ from plantrig.sim import Rig
 # prefixes whose names are rig signals, with the rig group that gives their range
 SIGNAL_PREFIXES = {"ref": "references", "cmd": "inputs", "u": "inputs", "y": "outputs",
                    "sent": "outputs", "x": "states"}
-LABELS = {"ref": "reference", "cmd": "command", "u": "input", "y": "output",
-          "sent": "sent", "x": "state", "d": "disturbance"}
 
 
 @dataclass(frozen=True)

@@ -2,7 +2,9 @@
 
 Events come from the engine's event tape as (tick, time, kind, detail). The engine
 latches an operator E-stop with an "estop" event and releases it with a "reset" that
-names it (a recorded "trip:estop" column, where there is one, is the authority); fault
+names it (a recorded "trip:estop" column, where there is one, is the authority); an
+interlock latches with a "trip" event ("<name>: <cause>: <why>; <action>") and is
+released by a "reset" naming it, which gives each latched lamp its time and cause; fault
 windows open on events that announce a fault and close on those that clear it (the
 kind names are matched loosely, see ``fault_edge``, so the safety work can choose its
 own).
@@ -15,6 +17,14 @@ from dataclasses import dataclass
 
 EventRow = tuple[int, float, str, str]
 RECENT_EVENTS = 400
+
+
+@dataclass(frozen=True)
+class Latch:
+    """When an interlock (or the E-stop) latched, and what made it."""
+
+    t: float
+    cause: str
 
 
 @dataclass
@@ -46,6 +56,14 @@ def fault_name(detail: str) -> str:
     return word or "fault"
 
 
+def trip_cause(detail: str) -> tuple[str, str]:
+    """(interlock name, cause) of a trip event's detail "<name>: <cause>: <why>; <action>";
+    the action (what the latch does) is left out: the lamp says the state itself."""
+    name, _, rest = detail.partition(": ")
+    cause = rest.rsplit("; ", 1)[0] if "; " in rest else rest
+    return name.strip(), cause.strip()
+
+
 class EventLog:
     """Folds events into the state the dashboard shows; the list keeps the newest."""
 
@@ -57,6 +75,7 @@ class EventLog:
         self.ended: str | None = None
         self.windows: list[FaultWindow] = []
         self.kinds: dict[str, int] = {}
+        self.latches: dict[str, Latch] = {}     # interlock name -> its latest latch
 
     @classmethod
     def upto(cls, events: list[EventRow], t: float) -> EventLog:
@@ -73,8 +92,15 @@ class EventLog:
             self.kinds[kind] = self.kinds.get(kind, 0) + 1
             if kind == "estop":
                 self.estop_latched, self.estop_time = True, t
-            elif kind == "reset" and ("estop" in detail.lower() or "e-stop" in detail.lower()):
-                self.estop_latched = False
+                self.latches["estop"] = Latch(t, "operator E-stop")
+            elif kind == "trip":
+                name, cause = trip_cause(detail)
+                self.latches[name] = Latch(t, cause)
+            elif kind == "reset":
+                name = detail.partition(":")[0].strip()
+                self.latches.pop(name, None)
+                if "estop" in detail.lower() or "e-stop" in detail.lower():
+                    self.estop_latched = False
             elif kind == "run_end":
                 self.ended = detail
             edge = fault_edge(kind)

@@ -17,6 +17,7 @@ A limit's bar shows its watched signal between the limit's bounds (the rig's
 from __future__ import annotations
 
 import math
+import textwrap
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -34,22 +35,39 @@ EVENTS_SHOWN = 60
 LIMIT_STATES = {0: "ok", 1: "WARN", 2: "TRIP"}
 
 
+LAMP_LINE_CHARS = 50          # a lamp is about this many characters wide
+LAMP_CAUSE_LINES = 2
+
+
 @dataclass
 class Bar:
     label: str
     fraction: float          # 0..1 drawn; the text says the real value
     text: str
-    outside: bool
+    level: int = 0           # 0 normal, 1 needs a look (warn, outside range), 2 trip
+
+    @property
+    def outside(self) -> bool:
+        return self.level > 0
 
 
 @dataclass
 class Lamp:
+    """An interlock's lamp: quiet while normal; latched, it says since when and why."""
+
     name: str
     tripped: bool
+    since: float | None = None
+    cause: str = ""
 
     @property
     def text(self) -> str:
-        return f"TRIPPED  {self.name}" if self.tripped else f"ok       {self.name}"
+        if not self.tripped:
+            return f"{self.name}: normal"
+        when = f" at t = {self.since:.3f} s" if self.since is not None else ""
+        cause = textwrap.wrap(f"cause: {self.cause or 'not in the events read so far'}",
+                              LAMP_LINE_CHARS, max_lines=LAMP_CAUSE_LINES, placeholder=" ...")
+        return "\n".join([f"{self.name}: TRIPPED{when}, latched", *cause])
 
 
 @dataclass
@@ -131,7 +149,11 @@ class DashboardModel:
         values = {c.key: float(current[c.index]) for c in g.columns} if current is not None \
             else {}
 
-        lamps = [Lamp(c.name, bool(values.get(c.key, 0.0))) for c in g.group("trip")]
+        lamps = []
+        for c in g.group("trip"):
+            latch = log.latches.get(c.name)
+            lamps.append(Lamp(c.name, bool(values.get(c.key, 0.0)),
+                              latch.t if latch else None, latch.cause if latch else ""))
         bars, title = self._bars(values)
         faults = [w for w in log.windows]
         for c in g.group("fault"):
@@ -165,16 +187,17 @@ class DashboardModel:
                     outside = math.isfinite(v) and not c.low <= v <= c.high
                     bars.append(Bar(c.key, _fraction(v, c.low, c.high),
                                     f"{c.key} {fmt(v, c.unit)} in [{c.low:g}, {c.high:g}]"
-                                    + ("  OUTSIDE" if outside else ""), outside))
+                                    + ("  OUTSIDE" if outside else ""), int(outside)))
         return bars, "Signal ranges (rig min/max; this rig has no limits)"
 
     def _limit_bar(self, name: str, values: dict[str, float]) -> Bar:
         code = values.get(f"limit:{name}", math.nan)
         state = LIMIT_STATES.get(int(code), f"code {code:g}") if math.isfinite(code) \
             else "n/a"
+        level = {"ok": 0, "TRIP": 2}.get(state, 1)       # WARN, n/a: needs a look
         spec = self.limits.get(name)
         if spec is None or spec.column not in self.groups:
-            return Bar(name, 0.0, f"{name}: {state}", state != "ok")
+            return Bar(name, 0.0, f"{name}: {state}", level)
         watched = self.groups[spec.column]
         v = values.get(spec.column, math.nan)
         lo, hi = spec.trip_low, spec.trip_high
@@ -185,8 +208,7 @@ class DashboardModel:
             lo, hi = watched.low, watched.high
         span = f" in [{lo:g}, {hi:g}]" if math.isfinite(lo) and math.isfinite(hi) else ""
         return Bar(name, _fraction(v, lo, hi),
-                   f"{name}: {spec.column} {fmt(v, watched.unit)}{span}  {state}",
-                   state != "ok")
+                   f"{name}: {spec.column} {fmt(v, watched.unit)}{span}  {state}", level)
 
     def _timing(self, rows: Rows) -> list[str]:
         g = self.groups

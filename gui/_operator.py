@@ -19,8 +19,9 @@ from typing import Any
 from plantrig.sim import Command
 
 MAX_TEXT = 120
-NOT_A_START = ("the run was started by 'plantrig run' and is already running; this "
-               "button only marks the moment in the run record")
+MOMENT_PRESETS = ("start of test step", "steady state reached", "load applied",
+                  "something looks wrong", "end of test step")
+"""Labels offered for "Mark moment"; the operator may type any other."""
 
 
 class Operator:
@@ -55,21 +56,8 @@ class Operator:
         return False
 
     # -- run ---------------------------------------------------------------------------
-    def arm(self) -> bool:
-        """No arming step exists in a run; record the operator's intent as a phase mark."""
-        ok = self.send(Command("mark_phase", {"name": "operator armed (no-op)"}))
-        if ok:
-            self.message = f"arm: {NOT_A_START}"
-        return ok
-
-    def start(self) -> bool:
-        """The run already runs when the dashboard exists; record the press as a mark."""
-        ok = self.send(Command("mark_phase", {"name": "operator start (no-op)"}))
-        if ok:
-            self.message = f"start: {NOT_A_START}"
-        return ok
-
     def stop(self) -> bool:
+        """End the run after the current tick (the view asks for a confirmation first)."""
         return self.send(Command("stop", {"reason": "operator stop from the dashboard"}))
 
     # -- safety ------------------------------------------------------------------------
@@ -81,7 +69,7 @@ class Operator:
         """Release a latched E-stop or interlock (the loop refuses if nothing is latched)."""
         return self.send(Command("reset", {"source": "dashboard"}))
 
-    # -- references, phases ------------------------------------------------------------
+    # -- references, moments -----------------------------------------------------------
     def set_reference(self, name: str, value: Any) -> bool:
         if not name:
             return self._refuse("choose a reference first")
@@ -94,10 +82,11 @@ class Operator:
         return self.send(Command("set_reference", {"name": str(name)[:MAX_TEXT],
                                                    "value": number}))
 
-    def mark_phase(self, name: str) -> bool:
-        text = " ".join(str(name).split())[:MAX_TEXT]
+    def mark_moment(self, label: str) -> bool:
+        """Put a labelled marker in the record at this tick (a "phase" event)."""
+        text = " ".join(str(label).split())[:MAX_TEXT]
         if not text:
-            return self._refuse("type a phase name first")
+            return self._refuse("choose or type a label for the moment first")
         return self.send(Command("mark_phase", {"name": text}))
 
     # -- faults ------------------------------------------------------------------------

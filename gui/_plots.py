@@ -1,5 +1,6 @@
-"""Which plots the dashboard offers: each measured output against its reference, and
-each actuator's command against the input the plant got.
+"""Which plots the dashboard offers: each plant output (true) with its reference and
+what the controller reads of it, and each controller command with the plant input
+(applied) it became.
 
 A reference is drawn with the output its control loop measures (the rig's PID loops
 say which); a reference no loop names goes with the first output of the same unit,

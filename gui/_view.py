@@ -24,20 +24,19 @@ import dearpygui.dearpygui as dpg
 import numpy as np
 
 from plantrig import CAUTION
-from plantrig.gui._columns import LABELS, ColumnGroups
+from plantrig.gui._columns import ColumnGroups
 from plantrig.gui._decimate import decimate_minmax
 from plantrig.gui._faults import FaultChoice
 from plantrig.gui._model import EVENTS_SHOWN, Snapshot, fmt
-from plantrig.gui._operator import NOT_A_START, Operator
+from plantrig.gui._operator import MOMENT_PRESETS, Operator
 from plantrig.gui._plots import PlotSpec
-from plantrig.gui._theme import Themes
+from plantrig.gui._theme import ACCENT, INK_SOFT, Themes
+from plantrig.sim import SIGNAL_LABELS
 
 T = "plantrig."                   # tag prefix
 WIDTH, HEIGHT = 1360, 880
 LEFT_W, CENTRE_W = 300, 620
 BUCKETS = 400                     # min-max pairs per series: one per ~1.5 pixel columns
-SERIES_LABELS = {"ref": "reference", "y": "measured", "sent": "sent to controller",
-                 "cmd": "commanded", "u": "applied to plant", "x": "state"}
 TABLE_ORDER = ("x", "u", "cmd", "y", "sent", "ref")
 PANEL_PREFIXES = ("trip", "fault", "limit")
 
@@ -109,7 +108,7 @@ class DashboardView:
         with dpg.group(width=LEFT_W):
             if self.replay:
                 with dpg.child_window(width=LEFT_W, height=-1, tag=T + "controls"):
-                    dpg.add_text("Replay of a recorded run", color=(245, 200, 90))
+                    dpg.add_text("Replay of a recorded run", color=ACCENT)
                     dpg.add_text("Operator controls are off: there is no run to command. "
                                  "Move the time slider to look at any moment.",
                                  wrap=LEFT_W - 20)
@@ -123,13 +122,22 @@ class DashboardView:
             with dpg.child_window(width=LEFT_W, height=-1, tag=T + "controls"):
                 self._button("Reset interlock / E-stop", self.on_reset, "reset")
                 dpg.add_separator()
-                dpg.add_text("Run")
-                with dpg.group(horizontal=True):
-                    self._button("Arm", self.on_arm, width=88)
-                    self._button("Start", self.on_start, width=88)
-                    self._button("Stop run", self.on_stop, "stop", width=88)
-                dpg.add_text(f"Arm / Start: {NOT_A_START}.", wrap=LEFT_W - 20,
-                             color=(170, 176, 186))
+                dpg.add_text("Mark a moment in the record")
+                dpg.add_combo(list(MOMENT_PRESETS), tag=T + "moment_preset",
+                              default_value=MOMENT_PRESETS[0], width=-1)
+                dpg.add_input_text(tag=T + "moment_text", hint="or type your own label",
+                                   width=-1)
+                self._button("Mark moment", self.on_mark_moment, "mark_moment")
+                dpg.add_separator()
+                self._button("Stop run ...", self.on_stop, "stop")
+                with dpg.group(tag=T + "stop_confirm_row", show=False):
+                    dpg.add_text("Stop the run now? Every tick so far stays recorded.",
+                                 wrap=LEFT_W - 20)
+                    with dpg.group(horizontal=True):
+                        self._button("Yes, stop the run", self.on_stop_confirmed,
+                                     "stop_confirm", width=150)
+                        self._button("Cancel", self.on_stop_cancelled, "stop_cancel",
+                                     width=100)
                 dpg.add_separator()
                 dpg.add_text("Reference")
                 refs = [c.name for c in self.groups.group("ref")]
@@ -138,10 +146,6 @@ class DashboardView:
                 dpg.add_input_double(tag=T + "ref_value", label="value", width=150,
                                      format="%.4g")
                 self._button("Set reference", self.on_set_reference, "set_reference")
-                dpg.add_separator()
-                dpg.add_text("Phase mark")
-                dpg.add_input_text(tag=T + "phase_name", hint="e.g. warm-up done", width=-1)
-                self._button("Mark phase", self.on_mark_phase, "mark_phase")
                 dpg.add_separator()
                 dpg.add_text("Fault")
                 kinds = list(self.fault_kinds)
@@ -153,8 +157,7 @@ class DashboardView:
                                    hint="e.g. A[1,2]", show=False)
                 dpg.add_input_double(tag=T + "fault_value", label="value", width=150,
                                      format="%.4g")
-                dpg.add_text("", tag=T + "fault_help", wrap=LEFT_W - 20,
-                             color=(170, 176, 186))
+                dpg.add_text("", tag=T + "fault_help", wrap=LEFT_W - 20, color=INK_SOFT)
                 dpg.add_input_double(tag=T + "fault_duration", label="for [s], 0 = until "
                                      "cleared", width=90, format="%.3g", min_value=0.0,
                                      min_clamped=True)
@@ -168,6 +171,13 @@ class DashboardView:
                 if kinds:
                     self.on_fault_kind(None, kinds[0])
 
+    def _legend(self, key: str) -> str:
+        """A series' legend: the kind of signal (the plot's title names the signal); a
+        reference also gives its own name, which differs from the output's."""
+        column = self.groups[key]
+        label = SIGNAL_LABELS.get(column.prefix, column.prefix)
+        return f"{label} {column.name}" if column.prefix == "ref" else label
+
     def _plots(self, max_span_s: float) -> None:
         n = max(1, len(self.specs))
         height = int(min(260, max(150, (HEIGHT - 190) / n)))
@@ -178,7 +188,8 @@ class DashboardView:
                                       default_value=self.span, format="%.1f",
                                       callback=self.on_span)
                 for i, spec in enumerate(self.specs):
-                    dpg.add_checkbox(label=spec.key, default_value=True, user_data=i,
+                    dpg.add_checkbox(label=self.groups[spec.key].name, default_value=True,
+                                     user_data=i,
                                      callback=self.on_toggle_plot, tag=f"{T}show.{i}")
             self.series: list[list[tuple[str, int]]] = []
             for i, spec in enumerate(self.specs):
@@ -194,8 +205,7 @@ class DashboardView:
                         for key in spec.series:
                             prefix = self.groups[key].prefix
                             s = dpg.add_line_series([], [], tag=f"{tag}.{key}",
-                                                    label=f"{SERIES_LABELS.get(prefix, prefix)}"
-                                                          f" {self.groups[key].name}")
+                                                    label=self._legend(key))
                             dpg.bind_item_theme(s, self.themes.series.get(prefix,
                                                                           self.themes.base))
                             row.append((f"{tag}.{key}", self.groups.index(key)))
@@ -203,7 +213,7 @@ class DashboardView:
                         if np.isfinite(spec.low) and np.isfinite(spec.high):
                             band = dpg.add_inf_line_series([spec.low, spec.high],
                                                            horizontal=True,
-                                                           label="rig min/max")
+                                                           label="rig range")
                             dpg.bind_item_theme(band, self.themes.limit)
                     with dpg.plot_axis(dpg.mvYAxis2, tag=f"{tag}.y2", no_tick_labels=True,
                                        no_gridlines=True, no_tick_marks=True, opposite=True):
@@ -221,14 +231,16 @@ class DashboardView:
                 [p for p in g.prefixes() if p not in TABLE_ORDER and p not in PANEL_PREFIXES]
             with dpg.table(header_row=True, row_background=True, borders_innerH=True,
                            policy=dpg.mvTable_SizingStretchProp, tag=T + "table",
-                           scrollY=True, height=230):
+                           scrollY=True, height=190):
                 for name, weight in (("signal", 0.4), ("value", 0.25), ("unit", 0.12),
                                      ("rig range", 0.23)):
                     dpg.add_table_column(label=name, init_width_or_weight=weight)
                 for p in prefixes:
+                    with dpg.table_row():           # the kind of signal, then its signals
+                        dpg.add_text(SIGNAL_LABELS.get(p, p), color=ACCENT)
                     for c in g.group(p):
                         with dpg.table_row():
-                            dpg.add_text(f"{LABELS.get(p, p)} {c.name}")
+                            dpg.add_text(f"  {c.name}")
                             cell = f"{T}value.{c.key}"
                             dpg.add_text("", tag=cell)
                             dpg.add_text(c.unit)
@@ -245,10 +257,10 @@ class DashboardView:
             dpg.add_text("Interlocks")
             trips = g.group("trip")
             if not trips:
-                dpg.add_text("no interlock columns in this run (trip:<name>)",
-                             color=(170, 176, 186))
+                dpg.add_text("no interlock columns in this run (trip:<name>)", color=INK_SOFT)
             for i, _ in enumerate(trips):
                 dpg.add_button(tag=f"{T}lamp.{i}", width=-1)
+                dpg.bind_item_theme(f"{T}lamp.{i}", self.themes.quiet)
             dpg.add_separator()
             dpg.add_text("Timing")
             for i in range(3):
@@ -274,21 +286,32 @@ class DashboardView:
     def on_reset(self, *_: Any) -> bool:
         return self.operator.reset()
 
-    def on_arm(self, *_: Any) -> bool:
-        return self.operator.arm()
-
-    def on_start(self, *_: Any) -> bool:
-        return self.operator.start()
-
     def on_stop(self, *_: Any) -> bool:
+        """Ask first: nothing is sent until the operator confirms."""
+        dpg.configure_item(T + "stop_confirm_row", show=True)
+        self.operator.message = "stop: confirm or cancel below"
+        return False
+
+    def on_stop_confirmed(self, *_: Any) -> bool:
+        dpg.configure_item(T + "stop_confirm_row", show=False)
         return self.operator.stop()
+
+    def on_stop_cancelled(self, *_: Any) -> bool:
+        dpg.configure_item(T + "stop_confirm_row", show=False)
+        self.operator.message = "stop cancelled; the run goes on"
+        return False
 
     def on_set_reference(self, *_: Any) -> bool:
         return self.operator.set_reference(dpg.get_value(T + "ref_name"),
                                            dpg.get_value(T + "ref_value"))
 
-    def on_mark_phase(self, *_: Any) -> bool:
-        return self.operator.mark_phase(dpg.get_value(T + "phase_name"))
+    def on_mark_moment(self, *_: Any) -> bool:
+        """Mark with the typed label if there is one, else with the chosen preset."""
+        typed = str(dpg.get_value(T + "moment_text") or "").strip()
+        sent = self.operator.mark_moment(typed or dpg.get_value(T + "moment_preset"))
+        if sent and typed:
+            dpg.set_value(T + "moment_text", "")
+        return sent
 
     def on_fault_kind(self, _sender: Any, kind: str, *_: Any) -> None:
         """Offer the targets this kind can act on and say what the value means."""
@@ -337,7 +360,7 @@ class DashboardView:
         """Copy one snapshot into the widgets (cheap enough for every frame)."""
         latched = snap.estop_latched
         dpg.configure_item(T + "estop_lamp", label=snap.estop_text)
-        self._theme(T + "estop_lamp", self.themes.alarm if latched else self.themes.ok)
+        self._theme(T + "estop_lamp", self.themes.alarm if latched else self.themes.quiet)
         dpg.set_value(T + "run_state", f"{snap.run_state} | plant time {snap.t:.3f} s")
         now = time.perf_counter()
         self.frame_times.append(now)
@@ -354,10 +377,10 @@ class DashboardView:
         dpg.set_value(T + "bars_title", snap.bars_title)
         for i, bar in enumerate(snap.bars):
             dpg.configure_item(f"{T}bar.{i}", default_value=bar.fraction, overlay=bar.text)
-            self._theme(f"{T}bar.{i}", self.themes.bar_alarm if bar.outside else self.themes.bar_ok)
+            self._theme(f"{T}bar.{i}", self.themes.bar[min(bar.level, 2)])
         for i, lamp in enumerate(snap.lamps):
             dpg.configure_item(f"{T}lamp.{i}", label=lamp.text)
-            self._theme(f"{T}lamp.{i}", self.themes.alarm if lamp.tripped else self.themes.ok)
+            self._theme(f"{T}lamp.{i}", self.themes.alarm if lamp.tripped else self.themes.quiet)
         for i in range(3):
             dpg.set_value(f"{T}timing.{i}", snap.timing[i] if i < len(snap.timing) else "")
             dpg.set_value(f"{T}link.{i}", snap.link[i] if i < len(snap.link) else "")
@@ -416,11 +439,16 @@ class DashboardView:
         return True
 
     def regions(self) -> dict[str, list[int]]:
-        """Screen rectangles [x, y, width, height] of the banner, E-stop and plots."""
+        """Screen rectangles [x, y, width, height] of the banner, the E-stop, the plots
+        and the widget areas (controls, panels, lamps, slider, check box)."""
         out = {}
-        names = ["banner", "estop_lamp"] + ([] if self.replay else ["estop"]) + \
-            [f"plot.{i}" for i in range(len(self.specs))]
+        names = ["banner", "estop_lamp", "controls", "plots", "panels", "span", "show.0"] + \
+            ([] if self.replay else ["estop"]) + \
+            [f"plot.{i}" for i in range(len(self.specs))] + \
+            [f"lamp.{i}" for i in range(len(self.groups.group("trip")))]
         for name in names:
+            if not dpg.does_item_exist(T + name):
+                continue
             state = dpg.get_item_state(T + name)
             # child windows report only their position in the (full-screen) main window
             x, y = state.get("rect_min", state["pos"])

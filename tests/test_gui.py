@@ -109,28 +109,45 @@ def check_screenshot(path: Path, regions: dict, series: dict[str, str]) -> None:
 WIDGET_AREAS = ("estop_lamp", "controls", "plots", "panels", "span", "show.0")
 
 
-def widget_pixels(img: np.ndarray, regions: dict) -> np.ndarray:
-    """Every pixel inside the dashboard's widget areas, once."""
+def widget_mask(img: np.ndarray, regions: dict) -> np.ndarray:
+    """True on every pixel inside the dashboard's widget areas."""
     mask = np.zeros(img.shape[:2], dtype=bool)
     for name, (x, y, w, h) in regions.items():
         if name in WIDGET_AREAS or name.startswith(("lamp.", "plot.")):
             mask[y:y + h, x:x + w] = True
-    return img[mask]
+    return mask
 
 
-def check_theme(path: Path, stock: list[list[int]]) -> dict[str, float]:
-    """No colour of the toolkit's stock theme is left in the widget areas (each covers
-    under 0.1 % of them, where the stock frame has it on 0.1 % or more); the palette's
-    own surfaces fill most of them. Returns each stock colour's share, for the log."""
+def patches(match: np.ndarray) -> np.ndarray:
+    """Pixels whose whole 3x3 neighbourhood matches: filled areas, not the edge shades
+    of anti-aliased text (which pass through every grey between ink and paper)."""
+    out = np.zeros_like(match)
+    core = match[1:-1, 1:-1].copy()
+    for dy in (0, 1, 2):
+        for dx in (0, 1, 2):
+            core &= match[dy:dy + match.shape[0] - 2, dx:dx + match.shape[1] - 2]
+    out[1:-1, 1:-1] = core
+    return out
+
+
+def check_theme(path: Path, stock: list[list[int]]) -> dict[str, int]:
+    """No colour of the toolkit's stock theme fills any patch of the widget areas, and
+    the palette's own surfaces fill most of them. Returns, per stock colour, how many
+    of its pixels are left in the widget areas (edge shades of text), for the log."""
     regions = json.loads(path.with_suffix(".regions.json").read_text())
-    pixels = widget_pixels(load_png(path), regions)
-    assert len(pixels) > 200_000, "the widget areas are missing from the regions"
-    shares = {str(tuple(c)): float(near(pixels, c, 2).mean()) for c in stock}
-    left = {c: share for c, share in shares.items() if share >= 0.001}
-    assert not left, f"stock theme colours left in {path.name}: {left}"
+    img = load_png(path)
+    inside = widget_mask(img, regions)
+    assert inside.sum() > 200_000, "the widget areas are missing from the regions"
+    left: dict[str, int] = {}
+    for colour in stock:
+        match = near(img, colour, 2) & inside
+        filled = int(patches(match).sum())
+        assert filled == 0, f"{path.name}: stock colour {colour} fills {filled} pixels"
+        left[str(tuple(colour))] = int(match.sum())
+    pixels = img[inside]
     ours = near(pixels, PAPER, 3) | near(pixels, PANEL, 3) | near(pixels, FIELD, 3)
     assert ours.mean() > 0.5, f"the palette's surfaces cover only {ours.mean():.0%}"
-    return shares
+    return left
 
 
 def stock_case(tmp_path: Path) -> None:
@@ -179,8 +196,12 @@ def stock_case(tmp_path: Path) -> None:
 def stock_colours(xvfb, tmp_path_factory) -> list[list[int]]:
     """The stock theme's colours, less those the palette names on purpose (white text
     on the alarm red and the E-stop)."""
-    out = run_fresh("stock_case", tmp_path_factory.mktemp("stock"))
+    folder = tmp_path_factory.mktemp("stock")
+    out = run_fresh("stock_case", folder)
     measured = json.loads(out.strip().splitlines()[-1])
+    img = load_png(folder / "stock.png")          # the patch test finds the stock areas
+    filled = [c for c in measured if patches(near(img, c, 2)).sum() > 1000]
+    assert len(filled) >= 3, f"the patch test misses the stock theme's areas: {filled}"
     palette = [np.array(c[:3]) for c in ROLES.values()] + [np.array((255, 255, 255))]
     stock = [c for c in measured if not any(np.abs(np.array(c) - p).max() <= 2
                                             for p in palette)]

@@ -21,10 +21,10 @@ from hypothesis.extra.numpy import arrays
 
 from plantrig.gui._columns import ColumnGroups
 from plantrig.gui._decimate import decimate_minmax
-from plantrig.gui._eventlog import EventLog, fault_edge, fault_name
+from plantrig.gui._eventlog import EventLog, Latch, fault_edge, fault_name, trip_cause
 from plantrig.gui._faults import fault_catalogue, fault_targets
-from plantrig.gui._model import DashboardModel, runs_nonzero
-from plantrig.gui._operator import MAX_TEXT, Operator
+from plantrig.gui._model import LAMP_LINE_CHARS, DashboardModel, Lamp, runs_nonzero
+from plantrig.gui._operator import MAX_TEXT, MOMENT_PRESETS, Operator
 from plantrig.gui._plots import plot_specs
 from plantrig.gui._store import LiveStore, RowStore
 from plantrig.sim import FAULT_KINDS, Command, load_rig, tick_columns
@@ -156,12 +156,56 @@ def test_new_column_groups_are_discovered_by_prefix():
     rows[:, groups.index("y:belt_speed")] = 3.0              # above the rig range (max 2)
     snap = model.snapshot(RowStore(rows, groups.index("t")), 0.099, 1.0, run_state="test")
     lamp = [lamp for lamp in snap.lamps if lamp.name == "overspeed_probe"][0]
-    assert lamp.tripped and lamp.text.startswith("TRIPPED")
+    assert lamp.tripped and lamp.text == ("overspeed_probe: TRIPPED, latched\n"
+                                          "cause: not in the events read so far")
     assert [(w.name, w.start, w.end) for w in snap.faults] == [("stuck_probe", 0.02, 0.04)]
     belt = [b for b in snap.bars if b.label == "y:belt_speed"][0]
     assert belt.outside and belt.fraction == 1.0 and "OUTSIDE" in belt.text
+    assert belt.level == 1                                   # needs a look, not a trip
     motor = [b for b in snap.bars if b.label == "x:motor_speed"][0]
     assert motor.fraction == pytest.approx(0.5) and not motor.outside   # 0 in [-400, 400]
+
+
+def test_a_lamp_is_quiet_until_latched_then_says_when_and_why():
+    # the engine's own event details (sim/_interlocks.py): "<name>: <cause>: <why>; <action>"
+    trip = ("belt_overspeed: limit:belt_fast: x:belt_speed = 1.10022 m/s, above trip_high "
+            "1.1; inputs to safe values")
+    assert trip_cause(trip) == ("belt_overspeed", "limit:belt_fast: x:belt_speed = 1.10022 "
+                                                  "m/s, above trip_high 1.1")
+    events = [(100, 0.1, "estop", "operator E-stop: inputs forced to safe values"),
+              (1458, 1.458, "trip", trip),
+              (1500, 1.5, "reset", "estop: E-stop released by operator"),
+              (2458, 2.458, "reset", "belt_overspeed: reset by operator")]
+    mid = EventLog.upto(events, 1.49)
+    assert mid.latches == {"estop": Latch(0.1, "operator E-stop"),
+                           "belt_overspeed": Latch(1.458, trip_cause(trip)[1])}
+    assert EventLog.upto(events, 1.6).latches == {"belt_overspeed": Latch(1.458,
+                                                                          trip_cause(trip)[1])}
+    assert EventLog.upto(events, 3.0).latches == {}
+    latch = mid.latches["belt_overspeed"]
+    lamp = Lamp("belt_overspeed", True, latch.t, latch.cause)
+    lines = lamp.text.split("\n")
+    assert lines[0] == "belt_overspeed: TRIPPED at t = 1.458 s, latched"
+    assert " ".join(lines[1:]) == "cause: limit:belt_fast: x:belt_speed = 1.10022 m/s, " \
+                                  "above trip_high 1.1"
+    assert all(len(line) <= LAMP_LINE_CHARS for line in lines[1:])
+    assert Lamp("belt_overspeed", False, latch.t, latch.cause).text == "belt_overspeed: normal"
+
+
+def test_limit_bars_have_a_level_for_their_colour():
+    rig = load_rig(CONFIGS / "rehearsals" / "conveyor_guarded.toml")
+    columns, units = tick_columns(rig)
+    groups = ColumnGroups(columns, units, rig)
+    model = DashboardModel(groups, rig.tick, has_link=False, limits=rig.limits)
+    rows = np.zeros((3, len(columns)))
+    rows[:, groups.index("t")] = np.arange(3) * rig.tick
+    rows[:, groups.index("limit:belt_fast")] = [0, 1, 2]
+    rows[:, groups.index("limit:motor_current")] = [0, 0, np.nan]
+    store = RowStore(rows, groups.index("t"))
+    for k, (fast, current) in enumerate(((0, 0), (1, 0), (2, 1))):
+        snap = model.snapshot(store, k * rig.tick, 1.0, run_state="test")
+        assert [b.level for b in snap.bars] == [fast, current]
+        assert snap.bars[0].text.endswith(("ok", "WARN", "TRIP")[fast])
 
 
 def test_timing_panel_counts_overruns_from_the_lateness_column():
@@ -225,21 +269,21 @@ def drain(q, n):
 
 def test_every_action_puts_one_command(command_queue):
     op = Operator(command_queue)
-    assert op.estop() and op.reset() and op.stop() and op.arm() and op.start()
-    assert "already running" in op.message         # start is a marker, and says so
+    assert op.estop() and op.reset() and op.stop()
+    assert not hasattr(op, "arm") and not hasattr(op, "start")   # no do-nothing markers
     assert op.set_reference("speed_setpoint", "0.5")
-    assert op.mark_phase("  load   step  ")
+    assert op.mark_moment("  load   step  ")
+    assert op.mark_moment(MOMENT_PRESETS[0])
     assert op.inject_fault("sensor_bias", "belt_speed", 0.2, 1.5)
     assert op.clear_fault()
-    got = drain(command_queue, 9)
-    assert [c.kind for c in got] == ["estop", "reset", "stop", "mark_phase", "mark_phase",
-                                     "set_reference", "mark_phase", "inject_fault",
-                                     "clear_fault"]
-    assert got[5].args == {"name": "speed_setpoint", "value": 0.5}
-    assert got[6].args == {"name": "load step"}
-    assert got[7].args == {"kind": "sensor_bias", "target": "belt_speed", "value": 0.2,
+    got = drain(command_queue, 8)
+    assert [c.kind for c in got] == ["estop", "reset", "stop", "set_reference", "mark_phase",
+                                     "mark_phase", "inject_fault", "clear_fault"]
+    assert got[3].args == {"name": "speed_setpoint", "value": 0.5}
+    assert got[4].args == {"name": "load step"}
+    assert got[5].args == {"name": MOMENT_PRESETS[0]}
+    assert got[6].args == {"kind": "sensor_bias", "target": "belt_speed", "value": 0.2,
                            "duration_s": 1.5}
-    assert "no-op" in got[3].args["name"] and "no-op" in got[4].args["name"]
 
 
 def test_bad_input_is_refused_with_a_message_and_sends_nothing(command_queue):
@@ -247,7 +291,7 @@ def test_bad_input_is_refused_with_a_message_and_sends_nothing(command_queue):
     assert not op.set_reference("speed_setpoint", "fast")
     assert "not a number" in op.message
     assert not op.set_reference("speed_setpoint", math.inf)
-    assert not op.mark_phase("   ")
+    assert not op.mark_moment("   ")
     assert not op.inject_fault("sensor_bias", "", 1.0)
     assert not op.inject_fault("sensor_bias", "belt_speed", 1.0, -2)
     with pytest.raises(queue.Empty):
@@ -264,7 +308,7 @@ def test_a_command_is_one_atomic_pipe_write():
     sent = []
     op.queue = type("Q", (), {"put_nowait": lambda self, c: sent.append(c)})()
     op.inject_fault(long, long, 1.0, 0.0)
-    op.mark_phase(long)
+    op.mark_moment(long)
     op.set_reference(long, 1.0)
     for command in sent:
         assert all(len(str(v)) <= MAX_TEXT for v in command.args.values())
@@ -308,3 +352,50 @@ def test_gui_exports_are_what_they_claim():
     for name in gui.__all__:
         obj = getattr(gui, name)
         assert getattr(obj, "__module__", "plantrig.gui").startswith("plantrig.gui"), name
+
+
+# -- palette ----------------------------------------------------------------------------
+def relative_luminance(colour) -> float:
+    """WCAG 2.1 relative luminance of an sRGB colour (W3C, WCAG 2.1, 'relative
+    luminance' definition)."""
+    def linear(v: float) -> float:
+        v /= 255
+        return v / 12.92 if v <= 0.04045 else ((v + 0.055) / 1.055) ** 2.4
+    r, g, b = (linear(float(c)) for c in colour[:3])
+    return 0.2126 * r + 0.7152 * g + 0.0722 * b
+
+
+def contrast(a, b) -> float:
+    """WCAG 2.1 contrast ratio (L1 + 0.05) / (L2 + 0.05), lighter over darker."""
+    high, low = sorted((relative_luminance(a), relative_luminance(b)), reverse=True)
+    return (high + 0.05) / (low + 0.05)
+
+
+def test_the_palette_sets_every_colour_slot_of_the_toolkit():
+    from plantrig.gui import _theme as theme
+
+    assert theme.ALL_SLOTS and set(theme.ALL_SLOTS) <= set(theme.ROLES)
+
+
+def test_the_palette_reads_on_a_projector_and_in_monochrome():
+    from plantrig.gui import _theme as th
+
+    white = (255, 255, 255)
+    # words on their backgrounds: WCAG 2.1 SC 1.4.3 asks 4.5:1 for normal text
+    for words, ground in ((th.INK, th.PAPER), (th.INK, th.PANEL), (th.INK, th.FIELD),
+                          (th.INK_SOFT, th.PANEL), (th.INK_SOFT, th.PAPER),
+                          (th.ACCENT, th.PANEL), (th.INK, th.BUTTON), (th.INK, th.BAR_QUIET),
+                          (th.INK, th.ATTENTION), (th.ALARM_TEXT, th.ALARM),
+                          (th.ALARM_TEXT, th.ALARM_DEEP), (th.BANNER_TEXT, th.BANNER_BG),
+                          (white, th.ESTOP_BG)):
+        assert contrast(words, ground) >= 4.5, (words, ground)
+    # lines on the plot: WCAG 2.1 SC 1.4.11 asks 3:1 for graphics against their ground
+    for prefix, (colour, _) in th.SERIES.items():
+        assert contrast(colour, th.FIELD) >= 3.0, prefix
+    # in grey, the controller's values stay apart from the plant's and the reference:
+    # a clear lightness step, and the plant's lines are twice as thick
+    plant, controller, reference = th.SERIES["y"], th.SERIES["sent"], th.SERIES["ref"]
+    assert contrast(controller[0], plant[0]) >= 2.0
+    assert contrast(controller[0], reference[0]) >= 2.0
+    assert plant[1] >= 2 * controller[1] and plant[1] >= 2 * reference[1]
+    assert th.SERIES["u"] == plant and th.SERIES["cmd"] == controller
