@@ -197,7 +197,10 @@ def test_realtime_loop_uses_exactly_the_laws_answers(tmp_path: Path,
     with reference_controller(rig):
         wire = simulate(rig, realtime=True, link=link)  # type: ignore[arg-type]
     h = wire.outcome.link_health
-    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert wire.rows.shape[0] == rig.n_ticks
+    # how many ticks were answered in time depends on the load; the outcome follows it
+    held = all(r.passed is not False for r in wire.outcome.rules)
+    assert wire.outcome.ended == ("completed" if held else "fault")
     assert link.calls == {"receive": rig.n_ticks, "send": rig.n_ticks + 1}
     assert h["missed_ticks"] == rig.n_ticks - 1 - int(wire["fresh"][1:].sum())
     assert h.get("dropped_out", 0) == 0 and h.get("dropped_offline", 0) == 0
@@ -236,7 +239,8 @@ def test_broker_restart_mid_run_keeps_the_tick(tmp_path: Path,
             if back.is_alive():
                 back.join()
     events, h = wire.outcome.events, wire.outcome.link_health
-    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert wire.rows.shape[0] == rig.n_ticks           # every tick ran, but a lost link is a fault
+    assert wire.outcome.ended == "fault" and "'link kept' not met" in wire.outcome.reason
     assert np.array_equal(wire.t, np.arange(rig.n_ticks) * rig.tick)
     assert link.calls == {"receive": rig.n_ticks, "send": rig.n_ticks + 1}  # + the prime
     order = kinds(events)
