@@ -5,8 +5,8 @@ its record is finished (summary.json and manifest.json written, no journal left 
 ``plantrig recover`` to turn into the record) and it passes ``verify``. The manifest is a
 run's last write, so a folder that has one is no longer being written even while the
 process that made it lives on (a run made from Python, a campaign worker): anything
-written after it fails verify. Anything less may
-only be reported or exported as a marked draft, and never into the manifest.
+written after it fails verify. Anything less may only be reported or exported as a
+marked draft, never into what the manifest covers.
 """
 
 from __future__ import annotations
