@@ -22,6 +22,7 @@ import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -345,8 +346,9 @@ class EventTape:
         return int(self.header[W_STATE]) == STATE_ENDED
 
     def close(self, unlink: bool = False) -> None:
-        for view in (self.rows, self.heap, self._header_map):
-            view._mmap.close()  # type: ignore[attr-defined]
+        maps: tuple[Any, ...] = (self.rows, self.heap, self._header_map)
+        for m in maps:
+            m._mmap.close()
         del self.rows, self.heap, self.header
         if unlink:
             self.path.unlink(missing_ok=True)
