@@ -81,7 +81,7 @@ def replay(folder: str | Path, *, frame_cap_hz: float = 30.0,
     closes; 1 if no picture was saved.
     """
     try:
-        load_run(folder)
+        record = load_run(folder)
     except RunFolderError as exc:
         _say(f"error: {exc}")
         return 2
@@ -89,6 +89,8 @@ def replay(folder: str | Path, *, frame_cap_hz: float = 30.0,
         for issue in exc.issues:
             _say(f"error: {issue}")
         return 2
+    if record.rig_note:
+        _say(f"warning: {record.rig_note}")
     if not display_available():
         _say(f"error: {NO_DISPLAY}")
         return 2

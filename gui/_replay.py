@@ -30,7 +30,7 @@ from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
 from plantrig.gui._store import RowStore
 from plantrig.gui._view import DashboardView
-from plantrig.sim import Rig, load_rig_as_data
+from plantrig.sim import Rig, RigFileError, load_rig_as_data, rig_from_record
 
 DEFAULT_SCREENSHOT_FRAME = 30
 
@@ -52,6 +52,8 @@ class RunRecord:
     rows: NDArray[np.float64]
     events: list[EventRow]
     summary: dict[str, object]
+    rig_note: str = ""          # set when rig.toml could not be read and the record's own
+                                # description of the rig (run_start.json) stands in
 
 
 def load_run(folder: str | Path) -> RunRecord:
@@ -92,8 +94,22 @@ def load_run(folder: str | Path) -> RunRecord:
                                              "record") from None
     summary_path = folder / "summary.json"
     summary = _json(folder, summary_path) if summary_path.is_file() else {}
-    return RunRecord(folder, load_rig_as_data(folder / "rig.toml"), columns, units, rows,
-                     events, summary)
+    rig, note = _rig(folder)
+    return RunRecord(folder, rig, columns, units, rows, events, summary, note)
+
+
+def _rig(folder: Path) -> tuple[Rig, str]:
+    """rig.toml read as data; if this version cannot read it (another version wrote
+    it), the record's own description of the rig, with a note saying so."""
+    try:
+        return load_rig_as_data(folder / "rig.toml"), ""
+    except RigFileError as exc:
+        try:
+            rig = rig_from_record(folder)
+        except RigFileError:
+            raise exc from None
+        return rig, (f"{exc.issues[0]}; names, units and ranges from run_start.json "
+                     "(no loops, limit thresholds or references)")
 
 
 def _json(folder: Path, path: Path) -> dict[str, Any]:

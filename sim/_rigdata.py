@@ -10,6 +10,8 @@ record (summary.json, run_start.json, run.h5).
 from __future__ import annotations
 
 import dataclasses
+import json
+import math
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -18,7 +20,7 @@ import numpy as np
 
 from plantrig.sim._errors import RigFileError, RigIssue
 from plantrig.sim._plant import OdePlant
-from plantrig.sim._rigfile import Rig, build_rig
+from plantrig.sim._rigfile import ControllerSpec, Rig, Signal, build_rig
 
 # Files only plantrig writes, into every run folder at its start; either marks a record.
 RUN_FOLDER_MARKERS = ("run_start.json", "sources.json")
@@ -60,6 +62,51 @@ def load_rig_as_data(path: str | Path) -> Rig:
     return dataclasses.replace(rig, plant=plant,
                                method=method if isinstance(method, str) else "rk4",
                                substeps=substeps if isinstance(substeps, int) else 1)
+
+
+def rig_from_record(folder: str | Path) -> Rig:
+    """The rig as far as the record itself says (run_start.json): name, tick, the signals
+    with units and ranges, whether a link was used.
+
+    For a rig.toml this version cannot read (written by another plantrig version): no
+    loops, limit thresholds or references, and a plant that refuses to run.
+    """
+    folder = Path(folder)
+    start_path = folder / "run_start.json"
+    try:
+        start = json.loads(start_path.read_text(encoding="utf-8"))
+        rig_info, columns = start["rig"], start["columns"]
+        tick, duration = float(rig_info["tick_s"]), float(rig_info["duration_s"])
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise RigFileError([RigIssue(str(start_path), "", f"cannot read the recorded rig: "
+                                                          f"{type(exc).__name__}: {exc}")]) \
+            from None
+    groups: dict[str, list[Signal]] = {"x": [], "u": [], "y": []}
+    for column in columns:
+        prefix, _, name = str(column.get("name", "")).partition(":")
+        if prefix in groups and name:
+            groups[prefix].append(Signal(
+                name, str(column.get("unit") or ""), _bound(column.get("min"), -math.inf),
+                _bound(column.get("max"), math.inf), str(column.get("description") or "")))
+    summary_path = folder / "summary.json"
+    summary: dict[str, Any] = {}
+    if summary_path.is_file():
+        try:
+            summary = json.loads(summary_path.read_text(encoding="utf-8"))
+        except ValueError:
+            summary = {}
+    n, m, p = (len(groups[k]) for k in ("x", "u", "y"))
+    return Rig(path=folder / "rig.toml", text="", name=str(rig_info.get("name", folder.name)),
+               description="", tick=tick, duration=duration,
+               mode=str(start.get("mode", "fast")), seed=0, on_overrun="skip",
+               plant=OdePlant(_refuse, _refuse, n, m, p), x0=np.zeros(n), method="rk4",
+               substeps=1, states=tuple(groups["x"]), inputs=tuple(groups["u"]),
+               outputs=tuple(groups["y"]), references=(),
+               controller=ControllerSpec("external" if summary.get("link") else "recorded"))
+
+
+def _bound(value: Any, default: float) -> float:
+    return float(value) if isinstance(value, int | float) else default
 
 
 def model_module(path: str | Path) -> Path | None:

@@ -28,6 +28,7 @@ from plantrig.sim import (
     load_rig,
     load_rig_as_data,
     model_module,
+    rig_from_record,
     run_folder_of,
     verify_folder,
 )
@@ -196,6 +197,35 @@ def test_old_folder_whose_module_path_points_nowhere_still_replays(received, xvf
     assert done.returncode == 0, done.stdout + done.stderr
     regions = json.loads(shot.with_suffix(".regions.json").read_text())
     check_screenshot(shot, regions, {"plot.0": "y"})
+
+
+def test_folder_whose_rig_file_this_version_cannot_read_replays_from_the_record(
+        received, xvfb, tmp_path):  # noqa: F811
+    """Another plantrig version wrote it: the rig file has a key this one does not know."""
+    folder = copy_of(received, tmp_path)
+    rig = folder / "rig.toml"
+    rig.write_text(rig.read_text().replace("[rig]\n", "[rig]\nkey_of_a_later_version = 1\n"))
+    write_manifest(folder)
+    shot = tmp_path / "replay.png"
+    done = plantrig("replay", str(folder), "--screenshot", str(shot), cwd=tmp_path)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "warning:" in done.stderr and "key_of_a_later_version" in done.stderr
+    assert "run_start.json" in done.stderr
+    regions = json.loads(shot.with_suffix(".regions.json").read_text())
+    check_screenshot(shot, regions, {"plot.0": "y", "plot.2": "u"})
+
+
+def test_rig_from_the_record_has_the_signals_of_the_rig_file(received):
+    recorded, data = rig_from_record(received), load_rig_as_data(received / "rig.toml")
+    assert (recorded.name, recorded.tick, recorded.duration) == (
+        data.name, data.tick, data.duration)
+    for group in ("states", "inputs", "outputs"):
+        assert [(s.name, s.unit, s.min, s.max) for s in getattr(recorded, group)] == [
+            (s.name, s.unit, s.min, s.max) for s in getattr(data, group)], group
+    assert recorded.plant.shape == data.plant.shape
+    assert recorded.controller.kind != "external"          # built-in PI loops, no link
+    with pytest.raises(ModelNotLoaded):
+        recorded.plant.output(0.0, recorded.x0, [0.0, 0.0], {})
 
 
 def test_rig_read_as_data_matches_the_loaded_rig_but_cannot_run_its_model(tmp_path):
