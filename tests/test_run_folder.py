@@ -6,7 +6,7 @@ verify then work from the folder alone. A folder whose model module writes a mar
 file when imported is opened by every read-only command: no marker, while
 ``check --trust-model`` (which must build the model) does write it, so the marker
 could have shown up. Replay runs as a real dearpygui window under Xvfb (fixture from
-tests/test_gui.py) and its screenshot is checked.
+tests/conftest.py) and its screenshot is checked.
 """
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ import tomllib
 from pathlib import Path
 
 import pytest
-from test_gui import check_screenshot, xvfb  # noqa: F401  (xvfb is a fixture)
+from test_gui import check_screenshot
 
 from plantrig.sim import (
     ModelNotLoaded,
@@ -108,7 +108,7 @@ def test_rig_copy_names_the_module_beside_it_and_nothing_else_changes(received):
     assert verify_folder(received).ok
 
 
-def test_folder_alone_checks_replays_reports_exports_and_verifies(received, xvfb,  # noqa: F811
+def test_folder_alone_checks_replays_reports_exports_and_verifies(received, xvfb,
                                                                   tmp_path):
     folder = copy_of(received, tmp_path)
     elsewhere = tmp_path / "cwd"
@@ -151,7 +151,7 @@ def plant_code(folder: Path, marker: Path) -> None:
     write_manifest(folder)
 
 
-def test_read_only_commands_never_import_code_from_the_folder(received, xvfb,  # noqa: F811
+def test_read_only_commands_never_import_code_from_the_folder(received, xvfb,
                                                               tmp_path):
     folder = copy_of(received, tmp_path)
     marker = tmp_path / "marker"
@@ -183,7 +183,7 @@ def test_read_only_commands_never_import_code_from_the_folder(received, xvfb,  #
     assert marker.read_text() == "imported"
 
 
-def test_old_folder_whose_module_path_points_nowhere_still_replays(received, xvfb,  # noqa: F811
+def test_old_folder_whose_module_path_points_nowhere_still_replays(received, xvfb,
                                                                     tmp_path):
     """Folders written before the copy was rewritten name '../tank_model.py'."""
     folder = copy_of(received, tmp_path)
@@ -200,7 +200,7 @@ def test_old_folder_whose_module_path_points_nowhere_still_replays(received, xvf
 
 
 def test_folder_whose_rig_file_this_version_cannot_read_replays_from_the_record(
-        received, xvfb, tmp_path):  # noqa: F811
+        received, xvfb, tmp_path):
     """Another plantrig version wrote it: the rig file has a key this one does not know."""
     folder = copy_of(received, tmp_path)
     rig = folder / "rig.toml"
