@@ -54,7 +54,7 @@ class AcceptanceRules:
     interlocks whose trip is part of the test (a scenario adds the ones it expects).
     """
 
-    min_answered: float = 0.9
+    min_answered: float = 0.75
     allow_link_loss: bool = False
     max_late: float = 0.01
     allowed_trips: tuple[str, ...] = ()

@@ -59,8 +59,8 @@ def column_info(rig: Rig, columns: list[str], units: list[str]) -> list[dict[str
     signals: dict[str, Any] = {}
     for prefix, group in (("cmd", rig.inputs), ("u", rig.inputs), ("y", rig.outputs),
                           ("sent", rig.outputs), ("x", rig.states)):
-        for s in group:
-            signals[f"{prefix}:{s.name}"] = s
+        for signal in group:
+            signals[f"{prefix}:{signal.name}"] = signal
     out = []
     for name, unit in zip(columns, units, strict=True):
         prefix, _, short = name.partition(":")
@@ -282,7 +282,7 @@ def recover_run(folder: Path) -> dict[str, Any]:
     if summary_path.exists():
         # the run ended but its finish did not (disk full): finish it now, as it ended,
         # keeping its outcome and what went wrong the first time
-        summary = json.loads(summary_path.read_text())
+        summary: dict[str, Any] = json.loads(summary_path.read_text())
         if journal.exists():
             rows = read_journal(journal, n)
         else:
@@ -308,14 +308,16 @@ def recover_run(folder: Path) -> dict[str, Any]:
         rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, n)
         from_journal, produced, torn_bytes, from_tape = rows.shape[0], None, 0, 0
     events = read_events(folder / "events.jsonl")
-    if event_path.exists():
-        etape = EventTape(event_path, create=False)
+    events_salvaged: list[dict[str, Any]] = []
+    try:
+        etape = EventTape(event_path, create=False) if event_path.exists() else None
+    except ValueError:   # an event tape of another plantrig version: leave its events
+        etape = None
+    if etape is not None:
         etape.next_seq = len(events)
         events_salvaged = [{"tick": tk, "time": t, "kind": k, "detail": d}
                            for tk, t, k, d in etape.read_new()]
         etape.close()
-    else:
-        events_salvaged = []
     recovered = rows.shape[0]
     lost = None if produced is None else produced - recovered
     report = {
@@ -343,7 +345,8 @@ def recover_run(folder: Path) -> dict[str, Any]:
     recorder_status = folder / "recorder.json"
     counts: dict[str, int] = {}
     for ev in all_events:
-        counts[ev["kind"]] = counts.get(ev["kind"], 0) + 1
+        kind = str(ev["kind"])
+        counts[kind] = counts.get(kind, 0) + 1
     rig_file = folder / "rig.toml"
     summary = {
         "software": start["software"],

@@ -187,7 +187,7 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
     recorder_status = json.loads(status.read_text()) if status.exists() else {}
     status.unlink(missing_ok=True)
     model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
-    summary = {
+    summary: dict[str, Any] = {
         "software": {"name": "plantrig", "version": __version__},
         "rig": {"name": rig.name, "file": str(rig.path),
                 "sha256": hashlib.sha256(rig.path.read_bytes()).hexdigest(),
