@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import CAUTION, REALTIME_BANNER, __version__
+from plantrig._compare_cli import add_parser as add_compare_command
 from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._override_options import add_override_options, overrides_of
@@ -267,6 +268,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="draw the run once, save the window as a PNG and exit")
     p.set_defaults(func=cmd_replay)
     add_link_commands(sub, _load, _print_outcome)
+    add_compare_command(sub)
     return parser
 
 
