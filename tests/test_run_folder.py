@@ -162,14 +162,18 @@ def test_read_only_commands_never_import_code_from_the_folder(received, xvfb,
         assert planted == [], f"{after} ran code from the folder: {planted}"
 
     shot = tmp_path / "replay.png"
-    runs = [("verify", str(folder)),
-            ("replay", str(folder), "--screenshot", str(shot)),
-            ("report", str(folder)),
-            ("export", str(folder), "--csv", "--mat"),
-            ("verify", str(folder))]
-    for args in runs:                    # from inside the folder too: no cwd imports
+    key = tmp_path / "key"
+    assert plantrig("keygen", "--out", str(key), cwd=tmp_path).returncode == 0
+    runs = [(("verify", str(folder)), 0),
+            (("replay", str(folder), "--screenshot", str(shot)), 0),
+            (("report", str(folder)), 0),
+            (("export", str(folder), "--csv", "--mat"), 0),
+            (("sign", str(folder), "--key", f"{key}.private.pem"), 0),
+            (("verify", str(folder), "--public-key", f"{key}.public.pem"), 0),
+            (("recover", str(folder)), 2)]                  # ended cleanly: nothing to do
+    for args, code in runs:              # from inside the folder too: no cwd imports
         done = plantrig(*args, cwd=folder)
-        assert done.returncode == 0, f"{args}: {done.stdout}{done.stderr}"
+        assert done.returncode == code, f"{args}: {done.stdout}{done.stderr}"
         no_marker(args[0])
     assert shot.is_file()
 
