@@ -170,6 +170,7 @@ def test_read_only_commands_never_import_code_from_the_folder(received, xvfb,
             (("export", str(folder), "--csv", "--mat"), 0),
             (("sign", str(folder), "--key", f"{key}.private.pem"), 0),
             (("verify", str(folder), "--public-key", f"{key}.public.pem"), 0),
+            (("compare", str(folder), str(received), "--out", str(tmp_path / "cmp")), 0),
             (("recover", str(folder)), 2)]                  # ended cleanly: nothing to do
     for args, code in runs:              # from inside the folder too: no cwd imports
         done = plantrig(*args, cwd=folder)
