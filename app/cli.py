@@ -20,6 +20,7 @@ from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._override_options import add_override_options, overrides_of
 from plantrig._records_cli import add_record_commands
+from plantrig._rerun_cli import add_parser as add_rerun_command
 from plantrig.sim import (
     EXIT_CODE_HELP,
     RecordError,
@@ -269,6 +270,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_replay)
     add_link_commands(sub, _load, _print_outcome)
     add_compare_command(sub)
+    add_rerun_command(sub, _print_outcome)
     return parser
 
 

@@ -116,7 +116,8 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                   sensor_chain: SignalChain | None = None,
                   folder: Path | None = None, commands: Any = None,
                   on_tapes_ready: Any = None,
-                  scenario: Scenario | None = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
+                  scenario: Scenario | None = None,
+                  about: dict[str, Any] | None = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
     """Run ``rig`` with the recorder in its own process; write the run folder.
 
     The folder holds the rig file as given (and an ODE model's module), the tick data
@@ -126,7 +127,8 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     queue of operator Commands; ``on_tapes_ready(tape_path, event_tape_path)`` is called
     once both tapes exist (to start a dashboard on them). With a ``scenario`` the folder
     also holds it (``scenario.toml``) and its judged criteria (``verdicts.json``), and
-    the summary lists them under "verdicts".
+    the summary lists them under "verdicts". ``about`` adds keys to the summary (a
+    rerun says what it re-ran).
     """
     rig = scenario.apply_to(rig) if scenario is not None else rig
     columns, units = tick_columns(rig)
@@ -136,13 +138,16 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
         return _run_and_record(rig, folder or new_run_folder(rig, out_dir), stopper,
                                realtime=realtime, link=link, actuator_chain=actuator_chain,
                                sensor_chain=sensor_chain, commands=commands,
-                               on_tapes_ready=on_tapes_ready, scenario=scenario)
+                               on_tapes_ready=on_tapes_ready, scenario=scenario,
+                               about=about)
 
 
 def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bool | None,
                     link: ControllerLink | None, actuator_chain: SignalChain | None,
                     sensor_chain: SignalChain | None, commands: Any, on_tapes_ready: Any,
-                    scenario: Scenario | None) -> tuple[Path, RunOutcome, dict[str, Any]]:
+                    scenario: Scenario | None,
+                    about: dict[str, Any] | None = None) -> tuple[Path, RunOutcome,
+                                                                  dict[str, Any]]:
     columns, units = tick_columns(rig)
     copy_sources(rig, scenario, folder)  # rig.toml points at its module copy
     (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
@@ -204,6 +209,7 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
         "events": _count_kinds(outcome),
         "model": model.as_dict(),
         "columns": columns, "units": units,
+        **(about or {}),
     }
     verdicts_passed = True
     if scenario is not None:
