@@ -1,8 +1,9 @@
 """A recorded run in the dashboard, with a time slider instead of operator controls.
 
-A run folder holds ticks.npy (one float64 field per column), columns.json (units),
-events.jsonl and rig.toml (with an ODE model's module beside it). The same panels as
-the live dashboard show the moment under the slider and the window before it.
+A run folder is read by plantrig.sim.read_run, the one reader for run folders (run.h5,
+or ticks.npy, or the journal of a run not yet recovered), with rig.toml beside it. The
+same panels as the live dashboard show the moment under the slider and the window
+before it.
 
 A folder may come from someone else, so a replay reads data only: rig.toml is read
 without importing its model module, the values are the recorded ones and the model
@@ -18,7 +19,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from numpy.lib import recfunctions
 from numpy.typing import NDArray
 
 from plantrig.gui._columns import ColumnGroups
@@ -30,7 +30,7 @@ from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
 from plantrig.gui._store import RowStore
 from plantrig.gui._view import DashboardView
-from plantrig.sim import Rig, RigFileError, load_rig_as_data, rig_from_record
+from plantrig.sim import Rig, RigFileError, load_rig_as_data, read_run, rig_from_record
 
 DEFAULT_SCREENSHOT_FRAME = 30
 
@@ -61,37 +61,17 @@ def load_run(folder: str | Path) -> RunRecord:
     folder = Path(folder)
     if not folder.is_dir():
         raise RunFolderError(folder, "no such folder")
-    for name in ("ticks.npy", "rig.toml"):
-        if not (folder / name).is_file():
-            raise RunFolderError(folder, f"no {name}: is this a plantrig run folder?")
+    if not (folder / "rig.toml").is_file():
+        raise RunFolderError(folder, "no rig.toml: is this a plantrig run folder?")
     try:
-        ticks = np.load(folder / "ticks.npy", allow_pickle=False)
-    except (OSError, ValueError) as exc:
-        raise RunFolderError(folder, f"ticks.npy unreadable: {exc}") from None
-    if ticks.dtype.names is None or "t" not in ticks.dtype.names:
-        raise RunFolderError(folder, "ticks.npy has no named columns (expected a 't' field)")
-    columns = list(ticks.dtype.names)
-    rows = recfunctions.structured_to_unstructured(ticks, dtype=np.float64).reshape(
-        len(ticks), len(columns))
-    units = [""] * len(columns)
-    meta_path = folder / "columns.json"
-    if meta_path.is_file():
-        meta = _json(folder, meta_path)
-        if meta.get("columns") == columns:
-            units = list(meta.get("units", units))
-    events: list[EventRow] = []
-    events_path = folder / "events.jsonl"
-    if events_path.is_file():
-        for n, line in enumerate(events_path.read_text(encoding="utf-8").splitlines(), 1):
-            if not line.strip():
-                continue
-            try:
-                e = json.loads(line)
-                events.append((int(e["tick"]), float(e["time"]), str(e["kind"]),
-                               str(e.get("detail", ""))))
-            except (ValueError, KeyError, TypeError):
-                raise RunFolderError(folder, f"events.jsonl line {n} is not an event "
-                                             "record") from None
+        record = read_run(folder)
+    except (OSError, ValueError, KeyError) as exc:
+        raise RunFolderError(folder, f"tick data unreadable: {exc}") from None
+    if "t" not in record.columns:
+        raise RunFolderError(folder, "the tick data has no 't' column")
+    columns, units, rows = record.columns, record.units, record.rows
+    events: list[EventRow] = [(int(e["tick"]), float(e["time"]), str(e["kind"]),
+                               str(e.get("detail", ""))) for e in record.events]
     summary_path = folder / "summary.json"
     summary = _json(folder, summary_path) if summary_path.is_file() else {}
     rig, note = _rig(folder)

@@ -18,6 +18,7 @@ import math
 import os
 import shutil
 import time
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -29,15 +30,17 @@ from plantrig.sim._hdf5 import write_run_h5
 from plantrig.sim._manifest import write_atomic, write_manifest
 from plantrig.sim._outcome import INTERRUPTED
 from plantrig.sim._preflight import RecordError
-from plantrig.sim._recorder import RESERVE_NAME, read_journal
+from plantrig.sim._recorder import RESERVE_NAME
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._summary import summarize
 from plantrig.sim._tape import EventTape, TapeReader
+from plantrig.sim._timing import FINE_NS, DurationHistogram
 
 RUN_START = "run_start.json"
 RESERVE_BYTES = 256 * 1024
 RECORDER_EXIT_WAIT_S = 10.0
 H5_SLACK = 1 << 20                 # HDF5 metadata and the event table, generously
+BLOCK_ROWS = 32768                 # rows per block when streaming the ticks
 META_DESCRIPTIONS = {
     "seq": "tick number",
     "t": "plant time at the start of the tick",
@@ -108,12 +111,15 @@ def start_record(folder: Path, rig: Rig, columns: list[str], units: list[str],
         (folder / RESERVE_NAME).unlink(missing_ok=True)
 
 
-def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, Any]) -> None:
-    """Turn the journal into ``ticks.npy`` and ``run.h5``; write summary and manifest.
+def finish_record(folder: Path, summary: dict[str, Any], *, npy: bool = False) -> None:
+    """Turn the journal into ``run.h5`` (``ticks.npy`` instead where h5py is missing, or
+    as well with ``npy``); write the summary and the manifest.
 
-    The journal is removed only once ``ticks.npy`` is safely on disk. When the disk is
-    full the journal stays (``plantrig recover`` finishes later) and the summary says so.
-    ``summary`` gets a "record" entry naming what was written.
+    The ticks are streamed from the journal (or from the ``ticks.npy`` of an earlier
+    finish) block by block, so memory does not grow with the run. The journal is removed
+    only once the tick file is safely on disk; when the disk is full it stays
+    (``plantrig recover`` finishes later) and the summary says so. ``summary`` gets a
+    "record" entry naming what was written, what is still missing and what was lost.
     """
     folder = Path(folder)
     start = json.loads((folder / RUN_START).read_text()) if (folder / RUN_START).exists() else {}
@@ -139,40 +145,90 @@ def finish_record(folder: Path, rows: NDArray[np.float64], summary: dict[str, An
     except OSError as exc:
         raise RecordError(folder, f"summary not written ({exc.strerror}); ticks.journal kept: "
                                   "free space, then run plantrig recover") from None
-    try:
-        structured = np.ascontiguousarray(rows).view(
-            np.dtype([(name, np.float64) for name in columns])).reshape(-1)
-        _save_npy(folder / "ticks.npy", structured)
+    n = len(columns)
+    count = count_ticks(folder, n)
+    kept = False
+    if _have_h5py():
+        try:
+            events = read_events(folder / "events.jsonl")
+            sources = {p.name: p.read_text(encoding="utf-8", errors="replace")
+                       for p in sorted(folder.iterdir())
+                       if p.suffix in (".toml", ".py") and p.is_file()}
+            _check_room(folder, count * n * 8 + sum(len(v) for v in sources.values())
+                        + H5_SLACK)
+            write_run_h5(folder / "run.h5", tick_blocks(folder, n), info, events, sources, {
+                "software_version": __version__, "rig": summary["rig"]["name"],
+                "started_utc": summary["started_utc"], "ended": summary["ended"],
+                "reason": summary["reason"], "tick_s": summary["rig"]["tick_s"],
+                "summary": summary, "model": summary["model"]})
+            record["files"].append("run.h5")
+            kept = True
+        except Exception as exc:  # h5py raises several kinds on a failing disk; none escapes
+            text = getattr(exc, "strerror", None) or str(exc)
+            record["problems"].append(f"run.h5 not written ({text}); free space, then run "
+                                      "plantrig recover")
+    if (npy or not _have_h5py()) and not (folder / "ticks.npy").exists():
+        try:
+            _check_room(folder, count * n * 8 + H5_SLACK)
+            _save_npy(folder / "ticks.npy", tick_blocks(folder, n), columns, count)
+            record["files"].append("ticks.npy")
+            kept = kept or not _have_h5py()
+        except OSError as exc:
+            (folder / ".ticks.npy.tmp").unlink(missing_ok=True)
+            record["problems"].append(f"ticks.npy not written ({exc.strerror or exc}); "
+                                      "free space, then run plantrig recover")
+    elif (folder / "ticks.npy").exists():
         record["files"].append("ticks.npy")
+    if kept:
         journal.unlink(missing_ok=True)
-    except OSError as exc:
-        (folder / ".ticks.npy.tmp").unlink(missing_ok=True)
-        record["problems"].append(f"ticks.npy not written ({exc.strerror}); ticks.journal "
-                                  "kept: free space, then run plantrig recover")
-    try:
-        events = read_events(folder / "events.jsonl")
-        sources = {p.name: p.read_text(encoding="utf-8", errors="replace")
-                   for p in sorted(folder.iterdir())
-                   if p.suffix in (".toml", ".py") and p.is_file()}
-        _check_room(folder, rows.nbytes + sum(len(v) for v in sources.values()) + H5_SLACK)
-        write_run_h5(folder / "run.h5", rows, info, events, sources, {
-            "software_version": __version__, "rig": summary["rig"]["name"],
-            "started_utc": summary["started_utc"], "ended": summary["ended"],
-            "reason": summary["reason"], "tick_s": summary["rig"]["tick_s"],
-            "summary": summary, "model": summary["model"]})
-        record["files"].append("run.h5")
-    except ImportError:
-        record["problems"].append("run.h5 not written: h5py is not installed")
-    except Exception as exc:  # h5py raises several kinds on a failing disk; none may escape
-        text = getattr(exc, "strerror", None) or str(exc)
-        record["problems"].append(f"run.h5 not written ({text}); free space, then run "
-                                  "plantrig recover")
     try:
         write_atomic(folder / "summary.json", (json.dumps(summary, indent=2) + "\n").encode())
         write_manifest(folder)
     except OSError as exc:
         raise RecordError(folder, f"summary or manifest not written ({exc.strerror}); "
                                   "free space, then run plantrig recover") from None
+
+
+def count_ticks(folder: Path, n_columns: int) -> int:
+    """Whole tick records in the folder's journal (or its ticks.npy when the journal is
+    gone)."""
+    journal = Path(folder) / "ticks.journal"
+    if journal.exists():
+        return journal.stat().st_size // (n_columns * 8)
+    npy = Path(folder) / "ticks.npy"
+    if npy.exists():
+        return int(np.load(npy, mmap_mode="r").shape[0])
+    return 0
+
+
+def tick_blocks(folder: Path, n_columns: int,
+                block_rows: int = BLOCK_ROWS) -> Iterator[NDArray[np.float64]]:
+    """The folder's tick records, oldest first, ``block_rows`` at a time (a torn last
+    journal row is left out)."""
+    count = count_ticks(folder, n_columns)
+    journal = Path(folder) / "ticks.journal"
+    if journal.exists():
+        with open(journal, "rb") as f:
+            done = 0
+            while done < count:
+                take = min(block_rows, count - done)
+                yield np.fromfile(f, dtype=np.float64, count=take * n_columns).reshape(
+                    take, n_columns)
+                done += take
+        return
+    if count:
+        table = np.load(Path(folder) / "ticks.npy", mmap_mode="r")
+        for first in range(0, count, block_rows):
+            part = np.asarray(table[first:first + block_rows])
+            yield part.view(np.float64).reshape(-1, n_columns)
+
+
+def _have_h5py() -> bool:
+    try:
+        import h5py  # noqa: F401
+    except ImportError:
+        return False
+    return True
 
 
 def _check_room(folder: Path, needed: int) -> None:
@@ -242,19 +298,23 @@ def read_events(path: Path) -> list[dict[str, Any]]:
     return out
 
 
-def timing_from_rows(rows: NDArray[np.float64], columns: list[str]) -> dict[str, Any]:
-    """Lateness and work-time statistics read back from the tick records."""
-    late = rows[:, columns.index("lateness")] if "lateness" in columns else np.empty(0)
-    work = rows[:, columns.index("exec_time")] if "exec_time" in columns else np.empty(0)
-
-    def pct(v: NDArray[np.float64], q: float) -> float:
-        return float(np.percentile(v, q)) if v.size else 0.0
-
-    return {"ticks": int(rows.shape[0]),
-            "lateness_p50_s": pct(late, 50), "lateness_p99_s": pct(late, 99),
-            "lateness_max_s": float(late.max()) if late.size else 0.0,
-            "exec_p50_s": pct(work, 50), "exec_p99_s": pct(work, 99),
-            "exec_max_s": float(work.max()) if work.size else 0.0}
+def timing_from_blocks(blocks: Iterable[NDArray[np.float64]],
+                       columns: list[str]) -> dict[str, Any]:
+    """Lateness and work-time statistics read back from the tick records, streamed into
+    the loop's own fixed-bin histograms (sim/_timing.py); also the last tick number."""
+    late, work = DurationHistogram(), DurationHistogram()
+    i_late, i_work = columns.index("lateness"), columns.index("exec_time")
+    ticks, last = 0, 0
+    for block in blocks:
+        late.add_many(np.round(block[:, i_late] * 1e9).astype(np.int64))
+        work.add_many(np.round(block[:, i_work] * 1e9).astype(np.int64))
+        ticks += block.shape[0]
+        last = int(block[-1, 0]) if block.shape[0] else last
+    return {"ticks": ticks, "last_seq": last,
+            "lateness_p50_s": late.quantile_s(50), "lateness_p99_s": late.quantile_s(99),
+            "lateness_max_s": late.max_s,
+            "exec_p50_s": work.quantile_s(50), "exec_p99_s": work.quantile_s(99),
+            "exec_max_s": work.max_s, "timing_resolution_s": FINE_NS / 1e9}
 
 
 def recover_run(folder: Path) -> dict[str, Any]:
@@ -283,30 +343,25 @@ def recover_run(folder: Path) -> dict[str, Any]:
         # the run ended but its finish did not (disk full): finish it now, as it ended,
         # keeping its outcome and what went wrong the first time
         summary: dict[str, Any] = json.loads(summary_path.read_text())
-        if journal.exists():
-            rows = read_journal(journal, n)
-        else:
-            rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, n)
+        count = count_ticks(folder, n)
         earlier = (summary.get("record") or {}).get("problems") or []
         summary["finished_again_by"] = {
             "name": "plantrig", "version": __version__,
             "utc": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
             "earlier_problems": earlier}
-        finish_record(folder, rows, summary)
-        return {"finished_again": True, "recovered_rows": int(rows.shape[0]),
-                "lost_rows": summary["ticks_recorded"] - int(rows.shape[0]),
+        finish_record(folder, summary)
+        return {"finished_again": True, "recovered_rows": count,
+                "lost_rows": summary["ticks_recorded"] - count,
                 "ended": summary["ended"], "reason": summary["reason"],
                 "problems": summary["record"]["problems"]}
     tape_path, event_path = Path(start["tape"]), Path(start["event_tape"])
     if journal.exists() or not (folder / "ticks.npy").exists():
         from_journal = journal.stat().st_size // (n * 8) if journal.exists() else 0
         taken = salvage_rows(journal, tape_path, n)
-        rows = read_journal(journal, n)
         produced, torn_bytes = taken["produced_rows"], taken["torn_bytes_dropped"]
         from_tape = taken["tape_rows"]
     else:  # an older finish removed the journal after ticks.npy: start from that
-        rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, n)
-        from_journal, produced, torn_bytes, from_tape = rows.shape[0], None, 0, 0
+        from_journal, produced, torn_bytes, from_tape = count_ticks(folder, n), None, 0, 0
     events = read_events(folder / "events.jsonl")
     events_salvaged: list[dict[str, Any]] = []
     try:
@@ -318,7 +373,8 @@ def recover_run(folder: Path) -> dict[str, Any]:
         events_salvaged = [{"tick": tk, "time": t, "kind": k, "detail": d}
                            for tk, t, k, d in etape.read_new()]
         etape.close()
-    recovered = rows.shape[0]
+    recovered = count_ticks(folder, n)
+    timing = timing_from_blocks(tick_blocks(folder, n), columns)
     lost = None if produced is None else produced - recovered
     report = {
         "produced_rows": produced, "journal_rows": from_journal,
@@ -330,7 +386,7 @@ def recover_run(folder: Path) -> dict[str, Any]:
         "torn_bytes_dropped": int(torn_bytes), "tape_found": produced is not None,
         "events_from_tape": len(events_salvaged),
     }
-    last_tick = int(rows[-1, 0]) if recovered else 0
+    last_tick = int(timing.pop("last_seq"))
     note = {"tick": last_tick, "time": last_tick * tick, "kind": "recovered",
             "detail": "run did not end cleanly; rebuilt by plantrig recover; "
                       + (f"{lost} ticks lost" if lost is not None else
@@ -357,14 +413,14 @@ def recover_run(folder: Path) -> dict[str, Any]:
         "ended": INTERRUPTED, "reason": "the rig process died before the run ended "
                                         "(rebuilt by plantrig recover)",
         "ticks_planned": start["ticks_planned"], "ticks_recorded": recovered,
-        "timing": timing_from_rows(rows, columns),
+        "timing": timing,
         "recorder": json.loads(recorder_status.read_text()) if recorder_status.exists() else {},
         "link": {}, "events": counts, "model": start["model"],
         "columns": columns, "units": [c["unit"] for c in info],
         "recovery": report,
     }
     recorder_status.unlink(missing_ok=True)
-    finish_record(folder, rows, summary)
+    finish_record(folder, summary)
     report.update(ended=summary["ended"], reason=summary["reason"],
                   problems=summary["record"]["problems"])
     for path in (tape_path, tape_path.with_suffix(".json"), event_path):
@@ -383,10 +439,18 @@ def _finished(folder: Path) -> bool:
     return not (summary.get("record") or {}).get("problems")
 
 
-def _save_npy(path: Path, array: NDArray[Any]) -> None:
+def _save_npy(path: Path, blocks: Iterable[NDArray[np.float64]], columns: list[str],
+              count: int) -> None:
+    """Write ``ticks.npy`` (one named float64 field per column) by streaming: a tick
+    record's bytes are exactly one element of that structured array."""
+    dtype = np.dtype([(name, np.float64) for name in columns])
     tmp = path.with_name(f".{path.name}.tmp")
     with open(tmp, "wb") as f:
-        np.save(f, array)
+        np.lib.format.write_array_header_2_0(f, {
+            "descr": np.lib.format.dtype_to_descr(dtype), "fortran_order": False,
+            "shape": (count,)})
+        for block in blocks:
+            f.write(np.ascontiguousarray(block).tobytes())
         f.flush()
         os.fsync(f.fileno())
     os.replace(tmp, path)

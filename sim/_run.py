@@ -21,8 +21,8 @@ from plantrig.sim._manifest import write_atomic
 from plantrig.sim._outcome import COMPLETED, EXIT_CODES, EXIT_VERDICT, FAULT
 from plantrig.sim._plant import Plant, from_state_space_object, make_stepper
 from plantrig.sim._preflight import RecordError, preflight
-from plantrig.sim._recorder import read_journal, start_recorder
-from plantrig.sim._records import finish_record, salvage_rows, start_record
+from plantrig.sim._recorder import start_recorder
+from plantrig.sim._records import count_ticks, finish_record, salvage_rows, start_record
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._scenario import Scenario
 from plantrig.sim._signals import SignalStop, stop_on_signals
@@ -117,13 +117,15 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                   folder: Path | None = None, commands: Any = None,
                   on_tapes_ready: Any = None,
                   scenario: Scenario | None = None,
-                  about: dict[str, Any] | None = None) -> tuple[Path, RunOutcome, dict[str, Any]]:
+                  about: dict[str, Any] | None = None,
+                  npy: bool = False) -> tuple[Path, RunOutcome, dict[str, Any]]:
     """Run ``rig`` with the recorder in its own process; write the run folder.
 
     The folder holds the rig file as given (and an ODE model's module), the tick data
-    (``ticks.npy``, one named float64 field per column, and the self-describing
-    ``run.h5``), ``events.jsonl``, ``summary.json`` with the model summary and timing
-    statistics, and ``manifest.json`` (docs/records.md). ``commands`` is a
+    once (the self-describing ``run.h5``; ``ticks.npy``, one named float64 field per
+    column, where h5py is missing or as well with ``npy``), ``events.jsonl``,
+    ``summary.json`` with the model summary and timing statistics, and
+    ``manifest.json`` (docs/records.md). ``commands`` is a
     queue of operator Commands; ``on_tapes_ready(tape_path, event_tape_path)`` is called
     once both tapes exist (to start a dashboard on them). With a ``scenario`` the folder
     also holds it (``scenario.toml``) and its judged criteria (``verdicts.json``), and
@@ -139,15 +141,15 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                                realtime=realtime, link=link, actuator_chain=actuator_chain,
                                sensor_chain=sensor_chain, commands=commands,
                                on_tapes_ready=on_tapes_ready, scenario=scenario,
-                               about=about)
+                               about=about, npy=npy)
 
 
 def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bool | None,
                     link: ControllerLink | None, actuator_chain: SignalChain | None,
                     sensor_chain: SignalChain | None, commands: Any, on_tapes_ready: Any,
                     scenario: Scenario | None,
-                    about: dict[str, Any] | None = None) -> tuple[Path, RunOutcome,
-                                                                  dict[str, Any]]:
+                    about: dict[str, Any] | None = None,
+                    npy: bool = False) -> tuple[Path, RunOutcome, dict[str, Any]]:
     columns, units = tick_columns(rig)
     copy_sources(rig, scenario, folder)  # rig.toml points at its module copy
     (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
@@ -188,7 +190,7 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
         write_atomic(folder / "events.jsonl", "".join(
             json.dumps({"tick": e.tick, "time": e.time, "kind": e.kind, "detail": e.detail})
             + "\n" for e in outcome.events).encode())
-    rows = read_journal(journal, len(columns))
+    recorded = count_ticks(folder, len(columns))
     recorder_status = json.loads(status.read_text()) if status.exists() else {}
     status.unlink(missing_ok=True)
     model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
@@ -201,7 +203,7 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
         "mode": "realtime" if engine.realtime else "fast",
         "ended": outcome.ended, "reason": outcome.reason,
         "ticks_planned": rig.n_ticks, "ticks_run": outcome.ticks,
-        "ticks_recorded": int(rows.shape[0]),
+        "ticks_recorded": recorded,
         "acceptance": [r.as_dict() for r in outcome.rules],
         "timing": outcome.timing(rig.tick),
         "recorder": recorder_status,
@@ -213,14 +215,17 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
     }
     verdicts_passed = True
     if scenario is not None:
+        rows = np.memmap(journal, dtype=np.float64, mode="r", shape=(recorded, len(columns))) \
+            if recorded else np.zeros((0, len(columns)))   # read in place, not copied
         verdicts = evaluate(scenario, columns, units, rows, outcome.events, rig.tick)
+        del rows
         write_verdicts(folder, verdicts)
         summary["verdicts"] = [v.as_dict() for v in verdicts]
         verdicts_passed = all(v.passed for v in verdicts)
     summary["exit_code"] = outcome.exit_code if outcome.ended != COMPLETED or verdicts_passed \
         else EXIT_VERDICT
     try:
-        finish_record(folder, rows, summary)  # summary.json, ticks.npy, run.h5, manifest
+        finish_record(folder, summary, npy=npy)  # summary.json, run.h5, manifest
     except RecordError as exc:
         summary["record"]["problems"].append(str(exc))
     if summary["record"]["problems"] and summary["exit_code"] == EXIT_CODES[COMPLETED]:

@@ -9,6 +9,9 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+from numpy.typing import NDArray
+
 FINE_NS = 1_000                  # 1 us bins ...
 FINE_BINS = 10_000               # ... up to 10 ms
 COARSE_NS = 1_000_000            # then 1 ms bins ...
@@ -43,6 +46,20 @@ class DurationHistogram:
         if ns > self.max_ns:
             self.max_ns = ns
         self.count += 1
+
+    def add_many(self, ns: NDArray[np.int64]) -> None:
+        """Count many durations at once (reading a record back)."""
+        ns = np.maximum(np.asarray(ns, dtype=np.int64), 0)
+        if not ns.size:
+            return
+        fine = ns[ns < FINE_LIMIT_NS] // FINE_NS
+        coarse = ns[(ns >= FINE_LIMIT_NS) & (ns < COARSE_LIMIT_NS)] // COARSE_NS
+        self.fine = (np.asarray(self.fine) + np.bincount(fine, minlength=FINE_BINS)).tolist()
+        self.coarse = (np.asarray(self.coarse)
+                       + np.bincount(coarse, minlength=COARSE_BINS)).tolist()
+        self.beyond += int(np.count_nonzero(ns >= COARSE_LIMIT_NS))
+        self.max_ns = max(self.max_ns, int(ns.max()))
+        self.count += int(ns.size)
 
     def quantile_s(self, q: float) -> float:
         """The ``q`` percentile (0-100) in seconds; 0.0 when nothing was counted."""

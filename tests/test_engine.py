@@ -22,6 +22,7 @@ from plantrig.sim import (
     VirtualClock,
     build_rig,
     load_rig,
+    read_run,
     run_to_folder,
     simulate,
     tick_columns,
@@ -242,8 +243,8 @@ def test_realtime_run_records_every_tick_with_lateness(tmp_path: Path) -> None:
     rig_path.write_text(text)
     folder, outcome, summary = run_to_folder(load_rig(rig_path), tmp_path / "runs",
                                              realtime=True)
-    ticks = np.load(folder / "ticks.npy")
-    assert len(ticks) == 2000 and summary["ticks_recorded"] == 2000
+    ticks = read_run(folder)
+    assert len(ticks.rows) == 2000 and summary["ticks_recorded"] == 2000
     np.testing.assert_array_equal(ticks["seq"], np.arange(2000))
     timing = summary["timing"]
     for key in ("lateness_p50_s", "lateness_p99_s", "lateness_max_s", "overruns"):
@@ -266,8 +267,8 @@ def test_cli_run_writes_run_folder(tmp_path: Path) -> None:
     assert (folder / "rig.toml").read_text() == CONVEYOR.read_text()
     summary = json.loads((folder / "summary.json").read_text())
     assert summary["ended"] == "completed" and summary["ticks_recorded"] == 3000
-    ticks = np.load(folder / "ticks.npy")
+    ticks = read_run(folder)
     # the run folder holds the same rows as an in-memory fast run
-    assert ticks.tobytes() == simulate(load_rig(CONVEYOR)).rows.tobytes()
+    assert ticks.rows.tobytes() == simulate(load_rig(CONVEYOR)).rows.tobytes()
     events = [json.loads(x) for x in (folder / "events.jsonl").read_text().splitlines()]
     assert events[-1]["kind"] == "run_end"

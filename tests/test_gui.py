@@ -50,6 +50,7 @@ from plantrig.sim import (
     TapeReader,
     load_rig,
     load_scenario,
+    read_run,
     run_to_folder,
     tick_columns,
 )
@@ -357,8 +358,8 @@ def live_case(tmp_path: Path) -> None:
     assert kinds.count("operator_stop") == 1
     phases = [e["detail"] for e in events if e["kind"] == "phase"]
     assert MOMENT_PRESETS[1] in phases and "after the E-stop" in phases
-    ticks = np.load(folder / "ticks.npy")
-    assert np.array_equal(ticks["t"], np.arange(len(ticks)) * rig.tick)   # row k is tick k
+    ticks = read_run(folder)
+    assert np.array_equal(ticks["t"], np.arange(len(ticks.rows)) * rig.tick)  # row k: tick k
     k_stop = next(e["tick"] for e in events if e["kind"] == "estop")
     safe = rig.inputs[0].safe
     assert np.any(ticks["u:voltage"][:k_stop] != safe)      # the loop was driving...
@@ -391,11 +392,11 @@ def replay_case(tmp_path: Path) -> None:
         replay.seek(1.0)
         for _ in range(3):
             replay.frame()
-        ticks = np.load(folder / "ticks.npy")
-        row = ticks[ticks["t"] <= 1.0][-1]
-        assert dpg.get_value(T + "value.y:belt_speed") == fmt(row["y:belt_speed"])
+        ticks = read_run(folder)
+        last = int(np.flatnonzero(ticks["t"] <= 1.0)[-1])
+        assert dpg.get_value(T + "value.y:belt_speed") == fmt(ticks["y:belt_speed"][last])
         x = np.asarray(dpg.get_value(T + "plot.0.y:belt_speed")[0])
-        assert x.max() == row["t"] and x.min() >= 1.0 - replay.view.span
+        assert x.max() == ticks["t"][last] and x.min() >= 1.0 - replay.view.span
         assert not dpg.does_item_exist(T + "estop")            # no controls in replay
         names = [c.name for c in replay.model.groups.group("trip")]
         i = names.index(name)
@@ -464,7 +465,7 @@ def test_killing_the_dashboard_mid_run_loses_no_tick(xvfb, tmp_path):
     assert process.process.exitcode == -signal.SIGKILL
     assert outcome.ended == "stopped" and outcome.ticks > seen["rows_at_kill"] + 500
     assert summary["ticks_recorded"] == outcome.ticks
-    ticks = np.load(folder / "ticks.npy")
+    ticks = read_run(folder)
     assert np.array_equal(ticks["t"], np.arange(outcome.ticks) * rig.tick)
     deadline = time.monotonic() + GUARD_S
     while not exits and time.monotonic() < deadline:
@@ -504,7 +505,7 @@ def test_cli_refuses_without_display_or_run_folder(tmp_path, monkeypatch, capsys
     assert cli_main(["replay", str(tmp_path / "missing")]) == 2
     assert "no such folder" in capsys.readouterr().err
     assert cli_main(["replay", str(tmp_path)]) == 2
-    assert "no ticks.npy" in capsys.readouterr().err
+    assert "no rig.toml" in capsys.readouterr().err
 
 
 def test_check_does_not_load_dearpygui():

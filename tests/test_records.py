@@ -91,7 +91,9 @@ def test_reader_works_from_h5_npy_or_journal(conveyor_run: Path, tmp_path: Path)
     assert from_h5.rows.tobytes() == memory.rows.tobytes()
     assert from_h5.unit("y:belt_speed") == "m/s" and from_h5.events[-1]["kind"] == "run_end"
     np.testing.assert_array_equal(from_h5["u:voltage"], memory["u:voltage"])
-    no_h5 = copy_of(conveyor_run, tmp_path)
+    with_npy, _, _ = run_to_folder(load_rig(CONVEYOR), tmp_path / "npy", realtime=False,
+                                   npy=True)           # ticks.npy on request, beside run.h5
+    no_h5 = copy_of(with_npy, tmp_path)
     (no_h5 / "run.h5").unlink()
     from_npy = read_run(no_h5)
     assert from_npy.source == "ticks.npy" and from_npy.rows.tobytes() == memory.rows.tobytes()
@@ -110,19 +112,20 @@ def test_manifest_catches_one_changed_byte_missing_and_extra(conveyor_run: Path,
     folder = copy_of(conveyor_run, tmp_path)
     assert main(["verify", str(folder)]) == 0
     listed = json.loads((folder / "manifest.json").read_text())["files"]
-    assert set(listed) >= {"run.h5", "ticks.npy", "events.jsonl", "summary.json", "rig.toml",
+    assert set(listed) >= {"run.h5", "events.jsonl", "summary.json", "rig.toml",
                            "run_start.json"}
-    data = bytearray((folder / "ticks.npy").read_bytes())
+    assert "ticks.npy" not in listed                  # one copy of the ticks: run.h5
+    data = bytearray((folder / "run.h5").read_bytes())
     data[len(data) // 2] ^= 0x01                      # one bit of one byte
-    (folder / "ticks.npy").write_bytes(bytes(data))
+    (folder / "run.h5").write_bytes(bytes(data))
     capsys.readouterr()
     assert main(["verify", str(folder)]) == 1
-    assert "changed: ticks.npy" in capsys.readouterr().out
+    assert "changed: run.h5" in capsys.readouterr().out
     (folder / "events.jsonl").unlink()
     (folder / "notes.txt").write_text("added later")
     result = verify_folder(folder)
     assert (result.changed, result.missing, result.extra) == (
-        ["ticks.npy"], ["events.jsonl"], ["notes.txt"])
+        ["run.h5"], ["events.jsonl"], ["notes.txt"])
     assert not result.ok
 
 
@@ -210,7 +213,7 @@ def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> 
     assert "FAIL; max; measured 2.3 m/s; limit 2 m/s; detail at 0.61 s" in page
     assert re.search(r"""src=['"](?!data:image/png;base64,)""", page) is None
     assert page.count("data:image/png;base64,") >= 4
-    assert json.loads((folder / "manifest.json").read_text())["files"]["ticks.npy"][
+    assert json.loads((folder / "manifest.json").read_text())["files"]["run.h5"][
         "sha256"] in page
     assert main(["verify", str(folder)]) == 0
     subprocess.run(["pdftoppm", "-r", "50", "-png", str(folder / "derived" / "report.pdf"),

@@ -357,10 +357,10 @@ def test_a_rewritten_manifest_field_is_caught(run_copy: Path, changes: dict[str,
 def test_file_sizes_and_entries_are_compared(run_copy: Path,
                                              capsys: pytest.CaptureFixture[str]) -> None:
     files = json.loads((run_copy / "manifest.json").read_text())["files"]
-    reseal(run_copy, files={**files, "ticks.npy": {**files["ticks.npy"],
-                                                   "bytes": files["ticks.npy"]["bytes"] + 1}})
+    reseal(run_copy, files={**files, "run.h5": {**files["run.h5"],
+                                                "bytes": files["run.h5"]["bytes"] + 1}})
     result = verify_folder(run_copy)
-    assert result.changed == ["ticks.npy"] and not result.ok
+    assert result.changed == ["run.h5"] and not result.ok
     for entry, message in (({"sha256": "AB" * 32, "bytes": 1}, "lower-case hex"),
                            ({"sha256": "ab" * 32, "bytes": -1}, "is not a size"),
                            ({"sha256": "ab" * 32, "bytes": True}, "is not a size"),

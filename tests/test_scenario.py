@@ -22,6 +22,7 @@ from plantrig.sim import (
     evaluate,
     load_rig,
     load_scenario,
+    read_run,
     run_to_folder,
     simulate,
 )
@@ -129,7 +130,7 @@ def test_verdicts_match_step_info_on_a_recorded_run(tmp_path: Path) -> None:
     measured = {v["name"]: v["measured"] for v in json.loads(
         (folder / "verdicts.json").read_text())}
     assert summary["verdicts"][0]["name"] == "rise" and (folder / "scenario.toml").exists()
-    ticks = np.load(folder / "ticks.npy")
+    ticks = read_run(folder)
     t, y = ticks["t"], ticks["y:belt_speed"]
     w = (t >= 0.2 - DT / 20) & (t <= 1.6 + 1e-9)
     info = control.step_info(y[w], T=t[w] - 0.2, yfinal=0.8, SettlingTimeThreshold=0.02,

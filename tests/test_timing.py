@@ -34,3 +34,14 @@ def test_memory_does_not_grow_with_the_count() -> None:
         hist.add(v)
     assert (len(hist.fine), len(hist.coarse)) == sizes
     assert DurationHistogram().quantile_s(50) == 0.0
+
+
+def test_counting_many_at_once_equals_one_by_one() -> None:
+    values = np.random.default_rng(3).lognormal(0, 2.0, 5000).astype(np.int64) * 997
+    one, many = DurationHistogram(), DurationHistogram()
+    for v in values.tolist():
+        one.add(v)
+    many.add_many(values[:1234])
+    many.add_many(values[1234:])
+    assert (one.fine, one.coarse, one.beyond, one.count, one.max_ns) == \
+        (many.fine, many.coarse, many.beyond, many.count, many.max_ns)
