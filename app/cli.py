@@ -15,6 +15,9 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import CAUTION, REALTIME_BANNER, __version__
+from plantrig._campaign_cli import add_parser as add_campaign_command
+from plantrig._catalogue import add_parser as add_runs_command
+from plantrig._catalogue import index_run
 from plantrig._compare_cli import add_parser as add_compare_command
 from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
@@ -181,6 +184,9 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(f"scenario: {scenario.name}")
         print("\n".join(verdict_lines(summary["verdicts"])))
     code = int(summary["exit_code"])
+    index_run(out, folder, summary)
+    if args.junit and not _write_junit(args.junit, rig.name, scenario, summary) and not code:
+        code = EXIT_FAULT   # the run passed, but CI would not see it
     print(f"exit code {code}: {EXIT_MEANINGS[code]}")
     if dashboard is not None:
         if summary["reason"].startswith("signal "):
@@ -188,6 +194,24 @@ def cmd_run(args: argparse.Namespace) -> int:
         else:
             dashboard.after_run(folder)
     return code
+
+
+def _write_junit(path: str, rig_name: str, scenario: Any, summary: dict[str, Any]) -> bool:
+    """run --junit: this rehearsal as one JUnit test case (the form campaigns write)."""
+    from plantrig._junit import judged_case, write_junit
+    name = scenario.name if scenario is not None else rig_name
+    failed_rules = [r for r in summary.get("acceptance", []) if r["passed"] is False]
+    case = judged_case(rig_name, f"{rig_name}.{name}", name, summary["timing"]["wall_s"],
+                       summary["ended"], summary["reason"], summary.get("verdicts", []),
+                       output="\n".join(f"acceptance FAILED {r['rule']}: {r['measured']}"
+                                        for r in failed_rules))
+    try:
+        write_junit(Path(path), f"plantrig run {rig_name}", [case])
+    except OSError as exc:
+        print(f"error: cannot write {path}: {exc.strerror}", file=sys.stderr)
+        return False
+    print(f"junit: {path}")
+    return True
 
 
 def _open_dashboard(rig: Any) -> Any:
@@ -254,6 +278,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scenario", metavar="FILE",
                    help="rehearse a scenario file (TOML): its steps fire during the run, "
                         "its verdicts are judged after it; exit code 3 if one fails")
+    p.add_argument("--junit", metavar="OUT.xml",
+                   help="also write the result as JUnit XML (one test case), as campaigns do")
     add_override_options(p)
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)
@@ -270,6 +296,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_replay)
     add_link_commands(sub, _load, _print_outcome)
     add_compare_command(sub)
+    add_campaign_command(sub)
+    add_runs_command(sub)
     add_rerun_command(sub, _print_outcome)
     return parser
 

@@ -1,0 +1,173 @@
+"""Running a campaign's cases on Dask (dask.distributed): an embedded LocalCluster of
+process workers by default, or an existing scheduler by its address; the same code
+path in both. One case is one task; each finished row is appended to the campaign's
+journal (cases.jsonl) as it arrives, so an interrupted campaign resumes with only the
+cases that are missing.
+
+A worker that dies mid-case is the scheduler's to handle: it runs the case again on
+another worker (up to its ``allowed-failures``). A case that still has no row after
+that is left missing, and a later ``--resume`` runs it again.
+
+Dask is imported only here, and only when a campaign runs, so ``plantrig --help`` and
+``plantrig check`` stay light.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import os
+import sys
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from plantrig._campaign_case import ERROR, FAILED, run_case
+from plantrig._campaign_out import read_journal
+from plantrig.sim._campaign_file import Case
+
+SHOWN_FAILURES = 20
+CLOSE_TIMEOUT_S = 20
+# numeric libraries in a worker stay single-threaded: one case per core
+SINGLE_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+@dataclass
+class Session:
+    """What one `plantrig campaign` invocation did."""
+
+    where: str = ""
+    dashboard: str = ""
+    started_cases: int = 0
+    finished_cases: int = 0
+    lost: list[str] = field(default_factory=list)     # cases with no row (worker deaths)
+    interrupted: bool = False
+    cluster_start_s: float = 0.0
+    wall_s: float = 0.0
+    case_ticks: int = 0
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"where": self.where, "dashboard": self.dashboard,
+                "cases_run": self.finished_cases, "cases_lost": self.lost,
+                "interrupted": self.interrupted,
+                "cluster_start_s": round(self.cluster_start_s, 3),
+                "wall_s": round(self.wall_s, 3), "case_ticks": self.case_ticks,
+                "case_ticks_per_s": round(self.case_ticks / self.wall_s, 1)
+                if self.wall_s > 0 else None}
+
+
+class SchedulerUnreachable(RuntimeError):
+    """The scheduler named by --cluster did not answer."""
+
+
+def run_cases(cases: list[Case], journal: Path, *, cluster: str | None, workers: int,
+              progress: bool = True) -> Session:
+    """Run every case of ``cases`` without a row in ``journal``; append each row."""
+    done = read_journal(journal)
+    todo = [c for c in cases if c.case_id not in done]
+    session = Session()
+    if not todo:
+        return session
+    from dask.distributed import Client, LocalCluster, as_completed
+
+    for name in SINGLE_THREAD_ENV:    # inherited by the spawned local workers
+        os.environ.setdefault(name, "1")
+    t0 = time.perf_counter()
+    local = None
+    try:
+        if cluster:
+            try:
+                client = Client(cluster, timeout="15s")
+            except (OSError, TimeoutError) as exc:
+                raise SchedulerUnreachable(f"cannot reach the Dask scheduler at {cluster}: "
+                                           f"{exc}") from None
+            info = client.scheduler_info()
+            session.where = f"Dask scheduler {cluster} ({len(info.get('workers', {}))} workers)"
+            if "dashboard" in info.get("services", {}):
+                session.dashboard = client.dashboard_link
+        else:
+            local = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                 dashboard_address=None, silence_logs=logging.ERROR)
+            client = Client(local)
+            session.where = f"local Dask cluster, {workers} worker process(es)"
+    except KeyboardInterrupt:
+        session.interrupted = True
+        if local is not None:
+            local.close(timeout=CLOSE_TIMEOUT_S)
+        return session
+    session.cluster_start_s = time.perf_counter() - t0
+    print(f"running {len(todo)} of {len(cases)} cases on {session.where}", file=sys.stderr)
+    if session.dashboard:
+        print(f"dask dashboard: {session.dashboard}", file=sys.stderr)
+    token = uuid.uuid4().hex[:8]
+    futures: list[Any] = []
+    bar = _progress(len(cases), len(done), progress)
+    counts = {FAILED: sum(r["status"] == FAILED for r in done.values()),
+              ERROR: sum(r["status"] == ERROR for r in done.values())}
+    shown = 0
+    threads = _threads(client)
+    t1 = time.perf_counter()
+    try:
+        futures = [client.submit(run_case, case, key=f"plantrig-case-{case.case_id}-{token}",
+                                 pure=False, priority=-case.index) for case in todo]
+        session.started_cases = len(futures)
+        by_key = {f.key: case for f, case in zip(futures, todo, strict=True)}
+        with open(journal, "a", encoding="utf-8") as out:
+            for future in as_completed(futures):
+                case = by_key[future.key]
+                if future.status != "finished":   # the scheduler gave up (workers died)
+                    session.lost.append(case.case_id)
+                    bar.write(f"LOST   case {case.case_id} ({case.rig}/{case.scenario} "
+                              f"{case.variation}): {future.exception()!r}; run --resume")
+                    continue
+                row = future.result()
+                out.write(json.dumps(row) + "\n")
+                out.flush()
+                os.fsync(out.fileno())
+                session.finished_cases += 1
+                session.case_ticks += int(row["ticks"])
+                if row["status"] in counts:
+                    counts[row["status"]] += 1
+                    if shown < SHOWN_FAILURES:
+                        shown += 1
+                        what = row["error"] or "; ".join(
+                            [f"ended {row['outcome']}: {row['reason']}"]
+                            * (row["outcome"] != "completed")
+                            + [f"FAIL {v['name']}" for v in row["verdicts"] if not v["passed"]])
+                        bar.write(f"{row['status'].upper():<6} case {row['case_id']} "
+                                  f"({row['rig']}/{row['scenario'] or '-'} "
+                                  f"{row['variation']}): {what}")
+                running = min(len(futures) - session.finished_cases - len(session.lost),
+                              threads)
+                bar.set_postfix_str(f"failed {counts[FAILED]}, errors {counts[ERROR]}, "
+                                    f"running {running}")
+                bar.update(1)
+    except KeyboardInterrupt:
+        session.interrupted = True
+    finally:
+        session.wall_s = time.perf_counter() - t1
+        bar.close()
+        with contextlib.suppress(Exception, KeyboardInterrupt):
+            if futures:
+                client.cancel(futures)
+            client.close(timeout=CLOSE_TIMEOUT_S)
+        with contextlib.suppress(Exception, KeyboardInterrupt):
+            if local is not None:
+                local.close(timeout=CLOSE_TIMEOUT_S)
+    return session
+
+
+def _threads(client: Any) -> int:
+    try:
+        return sum(w.get("nthreads", 1) for w in client.scheduler_info()["workers"].values())
+    except Exception:  # progress display only
+        return 0
+
+
+def _progress(total: int, initial: int, enabled: bool) -> Any:
+    from tqdm import tqdm
+    return tqdm(total=total, initial=initial, unit="case", file=sys.stderr,
+                disable=not enabled, dynamic_ncols=True, smoothing=0.1)
