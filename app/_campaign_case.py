@@ -18,6 +18,8 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
+import tomli_w
+
 from plantrig._compose import build_chains
 from plantrig.sim import Rig, RigFileError, Scenario, evaluate, load_rig_with_overrides, simulate
 from plantrig.sim._campaign_file import Case, _with_verdicts
@@ -28,11 +30,13 @@ from plantrig.sim._scenario import build_scenario
 PASSED, FAILED, ERROR = "passed", "failed", "error"
 
 
-def build_case(case: Case) -> tuple[Rig, Scenario | None, Any, Any]:
+def build_case(case: Case, scenario_copy: Path | None = None
+               ) -> tuple[Rig, Scenario | None, Any, Any]:
     """(rig, scenario, actuator chain, sensor chain) for ``case``, exactly as
     ``plantrig run RIG --scenario FILE --set ...`` composes them. A rig whose controller
     is on a link runs with its [link.controller] law built in (a campaign runs fast,
-    with no controller hardware)."""
+    with no controller hardware). With ``scenario_copy`` a varied scenario is written
+    there first, so a kept run folder holds the scenario that really ran."""
     for file, sha in ((case.rig_file, case.rig_sha256), (case.scenario_file, case.scenario_sha256)):
         if file and hashlib.sha256(Path(file).read_bytes()).hexdigest() != sha:
             raise RuntimeError(f"{file} on this worker differs from the campaign's copy "
@@ -49,6 +53,10 @@ def build_case(case: Case) -> tuple[Rig, Scenario | None, Any, Any]:
         path = Path(case.scenario_file)
         text = path.read_text(encoding="utf-8")
         doc = apply_overrides(tomllib.loads(text), case.scenario_set, str(path))
+        if case.scenario_set and scenario_copy is not None:
+            text = tomli_w.dumps(doc)
+            scenario_copy.write_text(text, encoding="utf-8")
+            path = scenario_copy
         scenario = build_scenario(_with_verdicts(doc, case.verdicts), path, rig, text)
     elif case.verdicts:
         scenario = build_scenario(_with_verdicts({"scenario": {"name": "campaign"}},

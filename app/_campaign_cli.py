@@ -197,7 +197,8 @@ def _keep_folders(campaign: Campaign, cases: list[Case], rows: list[dict[str, An
             continue
         shutil.rmtree(target, ignore_errors=True)   # left unfinished by an interruption
         target.mkdir(parents=True)
-        rig, scenario, actuators, sensors = build_case(by_id[row["case_id"]])
+        rig, scenario, actuators, sensors = build_case(
+            by_id[row["case_id"]], scenario_copy=target.parent / f"{row['case_id']}.scenario.toml")
         _, outcome, summary = run_to_folder(rig, target.parent, folder=target, realtime=False,
                                             actuator_chain=actuators, sensor_chain=sensors,
                                             scenario=scenario)

@@ -326,7 +326,8 @@ def _key_ok(c: _Checker, here: str, key: str, value: Any, rig_doc: dict[str, Any
             apply_overrides(doc, [f"{inner}={toml_literal(value)}"], file)
         except RigFileError as exc:
             for issue in exc.issues:
-                c.add(here, f"{issue.message}" + (f" in {file}" if file != "rig" else ""))
+                reason = issue.message.rsplit(" (override ", 1)[0]   # ours, not the user's
+                c.add(here, reason + (f" in {file}" if file != "rig" else ""))
             ok = False
     return ok
 
