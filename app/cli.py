@@ -153,7 +153,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     except OSError as exc:
         print(f"error: cannot create run folder parent {out}: {exc.strerror}", file=sys.stderr)
         return EXIT_USAGE
-    dashboard = _open_dashboard(rig) if args.gui else None
+    dashboard = _open_dashboard(rig, out) if args.gui else None
     if args.gui and dashboard is None:
         return EXIT_USAGE
     dashboard_args = {"commands": dashboard.commands,
@@ -214,7 +214,7 @@ def _write_junit(path: str, rig_name: str, scenario: Any, summary: dict[str, Any
     return True
 
 
-def _open_dashboard(rig: Any) -> Any:
+def _open_dashboard(rig: Any, out: Path) -> Any:
     """The dashboard for ``run --gui``, imported only then; None after a message."""
     try:
         from plantrig.gui import NO_DISPLAY, LiveDashboard, display_available
@@ -224,7 +224,7 @@ def _open_dashboard(rig: Any) -> Any:
     if not display_available():
         print(f"error: {NO_DISPLAY}", file=sys.stderr)
         return None
-    return LiveDashboard(rig.path)
+    return LiveDashboard(rig.path, runs=out)
 
 
 def cmd_replay(args: argparse.Namespace) -> int:

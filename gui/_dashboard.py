@@ -20,14 +20,23 @@ from plantrig.gui._feed import LiveFeed
 from plantrig.gui._model import DashboardModel
 from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
+from plantrig.gui._runinfo import (
+    outcome_lines,
+    pending_verdicts,
+    progress_lines,
+    read_summary,
+    scenario_plan,
+    watchdog_of,
+)
 from plantrig.gui._store import LiveStore
 from plantrig.gui._view import DashboardView
-from plantrig.sim import load_rig_as_data
+from plantrig.sim import Rig, RigFileError, load_rig_as_data
 
 MAX_SPAN_S = 30.0
 MAX_KEEP_ROWS = 200_000
 DEFAULT_SCREENSHOT_FRAME = 60
 IDLE_RATIO = 1.0
+SUMMARY_EVERY = 10             # frames between looks for summary.json once the run ended
 
 
 class FramePacer:
@@ -55,42 +64,76 @@ class FramePacer:
         self.frame_start = time.perf_counter()
 
 
+def run_rig(rig_path: str | Path, folder: Path | None) -> Rig:
+    """The rig as it runs: the run folder's rig.toml (overrides applied) when there is
+    one, else the rig file; read as data, never importing a model module."""
+    if folder is not None and (folder / "rig.toml").is_file():
+        try:
+            return load_rig_as_data(folder / "rig.toml")
+        except RigFileError:
+            pass
+    return load_rig_as_data(rig_path)
+
+
 def prepare_renderer() -> None:
     """Mesa's software renderer starts one thread per core unless told otherwise."""
     os.environ["LP_NUM_THREADS"] = "1"
 
 
 class Dashboard:
-    """One live dashboard window; ``frame()`` reads what is new and draws once."""
+    """One live dashboard window; ``frame()`` reads what is new and draws once.
+
+    ``folder`` is the run folder being written (found by the launcher): it gives the
+    rig as it runs, the scenario's plan and, once the run has ended, its outcome and
+    verdicts from summary.json. Without it the window still works, with less to say.
+    """
 
     def __init__(self, tape_path: str | Path, event_tape_path: str | Path | None,
                  rig_path: str | Path, command_queue: Any | None, *,
-                 frame_cap_hz: float = 30.0, span_s: float = 10.0) -> None:
+                 frame_cap_hz: float = 30.0, span_s: float = 10.0,
+                 folder: str | Path | None = None) -> None:
         prepare_renderer()
-        rig = load_rig_as_data(rig_path)  # names and ranges; the run owns the model
+        self.folder = Path(folder) if folder is not None else None
+        rig = run_rig(rig_path, self.folder)   # names, ranges, limits; the run owns the model
         keep = int(min(MAX_KEEP_ROWS, math.ceil(MAX_SPAN_S / rig.tick) + 16))
         self.feed = LiveFeed(tape_path, event_tape_path, keep)
         groups = ColumnGroups(self.feed.columns, self.feed.units, rig)
         self.store = LiveStore(len(groups.columns), keep, groups.index("t"))
         self.model = DashboardModel(groups, rig.tick, has_link=rig.controller.kind == "external",
-                                    limits=getattr(rig, "limits", ()))
+                                    limits=getattr(rig, "limits", ()),
+                                    watchdog_s=watchdog_of(rig))
         self.operator = Operator(command_queue)
         self.rig = rig
+        self.plan, self.plan_note = scenario_plan(self.folder, rig)
+        self.summary: dict[str, Any] | None = None
+        run_id = self.folder.name if self.folder is not None else rig.name
         self.view = DashboardView(
-            title=f"plantrig dashboard: {rig.name}", groups=groups,
+            title=f"plantrig dashboard: {run_id}", groups=groups,
             specs=plot_specs(groups, rig), operator=self.operator,
             fault_kinds=fault_catalogue(),
             fault_targets=lambda choice: fault_targets(choice, rig), span_s=span_s,
             max_span_s=min(MAX_SPAN_S, keep * rig.tick), frame_cap_hz=frame_cap_hz)
         self.frames = 0
 
-    def run_state(self) -> str:
-        log = self.model.log
-        if log.ended is not None:
-            return f"RUN ENDED ({log.ended}) | {self.rig.name}"
-        if self.feed.ended:
-            return f"RUN ENDED | {self.rig.name}"
-        return f"RUNNING | {self.rig.name}"
+    def ended(self) -> str | None:
+        """The run's outcome once it has ended (None while it runs)."""
+        s = self.summary
+        if s is not None:
+            return f"{s.get('ended')}, exit code {s.get('exit_code')}: {s.get('reason', '')}"
+        if self.model.log.ended is not None:
+            return self.model.log.ended
+        return "the tape ended" if self.feed.ended else None
+
+    def run_lines(self) -> list[tuple[str, bool | None]]:
+        lines: list[tuple[str, bool | None]] = [
+            (text, None) for text in progress_lines(self.plan, self.model.log)]
+        if self.plan_note:
+            lines.append((self.plan_note, False))
+        if self.summary is not None:
+            return lines + outcome_lines(self.summary)
+        if self.ended() is not None:
+            lines.append(("the run has ended; waiting for its summary", None))
+        return lines + pending_verdicts(self.plan)
 
     def frame(self) -> bool:
         """Read new rows and events, draw one frame; False once the window is closed."""
@@ -98,10 +141,18 @@ class Dashboard:
         self.store.append(rows)
         self.model.count_rows(rows)
         self.model.log.add(events)
+        self.operator.hear(events)
+        ended = self.ended()
+        if ended is not None:
+            self.operator.run_ended(ended)
+            if self.summary is None and self.frames % SUMMARY_EVERY == 0:
+                self.summary = read_summary(self.folder)
+                ended = self.ended()
         snap = self.model.snapshot(self.store, self.store.t_last, self.view.span,
-                                   run_state=self.run_state())
+                                   ended=ended)
         lost = self.feed.lost
-        self.view.show(snap, extra_status=f"rows not displayed {lost}" if lost else "")
+        self.view.show(snap, extra_status=f"rows not displayed {lost}" if lost else "",
+                       run_lines=self.run_lines())
         self.frames += 1
         return self.view.render()
 
@@ -113,7 +164,8 @@ class Dashboard:
 def run_dashboard(tape_path: str | Path, event_tape_path: str | Path | None,
                   rig_path: str | Path, command_queue: Any | None, *,
                   frame_cap_hz: float = 30.0, screenshot: str | Path | None = None,
-                  exit_after_frames: int | None = None, frame_counter: Any = None) -> int:
+                  exit_after_frames: int | None = None, frame_counter: Any = None,
+                  folder: str | Path | None = None) -> int:
     """Show the dashboard until its window is closed (or ``exit_after_frames``).
 
     ``screenshot`` saves the frame buffer as PNG at frame ``exit_after_frames`` (or
@@ -122,7 +174,7 @@ def run_dashboard(tape_path: str | Path, event_tape_path: str | Path | None,
     number of frames drawn.
     """
     dash = Dashboard(tape_path, event_tape_path, rig_path, command_queue,
-                     frame_cap_hz=frame_cap_hz)
+                     frame_cap_hz=frame_cap_hz, folder=folder)
     shot_at = exit_after_frames or DEFAULT_SCREENSHOT_FRAME
     pacer = FramePacer(frame_cap_hz)
     try:

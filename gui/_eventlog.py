@@ -76,6 +76,10 @@ class EventLog:
         self.windows: list[FaultWindow] = []
         self.kinds: dict[str, int] = {}
         self.latches: dict[str, Latch] = {}     # interlock name -> its latest latch
+        self.trips: list[tuple[float, str]] = []  # every latch: (time, what latched)
+        self.stopping = ""                       # why the run is ending (operator stop)
+        self.steps: list[tuple[float, str]] = []   # scenario steps fired: (time, label)
+        self.phases: list[tuple[float, str]] = []  # phases marked: (time, name)
 
     @classmethod
     def upto(cls, events: list[EventRow], t: float) -> EventLog:
@@ -93,9 +97,17 @@ class EventLog:
             if kind == "estop":
                 self.estop_latched, self.estop_time = True, t
                 self.latches["estop"] = Latch(t, "operator E-stop")
+                self.trips.append((t, "E-stop"))
             elif kind == "trip":
                 name, cause = trip_cause(detail)
                 self.latches[name] = Latch(t, cause)
+                self.trips.append((t, name))
+            elif kind == "operator_stop":
+                self.stopping = f"operator stop ({detail})" if detail else "operator stop"
+            elif kind == "scenario_step":
+                self.steps.append((t, detail.partition(":")[0]))
+            elif kind == "phase":
+                self.phases.append((t, detail))
             elif kind == "reset":
                 name = detail.partition(":")[0].strip()
                 self.latches.pop(name, None)

@@ -19,6 +19,7 @@ from plantrig.gui._process import (
     start_replay_process,
 )
 from plantrig.gui._replay import RunFolderError, load_run
+from plantrig.gui._runinfo import live_folder
 from plantrig.sim import RigFileError
 
 SCREENSHOT_FRAMES = 8       # frames drawn before a --screenshot is taken
@@ -31,11 +32,19 @@ def _say(text: str) -> None:
 
 
 class LiveDashboard:
-    """The command queue for a run and the callback that opens the dashboard on it."""
+    """The command queue for a run and the callback that opens the dashboard on it.
 
-    def __init__(self, rig_path: str | Path, *, frame_cap_hz: float = 30.0) -> None:
+    ``runs`` is the folder the run folder is made in (``run --out``): the window finds
+    its run folder there, for the scenario's plan and, at the end, the outcome and
+    verdicts. Whatever happens to the window, the run's record, printed outcome and
+    exit code are the command's; the window only ever shows them.
+    """
+
+    def __init__(self, rig_path: str | Path, *, frame_cap_hz: float = 30.0,
+                 runs: str | Path | None = None) -> None:
         self.rig_path = Path(rig_path)
         self.frame_cap_hz = frame_cap_hz
+        self.runs = Path(runs) if runs is not None else None
         self.commands: Any = mp.get_context("spawn").Queue()
         self.process: DashboardProcess | None = None
 
@@ -43,7 +52,8 @@ class LiveDashboard:
         """run_to_folder calls this once the tapes exist; returns at once."""
         self.process = start_dashboard_process(tape_path, event_tape_path, self.rig_path,
                                                self.commands,
-                                               frame_cap_hz=self.frame_cap_hz, on_exit=_say)
+                                               frame_cap_hz=self.frame_cap_hz, on_exit=_say,
+                                               folder=live_folder(tape_path, self.runs))
 
     def close(self) -> None:
         """Close the window now (the run was stopped by a signal: nobody waits to look)."""
@@ -54,8 +64,9 @@ class LiveDashboard:
         """Keep the window up for a look at the end of the run, until it is closed.
 
         A fast run can end before the dashboard has opened its tape (a spawned
-        interpreter takes about a second to start); then the run folder is opened
-        in replay instead.
+        interpreter takes a second or more to start); then the run folder is opened in
+        replay instead, as it is when the live window died before it drew anything.
+        How the window ended is always said before this returns.
         """
         process = self.process
         if process is None:
@@ -64,11 +75,14 @@ class LiveDashboard:
              "Ctrl-C) to exit")
         try:
             process.wait()
-            if process.process.exitcode == EXIT_TAPE_GONE:
-                _say(f"the run ended before the dashboard opened; opening {folder} in replay")
+            process.report()
+            code = process.process.exitcode
+            if code == EXIT_TAPE_GONE or (code != 0 and process.frames == 0):
+                _say(f"opening {folder} in replay")
                 process = start_replay_process(folder, frame_cap_hz=self.frame_cap_hz,
                                                on_exit=_say)
                 process.wait()
+                process.report()
         except KeyboardInterrupt:
             process.stop()
 

@@ -47,7 +47,8 @@ def _step_aside() -> None:
 
 def _dashboard_child(tape_path: str, event_tape_path: str | None, rig_path: str,
                      command_queue: Any, frame_cap_hz: float, screenshot: str | None,
-                     exit_after_frames: int | None, frames: Any) -> None:
+                     exit_after_frames: int | None, frames: Any,
+                     folder: str | None = None) -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)   # Ctrl-C is the run's; it closes us
     _step_aside()
     if not display_available():
@@ -58,7 +59,8 @@ def _dashboard_child(tape_path: str, event_tape_path: str | None, rig_path: str,
     try:
         run_dashboard(tape_path, event_tape_path, rig_path, command_queue,
                       frame_cap_hz=frame_cap_hz, screenshot=screenshot,
-                      exit_after_frames=exit_after_frames, frame_counter=frames)
+                      exit_after_frames=exit_after_frames, frame_counter=frames,
+                      folder=folder)
     except FileNotFoundError:
         if not Path(tape_path).exists():   # removed between the check and the open
             sys.exit(EXIT_TAPE_GONE)
@@ -67,6 +69,7 @@ def _dashboard_child(tape_path: str, event_tape_path: str | None, rig_path: str,
 
 def _replay_child(folder: str, frame_cap_hz: float, screenshot: str | None,
                   exit_after_frames: int | None, frames: Any) -> None:
+    signal.signal(signal.SIGINT, signal.SIG_IGN)   # as the live window: the parent decides
     _step_aside()
     if not display_available():
         sys.exit(EXIT_NO_DISPLAY)
@@ -82,16 +85,34 @@ class DashboardProcess:
                  on_exit: Callable[[str], None] | None) -> None:
         self.process = process
         self._frames = frames
+        self._told = threading.Lock()
+        self._reported = False
+        self._on_exit = on_exit
         if on_exit is not None:
-            threading.Thread(target=self._watch, args=(on_exit,), daemon=True,
+            threading.Thread(target=self._watch, daemon=True,
                              name="plantrig-dashboard-watch").start()
 
-    def _watch(self, on_exit: Callable[[str], None]) -> None:
+    def _watch(self) -> None:
         multiprocessing.connection.wait([self.process.sentinel])
         # another thread may be reaping the child in wait(); let it finish
         while self.process.exitcode is None:
             time.sleep(0.01)
-        on_exit(self.describe_exit())
+        self.report()
+
+    def report(self) -> None:
+        """Say once how the window ended (to ``on_exit``), whichever thread sees it first.
+
+        The watcher thread is a daemon: a command that returns right after wait() would
+        end the interpreter before it speaks, so the waiter calls this too (a window
+        that died unseen must never end the command silently).
+        """
+        if self._on_exit is None or self.process.exitcode is None:
+            return
+        with self._told:
+            if self._reported:
+                return
+            self._reported = True
+        self._on_exit(self.describe_exit())
 
     @property
     def pid(self) -> int | None:
@@ -112,6 +133,7 @@ class DashboardProcess:
             return "dashboard running"
         if code == 0:
             return "dashboard closed"
+        never = " before it drew a frame" if self.frames == 0 else ""
         if code == EXIT_TAPE_GONE:
             return "the run ended before the dashboard could open its tape"
         if code == EXIT_NO_DISPLAY:
@@ -121,8 +143,8 @@ class DashboardProcess:
             name = signal.Signals(-code).name
             hint = " (no display? dearpygui aborts without one)" \
                 if -code == signal.SIGABRT else ""
-            return f"dashboard ended by {name}{hint}; the run is not affected"
-        return f"dashboard failed with exit code {code}; the run is not affected"
+            return f"dashboard ended by {name}{never}{hint}; the run is not affected"
+        return f"dashboard failed with exit code {code}{never}; the run is not affected"
 
     def wait(self, timeout: float | None = None) -> bool:
         """Wait for the window to be closed; True if the process has ended."""
@@ -143,12 +165,14 @@ def start_dashboard_process(tape_path: str | Path, event_tape_path: str | Path |
                             rig_path: str | Path, command_queue: Any | None = None, *,
                             frame_cap_hz: float = 30.0, screenshot: str | Path | None = None,
                             exit_after_frames: int | None = None,
-                            on_exit: Callable[[str], None] | None = None) -> DashboardProcess:
+                            on_exit: Callable[[str], None] | None = None,
+                            folder: str | Path | None = None) -> DashboardProcess:
     """Start the live dashboard on a running tape; returns at once.
 
     ``command_queue`` is the queue passed to run_to_folder (a spawn-context
     multiprocessing queue); ``on_exit(text)`` is called from an idle watcher thread
-    when the dashboard ends, with how it ended.
+    when the dashboard ends, with how it ended; ``folder`` is the run folder being
+    written (scenario plan, then outcome and verdicts), if known.
     """
     ctx = mp.get_context("spawn")
     frames = ctx.RawValue("q", 0)     # no lock: a killed child cannot leave it held
@@ -156,7 +180,8 @@ def start_dashboard_process(tape_path: str | Path, event_tape_path: str | Path |
         target=_dashboard_child, name="plantrig-dashboard", daemon=True,
         args=(str(tape_path), str(event_tape_path) if event_tape_path else None,
               str(rig_path), command_queue, float(frame_cap_hz),
-              str(screenshot) if screenshot else None, exit_after_frames, frames))
+              str(screenshot) if screenshot else None, exit_after_frames, frames,
+              str(folder) if folder is not None else None))
     proc.start()
     return DashboardProcess(proc, frames, on_exit)
 

@@ -28,6 +28,7 @@ from plantrig.gui._faults import fault_catalogue, fault_targets
 from plantrig.gui._model import DashboardModel
 from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
+from plantrig.gui._runinfo import outcome_lines, progress_lines, scenario_plan, watchdog_of
 from plantrig.gui._store import RowStore
 from plantrig.gui._view import DashboardView
 from plantrig.sim import Rig, RigFileError, load_rig_as_data, read_run, rig_from_record
@@ -103,7 +104,13 @@ def _json(folder: Path, path: Path) -> dict[str, Any]:
 
 
 class Replay:
-    """The dashboard over a recorded run; ``frame()`` draws the slider's moment."""
+    """The dashboard over a recorded run; ``frame()`` draws the slider's moment.
+
+    It looks unlike a live run on purpose: the status line says "REPLAY of <run id>"
+    in the accent colour (never the live quiet or E-stop look), there is no E-stop or
+    any other control, and the left column shows the recorded outcome and verdicts
+    with the scenario's progress up to the slider's moment.
+    """
 
     def __init__(self, folder: str | Path, *, frame_cap_hz: float = 30.0,
                  span_s: float = 10.0) -> None:
@@ -113,27 +120,37 @@ class Replay:
         self.store = RowStore(rec.rows, groups.index("t"))
         rig = rec.rig
         self.model = DashboardModel(groups, rig.tick, has_link=rig.controller.kind == "external",
-                                    limits=getattr(rig, "limits", ()))
+                                    limits=getattr(rig, "limits", ()),
+                                    watchdog_s=watchdog_of(rig))
         late = rec.rows[:, groups.index("lateness")] if "lateness" in groups else \
             np.zeros(len(rec.rows))
         self.overruns_upto = np.cumsum(late >= rec.rig.tick)
         span_total = max(self.store.t_last - self.store.t_first, rec.rig.tick)
+        self.run_id = rec.folder.name
         self.view = DashboardView(
-            title=f"plantrig replay: {rec.folder.name}", groups=groups,
+            title=f"plantrig REPLAY of {self.run_id}", groups=groups,
             specs=plot_specs(groups, rec.rig), operator=Operator(None),
             fault_kinds=fault_catalogue(),
             fault_targets=lambda choice: fault_targets(choice, rig),
             replay_range=(self.store.t_first, self.store.t_last),
             span_s=min(span_s, span_total), max_span_s=max(span_total, 0.5),
             frame_cap_hz=frame_cap_hz)
-        ended = rec.summary.get("ended", "unknown")
-        self.state = f"REPLAY | {rec.folder.name} | run ended: {ended}"
+        self.plan, self.plan_note = scenario_plan(rec.folder, rig)
         self.log = EventLog()
         self.frames = 0
 
     def seek(self, t: float) -> None:
         """Move the slider (what dragging it does)."""
         self.view.set_cursor(t)
+
+    def run_lines(self) -> list[tuple[str, bool | None]]:
+        """Recorded outcome and verdicts first (they do not move with the slider), then
+        the scenario's progress up to the slider's moment."""
+        lines = outcome_lines(self.record.summary or None)
+        lines += [(text, None) for text in progress_lines(self.plan, self.log)]
+        if self.plan_note:
+            lines.append((self.plan_note, False))
+        return lines
 
     def frame(self) -> bool:
         view = self.view
@@ -142,9 +159,9 @@ class Replay:
             i = self.store.position(view.cursor)
             self.model.overruns = int(self.overruns_upto[i - 1]) if i > 0 else 0
             view.cursor_moved = False
-        snap = self.model.snapshot(self.store, view.cursor, view.span, run_state=self.state,
-                                   log=self.log)
-        view.show(snap)
+        snap = self.model.snapshot(self.store, view.cursor, view.span, log=self.log,
+                                   replay_of=self.run_id)
+        view.show(snap, run_lines=self.run_lines())
         self.frames += 1
         return view.render()
 

@@ -161,6 +161,19 @@ class Themes:
             self.series[prefix] = theme
         self.limit = _colour_theme([(dpg.mvPlotCol_Line, LIMIT_LINE, plots)],
                                    dpg.mvInfLineSeries)
+        # status looks that are neither live-normal nor alarm: a replay (accent, white
+        # words) and a run that is over (ink, paper words)
+        self.replay = self._lamp(ACCENT, ALARM_TEXT)
+        self.ended = self._lamp(INK, PAPER)
+        self.line = {1: self._inf_line(ATTENTION, 2.0), 2: self._inf_line(ALARM, 2.0)}
+        self.trip_time = self._inf_line(ALARM, 1.0)
+        with dpg.theme() as self.trip_mark, dpg.theme_component(dpg.mvScatterSeries):
+            dpg.add_theme_color(dpg.mvPlotCol_MarkerFill, ALARM, category=plots)
+            dpg.add_theme_color(dpg.mvPlotCol_MarkerOutline, ALARM_DEEP, category=plots)
+            dpg.add_theme_color(dpg.mvPlotCol_Line, ALARM, category=plots)
+            dpg.add_theme_style(dpg.mvPlotStyleVar_Marker, dpg.mvPlotMarker_Diamond,
+                                category=plots)
+            dpg.add_theme_style(dpg.mvPlotStyleVar_MarkerSize, 6, category=plots)
         self.fault = _colour_theme([(dpg.mvPlotCol_Fill, FAULT_FILL, plots)],
                                    dpg.mvShadeSeries)
         self.big_font = None
@@ -180,6 +193,14 @@ class Themes:
             dpg.add_theme_color(dpg.mvThemeCol_ButtonHovered, hover, category=core)
             dpg.add_theme_color(dpg.mvThemeCol_ButtonActive, hover, category=core)
             dpg.add_theme_color(dpg.mvThemeCol_Text, text, category=core)
+        return theme
+
+    @staticmethod
+    def _inf_line(colour: RGB, weight: float) -> int | str:
+        plots = dpg.mvThemeCat_Plots
+        with dpg.theme() as theme, dpg.theme_component(dpg.mvInfLineSeries):
+            dpg.add_theme_color(dpg.mvPlotCol_Line, colour, category=plots)
+            dpg.add_theme_style(dpg.mvPlotStyleVar_LineWeight, weight, category=plots)
         return theme
 
     @staticmethod

@@ -5,10 +5,12 @@ view (dearpygui is not thread-safe). Button callbacks are plain methods (``on_es
 ``on_inject_fault``, ...) that read the form and call the Operator, so a test presses
 a button by calling the callback the button holds.
 
-Layout: the caution banner across the top; a status line with the run state and the
-E-stop latch; three columns below: operator controls (E-stop first, outside any
-scrolling), the plots, and the panels (signal table, limit bars, interlock lamps,
-timing, link, events).
+Layout: the caution banner across the top; one status line that says the run's real
+state (running / tripped by what since when / stopped / ended / replay); three columns
+below: the E-stop (first, outside any scrolling; also the Esc key), the run's scenario
+progress, outcome and verdicts, then the operator controls; the plots; and the panels
+(signal table, limit bars, interlock lamps, timing, link lamp, events with a detail
+pane).
 """
 
 from __future__ import annotations
@@ -26,19 +28,33 @@ import numpy as np
 from plantrig import CAUTION
 from plantrig.gui._columns import ColumnGroups
 from plantrig.gui._decimate import decimate_minmax
-from plantrig.gui._faults import FaultChoice
-from plantrig.gui._model import EVENTS_SHOWN, Snapshot, fmt
+from plantrig.gui._faults import FaultChoice, check_fault_form
+from plantrig.gui._model import (
+    ALARM,
+    ATTENTION,
+    ENDED,
+    EVENTS_SHOWN,
+    REPLAY,
+    Snapshot,
+    Status,
+    fmt,
+)
 from plantrig.gui._operator import MOMENT_PRESETS, Operator
 from plantrig.gui._plots import PlotSpec
-from plantrig.gui._theme import ACCENT, INK_SOFT, Themes
+from plantrig.gui._theme import ACCENT, INK, INK_SOFT, Themes
+from plantrig.gui._theme import ALARM as ALARM_RED
 from plantrig.sim import SIGNAL_LABELS
 
 T = "plantrig."                   # tag prefix
 WIDTH, HEIGHT = 1360, 880
-LEFT_W, CENTRE_W = 300, 620
+LEFT_W, CENTRE_W = 300, 580
 BUCKETS = 400                     # min-max pairs per series: one per ~1.5 pixel columns
 TABLE_ORDER = ("x", "u", "cmd", "y", "sent", "ref")
 PANEL_PREFIXES = ("trip", "fault", "limit")
+RUN_LINES = 40                    # text lines of the scenario / outcome / verdicts panel
+ESTOP_KEY = dpg.mvKey_Escape
+ESTOP_KEY_NAME = "Esc"
+NOWHERE = -1e30                   # where a series with nothing to show puts its point
 
 
 class DashboardView:
@@ -50,6 +66,9 @@ class DashboardView:
                  replay_range: tuple[float, float] | None = None,
                  span_s: float = 10.0, max_span_s: float = 30.0,
                  frame_cap_hz: float = 30.0) -> None:
+        self.estop_latched = False
+        self.selected_event: tuple[int, float, str, str] | None = None
+        self.shown_events: list[tuple[int, float, str, str]] = []
         self.groups = groups
         self.specs = specs
         self.operator = operator
@@ -75,6 +94,10 @@ class DashboardView:
                 self._controls()
                 self._plots(max_span_s)
                 self._panels()
+        if not self.replay:
+            with dpg.handler_registry(tag=T + "keys"):
+                dpg.add_key_press_handler(ESTOP_KEY, callback=self.on_estop_key,
+                                          tag=T + "estop_key")
         dpg.create_viewport(title=title, width=WIDTH, height=HEIGHT, vsync=False)
         dpg.setup_dearpygui()
         dpg.show_viewport()
@@ -87,10 +110,9 @@ class DashboardView:
         dpg.bind_item_theme(T + "banner", self.themes.banner)
 
     def _status_line(self) -> None:
-        with dpg.group(horizontal=True):
-            dpg.add_button(tag=T + "estop_lamp", label="E-STOP clear", width=420)
-            dpg.add_text("", tag=T + "run_state")
-            dpg.add_text("", tag=T + "display")
+        """One lamp across the window: the run's state in words, coloured by it."""
+        dpg.add_button(tag=T + "status", label="", width=-1, height=30)
+        dpg.bind_item_theme(T + "status", self.themes.quiet)
 
     def _replay_bar(self, t0: float, t1: float) -> None:
         with dpg.group(horizontal=True):
@@ -107,18 +129,19 @@ class DashboardView:
     def _controls(self) -> None:
         with dpg.group(width=LEFT_W):
             if self.replay:
-                with dpg.child_window(width=LEFT_W, height=-1, tag=T + "controls"):
-                    dpg.add_text("Replay of a recorded run", color=ACCENT)
-                    dpg.add_text("Operator controls are off: there is no run to command. "
-                                 "Move the time slider to look at any moment.",
-                                 wrap=LEFT_W - 20)
+                dpg.add_text("Replay of a recorded run", color=ACCENT)
+                dpg.add_text("Nothing here commands a run: move the time slider to look "
+                             "at any moment.", wrap=LEFT_W - 20)
+                self._run_panel(-1)
                 return
-            self._button("E-STOP", self.on_estop, "estop", height=84)
+            self._button(f"E-STOP  ({ESTOP_KEY_NAME})", self.on_estop, "estop", height=84)
             dpg.bind_item_theme(T + "estop", self.themes.estop)
             if self.themes.big_font is not None:
                 dpg.bind_item_font(T + "estop", self.themes.big_font)
-            dpg.add_text("software E-stop: the loop forces every input to its safe value "
-                         "and latches. Not a safety function.", wrap=LEFT_W - 10)
+            dpg.add_text(f"software E-stop (button or the {ESTOP_KEY_NAME} key): the loop "
+                         "forces every input to its safe value and latches. Not a safety "
+                         "function.", wrap=LEFT_W - 10)
+            self._run_panel(230)
             with dpg.child_window(width=LEFT_W, height=-1, tag=T + "controls"):
                 self._button("Reset interlock / E-stop", self.on_reset, "reset")
                 dpg.add_separator()
@@ -155,12 +178,10 @@ class DashboardView:
                 dpg.add_combo([], tag=T + "fault_target", label="target", width=170)
                 dpg.add_input_text(tag=T + "fault_target_text", label="target", width=170,
                                    hint="e.g. A[1,2]", show=False)
-                dpg.add_input_double(tag=T + "fault_value", label="value", width=150,
-                                     format="%.4g")
+                dpg.add_input_text(tag=T + "fault_value", label="value", width=150)
                 dpg.add_text("", tag=T + "fault_help", wrap=LEFT_W - 20, color=INK_SOFT)
                 dpg.add_input_double(tag=T + "fault_duration", label="for [s], 0 = until "
-                                     "cleared", width=90, format="%.3g", min_value=0.0,
-                                     min_clamped=True)
+                                     "cleared", width=90, format="%.3g")
                 with dpg.group(horizontal=True):
                     self._button("Inject fault", self.on_inject_fault, "inject_fault",
                                  width=136)
@@ -170,6 +191,13 @@ class DashboardView:
                 dpg.add_text("", tag=T + "operator_message", wrap=LEFT_W - 20)
                 if kinds:
                     self.on_fault_kind(None, kinds[0])
+
+    def _run_panel(self, height: int) -> None:
+        """Scenario progress, then the outcome and verdicts (pending until judged)."""
+        with dpg.child_window(width=LEFT_W, height=height, tag=T + "run_panel"):
+            dpg.add_text("Scenario and verdicts", color=ACCENT)
+            for i in range(RUN_LINES):
+                dpg.add_text("", tag=f"{T}run.{i}", wrap=LEFT_W - 30, show=False)
 
     def _legend(self, key: str) -> str:
         """A series' legend: the kind of signal (the plot's title names the signal); a
@@ -191,6 +219,7 @@ class DashboardView:
                     dpg.add_checkbox(label=self.groups[spec.key].name, default_value=True,
                                      user_data=i,
                                      callback=self.on_toggle_plot, tag=f"{T}show.{i}")
+            dpg.add_text("", tag=T + "display", color=INK_SOFT)
             self.series: list[list[tuple[str, int]]] = []
             for i, spec in enumerate(self.specs):
                 tag = f"{T}plot.{i}"
@@ -200,7 +229,7 @@ class DashboardView:
                     dpg.add_plot_legend(horizontal=True, outside=True,
                                         location=dpg.mvPlot_Location_North)
                     dpg.add_plot_axis(dpg.mvXAxis, tag=f"{tag}.x", label="plant time [s]")
-                    with dpg.plot_axis(dpg.mvYAxis, tag=f"{tag}.y", auto_fit=True):
+                    with dpg.plot_axis(dpg.mvYAxis, tag=f"{tag}.y"):
                         row = []
                         for key in spec.series:
                             prefix = self.groups[key].prefix
@@ -210,11 +239,24 @@ class DashboardView:
                                                                           self.themes.base))
                             row.append((f"{tag}.{key}", self.groups.index(key)))
                         self.series.append(row)
-                        if np.isfinite(spec.low) and np.isfinite(spec.high):
+                        for j, line in enumerate(spec.lines):
+                            drawn = dpg.add_inf_line_series([line.value], horizontal=True,
+                                                            label=line.label,
+                                                            tag=f"{tag}.line.{j}")
+                            dpg.bind_item_theme(drawn, self.themes.line[line.level])
+                        if spec.shows_range:
                             band = dpg.add_inf_line_series([spec.low, spec.high],
                                                            horizontal=True,
                                                            label="rig range")
                             dpg.bind_item_theme(band, self.themes.limit)
+                        marks = dpg.add_inf_line_series([NOWHERE], tag=f"{tag}.trips",
+                                                        label="trip / E-stop")
+                        dpg.bind_item_theme(marks, self.themes.trip_time)
+                        if spec.watched:
+                            points = dpg.add_scatter_series([NOWHERE], [0.0],
+                                                            tag=f"{tag}.trip_points",
+                                                            label="reached trip")
+                            dpg.bind_item_theme(points, self.themes.trip_mark)
                     with dpg.plot_axis(dpg.mvYAxis2, tag=f"{tag}.y2", no_tick_labels=True,
                                        no_gridlines=True, no_tick_marks=True, opposite=True):
                         shade = dpg.add_shade_series([0.0], [0.0], y2=[0.0], tag=f"{tag}.fault",
@@ -231,7 +273,7 @@ class DashboardView:
                 [p for p in g.prefixes() if p not in TABLE_ORDER and p not in PANEL_PREFIXES]
             with dpg.table(header_row=True, row_background=True, borders_innerH=True,
                            policy=dpg.mvTable_SizingStretchProp, tag=T + "table",
-                           scrollY=True, height=190):
+                           scrollY=True, height=150):
                 for name, weight in (("signal", 0.4), ("value", 0.25), ("unit", 0.12),
                                      ("rig range", 0.23)):
                     dpg.add_table_column(label=name, init_width_or_weight=weight)
@@ -266,22 +308,41 @@ class DashboardView:
             for i in range(3):
                 dpg.add_text("", tag=f"{T}timing.{i}")
             dpg.add_text("Link")
-            for i in range(3):
+            dpg.add_button(tag=T + "link_lamp", label="", width=-1)
+            dpg.bind_item_theme(T + "link_lamp", self.themes.quiet)
+            for i in range(2):
                 dpg.add_text("", tag=f"{T}link.{i}")
             dpg.add_separator()
-            dpg.add_text("Events (newest first)")
-            with dpg.table(header_row=True, row_background=True, scrollY=True, height=-1,
+            dpg.add_text("Events (newest first; click one, or hover its detail, for the "
+                         "full text)", wrap=WIDTH - LEFT_W - CENTRE_W - 60)
+            with dpg.table(header_row=True, row_background=True, scrollY=True, height=120,
                            policy=dpg.mvTable_SizingStretchProp, tag=T + "events"):
                 for name, weight in (("t [s]", 0.18), ("kind", 0.32), ("detail", 0.5)):
                     dpg.add_table_column(label=name, init_width_or_weight=weight)
                 for i in range(EVENTS_SHOWN):
                     with dpg.table_row(tag=f"{T}event.{i}", show=False):
-                        for j in range(3):
-                            dpg.add_text("", tag=f"{T}event.{i}.{j}")
+                        dpg.add_selectable(label="", tag=f"{T}event.{i}.0", span_columns=True,
+                                           callback=self.on_event_pick, user_data=i)
+                        dpg.add_text("", tag=f"{T}event.{i}.1")
+                        dpg.add_text("", tag=f"{T}event.{i}.2")
+                        with dpg.tooltip(f"{T}event.{i}.2"):
+                            dpg.add_text("", tag=f"{T}event.{i}.tip", wrap=480)
+            dpg.add_text("", tag=T + "event_detail", wrap=WIDTH - LEFT_W - CENTRE_W - 60)
 
     # -- callbacks (plain functions; tests call them directly) -------------------------
     def on_estop(self, *_: Any) -> bool:
-        return self.operator.estop()
+        return self.operator.estop(already_latched=self.estop_latched)
+
+    def on_estop_key(self, *_: Any) -> bool:
+        """The keyboard shortcut: the same E-stop as the button."""
+        return self.on_estop()
+
+    def on_event_pick(self, _sender: Any, _value: Any, index: int) -> None:
+        """Show the full text of the clicked event in the detail pane (and keep it)."""
+        if index < len(self.shown_events):
+            self.selected_event = self.shown_events[index]
+        for i in range(EVENTS_SHOWN):
+            dpg.set_value(f"{T}event.{i}.0", i == index)
 
     def on_reset(self, *_: Any) -> bool:
         return self.operator.reset()
@@ -314,7 +375,8 @@ class DashboardView:
         return sent
 
     def on_fault_kind(self, _sender: Any, kind: str, *_: Any) -> None:
-        """Offer the targets this kind can act on and say what the value means."""
+        """Offer the targets this kind can act on, fill its value with the kind's own
+        default (never the last kind's value) and say what the value means."""
         choice = self.fault_kinds.get(kind)
         if choice is None:
             return
@@ -323,17 +385,24 @@ class DashboardView:
         dpg.set_value(T + "fault_target", targets[0] if targets else "")
         dpg.configure_item(T + "fault_target_text", show=not targets)
         dpg.configure_item(T + "fault_value", label=choice.parameter or "",
-                           show=choice.parameter is not None)
+                           hint=choice.value_hint, show=choice.parameter is not None)
+        dpg.set_value(T + "fault_value", choice.default_text)
         dpg.set_value(T + "fault_help", choice.description)
 
     def on_inject_fault(self, *_: Any) -> bool:
         kind = dpg.get_value(T + "fault_kind")
         choice = self.fault_kinds.get(kind)
-        typed = choice is not None and not self.fault_targets(choice)
+        if choice is None:
+            self.operator.message = "not sent: choose a fault kind"
+            return False
+        typed = not self.fault_targets(choice)
         target = dpg.get_value(T + ("fault_target_text" if typed else "fault_target"))
-        value = dpg.get_value(T + "fault_value") if choice is None or choice.parameter else None
-        return self.operator.inject_fault(kind, target, value,
-                                          dpg.get_value(T + "fault_duration"))
+        value, duration, problem = check_fault_form(choice, dpg.get_value(T + "fault_value"),
+                                                    dpg.get_value(T + "fault_duration"))
+        if problem:
+            self.operator.message = f"not sent: {problem}"
+            return False
+        return self.operator.inject_fault(kind, target, value, duration)
 
     def on_clear_fault(self, *_: Any) -> bool:
         return self.operator.clear_fault()
@@ -356,20 +425,20 @@ class DashboardView:
         dpg.configure_item(f"{T}plot.{index}", show=bool(value))
 
     # -- updating ----------------------------------------------------------------------
-    def show(self, snap: Snapshot, *, extra_status: str = "") -> None:
+    def show(self, snap: Snapshot, *, extra_status: str = "",
+             run_lines: list[tuple[str, bool | None]] | None = None) -> None:
         """Copy one snapshot into the widgets (cheap enough for every frame)."""
-        latched = snap.estop_latched
-        dpg.configure_item(T + "estop_lamp", label=snap.estop_text)
-        self._theme(T + "estop_lamp", self.themes.alarm if latched else self.themes.quiet)
-        dpg.set_value(T + "run_state", f"{snap.run_state} | plant time {snap.t:.3f} s")
+        self.estop_latched = snap.estop_latched
+        self._lamp(T + "status", snap.status)
         now = time.perf_counter()
         self.frame_times.append(now)
         fps = (len(self.frame_times) - 1) / (now - self.frame_times[0]) \
             if len(self.frame_times) > 1 and now > self.frame_times[0] else 0.0
-        dpg.set_value(T + "display", f"| display {fps:.0f} fps (cap {self.frame_cap_hz:g})"
+        dpg.set_value(T + "display", f"display {fps:.0f} fps (cap {self.frame_cap_hz:g})"
                       + (f" | {extra_status}" if extra_status else ""))
         if not self.replay:
             dpg.set_value(T + "operator_message", f"last action: {self.operator.message}")
+        self._show_run_lines(run_lines or [])
         self._show_plots(snap)
         values = snap.current
         for cell, index in self.table_cells:
@@ -383,15 +452,48 @@ class DashboardView:
             self._theme(f"{T}lamp.{i}", self.themes.alarm if lamp.tripped else self.themes.quiet)
         for i in range(3):
             dpg.set_value(f"{T}timing.{i}", snap.timing[i] if i < len(snap.timing) else "")
+        self._lamp(T + "link_lamp", snap.link_lamp)
+        for i in range(2):
             dpg.set_value(f"{T}link.{i}", snap.link[i] if i < len(snap.link) else "")
+        self._show_events(snap)
+
+    def _lamp(self, item: str, status: Status) -> None:
+        looks = {ALARM: self.themes.alarm, ATTENTION: self.themes.attention,
+                 ENDED: self.themes.ended, REPLAY: self.themes.replay}
+        dpg.configure_item(item, label=status.text)
+        self._theme(item, looks.get(status.level, self.themes.quiet))
+
+    def _show_run_lines(self, lines: list[tuple[str, bool | None]]) -> None:
+        colours = {True: INK, False: ALARM_RED, None: INK_SOFT}
+        for i in range(RUN_LINES):
+            item = f"{T}run.{i}"
+            if i < len(lines):
+                text, passed = lines[i]
+                dpg.set_value(item, text)
+                dpg.configure_item(item, show=True, color=colours[passed])
+            else:
+                dpg.configure_item(item, show=False)
+
+    def _show_events(self, snap: Snapshot) -> None:
+        self.shown_events = snap.events
         for i in range(EVENTS_SHOWN):
             shown = i < len(snap.events)
             dpg.configure_item(f"{T}event.{i}", show=shown)
             if shown:
-                _, t, kind, detail = snap.events[i]
-                dpg.set_value(f"{T}event.{i}.0", f"{t:.3f}")
+                event = snap.events[i]
+                _, t, kind, detail = event
+                dpg.configure_item(f"{T}event.{i}.0", label=f"{t:.3f}")
+                dpg.set_value(f"{T}event.{i}.0", event == self.selected_event)
                 dpg.set_value(f"{T}event.{i}.1", kind)
                 dpg.set_value(f"{T}event.{i}.2", detail)
+                dpg.set_value(f"{T}event.{i}.tip", f"{kind} at t = {t:.3f} s:\n{detail}")
+        picked = self.selected_event or (snap.events[0] if snap.events else None)
+        if picked is None:
+            dpg.set_value(T + "event_detail", "")
+            return
+        _, t, kind, detail = picked
+        which = "selected" if self.selected_event else "newest"
+        dpg.set_value(T + "event_detail", f"{which} event, t = {t:.3f} s, {kind}:\n{detail}")
 
     def _theme(self, item: str, theme: int | str) -> None:
         """Bind a theme only when it changes (a state colour, with its text beside it)."""
@@ -404,6 +506,7 @@ class DashboardView:
         t = rows[:, self.t_index]
         t1 = snap.t
         t0 = t1 - self.span
+        x0, x1 = (0.0, self.span) if t0 < 0 else (t0, t1)   # fills from 0, then scrolls
         windows = [(w.name, max(w.start, t0), min(w.end if w.end is not None else t1, t1),
                     w.end is None or w.end >= t1) for w in snap.faults]
         windows = [w for w in windows if w[2] > w[1] or (w[3] and w[1] <= t1)]
@@ -412,6 +515,7 @@ class DashboardView:
         for _, start, end, _ in windows:
             fx += [start, start, end, end]
             fy += [0.0, 1.0, 1.0, 0.0]
+        trip_times = [tt for tt, _ in snap.trips if t0 <= tt <= t1]
         active = sorted({name for name, _, _, now in windows if now})
         in_view = sorted({name for name, _, _, _ in windows} - set(active))
         for i, spec in enumerate(self.specs):
@@ -420,6 +524,12 @@ class DashboardView:
                 x, y = decimate_minmax(t, rows[:, index], BUCKETS)
                 dpg.set_value(series, [np.ascontiguousarray(x), np.ascontiguousarray(y)])
             dpg.set_value(f"{tag}.fault", [fx or [t0], fy or [0.0], [0.0] * max(1, len(fy))])
+            dpg.set_value(f"{tag}.trips", [trip_times or [NOWHERE]])
+            if spec.watched:
+                marks = [m for m in snap.trip_marks if m.column == spec.key]
+                dpg.set_value(f"{tag}.trip_points", [[m.t for m in marks] or [NOWHERE],
+                                                     [m.value for m in marks] or [0.0]])
+            self._fit_y(i, spec, rows)
             label = spec.title
             if active:
                 label += "  | FAULT ACTIVE: " + ", ".join(active)
@@ -428,7 +538,24 @@ class DashboardView:
             if label != self._labels[i]:
                 dpg.configure_item(tag, label=label)
                 self._labels[i] = label
-            dpg.set_axis_limits(f"{tag}.x", t0, t1 if t1 > t0 else t0 + 1e-3)
+            dpg.set_axis_limits(f"{tag}.x", x0, x1 if x1 > x0 else x0 + 1e-3)
+
+    def _fit_y(self, i: int, spec: PlotSpec, rows: np.ndarray) -> None:
+        """The y range holds the data in view and every limit line of the plot, so the
+        distance to the trip point is always on screen."""
+        values = [line.value for line in spec.lines]
+        if spec.shows_range:
+            values += [spec.low, spec.high]
+        for _, index in self.series[i]:
+            column = rows[:, index]
+            column = column[np.isfinite(column)]
+            if column.size:
+                values += [float(column.min()), float(column.max())]
+        if not values:
+            return
+        lo, hi = min(values), max(values)
+        pad = 0.08 * (hi - lo) if hi > lo else max(abs(hi) * 0.1, 1e-3)
+        dpg.set_axis_limits(f"{T}plot.{i}.y", lo - pad, hi + pad)
 
     # -- frames ------------------------------------------------------------------------
     def render(self) -> bool:
@@ -442,14 +569,17 @@ class DashboardView:
         """Screen rectangles [x, y, width, height] of the banner, the E-stop, the plots
         and the widget areas (controls, panels, lamps, slider, check box)."""
         out = {}
-        names = ["banner", "estop_lamp", "controls", "plots", "panels", "span", "show.0"] + \
-            ([] if self.replay else ["estop"]) + \
+        names = ["banner", "status", "controls", "plots", "panels", "span", "show.0",
+                 "run_panel", "link_lamp", "event_detail", "events"] + \
+            ([] if self.replay else ["estop", "fault_value", "operator_message"]) + \
             [f"plot.{i}" for i in range(len(self.specs))] + \
             [f"lamp.{i}" for i in range(len(self.groups.group("trip")))]
         for name in names:
             if not dpg.does_item_exist(T + name):
                 continue
             state = dpg.get_item_state(T + name)
+            if "rect_size" not in state:
+                continue
             # child windows report only their position in the (full-screen) main window
             x, y = state.get("rect_min", state["pos"])
             w, h = state["rect_size"]

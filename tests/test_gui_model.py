@@ -6,6 +6,7 @@ boolean mask over rows) or the rig files in configs/; nothing here needs a displ
 
 from __future__ import annotations
 
+import json
 import math
 import multiprocessing as mp
 import pickle
@@ -22,12 +23,35 @@ from hypothesis.extra.numpy import arrays
 from plantrig.gui._columns import ColumnGroups
 from plantrig.gui._decimate import decimate_minmax
 from plantrig.gui._eventlog import EventLog, Latch, fault_edge, fault_name, trip_cause
-from plantrig.gui._faults import fault_catalogue, fault_targets
-from plantrig.gui._model import LAMP_LINE_CHARS, DashboardModel, Lamp, runs_nonzero
-from plantrig.gui._operator import MAX_TEXT, MOMENT_PRESETS, Operator
-from plantrig.gui._plots import plot_specs
+from plantrig.gui._faults import check_fault_form, fault_catalogue, fault_targets
+from plantrig.gui._model import (
+    LAMP_LINE_CHARS,
+    DashboardModel,
+    Lamp,
+    Status,
+    runs_nonzero,
+    trip_band,
+)
+from plantrig.gui._operator import MAX_TEXT, MOMENT_PRESETS, Operator, answer_to
+from plantrig.gui._plots import LimitLine, limit_lines, plot_specs
+from plantrig.gui._runinfo import (
+    live_folder,
+    outcome_lines,
+    pending_verdicts,
+    progress_lines,
+    scenario_plan,
+    watchdog_of,
+)
 from plantrig.gui._store import LiveStore, RowStore
-from plantrig.sim import FAULT_KINDS, Command, load_rig, tick_columns
+from plantrig.sim import (
+    FAULT_KINDS,
+    Command,
+    LimitSpec,
+    load_rig,
+    load_rig_as_data,
+    load_scenario,
+    tick_columns,
+)
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 finite = st.floats(-1e6, 1e6, allow_nan=False)
@@ -399,3 +423,250 @@ def test_the_palette_reads_on_a_projector_and_in_monochrome():
     assert contrast(controller[0], reference[0]) >= 2.0
     assert plant[1] >= 2 * controller[1] and plant[1] >= 2 * reference[1]
     assert th.SERIES["u"] == plant and th.SERIES["cmd"] == controller
+
+
+# -- issue 14: limit lines, status line, link lamp, fault form, answers, progress ---------
+GUARDED = CONFIGS / "rehearsals" / "conveyor_guarded.toml"
+
+
+def guarded_model():
+    rig = load_rig(GUARDED)
+    columns, units = tick_columns(rig)
+    groups = ColumnGroups(columns, units, rig)
+    model = DashboardModel(groups, rig.tick, has_link=False, limits=rig.limits,
+                           watchdog_s=watchdog_of(rig))
+    return rig, groups, model
+
+
+def guarded_rows(groups, n: int, tick: float) -> np.ndarray:
+    rows = np.zeros((n, len(groups.columns)))
+    rows[:, groups.index("t")] = np.arange(n) * tick
+    rows[:, groups.index("fresh")] = 1.0
+    return rows
+
+
+def test_every_watched_signal_has_a_plot_with_its_limit_lines():
+    # configs/rehearsals/conveyor_guarded.toml: belt_fast on x:belt_speed (warn_high 1.0,
+    # trip_high 1.1), motor_current on y:motor_current (warn +-17, trip +-19)
+    rig, groups, _ = guarded_model()
+    specs = {s.key: s for s in plot_specs(groups, rig)}
+    state = specs["x:belt_speed"]                   # a state: a plot of its own
+    assert state.series == ("x:belt_speed",) and state.watched == ("belt_fast",)
+    assert [(line.value, line.level) for line in state.lines] == [(1.1, 2), (1.0, 1)]
+    assert not state.shows_range
+    current = specs["y:motor_current"]
+    assert sorted((line.value, line.level) for line in current.lines) == \
+        [(-19.0, 2), (-17.0, 1), (17.0, 1), (19.0, 2)]
+    assert specs["y:belt_speed"].lines == () and specs["y:belt_speed"].shows_range
+    # a limit with trip bounds only is drawn once, as its trip line
+    only_trip = LimitSpec("hot", "y:temp", trip_high=80.0, warn_high=80.0)
+    assert limit_lines("y:temp", [only_trip])[0] == (LimitLine(80.0, 2, "hot trip high 80"),)
+
+
+def test_a_one_sided_limit_bar_runs_from_zero_to_its_trip_point():
+    rig, groups, model = guarded_model()
+    assert trip_band(rig.limits[0]) == (0.0, 1.1)          # belt_fast: trip_high only
+    assert trip_band(rig.limits[1]) == (-19.0, 19.0)
+    assert trip_band(LimitSpec("low", "y:p", trip_low=-4.0)) == (-4.0, 0.0)
+    rows = guarded_rows(groups, 3, rig.tick)
+    rows[:, groups.index("x:belt_speed")] = 0.55
+    snap = model.snapshot(RowStore(rows, groups.index("t")), 2 * rig.tick, 1.0)
+    belt = snap.bars[0]
+    assert belt.fraction == pytest.approx(0.5)             # halfway to the trip point
+    assert "trips above 1.1" in belt.text and belt.text.endswith("ok")
+
+
+def test_the_status_line_says_the_real_state():
+    rig, groups, model = guarded_model()
+    rows = guarded_rows(groups, 2000, rig.tick)
+    store = RowStore(rows, groups.index("t"))
+    running = model.snapshot(store, 1.0, 1.0)
+    assert running.status == Status("RUNNING | plant time 1.000 s", "quiet")
+    # the interlock has cut the drive (its trip column), the events say since when and why
+    trip = ("belt_overspeed: limit:belt_fast: x:belt_speed = 1.10022 m/s, above trip_high "
+            "1.1; inputs to safe values")
+    rows[1458:, groups.index("trip:belt_overspeed")] = 1.0
+    model.log.add([(1458, 1.458, "trip", trip)])
+    tripped = model.snapshot(store, 1.9, 1.0)
+    assert tripped.status.level == "alarm"
+    assert tripped.status.text == (
+        "TRIPPED by belt_overspeed since t = 1.458 s (limit:belt_fast: x:belt_speed = "
+        "1.10022 m/s, above trip_high 1.1): inputs held at their safe values | plant time "
+        "1.900 s")
+    assert tripped.trips == [(1.458, "belt_overspeed")]
+    rows[1600:, groups.index("trip:estop")] = 1.0
+    model.log.add([(1600, 1.6, "estop", "operator E-stop")])
+    both = model.snapshot(store, 1.9, 1.0)
+    assert both.status.text.startswith("TRIPPED by E-stop, belt_overspeed since t = 1.458 s")
+    model.log.add([(1700, 1.7, "operator_stop", "operator stop from the dashboard")])
+    ended = model.snapshot(store, 1.9, 1.0, ended="stopped, exit code 0: operator stop")
+    assert ended.status.level == "ended"
+    assert ended.status.text.startswith("ENDED: stopped, exit code 0: operator stop | "
+                                        "plant time 1.900 s | TRIPPED by E-stop")
+    replay = model.snapshot(store, 1.0, 1.0, replay_of="run-1", log=EventLog())
+    assert replay.status == Status("REPLAY of run-1 | at plant time 1.000 s: normal",
+                                   "replay")
+    fresh = EventLog()
+    fresh.add([(5, 0.005, "operator_stop", "")])
+    rows[:, groups.index("trip:belt_overspeed")] = rows[:, groups.index("trip:estop")] = 0
+    assert model.snapshot(store, 0.5, 1.0, log=fresh).status.text.startswith(
+        "STOPPING: operator stop |")
+
+
+def test_the_link_lamp_is_judged_by_the_rigs_watchdog():
+    rig, groups, model = guarded_model()
+    assert watchdog_of(rig) == 0.05 and model.watchdog_s == 0.05    # [safety], not 0.1
+    rows = guarded_rows(groups, 1000, rig.tick)
+    store = RowStore(rows, groups.index("t"))
+    t_end = 999 * rig.tick
+    assert model.snapshot(store, t_end, 1.0).link_lamp.level == "quiet"
+    for silent, level in ((24, "quiet"), (25, "attention"), (49, "attention"), (50, "alarm")):
+        rows[:, groups.index("fresh")] = 1.0
+        rows[999 - silent + 1:, groups.index("fresh")] = 0.0    # the last fresh: 999-silent
+        lamp = model.snapshot(store, t_end, 1.0).link_lamp
+        assert lamp.level == level, (silent, lamp)
+        assert f"{silent * rig.tick:.3f} s" in lamp.text or level == "quiet"
+    assert lamp.text == "LINK LOST: silent 0.050 s, beyond the 0.05 s watchdog " \
+                        "(built-in controller)"
+    hil = load_rig_as_data(CONFIGS / "rehearsals" / "conveyor_guarded_hil.toml")
+    assert watchdog_of(hil) == float(hil.link.get("watchdog_timeout",
+                                                  hil.safety.watchdog_timeout))
+
+
+def test_trip_marks_sit_where_a_limit_reached_trip():
+    rig, groups, model = guarded_model()
+    rows = guarded_rows(groups, 100, rig.tick)
+    rows[:, groups.index("x:belt_speed")] = np.linspace(0.9, 1.2, 100)
+    code = rows[:, groups.index("limit:belt_fast")]
+    code[40:] = 1
+    code[70:80] = 2
+    code[90:] = 2
+    marks = model.snapshot(RowStore(rows, groups.index("t")), 0.099, 1.0).trip_marks
+    assert [(m.column, m.t, m.value, m.limit) for m in marks] == [
+        ("x:belt_speed", rows[i, groups.index("t")], rows[i, groups.index("x:belt_speed")],
+         "belt_fast")
+        for i in (70, 90)]
+
+
+def test_the_fault_form_starts_from_each_kinds_own_default():
+    choices = {c.kind: c for c in fault_catalogue()}
+    # sim's catalogue: NaN = "its value when injected", None = required, else a number
+    assert choices["sensor_stuck"].default_text == ""
+    assert choices["sensor_stuck"].value_hint == "empty: its value when injected"
+    assert choices["sensor_dropout"].default_text == "0"
+    assert choices["link_drop"].default_text == "1"
+    assert choices["sensor_bias"].value_hint == "bias: required"
+    for kind, info in FAULT_KINDS.items():
+        first = next(iter(info.params.values()), None)
+        if first is not None and math.isfinite(first):
+            assert choices[kind].default_text == f"{first:g}"
+    stuck = choices["sensor_stuck"]
+    assert check_fault_form(stuck, "", 0.0) == (None, 0.0, "")     # holds where it is
+    assert check_fault_form(stuck, " 0.3 ", 2) == (0.3, 2.0, "")
+    bias = choices["sensor_bias"]
+    assert "needs bias" in check_fault_form(bias, "", 0)[2]
+    assert "changes nothing" in check_fault_form(bias, "0", 0)[2]
+    drop = choices["link_drop"]
+    assert "more than 0" in check_fault_form(drop, "0", 0)[2]
+    assert "more than 0" in check_fault_form(drop, "1.5", 0)[2]
+    assert check_fault_form(drop, "0.25", 0) == (0.25, 0.0, "")
+    assert "enter 0 (until cleared) or more" in check_fault_form(drop, "1", -1.0)[2]
+    assert "not a number" in check_fault_form(drop, "often", 0)[2]
+    assert check_fault_form(choices["link_freeze"], "", 1.0) == (None, 1.0, "")
+
+
+def test_the_form_result_is_the_runs_answer(command_queue):
+    op = Operator(command_queue)
+    assert op.inject_fault("sensor_stuck", "belt_speed", None, 0.0)
+    assert op.set_reference("speed_setpoint", 0.4)
+    assert "waiting for the run's answer" in op.message
+    # events as the engine writes them (sim/_faults.py, sim/_engine.py)
+    op.hear([(10, 0.01, "fault_injected", "load_surge: disturbance on belt_load (value=25)"),
+             (12, 0.012, "reference_set", "speed_setpoint = 0.4")])
+    assert op.message.startswith("ACCEPTED at t = 0.012 s: set_reference")
+    assert [c.kind for c in op.waiting] == ["inject_fault"]   # another fault is no answer
+    op.hear([(20, 0.02, "command_refused", "inject_fault: target: no output named "
+                                           "'belt_sped'")])
+    assert op.message == ("REFUSED by the run at t = 0.020 s: inject_fault kind=sensor_stuck "
+                          "target=belt_speed duration_s=0.0: inject_fault: target: no output "
+                          "named 'belt_sped'")
+    assert [a.accepted for a in op.answers] == [True, False]
+    assert op.reset()
+    op.hear([(30, 0.03, "reset_refused", "nothing is latched")])
+    assert op.message.startswith("REFUSED by the run") and "nothing is latched" in op.message
+    assert op.clear_fault()
+    op.run_ended("stopped: operator stop")
+    assert op.message == "NO ANSWER to clear_fault: the run ended (stopped: operator stop) " \
+                         "first"
+    assert op.answers[-1].accepted is None and not op.waiting
+    assert not op.estop() and op.message.startswith("NOT SENT estop: the run has ended")
+    drain(command_queue, 4)
+    with pytest.raises(queue.Empty):
+        command_queue.get(timeout=0.2)
+
+
+def test_answers_match_each_command_kind():
+    cases = [
+        (Command("estop"), "estop", "operator E-stop", True),
+        (Command("reset"), "reset", "belt_overspeed: reset by operator", True),
+        (Command("mark_phase", {"name": "surge"}), "phase", "surge", True),
+        (Command("mark_phase", {"name": "surge"}), "phase", "other", None),
+        (Command("stop"), "operator_stop", "", True),
+        (Command("clear_fault"), "fault_cleared", "stuck: cleared by command", True),
+        (Command("clear_fault"), "fault_cleared", "stuck: duration ended", None),
+        (Command("clear_fault"), "command_refused", "clear_fault: no active fault", False),
+        (Command("set_reference", {"name": "a", "value": 1}), "command_refused",
+         "set_reference {'name': 'a'}: unknown name or non-finite value", False),
+        (Command("inject_fault", {"kind": "link_drop", "target": "both"}), "fault_injected",
+         "link_drop:both: link_drop on both", True),
+    ]
+    for command, kind, detail, expected in cases:
+        assert answer_to(command, kind, detail) is expected, (command, kind, detail)
+
+
+def test_scenario_progress_and_verdicts_read_from_the_folder_files(tmp_path):
+    rig = load_rig(GUARDED)
+    scenario_file = CONFIGS / "rehearsals" / "belt_sensor_stuck.toml"
+    (tmp_path / "scenario.toml").write_bytes(scenario_file.read_bytes())
+    plan, note = scenario_plan(tmp_path, rig)
+    assert note == "" and plan is not None
+    scenario = load_scenario(scenario_file, rig)
+    assert plan.steps == tuple(s.label for s in scenario.steps)
+    assert plan.phases == ("surge", "sensor_stuck")
+    assert plan.verdicts == tuple(v.name for v in scenario.verdicts)
+    log = EventLog()
+    log.add([(800, 0.8, "scenario_step", "steps[0]: at 0.8 s"), (800, 0.8, "phase", "surge")])
+    lines = progress_lines(plan, log)
+    assert lines[0] == f"scenario belt_sensor_stuck: 1 of {len(plan.steps)} steps fired"
+    assert lines[1] == "  done  steps[0] at 0.800 s" and lines[2] == "  --    steps[1]"
+    assert "phases reached: surge (0.800 s)" in lines
+    assert "phases to come: sensor_stuck" in lines
+    summary = {"ended": "tripped", "exit_code": 1, "reason": "interlock belt_overspeed",
+               "acceptance": [{"rule": "no unexpected trip", "passed": False,
+                               "measured": "1 trip(s)", "needed": "none"}],
+               "verdicts": [{"name": "a very long verdict name that is never cut short",
+                             "criterion": "band", "measured": 0.0, "limit": 0.0,
+                             "unit": "m/s", "passed": False, "detail": "outside"}]}
+    out = outcome_lines(summary)
+    assert out[0] == ("outcome: tripped, exit code 1: interlock belt_overspeed", False)
+    assert ("rule failed: no unexpected trip: 1 trip(s) (needed none)", False) in out
+    assert out[-1] == ("FAIL  a very long verdict name that is never cut short: 0 m/s "
+                       "(limit 0); outside", False)
+    assert outcome_lines(None) == [("outcome: judged when the run ends", None)]
+    assert pending_verdicts(plan)[1] == (f"  ..  {plan.verdicts[0]}", None)
+    (tmp_path / "scenario.toml").write_text("[scenario]\nname = 3\n")
+    assert scenario_plan(tmp_path, rig)[0] is None and \
+        scenario_plan(tmp_path, rig)[1].startswith("scenario.toml:")
+
+
+def test_the_live_window_finds_its_run_folder_only_when_run_start_names_the_tape(tmp_path):
+    folder = tmp_path / "conveyor_guarded-20261202-101500"
+    folder.mkdir()
+    tape = Path("/dev/shm") / f"plantrig-{folder.name}-7f3a.tape"
+    assert live_folder(tape, tmp_path) is None                 # no run_start.json yet
+    (folder / "run_start.json").write_text(json.dumps({"tape": "/dev/shm/other.tape"}))
+    assert live_folder(tape, tmp_path) is None                 # another run's tape
+    (folder / "run_start.json").write_text(json.dumps({"tape": str(tape)}))
+    assert live_folder(tape, tmp_path) == folder
+    assert live_folder(tape, None) is None
+    assert live_folder(Path("/dev/shm/odd.tape"), tmp_path) is None
