@@ -194,7 +194,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     try:
         record = read_run(folder)
         paths = write_report(record, out, operator=args.operator, witness=args.witness,
-                             readiness=readiness, draft=args.draft)
+                             readiness=readiness, draft=args.draft, reviewer=args.reviewer)
     except (OSError, ValueError) as exc:
         print(f"error: {folder}: cannot make the report ({exc})", file=sys.stderr)
         return EXIT_USAGE
@@ -300,6 +300,7 @@ def add_record_commands(sub: argparse._SubParsersAction) -> None:  # type: ignor
     p.add_argument("folder", help="run folder")
     p.add_argument("--operator", default="", metavar="NAME", help="who ran the test")
     p.add_argument("--witness", default="", metavar="NAME", help="who witnessed it")
+    p.add_argument("--reviewer", default="", metavar="NAME", help="who reviews the record")
     p.add_argument("--public-key", metavar="FILE",
                    help="also check the signature with this Ed25519 public key (PEM)")
     p.add_argument("--out", metavar="DIR",

@@ -1,55 +1,75 @@
 """The sign-off report of a run: report.html (self-contained) and report.pdf.
 
-Both carry the same content, in this order: identity of the run (rig, date, operator,
-witness, software, outcome and exit code), the manifest (its own SHA-256, what verify
-found when the report was made, the signature, the hash of every file), the acceptance
-rules as judged after the run, model summary, verdicts, event
-timeline, signal plots with their range bands and fault and trip windows marked, limit
-use, link and timing statistics with a lateness histogram. Images are rendered once with
-matplotlib (Agg) and embedded in the HTML as base64 PNG; the PDF is written with PdfPages.
+Both carry the same content in the same order (app/_report_text.py): page 1 is the
+result at a glance, the run's identity (rig, scenario, run id, the UTC time of tick 0,
+the device under test and the link used), the acceptance rules and the verdicts; then
+the signature block, the software and the hashes; then the manifest, the record, the
+limits, the model, the events, link and timing. The plots follow (app/_plots.py, the
+same code as ``plantrig plot``): an event timeline, every signal with its reference,
+limit lines, trips, faults and disturbances, the limit-use page and, for a real-time
+run only, the timing histograms. Every PDF page says "page N of M" and the run id.
 
 A report is written beside the record (``derived/``), never into what the manifest
 covers, so making one never changes the manifest or voids a signature; it names the
 manifest's SHA-256 instead, which ties it to exactly one state of the record. A draft
 (a folder that is still being written, not finished or fails verify) is named
 ``DRAFT-report.*`` and says so on every page and in every image.
-
-Column meanings (shared with the dashboard): ``fault:<name>`` and ``trip:<name>`` are
-non-zero while the fault or interlock is active; ``limit:<name>`` is the fraction of a
-limit in use, above 1 beyond it.
 """
 
 from __future__ import annotations
 
 import base64
-import datetime as _dt
 import html
-import json
 import tempfile
-import tomllib
+import textwrap
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from numpy.typing import NDArray
 
 from plantrig import CAUTION, __version__
+from plantrig._limit_use import limit_use
+from plantrig._plots import (
+    ALARM,
+    ATTENTION,
+    GRID,
+    INK,
+    INK_SOFT,
+    PLANT_BLUE,
+    PlotContext,
+    context,
+    draw_panel,
+    label,
+    mark_trips,
+    shade_windows,
+    standard_panels,
+)
+from plantrig._report_text import (
+    Section,
+    event_word,
+    passed,
+    result_line,
+    run_facts,
+    sections,
+)
 from plantrig.sim._reader import RunRecord
 from plantrig.sim._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
 
-PLOT_POINTS = 4000           # per trace, min/max envelope beyond this
-PANELS_PER_PAGE = 5
-GROUPS = (("reference", "ref"), ("plant input (applied)", "u"), ("plant output (true)", "y"),
-          ("plant state (true)", "x"), ("controller command", "cmd"),
-          ("controller reads", "sent"))        # plantrig.sim.SIGNAL_LABELS' words
-INK, BAND, FAULT, TRIP, LIMIT = "#1f3b57", "#d9534f", "#f0ad4e", "#8e44ad", "#2a9d8f"
-DRAFT_INK = "#c0392b"
 PAGE = (8.27, 11.69)         # A4 portrait, inches
-TEXT_LINES_PER_PAGE = 80
+PANELS_PER_PAGE = 4
+LIMITS_PER_PAGE = 4
+DRAFT_INK = "#c0392b"
+PASS_FILL, FAIL_FILL = "#e4e9e2", "#f6dcdc"
+# text layout, in inches from the top-left corner of the page
+LEFT, KEY_W, VALUE_X, RIGHT = 0.6, 2.15, 2.9, 7.75
+TOP, BOTTOM = 0.75, 11.0
+BODY_PT, HEAD_PT = 7.5, 10.5
+LINE_IN = BODY_PT * 1.45 / 72
 
 
 def write_report(record: RunRecord, out_dir: Path, operator: str = "", witness: str = "",
-                 readiness: Readiness | None = None, draft: bool = False) -> list[Path]:
+                 readiness: Readiness | None = None, draft: bool = False,
+                 reviewer: str = "") -> list[Path]:
     """Write report.html and report.pdf (DRAFT-report.* for a draft) into ``out_dir``;
     return their paths. ``readiness``: what check_folder found (checked here if None)."""
     import matplotlib
@@ -58,350 +78,220 @@ def write_report(record: RunRecord, out_dir: Path, operator: str = "", witness: 
     from matplotlib.backends.backend_pdf import PdfPages
 
     readiness = readiness if readiness is not None else check_folder(record.folder)
-    sections = _sections(record, operator, witness, readiness, draft)
-    figures = _figures(record)
-    if draft:
-        for _title, fig in figures:
-            _mark_draft(fig)
+    ctx = context(record)
+    people = {"operator": operator, "witness": witness, "reviewer": reviewer}
+    content = sections(record, ctx, readiness, draft, people)
+    facts = run_facts(record)
+    figures = _figures(ctx, facts)
+    text_pages = _text_pages(record, facts, content)
+    pages = text_pages + [fig for _title, fig in figures]
+    run_id = record.folder.name
+    for number, page in enumerate(pages, start=1):
+        _frame(page, run_id, number, len(pages), draft)
     out_dir.mkdir(parents=True, exist_ok=True)
     name = f"{DRAFT_PREFIX if draft else ''}report"
     html_path, pdf_path = out_dir / f"{name}.html", out_dir / f"{name}.pdf"
-    html_path.write_text(_html(record, sections, figures, draft), encoding="utf-8")
-    title = f"{'DRAFT ' if draft else ''}plantrig run {record.folder.name}"
+    html_path.write_text(_html(record, facts, content, figures, draft), encoding="utf-8")
+    title = f"{'DRAFT ' if draft else ''}plantrig run {run_id}"
     with PdfPages(pdf_path, metadata={"Title": title,
                                       "Creator": f"plantrig {__version__}"}) as pdf:
-        for page in _text_pages(sections):
-            if draft:
-                _mark_draft(page)
+        for page in pages:
             pdf.savefig(page)
-            _close(page)
-        for _title, fig in figures:
-            pdf.savefig(fig)
-    for _title, fig in figures:
-        _close(fig)
+    for page in pages:
+        _close(page)
     return [html_path, pdf_path]
 
 
-# -- content -----------------------------------------------------------------------------
+# -- text pages ------------------------------------------------------------------------------
 
-Section = tuple[str, list[tuple[str, str]]]
+class _Flow:
+    """Lays text out down A4 pages, starting a new page when one is full."""
 
+    def __init__(self) -> None:
+        self.pages: list[Any] = []
+        self.y = BOTTOM          # forces a new page on the first line
 
-def _sections(record: RunRecord, operator: str, witness: str, readiness: Readiness,
-              draft: bool) -> list[Section]:
-    s = record.summary or _start_of(record.folder)   # a run not over: what it started as
-    rig = s.get("rig", {})
-    description = ""
-    rig_file = record.folder / "rig.toml"
-    if rig_file.exists():
-        try:
-            description = tomllib.loads(rig_file.read_text()).get("rig", {}).get(
-                "description", "")
-        except tomllib.TOMLDecodeError:
-            description = "(rig.toml does not parse)"
-    identity = [
-        ("rig", f"{rig.get('name', '?')}" + (f" — {description}" if description else "")),
-        ("run folder", record.folder.name),
-        ("started (UTC)", str(s.get("started_utc", "?"))),
-        ("mode", str(s.get("mode", "?"))),
-        ("ended", f"{s['ended']}: {s.get('reason', '')}" if "ended" in s else
-                  "not recorded: the run has no summary (not over, or it died)"),
-        ("exit code", str(s.get("exit_code", "?"))),
-        ("ticks", f"{s.get('ticks_recorded', len(record.rows))} of "
-                  f"{s.get('ticks_planned', '?')} planned, tick {rig.get('tick_s', '?')} s"),
-        ("operator", operator or "________________"),
-        ("witness", witness or "________________"),
-        ("software", f"plantrig {s.get('software', {}).get('version', '?')} "
-                     f"(report by plantrig {__version__})"),
-        ("rig file SHA-256", str(rig.get("sha256", "?"))),
-        ("report made (UTC)", _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")),
-        ("tick data read from", record.source),
-    ]
-    if "recovery" in s:
-        r = s["recovery"]
-        identity.append(("recovered", f"rebuilt after the rig died: {r.get('lost_rows')} "
-                                      f"ticks lost ({r.get('lost_ms')} ms)"))
-    if isinstance(s.get("record"), dict):
-        identity += [("record problem", str(p)) for p in s["record"].get("problems", [])]
-    model = s.get("model", {})
-    model_rows = [(k, _fmt(model.get(k))) for k in
-                  ("kind", "states", "inputs", "outputs", "stability",
-                   "controllability_rank", "observability_rank") if k in model]
-    for re_, im in model.get("eigenvalues", []):
-        model_rows.append(("eigenvalue", f"{re_:+.6g} {im:+.6g}j"))
-    if model.get("time_constants_s"):
-        model_rows.append(("time constants [s]",
-                           ", ".join(f"{v:.4g}" for v in model["time_constants_s"])))
-    model_rows += [("warning", w) for w in model.get("warnings", [])]
-    head = [(DRAFT_MARK, [("why", p) for p in readiness.problems] or [
-        ("why", "made with --draft")])] if draft else []
-    return head + [("Run identity", identity), _manifest_section(record.folder, readiness),
-            ("Acceptance rules", _acceptance_rows(s)),
-            ("Model summary", model_rows or [("model", "not recorded")]),
-            ("Verdicts", _verdict_rows(record.folder)),
-            ("Events", [(f"{ev['time']:.4f} s (tick {ev['tick']})",
-                         f"{ev['kind']}: {ev.get('detail', '')}") for ev in record.events]
-             or [("events", "none")]),
-            ("Link and timing", _stat_rows(record)),
-            ("Caution", [("", CAUTION)])]
+    def need(self, inches: float) -> None:
+        if self.y + inches > BOTTOM:
+            import matplotlib.pyplot as plt
+
+            self.pages.append(plt.figure(figsize=PAGE))
+            self.y = TOP
+
+    def text(self, x: float, text: str, **kw: Any) -> None:
+        self.pages[-1].text(x / PAGE[0], 1 - self.y / PAGE[1], text, va="top", **kw)
+
+    def heading(self, title: str) -> None:
+        self.need(LINE_IN * 3.2)
+        self.y += LINE_IN * 0.8
+        self.text(LEFT, title, fontsize=HEAD_PT, weight="bold", color=INK)
+        self.y += LINE_IN * 1.35
+        self.pages[-1].add_artist(_rule(self.y - LINE_IN * 0.3))
+
+    def row(self, key: str, value: str, mono: bool = False) -> None:
+        keys = _wrap(key, KEY_W, BODY_PT)
+        values = _wrap(value, RIGHT - VALUE_X, BODY_PT, mono)
+        for i in range(max(len(keys), len(values))):
+            self.need(LINE_IN)
+            if i < len(keys):
+                self.text(LEFT, keys[i], fontsize=BODY_PT, color=INK_SOFT)
+            if i < len(values):
+                self.text(VALUE_X, values[i], fontsize=BODY_PT, color=INK,
+                          family="monospace" if mono else "sans-serif")
+            self.y += LINE_IN
+        self.y += LINE_IN * 0.25
 
 
-def _start_of(folder: Path) -> dict[str, Any]:
-    try:
-        start = json.loads((folder / "run_start.json").read_text())
-    except (OSError, ValueError):
-        return {}
-    return start if isinstance(start, dict) else {}
+def _rule(y_in: float) -> Any:
+    from matplotlib.lines import Line2D
+
+    y = 1 - y_in / PAGE[1]
+    return Line2D([LEFT / PAGE[0], RIGHT / PAGE[0]], [y, y], lw=0.8, color=INK_SOFT)
 
 
-def _manifest_section(folder: Path, readiness: Readiness) -> Section:
-    """The manifest's own hash, what verify found when the report was made, and the hash
-    of every file, labelled as not valid when the folder fails verify."""
-    v = readiness.verification
-    if v is None:
-        why = "; ".join(readiness.problems) or "not checked"
-        return ("Manifest: NONE", [("manifest", f"no verified manifest ({why})")])
-    rows = [("manifest.json SHA-256", v.manifest_sha256),
-            ("manifest written (UTC)", v.created_utc)]
-    if readiness.not_intact:
-        rows.append(("verify at report time", "FAILED: " + "; ".join(readiness.not_intact)))
-    else:
-        rows.append(("verify at report time", f"ok, {v.checked} files match"))
-    signature = {"absent": "none (plantrig sign adds one)",
-                 "not checked": "present, not checked here (check it with plantrig verify "
-                                "--public-key)"}.get(v.signature, v.signature)
-    rows.append(("signature", signature + (f"; {v.signature_detail}"
-                                           if v.signature_detail else "")))
-    try:
-        files = json.loads((folder / "manifest.json").read_text()).get("files", {})
-    except (OSError, ValueError):
-        files = {}
-    rows += [(name, str(entry.get("sha256", ""))) for name, entry in sorted(files.items())
-             if isinstance(entry, dict)]
-    title = ("Manifest (FAILS VERIFY: the hashes below are as listed, not as found)"
-             if readiness.not_intact else "Manifest (SHA-256)")
-    return (title, rows)
+def _wrap(text: str, width_in: float, size_pt: float, mono: bool = False) -> list[str]:
+    """Lines of ``text`` that fit ``width_in`` (average glyph width, DejaVu Sans about
+    0.56 em, monospace 0.6 em: common practice for estimating, with a margin)."""
+    chars = max(8, int(width_in * 72 / (size_pt * (0.62 if mono else 0.58))))
+    lines: list[str] = []
+    for part in str(text).split("\n"):
+        lines += textwrap.wrap(part, chars, break_long_words=True,
+                               break_on_hyphens=False) or [""]
+    return lines
 
 
-def _acceptance_rows(summary: dict[str, Any]) -> list[tuple[str, str]]:
-    """The run's acceptance rules as judged after it (summary "acceptance")."""
-    rules = summary.get("acceptance")
-    if not isinstance(rules, list) or not rules:
-        return [("acceptance", "not judged (no acceptance results in the summary)")]
-    mark = {True: "held", False: "FAILED", None: "n/a"}
-    return [(str(r.get("rule", "?")), f"{mark.get(r.get('passed'), '?')}: "
-             f"{r.get('measured', '')} (needs {r.get('needed', '')})")
-            for r in rules if isinstance(r, dict)]
+def _text_pages(record: RunRecord, facts: dict[str, Any], content: list[Section]) -> list[Any]:
+    flow = _Flow()
+    flow.need(1.6)
+    flow.text(LEFT, "Run record for sign-off", fontsize=17, weight="bold", color=INK)
+    flow.y += 0.34
+    rig = facts.get("rig", {}).get("name", "?")
+    flow.text(LEFT, f"rig {rig} — run {record.folder.name}", fontsize=10, color=INK_SOFT)
+    flow.y += 0.32
+    ok = passed(facts)
+    fill, ink = (PASS_FILL, INK) if ok else (FAIL_FILL, ALARM)
+    from matplotlib.patches import Rectangle
 
-
-def _verdict_rows(folder: Path) -> list[tuple[str, str]]:
-    path = folder / "verdicts.json"
-    if not path.exists():
-        return [("verdicts", "no acceptance criteria in this run")]
-    try:
-        doc = json.loads(path.read_text())
-    except ValueError as exc:
-        return [("verdicts", f"verdicts.json does not parse ({exc})")]
-    items = doc.get("verdicts", doc) if isinstance(doc, dict) else doc
-    if isinstance(items, dict):
-        items = [{"name": k, **(v if isinstance(v, dict) else {"result": v})}
-                 for k, v in items.items()]
-    rows = []
-    items = items if isinstance(items, list) else [items]
-    judged = [i for i in items if isinstance(i, dict) and "passed" in i]
-    if judged:
-        passed = sum(bool(i["passed"]) for i in judged)
-        rows.append(("result", f"{passed} of {len(judged)} criteria passed"
-                     + ("" if passed == len(judged) else " — NOT ACCEPTED")))
-    for i, item in enumerate(items):
-        if not isinstance(item, dict):
-            rows.append((f"#{i + 1}", _fmt(item)))
-            continue
-        name = str(item.get("name", f"#{i + 1}"))
-        unit = f" {item['unit']}" if item.get("unit") else ""
-        parts = []
-        if "passed" in item:
-            parts.append("PASS" if item["passed"] else "FAIL")
-        if item.get("criterion"):
-            parts.append(str(item["criterion"]))
-        if "measured" in item:
-            parts.append(f"measured {_fmt(item['measured'])}{unit}")
-        if "limit" in item:
-            parts.append(f"limit {_fmt(item['limit'])}{unit}")
-        known = {"name", "passed", "criterion", "measured", "limit", "unit"}
-        parts += [f"{k} {_fmt(v)}" for k, v in item.items() if k not in known and v not in
-                  (None, "")]
-        rows.append((name, "; ".join(parts)))
-    return rows or [("verdicts", "verdicts.json lists no criteria")]
-
-
-def _stat_rows(record: RunRecord) -> list[tuple[str, str]]:
-    s = record.summary
-    rows = [(f"link {k}", _fmt(v)) for k, v in sorted(s.get("link", {}).items())]
-    if "fresh" in record and len(record.rows):
-        rows.append(("fresh commands", f"{record['fresh'].mean() * 100:.2f} % of ticks"))
-    timing = s.get("timing", {})
-    for key in ("lateness_p50_s", "lateness_p99_s", "lateness_max_s", "exec_p50_s",
-                "exec_p99_s", "exec_max_s"):
-        if key in timing:
-            rows.append((key.replace("_s", "").replace("_", " "),
-                         f"{timing[key] * 1e6:.1f} us"))
-    for key in ("overruns", "skipped_slots", "scheduler", "cpu", "wall_s", "ticks_per_s"):
-        if timing.get(key) is not None:
-            rows.append((key.replace("_", " "), _fmt(timing[key])))
-    rec = s.get("recorder", {})
-    if rec:
-        rows.append(("recorder", ", ".join(f"{k} {_fmt(v)}" for k, v in rec.items())))
-    return rows or [("statistics", "none recorded")]
-
-
-def _fmt(value: Any) -> str:
-    if isinstance(value, float):
-        return f"{value:.6g}"
-    return str(value)
+    flow.pages[-1].add_artist(Rectangle(
+        (LEFT / PAGE[0], 1 - (flow.y + 0.42) / PAGE[1]), (RIGHT - LEFT) / PAGE[0],
+        0.42 / PAGE[1], transform=flow.pages[-1].transFigure, facecolor=fill,
+        edgecolor=ink, lw=1.4))
+    for line in _wrap(result_line(facts), RIGHT - LEFT - 0.3, 11)[:2]:
+        flow.y += 0.06
+        flow.text(LEFT + 0.12, line, fontsize=11, weight="bold", color=ink)
+        flow.y += 0.16
+    flow.y = max(flow.y, flow.y) + 0.2
+    for title, rows in content:
+        flow.heading(title)
+        mono = title.startswith("Manifest")
+        for key, value in rows:
+            flow.row(key, value, mono=mono and len(value) == 64)
+    flow.heading("Caution")
+    flow.row("", CAUTION)
+    return flow.pages
 
 
 # -- figures -----------------------------------------------------------------------------
 
-def _figures(record: RunRecord) -> list[tuple[str, Any]]:
+def _figures(ctx: PlotContext, facts: dict[str, Any]) -> list[tuple[str, Any]]:
+    record = ctx.record
     out: list[tuple[str, Any]] = []
     if not len(record.rows):
         return out
-    t = record.t
-    windows = [(c, "fault", FAULT) for c in record.names("fault")] + \
-              [(c, "trip", TRIP) for c in record.names("trip")]
-    info = {c.get("name"): c for c in record.info}
     if record.events:
-        out.append(("Event timeline", _timeline(record)))
-    panels = [(group, name) for group, prefix in GROUPS for name in record.names(prefix)]
+        out.append(("Event timeline", _timeline(ctx)))
+    panels = standard_panels(ctx)
     pages = (len(panels) + PANELS_PER_PAGE - 1) // PANELS_PER_PAGE
     for page in range(pages):
         chunk = panels[page * PANELS_PER_PAGE:(page + 1) * PANELS_PER_PAGE]
         title = f"Signals ({page + 1} of {pages})"
-        out.append((title, _signal_page(record, t, chunk, info, windows, title)))
-    limits = record.names("limit")
-    if limits:
-        out.append(("Limit use", _limit_page(record, t, limits)))
-    out.append(("Timing", _timing_page(record)))
+        out.append((title, _signal_page(ctx, chunk, title)))
+    limits = [lim for lim in ctx.limits if lim.column in record]
+    for start in range(0, len(limits), LIMITS_PER_PAGE):
+        out.append(("Limit use", _limit_page(ctx, limits[start:start + LIMITS_PER_PAGE])))
+    if facts.get("mode") == "realtime":
+        out.append(("Timing", _timing_page(record)))
     return out
 
 
-def _envelope(t: NDArray[np.float64], v: NDArray[np.float64]) -> tuple[NDArray[np.float64],
-                                                                        NDArray[np.float64]]:
-    """At most PLOT_POINTS points, keeping each bucket's min and max (peaks stay)."""
-    if len(t) <= PLOT_POINTS:
-        return t, v
-    buckets = PLOT_POINTS // 2
-    edges = np.linspace(0, len(t), buckets + 1).astype(int)
-    tt, vv = [], []
-    for a, b in zip(edges[:-1], edges[1:], strict=True):
-        seg = v[a:b]
-        i, j = a + int(np.argmin(seg)), a + int(np.argmax(seg))
-        for k in sorted((i, j)):
-            tt.append(t[k])
-            vv.append(v[k])
-    return np.array(tt), np.array(vv)
-
-
-def _spans(t: NDArray[np.float64], active: NDArray[np.bool_]) -> list[tuple[float, float]]:
-    """(start, end) times of the runs of True in ``active``."""
-    if not active.any():
-        return []
-    edges = np.flatnonzero(np.diff(np.concatenate([[0], active.astype(np.int8), [0]])))
-    step = float(t[1] - t[0]) if len(t) > 1 else 0.0
-    return [(float(t[a]), float(t[b - 1]) + step) for a, b in zip(edges[::2], edges[1::2],
-                                                                  strict=True)]
-
-
-def _signal_page(record: RunRecord, t: NDArray[np.float64], panels: list[tuple[str, str]],
-                 info: dict[str, dict[str, Any]], windows: list[tuple[str, str, str]],
-                 title: str) -> Any:
+def _signal_page(ctx: PlotContext, panels: list[Any], title: str) -> Any:
     import matplotlib.pyplot as plt
 
     fig, axes = plt.subplots(PANELS_PER_PAGE, 1, figsize=PAGE, sharex=True)
-    fig.suptitle(title, fontsize=13, x=0.06, ha="left")
+    fig.suptitle(title, fontsize=12, x=0.07, y=0.955, ha="left")
     for ax in axes[len(panels):]:
         ax.set_visible(False)
-    for ax, (group, name) in zip(axes, panels, strict=False):
-        v = record[name]
-        tt, vv = _envelope(t, v)
-        ax.plot(tt, vv, color=INK, lw=1.0)
-        meta = info.get(name, {})
-        lo, hi = meta.get("min"), meta.get("max")
-        span = [x for x in (lo, hi, float(np.nanmin(v)) if v.size else None,
-                            float(np.nanmax(v)) if v.size else None) if x is not None
-                and np.isfinite(x)]
-        if lo is not None or hi is not None:
-            pad = 0.08 * ((max(span) - min(span)) or 1.0)
-            bottom, top = min(span) - pad, max(span) + pad
-            if lo is not None:
-                ax.axhspan(bottom, lo, color=BAND, alpha=0.12, lw=0)
-                ax.axhline(lo, color=BAND, lw=0.8, ls="--")
-            if hi is not None:
-                ax.axhspan(hi, top, color=BAND, alpha=0.12, lw=0)
-                ax.axhline(hi, color=BAND, lw=0.8, ls="--")
-            ax.set_ylim(bottom, top)
-        for column, kind, colour in windows:
-            for a, b in _spans(t, record[column] != 0):
-                ax.axvspan(a, b, color=colour, alpha=0.25, lw=0,
-                           label=f"{kind} {column.partition(':')[2]}")
-        handles, labels = ax.get_legend_handles_labels()
-        if labels:
-            unique = dict(zip(labels, handles, strict=True))
-            ax.legend(unique.values(), unique.keys(), fontsize=7, loc="upper right")
-        unit = record.unit(name)
-        ax.set_ylabel(f"{name.partition(':')[2]}" + (f" [{unit}]" if unit else ""),
-                      fontsize=9)
-        ax.grid(True, lw=0.3, alpha=0.6)
-        ax.set_title(f"{group} {name.partition(':')[2]}", fontsize=9, loc="left")
-        if lo is not None or hi is not None:
-            ax.set_title(f"range {_bound(lo)} .. {_bound(hi)} {unit}", fontsize=8,
-                         loc="right", color=BAND)
+    for ax, panel in zip(axes, panels, strict=False):
+        draw_panel(ax, ctx, panel)
     last = axes[len(panels) - 1]
-    last.set_xlabel("plant time [s]")
+    last.set_xlabel("plant time [s]", fontsize=8)
     last.xaxis.set_tick_params(labelbottom=True)
-    fig.tight_layout(rect=(0, 0, 1, 0.97))
+    fig.tight_layout(rect=(0.02, 0.04, 0.98, 0.94))
     return fig
 
 
-def _bound(value: float | None) -> str:
-    return "-inf" if value is None else f"{value:g}"
-
-
-def _limit_page(record: RunRecord, t: NDArray[np.float64], names: list[str]) -> Any:
+def _limit_page(ctx: PlotContext, limits: list[Any]) -> Any:
+    """Each limit's watched signal as a fraction of its trip band (app/_limit_use.py)."""
     import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=PAGE)
-    for name in names:
-        tt, vv = _envelope(t, record[name])
-        ax.plot(tt, vv, lw=1.0, label=name.partition(":")[2])
-    ax.axhline(1.0, color=BAND, ls="--", lw=0.9, label="at the limit")
-    ax.set_title("Limit use (fraction of each limit; above 1 is beyond it)", fontsize=11)
-    ax.set_xlabel("plant time [s]")
-    ax.legend(fontsize=7)
-    ax.grid(True, lw=0.3, alpha=0.6)
-    fig.tight_layout(rect=(0, 0.5, 1, 1))
+    record = ctx.record
+    fig, axes = plt.subplots(LIMITS_PER_PAGE, 1, figsize=PAGE, sharex=True)
+    fig.suptitle("Limit use: each watched signal as a fraction of its trip band "
+                 "(1 = trip bound)", fontsize=11, x=0.07, y=0.955, ha="left")
+    for ax in axes[len(limits):]:
+        ax.set_visible(False)
+    t = record.t
+    for ax, lim in zip(axes, limits, strict=False):
+        use = limit_use(record, lim)
+        ax.plot(t, np.minimum(use.use, 10.0), color=PLANT_BLUE, lw=1.4,
+                label=f"{label(lim.column)} (use)")
+        if use.rate_use is not None:
+            ax.plot(t, np.minimum(use.rate_use, 10.0), color=INK_SOFT, lw=0.8,
+                    label="rate of change (use)")
+        ax.axhline(1.0, color=ALARM, lw=1.1, label="trip bound")
+        for w in sorted(set(round(w, 9) for w in use.warn_fractions)):
+            ax.axhline(w, color=ATTENTION, lw=1.0, ls=(0, (5, 3)), label=f"warn {w:.3g}")
+        shade_windows(ax, ctx)
+        mark_trips(ax, ctx)
+        top = max(1.15, min(float(np.max(use.use)) if len(use.use) else 1.0, 10.0) * 1.08)
+        ax.set_ylim(min(0.0, float(np.min(use.use)) if len(use.use) else 0.0), top)
+        ax.annotate(f"peak {use.peak:.3f} at {use.peak_time:.4g} s", (use.peak_time,
+                    min(use.peak, 10.0)), xytext=(4, -10), textcoords="offset points",
+                    fontsize=7, color=INK)
+        ax.set_title("\n".join(_wrap(f"{lim.name}: {use.bands_text}", 6.6, 7.5)),
+                     fontsize=7.5, loc="left")
+        ax.set_ylabel("fraction of trip band", fontsize=7.5)
+        ax.grid(True, lw=0.4, color=GRID)
+        ax.tick_params(labelsize=7)
+        handles, labels_ = ax.get_legend_handles_labels()
+        unique = dict(zip(labels_, handles, strict=True))
+        ax.legend(unique.values(), unique.keys(), fontsize=6.5, loc="upper left",
+                  framealpha=0.85)
+    axes[len(limits) - 1].set_xlabel("plant time [s]", fontsize=8)
+    axes[len(limits) - 1].xaxis.set_tick_params(labelbottom=True)
+    fig.tight_layout(rect=(0.02, 0.04, 0.98, 0.94))
     return fig
 
 
-def _timeline(record: RunRecord) -> Any:
+def _timeline(ctx: PlotContext) -> Any:
     import matplotlib.pyplot as plt
 
+    record = ctx.record
     kinds = sorted({ev["kind"] for ev in record.events})
     fig, ax = plt.subplots(figsize=PAGE)
     for i, kind in enumerate(kinds):
         times = [ev["time"] for ev in record.events if ev["kind"] == kind]
-        ax.scatter(times, [i] * len(times), marker="|", s=300, color=LIMIT if kind != "error"
-                   else BAND)
-    ax.set_yticks(range(len(kinds)), kinds, fontsize=8)
+        ax.scatter(times, [i] * len(times), marker="|", s=300,
+                   color=ALARM if kind in ("trip", "estop", "error") else INK)
+    ax.set_yticks(range(len(kinds)), [event_word(k) for k in kinds], fontsize=8)
     ax.set_ylim(-0.7, len(kinds) - 0.3)
-    if len(record.rows):
-        lo, hi = float(record.t[0]), float(record.t[-1])
-        ax.set_xlim(lo - 0.02 * (hi - lo), hi + 0.02 * (hi - lo) + 1e-9)
+    shade_windows(ax, ctx)
+    lo, hi = float(record.t[0]), float(record.t[-1])
+    ax.set_xlim(lo - 0.02 * (hi - lo), hi + 0.02 * (hi - lo) + 1e-9)
     ax.set_xlabel("plant time [s]")
-    ax.set_title("Event timeline", fontsize=11)
-    ax.grid(True, axis="x", lw=0.3, alpha=0.6)
-    fig.tight_layout(rect=(0, 1 - min(0.9, 0.2 + 0.03 * len(kinds)), 1, 1))
+    ax.set_title("Event timeline (faults and disturbances shaded)", fontsize=11, loc="left")
+    ax.grid(True, axis="x", lw=0.4, color=GRID)
+    fig.tight_layout(rect=(0.02, 1 - min(0.9, 0.2 + 0.03 * len(kinds)), 0.98, 0.94))
     return fig
 
 
@@ -413,57 +303,39 @@ def _timing_page(record: RunRecord) -> Any:
     work = record["exec_time"] * 1e6 if "exec_time" in record else np.zeros(0)
     for ax, values, what in ((a, late, "lateness"), (b, work, "work time")):
         if values.size and values.any():
-            ax.hist(values, bins=80, color=INK)
+            ax.hist(values, bins=80, color=PLANT_BLUE)
             ax.set_yscale("log")
             for q, style in ((50, ":"), (99, "--")):
                 p = float(np.percentile(values, q))
-                ax.axvline(p, color=BAND, ls=style, lw=1, label=f"p{q} {p:.1f} us")
+                ax.axvline(p, color=ALARM, ls=style, lw=1, label=f"p{q} {p:.1f} us")
             ax.legend(fontsize=8)
             ax.set_xlabel(f"{what} per tick [us]")
             ax.set_ylabel("ticks")
         else:
-            ax.text(0.5, 0.5, f"no {what} recorded (fast mode)", ha="center",
-                    va="center", transform=ax.transAxes)
+            ax.text(0.5, 0.5, f"no {what} recorded", ha="center", va="center",
+                    transform=ax.transAxes)
             ax.set_xticks([])
             ax.set_yticks([])
-        ax.set_title(f"Tick {what}", fontsize=11)
-    fig.tight_layout(rect=(0, 0.35, 1, 1))
+        ax.set_title(f"Tick {what}", fontsize=11, loc="left")
+    fig.tight_layout(rect=(0.02, 0.35, 0.98, 0.94))
     return fig
 
 
 # -- output --------------------------------------------------------------------------------
 
-def _text_pages(sections: list[Section]) -> list[Any]:
-    """All text sections flowed over as many A4 pages as they need."""
-    import textwrap
-
-    import matplotlib.pyplot as plt
-
-    lines: list[tuple[str, bool]] = []     # (text, is a heading)
-    for title, rows in sections:
-        if lines:
-            lines.append(("", False))
-        lines.append((title, True))
-        for key, value in rows:
-            wrapped = textwrap.wrap(value, 70) or [""]
-            lines.append((f"{key[:26]:<28}{wrapped[0]}", False))
-            lines += [(" " * 28 + w, False) for w in wrapped[1:]]
-    pages = []
-    for start in range(0, len(lines), TEXT_LINES_PER_PAGE):
-        fig = plt.figure(figsize=PAGE)
-        y = 0.96
-        for text, heading in lines[start:start + TEXT_LINES_PER_PAGE]:
-            fig.text(0.06, y, text, va="top", fontsize=10 if heading else 7,
-                     weight="bold" if heading else "normal",
-                     family="sans-serif" if heading else "monospace")
-            y -= 0.92 / TEXT_LINES_PER_PAGE
-        pages.append(fig)
-    return pages
+def _frame(fig: Any, run_id: str, number: int, total: int, draft: bool) -> None:
+    """The run id and "page N of M" on every page (and the draft mark on a draft's)."""
+    fig.text(0.07, 0.985, f"plantrig run record — {run_id}", ha="left", va="top",
+             fontsize=7, color=INK_SOFT)
+    fig.text(0.93, 0.012, f"run {run_id} — page {number} of {total}", ha="right",
+             va="bottom", fontsize=7.5, color=INK)
+    if draft:
+        _mark_draft(fig)
 
 
 def _mark_draft(fig: Any) -> None:
     """The draft mark at the top and bottom of a page and across it."""
-    for x, y, ha, va in ((0.97, 0.998, "right", "top"), (0.5, 0.004, "center", "bottom")):
+    for x, y, ha, va in ((0.97, 0.998, "right", "top"), (0.07, 0.012, "left", "bottom")):
         fig.text(x, y, DRAFT_MARK, ha=ha, va=va, fontsize=9, weight="bold", color=DRAFT_INK)
     fig.text(0.5, 0.5, DRAFT_MARK, ha="center", va="center", rotation=55, fontsize=44,
              weight="bold", color=DRAFT_INK, alpha=0.13)
@@ -476,31 +348,38 @@ def _png(fig: Any) -> str:
         return base64.b64encode(buf.read()).decode("ascii")
 
 
-def _html(record: RunRecord, sections: list[Section], figures: list[tuple[str, Any]],
-          draft: bool) -> str:
+def _html(record: RunRecord, facts: dict[str, Any], content: list[Section],
+          figures: list[tuple[str, Any]], draft: bool) -> str:
     """One page; a draft has a bar fixed at the top (printed on every sheet) and the
     mark again before every section and image."""
     esc = html.escape
     mark = f"<p class='draft'>{DRAFT_MARK}</p>" if draft else ""
+    ok = passed(facts)
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
         f"<title>{DRAFT_MARK + ': ' if draft else ''}plantrig run "
         f"{esc(record.folder.name)}</title><style>",
-        "body{font-family:sans-serif;max-width:60em;margin:2em auto;color:#1d2630}",
+        f"body{{font-family:sans-serif;max-width:60em;margin:2em auto;color:{INK}}}",
         "table{border-collapse:collapse;margin-bottom:1.5em;width:100%}",
         "td{border-bottom:1px solid #d5dbe1;padding:2px 8px;vertical-align:top;"
-        "font-size:0.9em}td:first-child{white-space:nowrap;color:#4a5866;width:14em}",
-        "td.hash{font-family:monospace;font-size:0.8em}img{max-width:100%}",
-        "h1{font-size:1.5em}h2{font-size:1.15em;border-bottom:2px solid #1f3b57}",
+        "font-size:0.9em}td:first-child{color:#4a5866;width:16em}",
+        "td.hash{font-family:monospace;font-size:0.8em;word-break:break-all}"
+        "img{max-width:100%}",
+        f"h1{{font-size:1.6em}}h2{{font-size:1.15em;border-bottom:2px solid {PLANT_BLUE}}}",
+        f".result{{font-weight:bold;font-size:1.2em;padding:8px 12px;border:2px solid "
+        f"{INK if ok else ALARM};background:{PASS_FILL if ok else FAIL_FILL};"
+        f"color:{INK if ok else ALARM}}}",
         f".draft,.draft-bar{{text-align:center;font-weight:bold;color:{DRAFT_INK};"
         f"background:#fdecea;border:2px solid {DRAFT_INK};padding:4px}}",
         ".draft-bar{position:fixed;top:0;left:0;right:0}body.draft-page{padding-top:3em}",
         "</style></head>",
         f"<body class='draft-page'><div class='draft-bar'>{DRAFT_MARK}</div>" if draft
         else "<body>",
-        f"<h1>{DRAFT_MARK + ': ' if draft else ''}Run record: {esc(record.folder.name)}</h1>",
+        f"<h1>{DRAFT_MARK + ': ' if draft else ''}Run record for sign-off: "
+        f"{esc(record.folder.name)}</h1>",
+        f"<p class='result'>{esc(result_line(facts))}</p>",
     ]
-    for title, rows in sections:
+    for title, rows in [*content, ("Caution", [("", CAUTION)])]:
         parts.append(f"{mark}<h2>{esc(title)}</h2><table>")
         cls = " class='hash'" if title.startswith("Manifest") else ""
         for key, value in rows:

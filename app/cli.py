@@ -22,6 +22,7 @@ from plantrig._compare_cli import add_parser as add_compare_command
 from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._override_options import add_override_options, overrides_of
+from plantrig._plot_cli import add_parser as add_plot_command
 from plantrig._records_cli import add_record_commands
 from plantrig._rerun_cli import add_parser as add_rerun_command
 from plantrig.sim import (
@@ -172,7 +173,8 @@ def cmd_run(args: argparse.Namespace) -> int:
                                                   **dashboard_args,
                                                   actuator_chain=actuator_chain,
                                                   sensor_chain=sensor_chain, link=link,
-                                                  scenario=scenario)
+                                                  scenario=scenario,
+                                                  run_info=_dut_info(rig, args))
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -212,6 +214,12 @@ def _write_junit(path: str, rig_name: str, scenario: Any, summary: dict[str, Any
         return False
     print(f"junit: {path}")
     return True
+
+
+def _dut_info(rig: Any, args: argparse.Namespace) -> dict[str, Any] | None:
+    """The device under test: the rig file's [dut], with --dut / --firmware winning."""
+    dut = rig.dut.with_overrides(args.dut, args.firmware)
+    return {"dut": dut.as_dict()} if dut.named else None
 
 
 def _open_dashboard(rig: Any, out: Path) -> Any:
@@ -280,6 +288,11 @@ def build_parser() -> argparse.ArgumentParser:
                         "its verdicts are judged after it; exit code 3 if one fails")
     p.add_argument("--junit", metavar="OUT.xml",
                    help="also write the result as JUnit XML (one test case), as campaigns do")
+    p.add_argument("--dut", metavar="NAME",
+                   help="the device under test (overrides the rig file's dut.name); "
+                        "recorded in the run folder and the report")
+    p.add_argument("--firmware", metavar="VERSION",
+                   help="its firmware version (overrides dut.firmware); recorded likewise")
     add_override_options(p)
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)
@@ -296,6 +309,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_replay)
     add_link_commands(sub, _load, _print_outcome)
     add_compare_command(sub)
+    add_plot_command(sub)
     add_campaign_command(sub)
     add_runs_command(sub)
     add_rerun_command(sub, _print_outcome)

@@ -219,6 +219,13 @@ class MqttLink:
             merged["latency_ticks_max"] = float(np.flatnonzero(self.age_hist)[-1])
         return merged
 
+    def describe(self) -> dict[str, Any]:
+        """The broker and topics this link really uses (recorded with the run)."""
+        s = self.settings
+        used = {"kind": "mqtt", "broker": f"{s.host}:{s.port}", "tls": s.tls is not None,
+                "topics": s.topic("#"), "payload": s.payload, "encoding": s.encoding}
+        return {**used, "client_id": s.client_id} if s.client_id else used
+
     def close(self) -> None:
         """Ask the worker to publish 'offline' and disconnect; wait a little, then end it."""
         sock, worker = self._sock, self._worker

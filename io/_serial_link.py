@@ -306,6 +306,15 @@ class SerialLink:
             h["controller_state"] = float(self.status[0])
         return h
 
+    def describe(self) -> dict[str, Any]:
+        """The port and line settings this link really uses (recorded with the run: the
+        rig file's port may have been overridden)."""
+        o = self.options
+        return {"kind": "serial", "port": str(self.name), "baud": o.get("baud"),
+                "parity": o.get("parity"), "stop_bits": o.get("stop_bits"),
+                "byte_size": o.get("byte_size"), "protocol": self.settings.protocol,
+                "encoding": self.settings.encoding}
+
     def close(self) -> None:
         if self.io is not None:
             try:

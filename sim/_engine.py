@@ -27,6 +27,7 @@ that records the error as an event; every row recorded up to then is kept.
 from __future__ import annotations
 
 import math
+import time
 import traceback
 from dataclasses import dataclass, field
 from typing import Protocol
@@ -198,6 +199,7 @@ class Engine:
         self.safe_u = np.array([i.safe for i in rig.inputs], dtype=np.float64)
         self.events: list[Event] = []
         self.stop_requested = False
+        self.tick0_unix_ns: int | None = None   # set when the loop starts (run())
         self.stop_why = ""
         self.expected_trips = scenario.expected_trips if scenario else set()
         self.safety = Safety(rig.interlocks, rig.limits, rig.safety,
@@ -301,6 +303,8 @@ class Engine:
             realtime, commands = self.realtime, self.commands
             with _maybe_realtime(realtime, tick_ns) as report:
                 start = clock.now_ns() + START_LEAD_NS
+                # wall-clock UTC of tick 0: its deadline in real time, the loop start if fast
+                self.tick0_unix_ns = time.time_ns() + (START_LEAD_NS if realtime else 0)
                 slot = 0
                 for k in range(n_ticks):
                     if self.stop_requested:

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 
 from plantrig.sim._controllers import WINDUP
-from plantrig.sim._controllers import WINDUP
+from plantrig.sim._dut import DutSpec, parse_dut
 from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
 from plantrig.sim._faults import DisturbanceSpec, parse_disturbances
 from plantrig.sim._interlocks import (
@@ -105,6 +105,7 @@ class Rig:
     safety: SafetySettings = SafetySettings()
     disturbances: tuple[DisturbanceSpec, ...] = ()
     acceptance: AcceptanceRules = AcceptanceRules()
+    dut: DutSpec = DutSpec()           # the device under test, as the rig file names it
     overrides: tuple[str, ...] = ()    # KEY=VALUE assignments applied (sim/_overrides.py)
 
     @property
@@ -230,7 +231,7 @@ def _positive(value: Any) -> str | None:
 RIG_KEYS = {"name", "description", "tick", "duration", "mode", "seed", "on_overrun",
             "on_link_silence"}
 TOP_KEYS = {"rig", "plant", "controller", "references", "link", "sensors", "actuators",
-            "limits", "interlocks", "safety", "disturbances", "acceptance"}
+            "limits", "interlocks", "safety", "disturbances", "acceptance", "dut"}
 SIGNAL_KEYS = {"name", "unit", "min", "max", "description", "safe"}
 
 
@@ -292,6 +293,7 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     acceptance = parse_acceptance(c, doc, [ESTOP, *(i.name for i in interlocks)])
     disturbances = parse_disturbances(c, doc, plant, states)
     actuators = _list_of_tables(c, doc, "actuators")
+    dut = parse_dut(c, doc)
     if controller.kind == "external" and link is None:
         c.add("controller.kind", "'external' needs a [link] table to reach the controller")
 
@@ -305,7 +307,7 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
                controller=controller, link=link, sensors=tuple(sensors),
                actuators=tuple(actuators), on_link_silence=on_silence, limits=tuple(limits),
                interlocks=tuple(interlocks), safety=safety, disturbances=tuple(disturbances),
-               acceptance=acceptance)
+               acceptance=acceptance, dut=dut)
 
 
 def _list_of_tables(c: _Checker, doc: dict[str, Any], key: str) -> list[dict[str, Any]]:

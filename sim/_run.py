@@ -24,6 +24,7 @@ from plantrig.sim._preflight import RecordError, preflight
 from plantrig.sim._recorder import start_recorder
 from plantrig.sim._records import count_ticks, finish_record, salvage_rows, start_record
 from plantrig.sim._rigfile import Rig
+from plantrig.sim._run_info import add_to_run_start, run_info_of, utc_of
 from plantrig.sim._scenario import Scenario
 from plantrig.sim._signals import SignalStop, stop_on_signals
 from plantrig.sim._sources import copy_sources
@@ -118,7 +119,9 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                   on_tapes_ready: Any = None,
                   scenario: Scenario | None = None,
                   about: dict[str, Any] | None = None,
-                  npy: bool = False) -> tuple[Path, RunOutcome, dict[str, Any]]:
+                  npy: bool = False,
+                  run_info: dict[str, Any] | None = None) -> tuple[Path, RunOutcome,
+                                                                   dict[str, Any]]:
     """Run ``rig`` with the recorder in its own process; write the run folder.
 
     The folder holds the rig file as given (and an ODE model's module), the tick data
@@ -130,7 +133,9 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
     once both tapes exist (to start a dashboard on them). With a ``scenario`` the folder
     also holds it (``scenario.toml``) and its judged criteria (``verdicts.json``), and
     the summary lists them under "verdicts". ``about`` adds keys to the summary (a
-    rerun says what it re-ran).
+    rerun says what it re-ran). ``run_info`` (the device under test as "dut", say) goes
+    into run_start.json and the summary, with the link's ``describe()`` as "link_used";
+    the summary also holds "tick0_utc", the wall-clock time tick 0 started.
     """
     rig = scenario.apply_to(rig) if scenario is not None else rig
     columns, units = tick_columns(rig)
@@ -141,7 +146,7 @@ def run_to_folder(rig: Rig, out_dir: Path, *, realtime: bool | None = None,
                                realtime=realtime, link=link, actuator_chain=actuator_chain,
                                sensor_chain=sensor_chain, commands=commands,
                                on_tapes_ready=on_tapes_ready, scenario=scenario,
-                               about=about, npy=npy)
+                               about=about, npy=npy, run_info=run_info)
 
 
 def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bool | None,
@@ -149,7 +154,9 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
                     sensor_chain: SignalChain | None, commands: Any, on_tapes_ready: Any,
                     scenario: Scenario | None,
                     about: dict[str, Any] | None = None,
-                    npy: bool = False) -> tuple[Path, RunOutcome, dict[str, Any]]:
+                    npy: bool = False,
+                    run_info: dict[str, Any] | None = None) -> tuple[Path, RunOutcome,
+                                                                     dict[str, Any]]:
     columns, units = tick_columns(rig)
     copy_sources(rig, scenario, folder)  # rig.toml points at its module copy
     (folder / "columns.json").write_text(json.dumps({"columns": columns, "units": units}))
@@ -164,6 +171,8 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
     tape.watch_recorder(recorder.is_alive)
     start_record(folder, rig, columns, units, tape_path, event_tape_path, recorder.pid,
                  rig.mode == "realtime" if realtime is None else realtime)
+    run_info = run_info_of(run_info, link, rig.dut)
+    add_to_run_start(folder, run_info)
     if on_tapes_ready is not None:
         on_tapes_ready(tape_path, event_tape_path)
     started = _dt.datetime.now(_dt.UTC)
@@ -200,6 +209,7 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
                 "sha256": hashlib.sha256(rig.path.read_bytes()).hexdigest(),
                 "tick_s": rig.tick, "duration_s": rig.duration},
         "started_utc": started.isoformat(timespec="seconds"),
+        "tick0_utc": utc_of(engine.tick0_unix_ns),
         "mode": "realtime" if engine.realtime else "fast",
         "ended": outcome.ended, "reason": outcome.reason,
         "ticks_planned": rig.n_ticks, "ticks_run": outcome.ticks,
@@ -211,6 +221,7 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
         "events": _count_kinds(outcome),
         "model": model.as_dict(),
         "columns": columns, "units": units,
+        **run_info,
         **(about or {}),
     }
     verdicts_passed = True
