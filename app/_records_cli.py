@@ -13,7 +13,10 @@ changes what the manifest or a signature covers.
 from __future__ import annotations
 
 import argparse
+import getpass
+import os
 import sys
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -25,11 +28,12 @@ from plantrig.sim import (
     sign_folder,
     verify_folder,
 )
-from plantrig.sim._manifest import DERIVED, MANIFEST, ManifestError
+from plantrig.sim._manifest import DERIVED, MANIFEST, ManifestError, WrongPassphrase
 from plantrig.sim._records import RUN_START
 from plantrig.sim._signoff import DRAFT_MARK, Readiness, check_folder
 
 EXIT_OK, EXIT_NOT_INTACT, EXIT_USAGE, EXIT_NOT_FINISHED = 0, 1, 2, 4
+EXIT_PASSPHRASE = 3     # sign: the key is encrypted and the passphrase does not open it
 SIGNOFF_EXIT_CODES = """exit codes:
   0  written
   1  the folder fails verify (a file changed, missing or added, a damaged manifest,
@@ -150,17 +154,52 @@ def cmd_verify(args: argparse.Namespace) -> int:
     return EXIT_NOT_INTACT
 
 
+def _env_passphrase(name: str) -> bytes | None:
+    """The passphrase in environment variable ``name``; None after saying why not."""
+    value = os.environ.get(name)
+    if not value:
+        print(f"error: --passphrase-env {name}: the environment variable is "
+              f"{'empty' if value == '' else 'not set'}", file=sys.stderr)
+        return None
+    return value.encode("utf-8")
+
+
 def cmd_keygen(args: argparse.Namespace) -> int:
     private, public = Path(f"{args.out}.private.pem"), Path(f"{args.out}.public.pem")
+    passphrase = None
+    if args.passphrase_env:
+        passphrase = _env_passphrase(args.passphrase_env)
+        if passphrase is None:
+            return EXIT_USAGE
     try:
-        fingerprint = generate_keypair(private, public)
+        fingerprint = generate_keypair(private, public, passphrase)
     except (ManifestError, OSError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    print(f"private key: {private} (keep it secret; mode 0600)")
+    protected = "encrypted with the passphrase" if passphrase else "not encrypted"
+    print(f"private key: {private} (keep it secret; mode 0600; {protected})")
     print(f"public key:  {public} (give it to whoever checks: plantrig verify --public-key)")
     print(f"fingerprint (SHA-256 of the raw public key): {fingerprint}")
     return EXIT_OK
+
+
+def _sign_passphrase(args: argparse.Namespace, key: Path) -> Callable[[], bytes]:
+    """Where an encrypted key's passphrase comes from: --passphrase-env, else a prompt
+    on the terminal (getpass: not echoed)."""
+    def ask() -> bytes:
+        if args.passphrase_env:
+            value = os.environ.get(args.passphrase_env)
+            if not value:
+                raise WrongPassphrase(f"{key}: the key is encrypted and the environment "
+                                      f"variable {args.passphrase_env} is "
+                                      f"{'empty' if value == '' else 'not set'}")
+            return value.encode("utf-8")
+        try:
+            return getpass.getpass(f"passphrase for {key}: ").encode("utf-8")
+        except EOFError:
+            raise WrongPassphrase(f"{key}: the key is encrypted and no passphrase could be "
+                                  "read (no terminal): use --passphrase-env NAME") from None
+    return ask
 
 
 def cmd_sign(args: argparse.Namespace) -> int:
@@ -170,10 +209,17 @@ def cmd_sign(args: argparse.Namespace) -> int:
     readiness = check_folder(folder)
     if not readiness.ok:
         return _refused(folder, readiness, "signed", draft_hint=False)
+    key = Path(args.key)
     try:
-        fingerprint = sign_folder(folder, Path(args.key))
+        fingerprint = sign_folder(folder, key, _sign_passphrase(args, key))
+    except WrongPassphrase as exc:
+        print(f"error: {exc}; not signed", file=sys.stderr)
+        return EXIT_PASSPHRASE
     except ManifestError as exc:
         print(f"error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        print(f"{folder}: not signed", file=sys.stderr)
         return EXIT_USAGE
     print(f"{folder}: manifest signed, key fingerprint {fingerprint}")
     return EXIT_OK
@@ -275,19 +321,37 @@ def add_record_commands(sub: argparse._SubParsersAction) -> None:  # type: ignor
     p.set_defaults(func=cmd_verify)
 
     p = sub.add_parser("keygen", help="make an Ed25519 key pair for signing run folders",
+                       description="Write PREFIX.private.pem (mode 0600) and "
+                                   "PREFIX.public.pem. With --passphrase-env the private "
+                                   "key is encrypted (PKCS#8, the cryptography library's "
+                                   "best available encryption): a copy of the file alone "
+                                   "cannot sign. docs/security.md.",
                        epilog="exit codes: 0 written, 2 a key file exists or cannot be "
-                              "written", formatter_class=raw)
+                              "written, or the passphrase variable is unset or empty",
+                       formatter_class=raw)
     p.add_argument("--out", default="plantrig-key", metavar="PREFIX",
                    help="writes PREFIX.private.pem and PREFIX.public.pem "
                         "(default: plantrig-key)")
+    p.add_argument("--passphrase-env", metavar="NAME",
+                   help="encrypt the private key with the passphrase held in the "
+                        "environment variable NAME")
     p.set_defaults(func=cmd_keygen)
 
     p = sub.add_parser("sign", help="sign a run folder's manifest (Ed25519)",
                        description="Sign manifest.json of a finished run folder that passes "
-                                   "verify. A folder already signed is not signed again.",
-                       epilog=SIGNOFF_EXIT_CODES, formatter_class=raw)
+                                   "verify. A folder already signed is not signed again. "
+                                   "An encrypted key's passphrase comes from "
+                                   "--passphrase-env NAME, else it is asked for on the "
+                                   "terminal (not echoed).",
+                       epilog=SIGNOFF_EXIT_CODES.replace(
+                           "\n  4", "\n  3  the key is encrypted and the passphrase is "
+                                    "wrong or could not be read\n  4"),
+                       formatter_class=raw)
     p.add_argument("folder", help="run folder")
     p.add_argument("--key", required=True, metavar="FILE", help="private key (PEM)")
+    p.add_argument("--passphrase-env", metavar="NAME",
+                   help="read an encrypted key's passphrase from the environment variable "
+                        "NAME instead of asking")
     p.set_defaults(func=cmd_sign)
 
     p = sub.add_parser("report", help="write report.html and report.pdf for a run",

@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import hashlib
 import sys
 from pathlib import Path
 from typing import Any
 
+from plantrig._model_trust import TRUST_HELP, model_guard
 from plantrig._override_options import add_override_options, overrides_of
-from plantrig.sim import EXIT_CODE_HELP, RecordError, RigFileError, model_module, run_folder_of
+from plantrig.sim import EXIT_CODE_HELP, RecordError, RigFileError
 
 EXIT_USAGE = 2
 
@@ -30,7 +30,9 @@ def add_parser(sub: Any, print_outcome: Any) -> None:
                     "by plantrig compare. docs/compare.md.",
         epilog=f"{EXIT_CODE_HELP}\n  2 also: not a run folder, a record a rerun cannot "
                "reproduce exactly (the message says why), a model module that came with "
-               "the folder without --trust-model",
+               "the folder and is not vouched for (changed since the run, not listed in "
+               "the manifest, an unsigned folder, or a signature that does not verify "
+               "with --public-key) without --trust-model. docs/security.md",
         formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("folder", help="run folder written by plantrig run")
     p.add_argument("--plant", metavar="FILE",
@@ -38,33 +40,21 @@ def add_parser(sub: Any, print_outcome: Any) -> None:
                         "recorded one")
     add_override_options(p)
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
-    p.add_argument("--trust-model", action="store_true",
-                   help="import the model module that came with the run folder (someone "
-                        "else's code: read it first)")
+    p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
+    p.add_argument("--public-key", metavar="FILE",
+                   help="Ed25519 public key (PEM) of someone you trust: a model module of "
+                        "a folder signed with it is imported when its SHA-256 is the one "
+                        "the signed manifest lists")
     p.set_defaults(func=lambda args: cmd_rerun(args, print_outcome))
 
 
 def _untrusted_module(args: argparse.Namespace) -> str | None:
-    """Why the rerun would import code that came with the folder, or None."""
+    """Print the model module the rerun imports; why it must not, or None."""
     if args.plant:
-        module = model_module(args.plant)
-        if module is None or run_folder_of(module) is None:
-            return None
-    else:
-        try:
-            module = model_module(Path(args.folder) / "rig.toml")
-        except RigFileError:
-            return None       # plan_rerun reports the mistake
-    if module is None or not module.is_file():
-        return None
-    digest = hashlib.sha256(module.read_bytes()).hexdigest()
-    record = run_folder_of(module)
-    if record is not None and not args.trust_model:
-        return (f"plant.module: {module} (SHA-256 {digest}) came with the run folder "
-                f"{record}; a rerun imports and runs that code. Read it, then pass "
-                "--trust-model to rerun anyway (or --plant FILE with your own model)")
-    print(f"loading model module {module} (SHA-256 {digest}): this runs its code")
-    return None
+        return model_guard(args.plant, trust=args.trust_model, public_key=args.public_key)
+    return model_guard(Path(args.folder) / "rig.toml", overrides=overrides_of(args),
+                       trust=args.trust_model, public_key=args.public_key,
+                       from_folder=Path(args.folder))
 
 
 def cmd_rerun(args: argparse.Namespace, print_outcome: Any) -> int:
@@ -77,7 +67,9 @@ def cmd_rerun(args: argparse.Namespace, print_outcome: Any) -> int:
         return EXIT_USAGE
     refusal = _untrusted_module(args)
     if refusal:
-        print(f"error: {args.folder}: {refusal}", file=sys.stderr)
+        print(f"error: {args.folder}: {refusal}; or give --public-key KEY for a folder "
+              "signed by a key you trust, or --plant FILE with your own model",
+              file=sys.stderr)
         return EXIT_USAGE
     try:
         plan = plan_rerun(args.folder, overrides=overrides_of(args), plant_file=args.plant)

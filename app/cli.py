@@ -7,7 +7,6 @@ class of the run (plantrig.sim.EXIT_CODE_HELP), 2 is always a rig file or usage 
 from __future__ import annotations
 
 import argparse
-import hashlib
 import json
 import signal
 import sys
@@ -21,6 +20,7 @@ from plantrig._catalogue import index_run
 from plantrig._compare_cli import add_parser as add_compare_command
 from plantrig._compose import build_chains
 from plantrig._hil import add_parsers as add_link_commands
+from plantrig._model_trust import TRUST_HELP, model_guard
 from plantrig._override_options import add_override_options, overrides_of
 from plantrig._plot_cli import add_parser as add_plot_command
 from plantrig._records_cli import add_record_commands
@@ -30,8 +30,6 @@ from plantrig.sim import (
     RecordError,
     RigFileError,
     load_rig_with_overrides,
-    model_module,
-    run_folder_of,
     run_to_folder,
     summarize,
 )
@@ -41,7 +39,13 @@ EXIT_MEANINGS = {0: "completed", 1: "fault", 2: "usage mistake", 3: "a verdict f
                  4: "tripped", 5: "stopped", 6: "interrupted"}
 
 
-def _load(path: str, overrides: list[str] | None = None):  # type: ignore[no-untyped-def]
+def _load(path: str, overrides: list[str] | None = None,  # type: ignore[no-untyped-def]
+          trust_model: bool = False):
+    refusal = model_guard(path, overrides=overrides or (), trust=trust_model)
+    if refusal:
+        print(f"error: {path}: {refusal}. replay, verify, report and export read a run "
+              "folder without running it", file=sys.stderr)
+        raise SystemExit(EXIT_USAGE)
     try:
         rig = load_rig_with_overrides(path, overrides or ())
         if rig.link is not None:
@@ -64,22 +68,7 @@ def _print_issues(path: str, exc: RigFileError) -> None:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
-    try:
-        module = model_module(args.rig)
-    except RigFileError as exc:
-        _print_issues(args.rig, exc)
-        return EXIT_USAGE
-    if module is not None and module.is_file():
-        digest = hashlib.sha256(module.read_bytes()).hexdigest()
-        record = run_folder_of(args.rig) or run_folder_of(module)
-        if record is not None and not args.trust_model:
-            print(f"error: {args.rig}: plant.module: {module} (SHA-256 {digest}) came with "
-                  f"the run folder {record}; checking this rig would run that code. replay, "
-                  "verify, report and export read a run folder without running it; pass "
-                  "--trust-model to load the module anyway", file=sys.stderr)
-            return EXIT_USAGE
-        print(f"loading model module {module} (SHA-256 {digest}): this runs its code")
-    rig = _load(args.rig)
+    rig = _load(args.rig, trust_model=args.trust_model)
     try:
         build_chains(rig)
     except RigFileError as exc:
@@ -133,7 +122,7 @@ def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    rig = _load(args.rig, overrides_of(args))
+    rig = _load(args.rig, overrides_of(args), trust_model=args.trust_model)
     scenario = None
     if args.scenario:
         from plantrig.sim import load_scenario
@@ -259,9 +248,7 @@ def build_parser() -> argparse.ArgumentParser:
                                    "0 the rig file is sound, 2 a mistake in it, or a model "
                                    "module that came with a run folder (see --trust-model).")
     p.add_argument("rig", help="rig file (TOML)")
-    p.add_argument("--trust-model", action="store_true",
-                   help="import the model module even though it came with a run folder "
-                        "(someone else's code: read it first)")
+    p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("run", help="run a rig and write a run folder",
@@ -293,6 +280,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "recorded in the run folder and the report")
     p.add_argument("--firmware", metavar="VERSION",
                    help="its firmware version (overrides dut.firmware); recorded likewise")
+    p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
     add_override_options(p)
     p.set_defaults(func=cmd_run)
     add_record_commands(sub)

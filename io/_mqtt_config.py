@@ -15,7 +15,8 @@ MQTT keys (all optional; defaults in brackets)::
     payload            "json" or "binary" (the frame of docs/protocol.md without COBS;
                        encoding and scale apply to it) ["json"]
     username           broker user name [none]
-    password           broker password (prefer password_env) [none]
+    password           broker password (prefer password_env: an inline password is
+                       replaced by a marker in every record, sim/_secrets.py) [none]
     password_env       name of an environment variable holding the password [none]
     keepalive          seconds between MQTT pings, 1..3600 [10]
     reconnect_min      first reconnect delay, s [0.1]
@@ -229,6 +230,11 @@ def check_mqtt_keys(rig: Rig, table: dict[str, Any], issues: Issues) -> dict[str
         "receive_queue": k.integer("receive_queue", 8, 1, 100_000),
         "max_payload": k.integer("max_payload", 4096, 64, 1_000_000),
     }
+    from plantrig.sim import SECRET_MARK
+    if out["password"] == SECRET_MARK:
+        k.add("password", "this is a run folder's copy: the password given inline was not "
+                          "recorded; set password_env to the name of an environment "
+                          "variable holding it")
     if out["password"] is not None and out["password_env"] is not None:
         k.add("password_env", "expected either password or password_env, found both")
     env = out["password_env"]

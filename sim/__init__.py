@@ -62,6 +62,7 @@ from plantrig.sim._rigfile import (
 )
 from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
 from plantrig.sim._scenario import Scenario, ScenarioFileError, build_scenario, load_scenario
+from plantrig.sim._secrets import SECRET_MARK
 from plantrig.sim._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
 from plantrig.sim._summary import ModelSummary, summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
@@ -91,6 +92,7 @@ __all__ = [
     "RecordError", "RunRecord", "export_csv", "export_mat", "generate_keypair", "read_run",
     "recover_run", "sign_folder", "verify_folder",
     "ModelNotLoaded", "load_rig_as_data", "model_module", "rig_from_record", "run_folder_of",
+    "SECRET_MARK",
     # overrides
     "apply_overrides", "load_rig_with_overrides", "shortcut_assignments",
 ]

@@ -44,6 +44,7 @@ from plantrig.sim._errors import RigFileError, RigIssue, describe_value
 from plantrig.sim._overrides import apply_overrides, effective_text
 from plantrig.sim._reader import RunRecord, read_run
 from plantrig.sim._rigfile import Rig, build_rig
+from plantrig.sim._secrets import redact_assignments
 
 Vector = NDArray[np.float64]
 REPLAYED_LINK_EVENTS = ("link_lost", "link_restored")
@@ -182,7 +183,7 @@ def plan_rerun(folder: str | Path, *, overrides: Sequence[str] = (),
             changes.append(f"duration {recorded:g} s (the recorded ticks)")
     if assignments:
         doc = apply_overrides(doc, assignments, str(rig_copy))
-        changes += assignments
+        changes += redact_assignments(assignments)
     changed = bool(changes)
     rig = build_rig(doc, rig_copy, effective_text(doc) if changed else text)
     if changed:

@@ -4,7 +4,9 @@ Run folders travel (to a reviewer, to another bench PC), so the folder's rig.tom
 name its model module by the copy beside it, not by a path that only exists on the
 machine that ran it. Only the ``module`` value under ``[plant]`` is rewritten; every other
 byte of the rig file is kept. ``sources.json`` (covered by the manifest) records where
-each copy came from and the SHA-256 of the original bytes.
+each copy came from and the SHA-256 of the original bytes. A secret given inline
+(sim/_secrets.py) is replaced by a marker in the copy, and then the original's SHA-256
+is not recorded either (it would let anyone test guesses of the secret).
 """
 
 from __future__ import annotations
@@ -19,6 +21,7 @@ from typing import Any
 from plantrig.sim._errors import RigFileError, RigIssue
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._scenario import Scenario
+from plantrig.sim._secrets import redact_assignments, redact_rig_text
 
 SOURCES = "sources.json"
 RIG_COPY = "rig.toml"
@@ -50,11 +53,18 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
     if rig.overrides:  # the effective document, so the folder says what really ran
         from plantrig.sim._overrides import effective_copy
         rig_bytes = effective_copy(rig, module.name if module is not None else None)
+    redacted, secrets = redact_rig_text(rig_bytes.decode("utf-8"))
+    rig_bytes = redacted.encode("utf-8")
     (folder / RIG_COPY).write_bytes(rig_bytes)
     files[RIG_COPY] = _entry("rig", rig.path, original)
+    secrets = sorted({*secrets, *redact_rig_text(original.decode("utf-8"))[1]})
+    if secrets:   # the original's hash would let anyone test guesses of the secret
+        files[RIG_COPY].update(sha256=None, bytes=None)
+        files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
+        files[RIG_COPY]["secrets_not_recorded"] = secrets
     if rig.overrides:
         files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
-        files[RIG_COPY]["overrides"] = list(rig.overrides)
+        files[RIG_COPY]["overrides"] = redact_assignments(rig.overrides)
     if module is not None and rig_bytes != original:
         files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
         files[RIG_COPY]["rewritten"] = {"plant.module": {"from": named, "to": module.name}}
