@@ -253,7 +253,8 @@ class DashboardModel:
             return Status(f"REPLAY of {replay_of} | at {now}: {state}", REPLAY)
         if ended is not None or log.ended is not None:
             outcome = ended or log.ended or "the tape ended"
-            still = f" | {state}" if latched else ""
+            still = f" | latched at the end: {', '.join(lamp.name for lamp in latched)}" \
+                if latched else ""
             return Status(f"ENDED: {outcome} | {now}{still}", ENDED)
         return Status(f"{state} | {now}", ALARM if latched else QUIET)
 
@@ -279,7 +280,7 @@ class DashboardModel:
         limits = self.groups.group("limit")
         if limits:
             return [self._limit_bar(c.name, values) for c in limits], \
-                "Limits (watched signal between the limit's bounds)"
+                "Limits (bar: the watched signal's way to its trip point)"
         bars = []
         for prefix in ("y", "u", "x"):
             for c in self.groups.group(prefix):
@@ -304,17 +305,17 @@ class DashboardModel:
         unit = self.groups[spec.column].unit
         v = values.get(spec.column, math.nan)
         lo, hi = trip_band(spec)
-        text = f"{name}: {spec.column} {fmt(v, unit)}"
+        text = f"{name} ({spec.column}) {fmt(v, unit)}  {state}"
         if math.isfinite(spec.trip_low) and math.isfinite(spec.trip_high):
-            text += f", trips outside [{spec.trip_low:g}, {spec.trip_high:g}]"
+            text += f"; trip outside {spec.trip_low:g}..{spec.trip_high:g}"
         elif math.isfinite(spec.trip_high):
-            text += f", trips above {spec.trip_high:g}"
+            text += f"; trip above {spec.trip_high:g}"
         elif math.isfinite(spec.trip_low):
-            text += f", trips below {spec.trip_low:g}"
+            text += f"; trip below {spec.trip_low:g}"
         else:
             warn = [f"{b:g}" for b in (spec.warn_low, spec.warn_high) if math.isfinite(b)]
-            text += f", warns at {' / '.join(warn)} (no trip bound)" if warn else ""
-        return Bar(name, _fraction(v, lo, hi), f"{text}  {state}", level)
+            text += f"; warn at {' / '.join(warn)}, no trip" if warn else ""
+        return Bar(name, _fraction(v, lo, hi), text, level)
 
     def _timing(self, rows: Rows) -> list[str]:
         g = self.groups
@@ -351,14 +352,14 @@ class DashboardModel:
         watchdog = self.watchdog_s
         if silent >= watchdog:
             lamp = Status(f"LINK LOST: silent {silent:.3f} s, beyond the {watchdog:g} s "
-                          f"watchdog ({source})", ALARM)
+                          "watchdog", ALARM)
         elif silent >= watchdog / 2:
-            lamp = Status(f"LINK LATE: silent {silent:.3f} s; watchdog {watchdog:g} s "
-                          f"({source})", ATTENTION)
+            lamp = Status(f"LINK LATE: silent {silent:.3f} s; watchdog {watchdog:g} s",
+                          ATTENTION)
         else:
             lamp = Status(f"link ok: last command {since} tick(s) ago; watchdog "
-                          f"{watchdog:g} s ({source})")
-        return lamp, [f"fresh commands {recent.mean():.0%} of ticks (last "
+                          f"{watchdog:g} s")
+        return lamp, [f"{source}: fresh commands {recent.mean():.0%} of ticks (last "
                       f"{LINK_WINDOW_S:g} s)",
                       f"link lost {lost} time(s) so far; link events "
                       f"{sum(n for kind, n in log.kinds.items() if _link_kind(kind))}"]

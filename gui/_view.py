@@ -47,14 +47,13 @@ from plantrig.sim import SIGNAL_LABELS
 
 T = "plantrig."                   # tag prefix
 WIDTH, HEIGHT = 1360, 880
-LEFT_W, CENTRE_W = 300, 580
+LEFT_W, CENTRE_W = 300, 560
 BUCKETS = 400                     # min-max pairs per series: one per ~1.5 pixel columns
 TABLE_ORDER = ("x", "u", "cmd", "y", "sent", "ref")
 PANEL_PREFIXES = ("trip", "fault", "limit")
 RUN_LINES = 40                    # text lines of the scenario / outcome / verdicts panel
 ESTOP_KEY = dpg.mvKey_Escape
 ESTOP_KEY_NAME = "Esc"
-NOWHERE = -1e30                   # where a series with nothing to show puts its point
 
 
 class DashboardView:
@@ -178,7 +177,7 @@ class DashboardView:
                 dpg.add_combo([], tag=T + "fault_target", label="target", width=170)
                 dpg.add_input_text(tag=T + "fault_target_text", label="target", width=170,
                                    hint="e.g. A[1,2]", show=False)
-                dpg.add_input_text(tag=T + "fault_value", label="value", width=150)
+                dpg.add_input_text(tag=T + "fault_value", label="value", width=-90)
                 dpg.add_text("", tag=T + "fault_help", wrap=LEFT_W - 20, color=INK_SOFT)
                 dpg.add_input_double(tag=T + "fault_duration", label="for [s], 0 = until "
                                      "cleared", width=90, format="%.3g")
@@ -249,11 +248,11 @@ class DashboardView:
                                                            horizontal=True,
                                                            label="rig range")
                             dpg.bind_item_theme(band, self.themes.limit)
-                        marks = dpg.add_inf_line_series([NOWHERE], tag=f"{tag}.trips",
+                        marks = dpg.add_inf_line_series([], tag=f"{tag}.trips",
                                                         label="trip / E-stop")
                         dpg.bind_item_theme(marks, self.themes.trip_time)
                         if spec.watched:
-                            points = dpg.add_scatter_series([NOWHERE], [0.0],
+                            points = dpg.add_scatter_series([], [],
                                                             tag=f"{tag}.trip_points",
                                                             label="reached trip")
                             dpg.bind_item_theme(points, self.themes.trip_mark)
@@ -273,7 +272,7 @@ class DashboardView:
                 [p for p in g.prefixes() if p not in TABLE_ORDER and p not in PANEL_PREFIXES]
             with dpg.table(header_row=True, row_background=True, borders_innerH=True,
                            policy=dpg.mvTable_SizingStretchProp, tag=T + "table",
-                           scrollY=True, height=150):
+                           scrollY=True, height=120):
                 for name, weight in (("signal", 0.4), ("value", 0.25), ("unit", 0.12),
                                      ("rig range", 0.23)):
                     dpg.add_table_column(label=name, init_width_or_weight=weight)
@@ -315,7 +314,9 @@ class DashboardView:
             dpg.add_separator()
             dpg.add_text("Events (newest first; click one, or hover its detail, for the "
                          "full text)", wrap=WIDTH - LEFT_W - CENTRE_W - 60)
-            with dpg.table(header_row=True, row_background=True, scrollY=True, height=120,
+            dpg.add_text("", tag=T + "event_detail", wrap=WIDTH - LEFT_W - CENTRE_W - 60,
+                         color=INK_SOFT)
+            with dpg.table(header_row=True, row_background=True, scrollY=True, height=-1,
                            policy=dpg.mvTable_SizingStretchProp, tag=T + "events"):
                 for name, weight in (("t [s]", 0.18), ("kind", 0.32), ("detail", 0.5)):
                     dpg.add_table_column(label=name, init_width_or_weight=weight)
@@ -327,7 +328,6 @@ class DashboardView:
                         dpg.add_text("", tag=f"{T}event.{i}.2")
                         with dpg.tooltip(f"{T}event.{i}.2"):
                             dpg.add_text("", tag=f"{T}event.{i}.tip", wrap=480)
-            dpg.add_text("", tag=T + "event_detail", wrap=WIDTH - LEFT_W - CENTRE_W - 60)
 
     # -- callbacks (plain functions; tests call them directly) -------------------------
     def on_estop(self, *_: Any) -> bool:
@@ -452,6 +452,7 @@ class DashboardView:
             self._theme(f"{T}lamp.{i}", self.themes.alarm if lamp.tripped else self.themes.quiet)
         for i in range(3):
             dpg.set_value(f"{T}timing.{i}", snap.timing[i] if i < len(snap.timing) else "")
+            dpg.configure_item(f"{T}timing.{i}", show=i < len(snap.timing))
         self._lamp(T + "link_lamp", snap.link_lamp)
         for i in range(2):
             dpg.set_value(f"{T}link.{i}", snap.link[i] if i < len(snap.link) else "")
@@ -524,11 +525,11 @@ class DashboardView:
                 x, y = decimate_minmax(t, rows[:, index], BUCKETS)
                 dpg.set_value(series, [np.ascontiguousarray(x), np.ascontiguousarray(y)])
             dpg.set_value(f"{tag}.fault", [fx or [t0], fy or [0.0], [0.0] * max(1, len(fy))])
-            dpg.set_value(f"{tag}.trips", [trip_times or [NOWHERE]])
+            dpg.set_value(f"{tag}.trips", [trip_times])
             if spec.watched:
                 marks = [m for m in snap.trip_marks if m.column == spec.key]
-                dpg.set_value(f"{tag}.trip_points", [[m.t for m in marks] or [NOWHERE],
-                                                     [m.value for m in marks] or [0.0]])
+                dpg.set_value(f"{tag}.trip_points", [[m.t for m in marks],
+                                                     [m.value for m in marks]])
             self._fit_y(i, spec, rows)
             label = spec.title
             if active:
