@@ -15,7 +15,6 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._recorder import read_journal
 from plantrig.sim._records import RUN_START, read_events
 
 
@@ -56,8 +55,13 @@ class RunRecord:
         return {name: self.rows[:, i] for i, name in enumerate(self.columns)}
 
 
-def read_run(folder: str | Path) -> RunRecord:
-    """Read a run folder, from the most complete copy of its tick data it holds."""
+def read_run(folder: str | Path, columns: list[str] | None = None,
+             ticks: tuple[int, int] | None = None) -> RunRecord:
+    """Read a run folder, from the most complete copy of its tick data it holds.
+
+    ``columns`` reads only those columns and ``ticks`` = (first, stop) only those tick
+    records: a weekend-long run is opened a part at a time, never whole unless asked.
+    """
     folder = Path(folder)
     summary = _json(folder / "summary.json") or {}
     start = _json(folder / RUN_START) or {}
@@ -65,29 +69,41 @@ def read_run(folder: str | Path) -> RunRecord:
     if h5.exists() and _have_h5py():
         from plantrig.sim._hdf5 import read_run_h5
 
-        d = read_run_h5(h5)
+        d = read_run_h5(h5, columns, ticks)
         return RunRecord(folder, d["columns"], d["units"], d["rows"], d["events"],
                          summary or d["attrs"].get("summary", {}), d["info"], "run.h5")
     info = start.get("columns") or []
     if info:
-        columns, units = [c["name"] for c in info], [c["unit"] for c in info]
+        every, units = [c["name"] for c in info], [c["unit"] for c in info]
     elif (folder / "columns.json").exists():
         meta = json.loads((folder / "columns.json").read_text())
-        columns, units = meta["columns"], meta["units"]
-        info = [{"name": c, "unit": u} for c, u in zip(columns, units, strict=True)]
+        every, units = meta["columns"], meta["units"]
+        info = [{"name": c, "unit": u} for c, u in zip(every, units, strict=True)]
     else:
         raise FileNotFoundError(f"{folder}: not a plantrig run folder (no run.h5, "
                                 f"{RUN_START} or columns.json)")
     events = read_events(folder / "events.jsonl")
+    n = len(every)
     if (folder / "ticks.npy").exists():
-        rows = np.load(folder / "ticks.npy").view(np.float64).reshape(-1, len(columns))
+        table = np.load(folder / "ticks.npy", mmap_mode="r").view(np.float64).reshape(-1, n)
         source = "ticks.npy"
     elif (folder / "ticks.journal").exists():
-        rows = read_journal(folder / "ticks.journal", len(columns))
+        whole = (folder / "ticks.journal").stat().st_size // (n * 8)   # a torn row dropped
+        table = np.memmap(folder / "ticks.journal", dtype=np.float64, mode="r",
+                          shape=(whole, n)) if whole else np.zeros((0, n))
         source = "ticks.journal"
     else:
         raise FileNotFoundError(f"{folder}: no tick data (run.h5, ticks.npy or ticks.journal)")
-    return RunRecord(folder, columns, units, rows, events, summary, info, source)
+    first, stop = ticks if ticks is not None else (0, table.shape[0])
+    names = every if columns is None else list(columns)
+    unknown = [c for c in names if c not in every]
+    if unknown:
+        raise KeyError(f"no column {unknown[0]!r}; columns: {', '.join(every)}")
+    picks = [every.index(c) for c in names]
+    rows = np.array(table[max(0, first):max(first, stop)][:, picks], dtype=np.float64)
+    del table
+    return RunRecord(folder, names, [units[i] for i in picks], rows, events, summary,
+                     [info[i] for i in picks], source)
 
 
 def _json(path: Path) -> Any:

@@ -287,3 +287,26 @@ def test_report_marks_fault_and_trip_windows(tmp_path: Path) -> None:
     assert 0.2 < top.sum() / panel.shape[1] < 0.4
     page = (tmp_path / "report.html").read_text()
     assert "no rig.toml in the folder" in page and "no acceptance criteria in this run" in page
+
+
+def test_a_long_run_opens_a_part_at_a_time(conveyor_run: Path, tmp_path: Path) -> None:
+    whole = read_run(conveyor_run)
+    part = read_run(conveyor_run, columns=["t", "y:belt_speed"], ticks=(1000, 1500))
+    assert part.columns == ["t", "y:belt_speed"] and part.rows.shape == (500, 2)
+    assert part.rows.tobytes() == whole.rows[1000:1500][:, [
+        whole.columns.index("t"), whole.columns.index("y:belt_speed")]].tobytes()
+    assert part.unit("y:belt_speed") == "m/s"
+    journal_only = copy_of(conveyor_run, tmp_path)      # the same from a bare journal
+    (journal_only / "run.h5").unlink()
+    (journal_only / "ticks.journal").write_bytes(whole.rows.tobytes())
+    same = read_run(journal_only, columns=["t", "y:belt_speed"], ticks=(1000, 1500))
+    assert same.source == "ticks.journal" and same.rows.tobytes() == part.rows.tobytes()
+    with pytest.raises(KeyError, match="no column 'y:nothing'"):
+        read_run(conveyor_run, columns=["y:nothing"])
+
+
+def test_run_h5_is_chunked_and_compressed(conveyor_run: Path) -> None:
+    with h5py.File(conveyor_run / "run.h5", "r") as f:
+        ds = f["ticks/outputs/belt_speed"]
+        assert ds.compression == "gzip" and ds.shuffle and ds.chunks is not None
+        assert ds.maxshape == (None,)
