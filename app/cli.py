@@ -163,7 +163,8 @@ def cmd_run(args: argparse.Namespace) -> int:
                                                   actuator_chain=actuator_chain,
                                                   sensor_chain=sensor_chain, link=link,
                                                   scenario=scenario,
-                                                  run_info=_dut_info(rig, args))
+                                                  run_info=_dut_info(rig, args),
+                                                  npy=args.npy)
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -183,7 +184,11 @@ def cmd_run(args: argparse.Namespace) -> int:
         if summary["reason"].startswith("signal "):
             dashboard.close()
         else:
-            dashboard.after_run(folder)
+            problem = dashboard.after_run(folder)
+            if problem:   # the window is not the run: the exit code stays the run's
+                print(f"warning: the dashboard window failed: {problem}; exit code {code} "
+                      f"is the run's; look again with: plantrig replay {folder}",
+                      file=sys.stderr)
     return code
 
 
@@ -267,8 +272,12 @@ def build_parser() -> argparse.ArgumentParser:
                       help="paced to the wall clock (overrides rig)")
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
     p.add_argument("--json", action="store_true", help="also print timing as one JSON line")
+    p.add_argument("--npy", action="store_true",
+                   help="also write ticks.npy beside run.h5 (numpy only, for scripts)")
     p.add_argument("--gui", action="store_true",
-                   help="open the live dashboard (needs dearpygui and a display)")
+                   help="open the live dashboard (needs dearpygui and a display); a "
+                        "window that fails is reported on stderr and leaves the exit code "
+                        "the run's")
     p.add_argument("--port", help="where the controller is (overrides link.port)")
     p.add_argument("--scenario", metavar="FILE",
                    help="rehearse a scenario file (TOML): its steps fire during the run, "

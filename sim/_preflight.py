@@ -1,10 +1,11 @@
 """Preflight: refuse a run whose record cannot be written, before the first tick.
 
-The disk holds, at the worst moment of a run's life, two full copies of its tick data:
-the journal and ``ticks.npy`` while the journal is converted, then ``ticks.npy`` and
-``run.h5`` once the journal is gone (see docs/records.md). So a run needs about
-``ticks x columns x 8 x 2.2`` bytes (two copies plus 10 % for HDF5 overhead and the
-events), and a fixed margin for the rig copy, summary, manifest and report. The tape
+The disk holds, at the worst moment of a run's life, two copies of its tick data: the
+journal and ``run.h5`` while the journal is converted (``run.h5`` is compressed, but
+data that looks random does not shrink), then only ``run.h5`` (see docs/records.md).
+So a run needs about ``ticks x columns x 8 x 2.2`` bytes (two copies plus 10 % for HDF5
+overhead and the events), and a fixed margin for the rig copy, summary, manifest and
+report. The tape
 needs its ring in /dev/shm.
 """
 
