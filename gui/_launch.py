@@ -60,17 +60,19 @@ class LiveDashboard:
         if self.process is not None:
             self.process.stop()
 
-    def after_run(self, folder: Path) -> None:
+    def after_run(self, folder: Path) -> str | None:
         """Keep the window up for a look at the end of the run, until it is closed.
 
         A fast run can end before the dashboard has opened its tape (a spawned
         interpreter takes a second or more to start); then the run folder is opened in
         replay instead, as it is when the live window died before it drew anything.
-        How the window ended is always said before this returns.
+        How the window ended is always said before this returns. Returns None when the
+        last window was closed (or Ctrl-C), else what went wrong with it, so the command
+        can say so after the run's own result.
         """
         process = self.process
         if process is None:
-            return
+            return None
         _say("the run has ended and is recorded; close the dashboard window (or press "
              "Ctrl-C) to exit")
         try:
@@ -85,6 +87,8 @@ class LiveDashboard:
                 process.report()
         except KeyboardInterrupt:
             process.stop()
+            return None
+        return None if process.process.exitcode == 0 else process.describe_exit()
 
 
 def replay(folder: str | Path, *, frame_cap_hz: float = 30.0,
