@@ -1,19 +1,29 @@
 """plantrig: a virtual plant on the controller test bench."""
 
+import os
+import sys
+
 __version__ = "0.1.0"
+CAUTION_SHOWN = "PLANTRIG_CAUTION_SHOWN"   # set once a command has shown the caution
 
 CAUTION = (
-    "CAUTION: plantrig is a test tool, not a safety function. A controller under test may "
-    "also be wired to real power stages. Follow your site's safety rules and local codes, "
-    "keep hardware interlocks and E-stops independent of this simulator, and have licensed "
-    "practice sign off anything that can move or heat."
+    "CAUTION: plantrig is a test tool, not a safety function. Its limits and interlocks "
+    "protect a simulated plant and the rehearsal you run on it; they do not protect "
+    "people or equipment. A controller under test may also be wired to real power stages, "
+    "motors, heaters or valves: keep every hardware interlock, E-stop and protective "
+    "device of the bench independent of plantrig, wired and tested to your site's safety "
+    "rules and local codes. Where the machine or process falls under functional-safety "
+    "standards (IEC 61508 and its sector standards, ISO 13849 or IEC 62061 for machinery "
+    "control systems), its safety functions must be specified, verified and validated to "
+    "those standards by competent people and signed off by licensed practice where the "
+    "law requires it; a plantrig run is not such a validation."
 )
 
-REALTIME_BANNER = CAUTION + (
-    " This run is paced to the wall clock and talks to real equipment. Where the machine "
-    "or process falls under functional-safety standards (IEC 61508 and its sector "
-    "standards, ISO 13849 or IEC 62061 for machinery control systems), its safety "
-    "functions must be specified, verified and validated to those standards by competent, "
-    "where required licensed, people; a rehearsal in plantrig is not such evidence and its "
-    "interlocks are not safety functions."
-)
+
+def show_caution() -> None:
+    """Print the caution to stderr, once per command: a process started by a command
+    that has shown it (the demo's controller, say) does not show it again."""
+    if os.environ.get(CAUTION_SHOWN) == "1":
+        return
+    os.environ[CAUTION_SHOWN] = "1"
+    print(CAUTION, file=sys.stderr, flush=True)

@@ -18,7 +18,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from plantrig import CAUTION, REALTIME_BANNER
+from plantrig import CAUTION, show_caution
 from plantrig.sim import EXIT_CODE_HELP
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
@@ -44,7 +44,7 @@ def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     from plantrig.io._refcontroller import prefer_realtime
     from plantrig.sim import RigFileError
 
-    print(CAUTION, file=sys.stderr)
+    show_caution()
     rig = load(args.rig)
     settings = link_settings(rig)
     try:
@@ -113,7 +113,7 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     if args.mqtt:
         from plantrig._mqtt_cli import cmd_demo_mqtt
         return cmd_demo_mqtt(args, load, print_outcome, wait_ready)
-    print(REALTIME_BANNER)
+    show_caution()
     rig = load(args.rig or str(DEMO_RIG))
     link_settings(rig)
     out = Path(args.out)

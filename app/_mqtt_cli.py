@@ -18,7 +18,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from plantrig import REALTIME_BANNER
+from plantrig import show_caution
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_mqtt.toml"
@@ -89,7 +89,7 @@ def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any],
     from plantrig.io._broker import BrokerError, LocalBroker
     from plantrig.sim import run_to_folder
 
-    print(REALTIME_BANNER)
+    show_caution()
     rig = load(args.rig or str(DEMO_RIG))
     if (rig.link or {}).get("kind") != "mqtt":
         print(f"error: {rig.path}: link.kind: expected 'mqtt' for demo --mqtt, found "

@@ -13,7 +13,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from plantrig import CAUTION, REALTIME_BANNER, __version__
+from plantrig import CAUTION, __version__, show_caution
 from plantrig._campaign_cli import add_parser as add_campaign_command
 from plantrig._catalogue import add_parser as add_runs_command
 from plantrig._catalogue import index_run
@@ -135,8 +135,7 @@ def cmd_run(args: argparse.Namespace) -> int:
                   file=sys.stderr)
             return EXIT_USAGE
     realtime = True if args.realtime else False if args.fast else None
-    if realtime or (realtime is None and rig.mode == "realtime"):
-        print(REALTIME_BANNER, file=sys.stderr)
+    show_caution()
     out = Path(args.out)
     try:
         out.mkdir(parents=True, exist_ok=True)

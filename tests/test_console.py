@@ -1,0 +1,38 @@
+"""The console and the docs speak with one voice: one caution text, shown once per
+command on stderr, and every quoted caution in the docs is that same text."""
+
+from __future__ import annotations
+
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+from plantrig import CAUTION
+
+REPO = Path(__file__).resolve().parents[1]
+CONVEYOR = REPO / "configs" / "conveyor.toml"
+
+
+def quoted_cautions(text: str) -> list[str]:
+    """Every blockquote of a markdown text that speaks of safety, joined into one line."""
+    blocks = re.findall(r"(?:^>.*\n?)+", text, flags=re.MULTILINE)
+    joined = [" ".join(line[1:].strip() for line in b.splitlines()) for b in blocks]
+    return [b.strip() for b in joined if "safety function" in b]
+
+
+def test_every_caution_in_the_docs_is_the_one_caution() -> None:
+    docs = [REPO / "README.md", REPO / "firmware" / "README.md",
+            *sorted((REPO / "docs").glob("*.md"))]
+    found = {p.name: quoted_cautions(p.read_text(encoding="utf-8")) for p in docs}
+    assert found["README.md"] == [CAUTION]
+    for name, cautions in found.items():
+        assert all(c == CAUTION for c in cautions), name
+
+
+def test_run_shows_the_caution_once_on_stderr(tmp_path: Path) -> None:
+    proc = subprocess.run([sys.executable, "-m", "plantrig", "run", str(CONVEYOR), "--out",
+                           str(tmp_path)], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stderr.count("not a safety function") == 1 and CAUTION in proc.stderr
+    assert "safety function" not in proc.stdout
