@@ -1,0 +1,273 @@
+"""The sign-off report and ``plantrig plot`` on real run folders of the shipped rehearsals.
+
+The PDF is rendered to PNG pages with poppler's pdftoppm and read back with pdftotext;
+numbers on the pages are checked against the run folder (summary.json, run.h5). The
+rehearsals are the shipped ones (configs/rehearsals/), run in fast mode by the CLI.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import re
+import subprocess
+from pathlib import Path
+
+import matplotlib.image
+import numpy as np
+import pytest
+
+from plantrig.cli import build_parser, main
+from plantrig.io import build_link
+from plantrig.sim import RigFileError, build_rig, load_rig, read_run
+from plantrig.sim._run_info import run_info_of
+
+REPO = Path(__file__).resolve().parents[1]
+REHEARSALS = REPO / "configs" / "rehearsals"
+INTERNAL = ("orphaned", "disk_error", "False", "None", "max_backlog_rows", "ticks_per_s",
+            "lateness_p50", "fault_injected", "scenario_step", "run_end")
+
+
+def run_cli(tmp: Path, rig: Path, scenario: Path, *extra: str) -> Path:
+    out = tmp / "runs"
+    assert main(["run", str(rig), "--scenario", str(scenario), "--fast", "--out", str(out),
+                 *extra]) == 0
+    (folder,) = [p for p in out.iterdir() if (p / "run_start.json").is_file()]
+    return folder
+
+
+@pytest.fixture(scope="module")
+def belt_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return run_cli(tmp_path_factory.mktemp("belt"), REHEARSALS / "conveyor_guarded.toml",
+                   REHEARSALS / "belt_sensor_stuck.toml", "--dut",
+                   "belt drive controller, bench unit B", "--firmware", "2.4.1")
+
+
+@pytest.fixture(scope="module")
+def belt_report(belt_run: Path, tmp_path_factory: pytest.TempPathFactory) -> dict:
+    assert main(["report", str(belt_run), "--operator", "R. Okafor", "--reviewer",
+                 "M. Lindqvist"]) == 0
+    pdf = belt_run / "derived" / "report.pdf"
+    pngs = tmp_path_factory.mktemp("pages")
+    subprocess.run(["pdftoppm", "-r", "60", "-png", str(pdf), str(pngs / "page")],
+                   check=True, timeout=120)
+    text = subprocess.run(["pdftotext", "-layout", str(pdf), "-"], check=True,
+                          capture_output=True, text=True, timeout=120).stdout
+    pages = text.split("\f")[:-1]
+    images = [matplotlib.image.imread(p)[..., :3] for p in sorted(pngs.glob("page-*.png"))]
+    assert len(images) == len(pages)
+    return {"pages": pages, "images": images, "pngs": pngs,
+            "html": (belt_run / "derived" / "report.html").read_text()}
+
+
+def left_column(page: str, start: str, end: str, value_mark: str) -> str:
+    """The label column (wrapped lines joined) of one section of a -layout page; the
+    value column starts where ``value_mark`` does."""
+    block = page[page.index(start) + len(start):page.index(end)]
+    at = min(line.index(value_mark) for line in block.splitlines() if value_mark in line)
+    return " ".join(line[:at].strip() for line in block.splitlines() if line[:at].strip())
+
+
+def test_page_one_puts_the_result_identity_acceptance_and_verdicts_first(
+        belt_run: Path, belt_report: dict) -> None:
+    summary = json.loads((belt_run / "summary.json").read_text())
+    first = belt_report["pages"][0]
+    assert "Run record for sign-off" in first
+    assert "RESULT: PASS — COMPLETED (duration reached), exit code 0" in first
+    order = [first.index(s) for s in ("RESULT:", "Run\n", "Acceptance rules", "Verdicts",
+                                      "Signatures")]
+    assert order == sorted(order)
+    assert belt_run.name in first and "belt_sensor_stuck" in first
+    # tick 0 of the run: recorded by the engine at run time, after run_start.json
+    tick0 = summary["tick0_utc"]
+    assert tick0 in first
+    started = _dt.datetime.fromisoformat(json.loads(
+        (belt_run / "run_start.json").read_text())["started_utc"])
+    assert _dt.datetime.fromisoformat(tick0) >= started
+    assert "belt drive controller, bench unit B, firmware 2.4.1" in first
+    # every acceptance rule and every verdict of the run, by its whole name
+    for rule in summary["acceptance"]:
+        assert rule["rule"] in first
+    names = left_column(first, "Verdicts", "Signatures", "PASS;")
+    verdicts = json.loads((belt_run / "verdicts.json").read_text())
+    assert len(verdicts) == 8
+    for verdict in verdicts:
+        assert verdict["name"] in names, verdict["name"]      # wrapped, never cut
+    long = "overspeed trip after the sensor sticks"             # 38 characters
+    assert long in names and "8 of 8 criteria passed" in first
+    assert "name R. Okafor" in first and "name M. Lindqvist" in first
+    html = belt_report["html"]
+    assert html.index("RESULT: PASS") < html.index("Acceptance rules") < html.index(
+        "Verdicts") < html.index("Signatures") < html.index("Software and hashes")
+
+
+def test_software_and_hashes_match_the_folder(belt_run: Path, belt_report: dict) -> None:
+    text = "\n".join(belt_report["pages"][:3])
+    summary = json.loads((belt_run / "summary.json").read_text())
+    env = summary["environment"]
+    for key in ("host", "python", "numpy", "scipy", "h5py"):
+        assert env[key] and env[key] in text, key
+    commit = env["git_commit"].split()[0]            # the commit the run ran from
+    assert subprocess.run(["git", "-C", str(REPO), "cat-file", "-e", f"{commit}^{{commit}}"],
+                          timeout=30).returncode == 0
+    assert commit in text
+    sources = json.loads((belt_run / "sources.json").read_text())["files"]
+    assert sources["rig.toml"]["sha256"] in text and sources["scenario.toml"]["sha256"] in text
+    import hashlib
+    manifest = hashlib.sha256((belt_run / "manifest.json").read_bytes()).hexdigest()
+    assert manifest in text
+
+
+def test_every_page_is_numbered_with_the_run_id(belt_run: Path, belt_report: dict) -> None:
+    pages = belt_report["pages"]
+    for n, page in enumerate(pages, start=1):
+        assert f"run {belt_run.name} — page {n} of {len(pages)}" in page, n
+
+
+def test_no_internal_names_and_no_timing_figures_in_a_fast_run(belt_report: dict) -> None:
+    text = "\n".join(belt_report["pages"])
+    for word in INTERNAL:
+        assert word not in text, word
+    assert "Tick lateness" not in text and "Tick work time" not in text
+    assert "fast mode: ticks were not paced to the wall clock" in text
+    assert "fault injected: stuck_sensor" in text and "limit warning: belt_fast" in text
+
+
+def test_limit_use_is_the_watched_signal_over_its_trip_band(belt_run: Path,
+                                                            belt_report: dict) -> None:
+    record = read_run(belt_run)
+    v, t = record["x:belt_speed"], record.t
+    # belt_fast: one-sided, trip above 1.1 m/s, warn above 1.0; base = v at tick 0 (0)
+    assert v[0] == 0.0
+    use = v / 1.1
+    i = int(np.argmax(use))
+    text = "\n".join(belt_report["pages"])
+    assert f"peak {use[i]:.3f} at {t[i]:.4g} s" in text
+    assert use[i] > 1.0                          # it went past the trip bound, then tripped
+    # motor_current: two-sided -19 .. 19 A, base the middle (0 A)
+    current = record["y:motor_current"]
+    j = int(np.argmax(np.abs(current)))
+    assert f"peak {abs(current[j]) / 19:.3f} at {t[j]:.4g} s" in text
+    page_index = next(k for k, p in enumerate(belt_report["pages"]) if "Limit use:" in p)
+    page = belt_report["images"][page_index]
+    # the trip bound of each of the two panels: a long run of alarm-red pixels in a row
+    red = (page[..., 0] > 0.5) & (page[..., 1] < 0.25) & (page[..., 2] < 0.25)
+    rows = np.flatnonzero(red.sum(axis=1) > 0.5 * page.shape[1])
+    groups = np.split(rows, np.flatnonzero(np.diff(rows) > 3) + 1) if rows.size else []
+    assert len(groups) == 2
+    assert "limit:belt_fast" not in belt_report["pages"][page_index]   # not the 0/1/2 code
+
+
+def test_signal_pages_overlay_reference_and_shade_faults(belt_run: Path,
+                                                         belt_report: dict) -> None:
+    pages = belt_report["pages"]
+    signals = [k for k, p in enumerate(pages) if "Signals (" in p]
+    assert signals
+    image = belt_report["images"][signals[0]]
+    # the first panel (belt speed): plant blue, controller orange and reference ink traces,
+    # and the amber fault window of the stuck sensor (1.2 .. 1.958 s)
+    frame = np.flatnonzero((image < 0.3).all(axis=2).sum(axis=1) > 0.5 * image.shape[1])
+    panel = image[frame[0] + 2:frame[1] - 1]
+    blue = (panel[..., 2] - panel[..., 0] > 0.3)
+    orange = (panel[..., 0] - panel[..., 2] > 0.5) & (panel[..., 1] > 0.3)
+    assert blue.sum() > 150 and orange.sum() > 100
+    # the fault window: the widest run of pixel columns mostly amber-tinted; its share of
+    # the axes matches 1.2 .. 1.958 s on an axis of 0 .. 4 s with matplotlib's 5 % margins
+    amber = (panel[..., 0] > 0.8) & (panel[..., 0] - panel[..., 2] > 0.1)
+    cols = np.convolve(amber.mean(axis=0) > 0.5, np.ones(5), "same") > 0
+    edges = np.flatnonzero(np.diff(np.concatenate([[0], cols.astype(int), [0]])))
+    widest = max(b - a for a, b in zip(edges[::2], edges[1::2], strict=True))
+    inner = np.flatnonzero((panel < 0.3).all(axis=2).sum(axis=0) > 0.8 * len(panel))
+    expected = (1.958 - 1.2) / (4.0 * 1.1)
+    assert abs(widest / (inner[-1] - inner[0]) - expected) < 0.03
+    events = [json.loads(line) for line in (belt_run / "events.jsonl").read_text().splitlines()]
+    kinds = [e["kind"] for e in events]
+    assert "trip" in kinds and "fault_injected" in kinds
+    html = belt_report["html"]
+    assert "Signals (1 of" in html and "Limit use" in html and "Timing" not in html
+    matplotlib.image.imsave(belt_report["pngs"] / "look-signals.png", image)
+
+
+def test_tank_rehearsal_report_reads_the_ode_rig_as_data(tmp_path: Path) -> None:
+    folder = run_cli(tmp_path, REHEARSALS / "tank_guarded.toml",
+                     REHEARSALS / "heater_stuck_on.toml")
+    assert main(["report", str(folder)]) == 0
+    text = subprocess.run(["pdftotext", "-layout", str(folder / "derived" / "report.pdf"),
+                           "-"], check=True, capture_output=True, text=True,
+                          timeout=120).stdout
+    sources = json.loads((folder / "sources.json").read_text())["files"]
+    model = next(e for e in sources.values() if e["role"] == "model")
+    assert model["sha256"] in text
+    record = read_run(folder)
+    level = record["x:level"]
+    # level_low: one-sided, trip below 0.08 m, base = the level at tick 0 (0.30 m)
+    use = np.where(level < level[0], (level[0] - level) / (level[0] - 0.08), 0.0)
+    k = int(np.argmax(use))
+    assert f"peak {use[k]:.3f} at {record.t[k]:.4g} s" in text
+    assert "device under test" in text and "not named" in text
+
+
+def test_dut_table_is_checked_like_every_rig_key(tmp_path: Path) -> None:
+    doc_text = (REHEARSALS / "conveyor_guarded.toml").read_text()
+    import tomllib
+    doc = tomllib.loads(doc_text)
+    rig = build_rig({**doc, "dut": {"name": "drive B", "firmware": "2.4.1",
+                                    "serial": "SN 10442"}}, tmp_path / "r.toml")
+    assert rig.dut.as_dict() == {"name": "drive B", "firmware": "2.4.1", "serial": "SN 10442"}
+    assert rig.dut.with_overrides(None, "2.5.0").firmware == "2.5.0"
+    with pytest.raises(RigFileError) as err:
+        build_rig({**doc, "dut": {"nmae": "x", "firmware": 3, "serial": " "}},
+                  tmp_path / "r.toml")
+    messages = [str(i) for i in err.value.issues]
+    assert any("dut.nmae" in m and "did you mean 'name'" in m for m in messages)
+    assert any("dut.firmware" in m and "expected a string" in m for m in messages)
+    assert any("dut.serial" in m and "empty" in m for m in messages)
+
+
+def test_the_port_really_used_is_recorded(tmp_path: Path) -> None:
+    rig = load_rig(REPO / "configs" / "conveyor_hil.toml")
+    assert rig.link["port"] == "/dev/ttyUSB0"                   # what the file asks for
+    link = build_link(rig, port="loop://")                       # what --port gave
+    info = run_info_of({"dut": {"name": "x"}}, link, rig.dut)
+    assert info["link_used"]["port"] == "loop://"
+    assert info["link_used"]["baud"] == rig.link["baud"]
+    assert info["dut"] == {"name": "x"} and info["environment"]["python"]
+
+
+def test_plot_writes_png_and_svg_with_limits_trips_and_faults(belt_run: Path,
+                                                              tmp_path: Path,
+                                                              capsys: pytest.CaptureFixture[str]
+                                                              ) -> None:
+    svg = tmp_path / "belt.svg"
+    assert main(["plot", str(belt_run), "belt_speed", "x:belt_speed", "cmd:voltage,u:voltage",
+                 "--out", str(svg)]) == 0
+    body = svg.read_text()
+    for words in ("belt_fast trip 1.1", "belt_fast warn 1", "trip belt_overspeed",
+                  "fault stuck_sensor", "disturbance load_surge",
+                  "reference speed_setpoint", "controller reads belt_speed",
+                  "plant output (true) belt_speed", "plant state (true) belt_speed"):
+        assert words in body, words
+    png = tmp_path / "belt.png"
+    assert main(["plot", str(belt_run), "motor_current", "--out", str(png)]) == 0
+    image = matplotlib.image.imread(png)
+    assert image.shape[0] > 200
+    capsys.readouterr()
+    assert main(["plot", str(belt_run), "belt_sped", "--out", str(png)]) == 2
+    err = capsys.readouterr().err
+    assert "no signal 'belt_sped'" in err and "y:belt_speed" in err
+    assert main(["plot", str(belt_run), "belt_speed", "--out", str(tmp_path / "a.jpg")]) == 2
+    assert main(["plot", str(tmp_path / "nowhere"), "belt_speed"]) == 2
+    assert not (belt_run / "derived" / "plot-belt_speed.png").exists()
+    assert main(["plot", str(belt_run), "belt_speed"]) == 0   # default: RUN/derived/
+    assert (belt_run / "derived" / "plot-belt_speed.png").is_file()
+    assert main(["verify", str(belt_run)]) == 0                  # the record is unchanged
+
+
+def test_help_of_plot_and_run_documents_the_new_options() -> None:
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")
+    plot_help = sub.choices["plot"].format_help()
+    assert "exit codes:" in plot_help and re.search(r"\b2\s+usage mistake", plot_help)
+    run_help = sub.choices["run"].format_help()
+    assert "--dut NAME" in run_help and "--firmware VERSION" in run_help
+    assert "--reviewer" in sub.choices["report"].format_help()
