@@ -11,6 +11,8 @@ the dashboard itself always has a process of its own.
 
 from __future__ import annotations
 
+import contextlib
+import ctypes
 import json
 import multiprocessing as mp
 import os
@@ -28,21 +30,30 @@ import pytest
 from matplotlib import image as mpimg
 
 from plantrig.cli import main as cli_main
-from plantrig.gui import Dashboard, Replay, start_dashboard_process, start_replay_process
+from plantrig.gui import (
+    Dashboard,
+    LiveDashboard,
+    Replay,
+    start_dashboard_process,
+    start_replay_process,
+)
 from plantrig.gui._model import fmt
 from plantrig.gui._operator import MOMENT_PRESETS
 from plantrig.gui._process import EXIT_NO_DISPLAY
+from plantrig.gui._runinfo import live_folder
 from plantrig.gui._theme import (
+    ACCENT,
     ALARM,
     BANNER_BG,
     BANNER_TEXT,
     FIELD,
+    INK,
     PANEL,
     PAPER,
     ROLES,
     SERIES,
 )
-from plantrig.gui._view import T
+from plantrig.gui._view import RUN_LINES, T
 from plantrig.sim import (
     Command,
     EventTape,
@@ -78,6 +89,34 @@ def press(tag: str) -> None:
     callback(T + tag, None, dpg.get_item_user_data(T + tag))
 
 
+def press_key(keysym: int) -> None:
+    """Press and release a key on the X display, as a keyboard would (XTest extension of
+    the Xvfb server): the pointer is put over the window first, which gives it the
+    keyboard focus (no window manager: focus follows the pointer)."""
+    x11 = ctypes.cdll.LoadLibrary("libX11.so.6")
+    xtst = ctypes.cdll.LoadLibrary("libXtst.so.6")
+    x11.XOpenDisplay.restype = ctypes.c_void_p
+    x11.XOpenDisplay.argtypes = [ctypes.c_char_p]
+    display = x11.XOpenDisplay(None)
+    assert display, "cannot open the X display for the key press"
+    x11.XKeysymToKeycode.argtypes = [ctypes.c_void_p, ctypes.c_ulong]
+    x11.XFlush.argtypes = x11.XCloseDisplay.argtypes = [ctypes.c_void_p]
+    xtst.XTestFakeMotionEvent.argtypes = [ctypes.c_void_p, ctypes.c_int, ctypes.c_int,
+                                          ctypes.c_int, ctypes.c_ulong]
+    xtst.XTestFakeKeyEvent.argtypes = [ctypes.c_void_p, ctypes.c_uint, ctypes.c_int,
+                                       ctypes.c_ulong]
+    code = x11.XKeysymToKeycode(display, keysym)
+    assert code, f"no keycode for keysym {keysym:#x}"
+    xtst.XTestFakeMotionEvent(display, -1, 700, 120, 0)   # over the caution banner
+    xtst.XTestFakeKeyEvent(display, code, 1, 0)
+    xtst.XTestFakeKeyEvent(display, code, 0, 30)           # released 30 ms later
+    x11.XFlush(display)
+    x11.XCloseDisplay(display)
+
+
+XK_ESCAPE = 0xFF1B          # X11 keysymdef.h
+
+
 def load_png(path: Path) -> np.ndarray:
     img = mpimg.imread(path)
     return np.round(img[..., :3] * 255).astype(np.int16)
@@ -107,7 +146,7 @@ def check_screenshot(path: Path, regions: dict, series: dict[str, str]) -> None:
 
 
 # widget areas of a screenshot that the theme must cover (the banner has its own test)
-WIDGET_AREAS = ("estop_lamp", "controls", "plots", "panels", "span", "show.0")
+WIDGET_AREAS = ("status", "controls", "plots", "panels", "span", "show.0")
 
 
 def widget_mask(img: np.ndarray, regions: dict) -> np.ndarray:
@@ -269,7 +308,7 @@ def test_live_dashboard_draws_and_its_commands_reach_the_engine(xvfb, tmp_path,
 
 def test_replay_shows_the_moment_under_the_slider(xvfb, tmp_path, stock_colours):
     run_fresh("replay_case", tmp_path)
-    for shot in ("replay_trip.png", "process.png"):
+    for shot in ("replay_trip.png", "replay_picked.png", "process.png"):
         print(shot, check_theme(tmp_path / shot, stock_colours))
 
 
@@ -285,7 +324,7 @@ def live_case(tmp_path: Path) -> None:
         shot = tmp_path / "live.png"
         regions = dash.view.screenshot(shot)
         check_screenshot(shot, regions, {"plot.0": "y", "plot.1": "y", "plot.2": "u"})
-        assert dpg.get_item_configuration(T + "estop")["label"] == "E-STOP"
+        assert dpg.get_item_configuration(T + "estop")["label"] == "E-STOP  (Esc)"
         # legends name the true plant value and what the controller reads
         label = lambda tag: dpg.get_item_configuration(T + tag)["label"]  # noqa: E731
         assert label("plot.0.y:belt_speed") == "plant output (true)"
@@ -296,7 +335,8 @@ def live_case(tmp_path: Path) -> None:
         # nothing latched: the lamps are quiet (no alarm colour anywhere in them)
         img = load_png(shot)
         assert label("lamp.0") == "estop: normal"
-        for quiet in ("lamp.0", "estop_lamp"):
+        assert label("status").startswith("RUNNING | plant time ")
+        for quiet in ("lamp.0", "status"):
             assert not near(crop(img, regions[quiet]), ALARM, 12).any(), quiet
         # the run buttons: no arm or start markers, one stop (asked first), one mark
         assert not dpg.does_item_exist(T + "arm") and not dpg.does_item_exist(T + "start")
@@ -304,8 +344,8 @@ def live_case(tmp_path: Path) -> None:
         press("estop")
         frames_until(dash, lambda: dash.model.log.kinds.get("estop"), "estop event")
         dash.frame()
-        assert dpg.get_item_configuration(T + "estop_lamp")["label"].startswith(
-            "E-STOP LATCHED")
+        assert label("status").startswith(f"E-STOP LATCHED since t = "
+                                          f"{dash.model.log.estop_time:.3f} s: inputs held")
         t_estop = dash.model.log.latches["estop"].t
         assert label("lamp.0") == (f"estop: TRIPPED at t = {t_estop:.3f} s, latched\n"
                                    "cause: operator E-stop")
@@ -313,7 +353,7 @@ def live_case(tmp_path: Path) -> None:
         dpg.set_value(T + "fault_kind", "sensor_stuck")
         dash.view.on_fault_kind(None, "sensor_stuck")
         dpg.set_value(T + "fault_target", "belt_speed")
-        dpg.set_value(T + "fault_value", 0.3)
+        dpg.set_value(T + "fault_value", "0.3")
         press("inject_fault")
         kinds = dash.model.log.kinds
         frames_until(dash, lambda: kinds.get("fault_injected") or kinds.get("command_refused"),
@@ -326,7 +366,7 @@ def live_case(tmp_path: Path) -> None:
         regions = dash.view.screenshot(after)
         img = load_png(after)
         assert near(crop(img, regions["lamp.0"]), ALARM, 12).mean() > 0.5   # latched: red
-        assert near(crop(img, regions["estop_lamp"]), ALARM, 12).mean() > 0.5
+        assert near(crop(img, regions["status"]), ALARM, 12).mean() > 0.5
         dpg.set_value(T + "ref_value", 0.25)
         press("set_reference")
         dpg.set_value(T + "moment_preset", MOMENT_PRESETS[1])
@@ -376,6 +416,164 @@ def live_case(tmp_path: Path) -> None:
         print("fault answer: command_refused")
 
 
+def test_live_dashboard_on_a_guarded_rig_shows_limits_link_and_the_runs_answers(
+        xvfb, tmp_path, stock_colours):
+    out = run_fresh("guarded_live_case", tmp_path)
+    print(out)
+    for shot in ("guarded_live.png", "guarded_link_lost.png", "guarded_estop.png",
+                 "guarded_ended.png"):
+        print(shot, check_theme(tmp_path / shot, stock_colours))
+
+
+def plot_of(window, key: str) -> int:
+    return [s.key for s in window.view.specs].index(key)
+
+
+def guarded_live_case(tmp_path: Path) -> None:
+    rig = replace(load_rig(GUARDED), duration=600.0)       # fast, stopped by the test
+    commands = mp.get_context("spawn").Queue()
+    thread, ready, paths, result = run_in_thread(rig, tmp_path, commands)
+    assert ready.wait(GUARD_S) and "error" not in result, result.get("error")
+    folder = live_folder(paths["tape"], tmp_path)
+    assert folder is not None and (folder / "run_start.json").is_file()
+    dash = Dashboard(paths["tape"], paths["events"], rig.path, commands, folder=folder)
+    label = lambda tag: dpg.get_item_configuration(T + tag)["label"]  # noqa: E731
+    message = lambda: dpg.get_value(T + "operator_message")  # noqa: E731
+    op = dash.operator
+    try:
+        frames_until(dash, lambda: len(dash.store) > 2000 and dash.frames >= 10,
+                     "rows on screen")
+        # limit lines on the watched state x:belt_speed (a plot of its own) and on
+        # y:motor_current, at the rig file's bounds
+        i = plot_of(dash, "x:belt_speed")
+        assert dpg.get_value(f"{T}plot.{i}.line.0")[0] == [1.1]
+        assert label(f"plot.{i}.line.0") == "belt_fast trip high 1.1"
+        assert label(f"plot.{i}.line.1") == "belt_fast warn high 1"
+        lo, hi = dpg.get_axis_limits(f"{T}plot.{i}.y")
+        assert lo < 0.8 and hi > 1.1                       # the trip line is in view
+        j = plot_of(dash, "y:motor_current")
+        assert sorted(dpg.get_value(f"{T}plot.{j}.line.{n}")[0][0] for n in range(4)) == \
+            [-19.0, -17.0, 17.0, 19.0]
+        assert label("status").startswith("RUNNING | plant time")
+        assert label("link_lamp").startswith("link ok") and "watchdog 0.05 s" in \
+            label("link_lamp")                                # the rig's, not 0.1 s
+        shot = tmp_path / "guarded_live.png"
+        regions = dash.view.screenshot(shot)
+        check_screenshot(shot, regions, {f"plot.{i}": "x", f"plot.{j}": "y"})
+        img = load_png(shot)
+        trip_line = near(crop(img, regions[f"plot.{i}"]), ALARM, 20).sum()
+        assert trip_line > 100, f"no trip line drawn ({trip_line} red pixels)"
+
+        # the fault form: each kind's own default, checks before sending
+        def choose(kind: str) -> None:
+            dpg.set_value(T + "fault_kind", kind)
+            dash.view.on_fault_kind(None, kind)
+
+        choose("sensor_dropout")
+        assert dpg.get_value(T + "fault_value") == "0"
+        choose("sensor_stuck")
+        assert dpg.get_value(T + "fault_value") == ""      # not the dropout's 0
+        assert dpg.get_item_configuration(T + "fault_value")["hint"] == \
+            "empty: its value when injected"
+        choose("link_drop")
+        assert dpg.get_value(T + "fault_value") == "1"
+        dpg.set_value(T + "fault_value", "0")
+        assert not dash.view.on_inject_fault()
+        assert "probability 0: enter more than 0" in op.message
+        dpg.set_value(T + "fault_value", "1")
+        dpg.set_value(T + "fault_duration", -1.0)
+        assert dpg.get_value(T + "fault_duration") == -1.0   # not clamped quietly ...
+        assert not dash.view.on_inject_fault()               # ... but refused
+        assert "enter 0 (until cleared) or more" in op.message
+        assert not op.sent
+
+        # accepted by the run: every frame from the controller is lost; the rig's 0.05 s
+        # watchdog calls the link lost and its interlock cuts the drive
+        dpg.set_value(T + "fault_duration", 0.0)
+        dpg.set_value(T + "fault_target", "from_controller")
+        assert dash.view.on_inject_fault()
+        frames_until(dash, lambda: op.answers, "the run's answer to link_drop")
+        assert op.answers[-1].accepted and op.message.startswith("ACCEPTED at t = ")
+        frames_until(dash, lambda: dash.model.log.latches.get("link_watchdog"),
+                     "the link watchdog trip")
+        frames_until(dash, lambda: label("link_lamp").startswith("LINK LOST"),
+                     "the link lamp")
+        dash.frame()
+        trip = dash.model.log.latches["link_watchdog"]
+        assert label("status").startswith(f"TRIPPED by link_watchdog since t = "
+                                          f"{trip.t:.3f} s")
+        assert "watchdog 0.05 s" in label("link_lamp") or "0.05 s watchdog" in \
+            label("link_lamp")
+        dash.view.on_event_pick(None, True, 0)
+        frames_until(dash, lambda: dash.view.selected_event is not None, "a picked event")
+        shot = tmp_path / "guarded_link_lost.png"
+        regions = dash.view.screenshot(shot)
+        img = load_png(shot)
+        assert near(crop(img, regions["status"]), ALARM, 12).mean() > 0.5
+        assert near(crop(img, regions["link_lamp"]), ALARM, 12).mean() > 0.5
+        picked = dash.view.selected_event
+        assert dpg.get_value(T + "event_detail").endswith(picked[3])    # the whole text
+
+        # refused by the run, with its reason (a parameter that does not exist)
+        choose("plant_step")
+        dpg.set_value(T + "fault_target_text", "A[9,9]")
+        dpg.set_value(T + "fault_value", "2")
+        assert dash.view.on_inject_fault()
+        frames_until(dash, lambda: len(op.answers) >= 2, "the run's refusal")
+        assert op.answers[-1].accepted is False
+        assert op.message.startswith("REFUSED by the run at t = ") and "A[9,9]" in op.message
+        frames_until(dash, lambda: "REFUSED by the run" in message(), "the message shown")
+
+        # the keyboard shortcut latches the E-stop
+        sent = len(op.sent)
+        deadline = time.monotonic() + GUARD_S
+        while not dash.model.log.kinds.get("estop"):
+            if len(op.sent) == sent:
+                press_key(XK_ESCAPE)
+            if time.monotonic() > deadline:
+                pytest.fail("the Esc key never latched the E-stop")
+            for _ in range(5):
+                dash.frame()
+            time.sleep(0.05)
+        assert any(c.kind == "estop" for _, c in op.sent)
+        dash.frame()
+        assert "E-stop" in label("status") and label("status").startswith("TRIPPED by")
+        regions = dash.view.screenshot(tmp_path / "guarded_estop.png")
+
+        # the run ends: status, outcome and verdict panel from summary.json; nothing is
+        # sent any more
+        press("stop")
+        press("stop_confirm")
+        frames_until(dash, lambda: dash.summary is not None, "the run's summary")
+        dash.frame()
+        summary = json.loads((folder / "summary.json").read_text())
+        assert label("status").startswith(f"ENDED: {summary['ended']}, exit code "
+                                          f"{summary['exit_code']}")
+        lines = [dpg.get_value(f"{T}run.{n}") for n in range(RUN_LINES)
+                 if dpg.get_item_configuration(f"{T}run.{n}")["show"]]
+        assert f"outcome: {summary['ended']}, exit code {summary['exit_code']}: " \
+               f"{summary['reason']}" in lines
+        assert not dash.view.on_set_reference()
+        assert message() == "last action: " + op.message or op.message.startswith(
+            "NOT SENT set_reference: the run has ended")
+        dash.frame()
+        assert dpg.get_value(T + "operator_message").startswith(
+            "last action: NOT SENT set_reference: the run has ended")
+        shot = tmp_path / "guarded_ended.png"
+        regions = dash.view.screenshot(shot)
+        assert near(crop(load_png(shot), regions["status"]), INK, 12).mean() > 0.5
+    finally:
+        if thread.is_alive():
+            commands.put(Command("stop"))
+        thread.join(GUARD_S)
+        dash.close()
+    assert "error" not in result, result.get("error")
+    events = read_events(folder)
+    kinds = [e["kind"] for e in events]
+    assert "link_lost" in kinds and "estop" in kinds and "command_refused" in kinds
+    print("answers:", [(a.command.kind, a.accepted) for a in op.answers])
+
+
 def replay_case(tmp_path: Path) -> None:
     # the stuck belt sensor rehearsal: the overspeed interlock trips, and is reset later
     rig = load_rig(GUARDED)
@@ -418,9 +616,43 @@ def replay_case(tmp_path: Path) -> None:
             if j != i:
                 assert not near(crop(img, regions[f"lamp.{j}"]), ALARM, 12).any()
         check_screenshot(shot, regions, {"plot.0": "sent", "plot.2": "cmd"})
+        # replay looks unlike live: its own status words and colour, never the E-stop red
+        status = dpg.get_item_configuration(T + "status")["label"]
+        assert status.startswith(f"REPLAY of {folder.name} | at plant time "
+                                 f"{replay.view.cursor:.3f} s: TRIPPED by {name} since t = "
+                                 f"{trip['time']:.3f} s")
+        assert near(crop(img, regions["status"]), ACCENT, 12).mean() > 0.5
+        assert not near(crop(img, regions["status"]), ALARM, 12).any()
+        assert "plantrig REPLAY of" in dpg.get_viewport_title()
+        # the recorded outcome and every verdict, whole; the scenario's progress so far
+        lines = [dpg.get_value(f"{T}run.{n}") for n in range(RUN_LINES)
+                 if dpg.get_item_configuration(f"{T}run.{n}")["show"]]
+        assert lines[0] == f"outcome: {summary['ended']}, exit code {summary['exit_code']}: " \
+                           f"{summary['reason']}"
+        for verdict in summary["verdicts"]:
+            mark = "pass" if verdict["passed"] else "FAIL"
+            assert any(line.startswith(f"{mark}  {verdict['name']}: ") for line in lines)
+        fired = [e for e in events if e["kind"] == "scenario_step"
+                 and e["time"] <= replay.view.cursor]
+        steps = len(load_scenario(SENSOR_STUCK, rig).steps)
+        assert f"scenario belt_sensor_stuck: {len(fired)} of {steps} steps fired" in lines
+        # limit lines and the trip mark on the watched state's own plot
+        k = plot_of(replay, "x:belt_speed")
+        assert dpg.get_value(f"{T}plot.{k}.line.0")[0] == [1.1]
+        assert dpg.get_value(f"{T}plot.{k}.trip_points")[0] == [trip["time"]]
+        assert trip["time"] in dpg.get_value(f"{T}plot.0.trips")[0]      # on every plot
+        red = near(crop(img, regions[f"plot.{k}"]), ALARM, 20).sum()
+        assert red > 100, f"no trip line or mark drawn on the state's plot ({red} pixels)"
+        # the whole event text: the trip row picked, its detail shown in full
+        row = next(n for n, e in enumerate(replay.view.shown_events) if e[2] == "trip")
+        dpg.get_item_callback(f"{T}event.{row}.0")(None, True, row)
+        replay.frame()
+        assert dpg.get_value(T + "event_detail").endswith(trip["detail"])
+        assert dpg.get_value(f"{T}event.{row}.tip").endswith(trip["detail"])
+        replay.view.screenshot(tmp_path / "replay_picked.png")
     finally:
         replay.close()
-    assert summary["ticks_recorded"] == len(ticks)
+    assert summary["ticks_recorded"] == len(ticks.rows)
     shot = tmp_path / "process.png"                  # the same, in a process of its own
     process = start_replay_process(folder, screenshot=shot, exit_after_frames=8)
     assert process.wait(GUARD_S)
@@ -514,3 +746,111 @@ def test_check_does_not_load_dearpygui():
     done = subprocess.run([sys.executable, "-c", code, str(CONVEYOR)], capture_output=True,
                           text=True, timeout=GUARD_S)
     assert done.returncode == 0, done.stderr
+
+
+def spawned_children(pid: int) -> list[int]:
+    """The spawned interpreters under ``pid`` (dashboard, replay; not the tracker), read
+    from /proc."""
+    parents: dict[int, int] = {}
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        with contextlib.suppress(OSError, ValueError, IndexError):
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+            parents[int(stat.parent.name)] = int(fields[1])
+    tree, grew = {pid}, True
+    while grew:
+        more = {child for child, parent in parents.items() if parent in tree} - tree
+        tree |= more
+        grew = bool(more)
+    out = []
+    for child in tree - {pid}:
+        with contextlib.suppress(OSError):
+            line = (Path("/proc") / str(child) / "cmdline").read_bytes().replace(b"\0", b" ")
+            if b"multiprocessing" in line and b"resource_tracker" not in line:
+                out.append(child)
+    return out
+
+
+def test_killing_the_window_after_the_run_keeps_exit_code_and_verdicts(xvfb, tmp_path):
+    # the command prints outcome, verdicts and exit code before it waits for the window;
+    # a window killed then (and any replay opened in its place) changes none of it, and
+    # the command says how the window ended before it returns
+    cmd = [sys.executable, "-m", "plantrig.cli", "run", str(GUARDED), "--scenario",
+           str(SENSOR_STUCK), "--gui", "--out", str(tmp_path)]
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    err: list[str] = []
+    reader = threading.Thread(target=lambda: err.extend(proc.stderr), daemon=True)
+    reader.start()
+    deadline = time.monotonic() + 4 * GUARD_S
+    killed = 0
+    while proc.poll() is None:
+        if time.monotonic() > deadline:
+            proc.kill()
+            pytest.fail(f"the command never ended: {''.join(err)}")
+        if any("close the dashboard window" in line for line in err):
+            for child in spawned_children(proc.pid):
+                with contextlib.suppress(ProcessLookupError):
+                    os.kill(child, signal.SIGKILL)
+                    killed += 1
+        time.sleep(0.2)
+    reader.join(GUARD_S)
+    out = proc.stdout.read()
+    stderr = "".join(err)
+    print(out, stderr)
+    assert killed >= 1, "no window process was found to kill"
+    folder = next(p for p in tmp_path.iterdir() if (p / "summary.json").is_file())
+    summary = json.loads((folder / "summary.json").read_text())
+    assert proc.returncode == summary["exit_code"] == 0
+    assert f"exit code {summary['exit_code']}: completed" in out
+    verdicts = summary["verdicts"]
+    assert f"{len(verdicts)} of {len(verdicts)} criteria passed" in out
+    assert all(v["name"] in out for v in verdicts)
+    assert out.index("criteria passed") < len(out) and "dashboard ended by SIGKILL" in stderr
+    assert "the run is not affected" in stderr
+
+
+def dead_window_case(tmp_path: Path) -> None:
+    """A live window that dies before it draws: the command says so, then shows the run
+    folder in replay (a window titled REPLAY appears on the display)."""
+    rig = load_rig(GUARDED)
+    folder, _, _ = run_to_folder(rig, tmp_path, realtime=False,
+                                 scenario=load_scenario(SENSOR_STUCK, rig))
+    not_a_tape = tmp_path / "not_a_tape.tape"
+    not_a_tape.write_bytes(b"\0" * 64)
+    dash = LiveDashboard(rig.path)
+    dash.on_tapes_ready(not_a_tape, not_a_tape)         # the window dies at once
+    done = threading.Thread(target=dash.after_run, args=(folder,), daemon=True)
+    done.start()
+    title = f"plantrig REPLAY of {folder.name}"
+    deadline = time.monotonic() + 2 * GUARD_S
+    while title not in subprocess.run(["xwininfo", "-root", "-tree"], capture_output=True,
+                                      text=True).stdout:
+        if time.monotonic() > deadline:
+            pytest.fail("no replay window appeared")
+        time.sleep(0.2)
+    print(f"window shown: {title}")
+    for child in mp.active_children():
+        if child.name == "plantrig-replay":
+            child.terminate()
+    done.join(GUARD_S)
+    assert not done.is_alive()
+
+
+def test_a_window_that_dies_before_drawing_is_never_silent(xvfb, tmp_path):
+    code = ("import importlib.util, sys\n"
+            "spec = importlib.util.spec_from_file_location('gui_cases', sys.argv[1])\n"
+            "module = importlib.util.module_from_spec(spec)\n"
+            "spec.loader.exec_module(module)\n"
+            "module.dead_window_case(__import__('pathlib').Path(sys.argv[2]))\n")
+    done = subprocess.run([sys.executable, "-c", code, __file__, str(tmp_path)],
+                          capture_output=True, text=True, timeout=4 * GUARD_S)
+    print(done.stdout, done.stderr[-3000:])
+    assert done.returncode == 0
+    said = [line for line in done.stderr.splitlines() if not line.startswith((" ", "Trace"))]
+    assert "dashboard failed with exit code 1 before it drew a frame; the run is not " \
+           "affected" in said
+    opening = [line for line in said if line.startswith("opening ")]
+    assert opening and opening[0].endswith("in replay")
+    assert said.index(opening[0]) > said.index(
+        "dashboard failed with exit code 1 before it drew a frame; the run is not affected")
+    assert "window shown: plantrig REPLAY of" in done.stdout
+    assert "dashboard ended by SIGTERM" in done.stderr      # the replay, closed by the test
