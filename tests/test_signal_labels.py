@@ -33,10 +33,10 @@ def test_exports_describe_columns_with_the_same_words() -> None:
 
 
 def test_the_report_groups_signals_with_the_same_words() -> None:
-    from plantrig._report import GROUPS
+    from plantrig._plots import label
 
-    assert {prefix: label for label, prefix in GROUPS} == {
-        p: SIGNAL_LABELS[p] for p in ("ref", "u", "y", "x", "cmd", "sent")}
+    for prefix in ("ref", "u", "y", "x", "cmd", "sent", "d"):
+        assert label(f"{prefix}:belt_speed") == f"{SIGNAL_LABELS[prefix]} belt_speed"
 
 
 def test_the_dashboard_uses_the_same_words() -> None:
