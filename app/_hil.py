@@ -79,6 +79,8 @@ def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     print(f"controller: {reason}; answered {c.rx_ok}, bad {c.rx_bad}, duplicates "
           f"{c.duplicates}, out of order {c.out_of_order}, dropped {c.tx_dropped}, "
           f"heartbeats {c.heartbeats}, status {c.status}", flush=True)
+    print(f"controller: rig states {' '.join(c.rig_states) or 'none'}; rig heartbeats "
+          f"{c.rig_heartbeats}", flush=True)
     return EXIT_OK
 
 
@@ -146,8 +148,6 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     for line in proc.stdout.read().splitlines():
         print(line)
     print_outcome(folder, summary)
-    health = summary["link"]
-    print(link_report(health, rig.tick))
     code = int(summary["exit_code"])
     print("demo: ok" if code == EXIT_OK else
           f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")

@@ -128,8 +128,6 @@ def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any],
     for line in proc.stdout.read().splitlines():
         print(line)
     print_outcome(folder, summary)
-    health = summary["link"]
-    print(link_report(health))
     code = int(summary["exit_code"])
     print("demo: ok" if code == EXIT_OK else
           f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import signal
 import sys
 from pathlib import Path
@@ -19,6 +20,7 @@ from plantrig._catalogue import add_parser as add_runs_command
 from plantrig._catalogue import index_run
 from plantrig._compare_cli import add_parser as add_compare_command
 from plantrig._compose import build_chains
+from plantrig._console import print_outcome
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._model_trust import TRUST_HELP, model_guard
 from plantrig._override_options import add_override_options, overrides_of
@@ -35,6 +37,7 @@ from plantrig.sim import (
 )
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE, EXIT_VERDICT, EXIT_STOPPED = 0, 1, 2, 3, 5
+EXIT_CLOSED_PIPE = 141   # 128 + SIGPIPE, what shell tools give when their reader quits
 EXIT_MEANINGS = {0: "completed", 1: "fault", 2: "usage mistake", 3: "a verdict failed",
                  4: "tripped", 5: "stopped", 6: "interrupted"}
 
@@ -89,38 +92,6 @@ def cmd_check(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _print_outcome(folder: Path, summary: dict[str, Any]) -> None:
-    timing = summary["timing"]
-    print(f"run folder: {folder}")
-    print(f"outcome: {summary['ended'].upper()} ({summary['reason']})")
-    print(f"ticks: {summary.get('ticks_run', summary['ticks_recorded'])} of "
-          f"{summary['ticks_planned']} planned ran, {summary['ticks_recorded']} recorded")
-    if summary.get("acceptance"):
-        print("acceptance:")
-        for rule in summary["acceptance"]:
-            mark = {True: "held", False: "FAILED", None: "n/a"}[rule["passed"]]
-            print(f"  {mark:<7} {rule['rule']}: {rule['measured']} (needs {rule['needed']})")
-    print(f"mode: {summary['mode']}; wall time {timing['wall_s']:.3f} s "
-          f"({timing['ticks_per_s']:.0f} ticks/s)")
-    if summary["mode"] == "realtime":
-        print(f"lateness p50 {timing['lateness_p50_s'] * 1e6:.1f} us, "
-              f"p99 {timing['lateness_p99_s'] * 1e6:.1f} us, "
-              f"max {timing['lateness_max_s'] * 1e6:.1f} us; "
-              f"overruns {timing['overruns']}, skipped slots {timing['skipped_slots']}; "
-              f"scheduler {timing['scheduler']}")
-    counters = {k: v for k, v in summary["link"].items() if v}
-    if counters:  # zero counters are in summary.json; here only what happened
-        print("counters: " + ", ".join(f"{k} {v:g}" if isinstance(v, float) else f"{k} {v}"
-                                       for k, v in counters.items()))
-    if summary["events"]:
-        print("events: " + ", ".join(f"{k} x{v}" for k, v in sorted(summary["events"].items())))
-    record = summary.get("record") or {}
-    for problem in [*record.get("lost", []), *record.get("problems", [])]:
-        print(f"record: {problem}")
-    if record.get("problems"):
-        print(f"record: not finished; free space, then: plantrig recover {folder}")
-
-
 def cmd_run(args: argparse.Namespace) -> int:
     rig = _load(args.rig, overrides_of(args), trust_model=args.trust_model)
     scenario = None
@@ -167,7 +138,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    _print_outcome(folder, summary)
+    print_outcome(folder, summary)
     if args.json:
         print(json.dumps(summary["timing"]))
     if scenario is not None:
@@ -250,7 +221,9 @@ def build_parser() -> argparse.ArgumentParser:
                                    "An ODE plant's module is Python code and is imported "
                                    "(its path and SHA-256 are printed first). Exit codes: "
                                    "0 the rig file is sound, 2 a mistake in it, or a model "
-                                   "module that came with a run folder (see --trust-model).")
+                                   "module that came with a run folder (see --trust-model); "
+                                   "141 the reader closed the pipe before the summary was "
+                                   "written (plantrig check RIG | head), as shell tools do.")
     p.add_argument("rig", help="rig file (TOML)")
     p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
     p.set_defaults(func=cmd_check)
@@ -303,12 +276,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--screenshot", metavar="PNG",
                    help="draw the run once, save the window as a PNG and exit")
     p.set_defaults(func=cmd_replay)
-    add_link_commands(sub, _load, _print_outcome)
+    add_link_commands(sub, _load, print_outcome)
     add_compare_command(sub)
     add_plot_command(sub)
     add_campaign_command(sub)
     add_runs_command(sub)
-    add_rerun_command(sub, _print_outcome)
+    add_rerun_command(sub, print_outcome)
     return parser
 
 
@@ -318,11 +291,16 @@ def main(argv: list[str] | None = None) -> int:
     # outside a run, SIGTERM is treated as Ctrl-C: stop quietly (a run installs its own
     # graceful handlers, plantrig.sim.run_to_folder)
     signal.signal(signal.SIGTERM, signal.default_int_handler)
+    code: int | None = None
     try:
-        return int(args.func(args))
+        code = int(args.func(args))
+        sys.stdout.flush()   # a reader that went away shows here, not at interpreter exit
     except KeyboardInterrupt:
         print("plantrig: stopped by a signal", file=sys.stderr)
         return EXIT_STOPPED
+    except BrokenPipeError:   # plantrig check RIG | head: the reader has what it wanted
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    return EXIT_CLOSED_PIPE if code is None else code
 
 
 if __name__ == "__main__":

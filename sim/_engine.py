@@ -132,11 +132,12 @@ class RunOutcome:
     work: DurationHistogram
     overruns: int
     skipped_slots: int
-    wall_s: float
+    wall_s: float                  # the whole run: set-up, ticks and closing
     realtime: RealtimeReport | None = None
     link_health: dict[str, float] = field(default_factory=dict)
     rules: list[RuleResult] = field(default_factory=list)
     answered: int = 0
+    loop_s: float = 0.0            # from tick 0's start to the end of the last tick
 
     @property
     def exit_code(self) -> int:
@@ -150,8 +151,8 @@ class RunOutcome:
         late, work = self.lateness, self.work
         return {
             "ticks": self.ticks,
-            "wall_s": self.wall_s,
-            "ticks_per_s": self.ticks / self.wall_s if self.wall_s > 0 else 0.0,
+            "wall_s": self.wall_s, "loop_s": self.loop_s,
+            "ticks_per_s": self.ticks / self.loop_s if self.loop_s > 0 else 0.0,
             "lateness_p50_s": late.quantile_s(50), "lateness_p99_s": late.quantile_s(99),
             "lateness_max_s": late.max_s,
             "exec_p50_s": work.quantile_s(50), "exec_p99_s": work.quantile_s(99),
@@ -212,6 +213,9 @@ class Engine:
         self.ref_override = np.full(nr, np.nan)
         self.any_override = False
         self.ref_names = [r.name for r in rig.references]
+        # the link's optional state(tick, state, detail) (sim/_contracts.py), told on changes
+        self._tell_link = getattr(link, "state", None)
+        self._told: tuple[str, str] | None = None
 
     def request_stop(self, why: str = "stop requested") -> None:
         """Ask the loop to end at the next tick boundary (from a signal handler, say);
@@ -230,6 +234,17 @@ class Engine:
         self.safety.on_event(event)        # a link loss may trip an interlock
         if self.scenario is not None:
             self.scenario.on_event(event)  # trips and phases may arm scenario steps
+        if event.kind in ("trip", "estop", "reset") and self._told is not None:
+            latched = [s.name for s, on in zip(self.safety.specs, self.safety.latched,
+                                               strict=True) if on]
+            self._link_state(event.tick, "tripped" if latched else "running",
+                             latched[0] if latched else "")
+
+    def _link_state(self, k: int, state: str, detail: str = "") -> None:
+        """Tell the link the rig's run state when it changed."""
+        if self._tell_link is not None and (state, detail) != self._told:
+            self._told = (state, detail)
+            self._tell_link(k, state, detail)
 
     def _apply_command(self, k: int, command: Command) -> None:
         """Act on one operator command; every command becomes an event."""
@@ -241,7 +256,7 @@ class Engine:
         elif command.kind == "estop":
             self.safety.estop(k)
         elif command.kind == "reset":
-            self.safety.reset(k, a.get("interlock"))
+            self.safety.reset(k, a.get("interlock"), by=str(a.get("source") or "operator"))
         elif command.kind == "inject_fault":
             self.faults.inject(k, a)
         elif command.kind == "clear_fault":
@@ -293,9 +308,11 @@ class Engine:
         demand = np.zeros(len(rig.inputs))     # u before the safe values, for the limits
         streak, streak_trip = 0, rig.safety.overrun_streak
         wall_start = clock.now_ns()
+        loop_start = loop_end = 0
         try:
             if link is not None:
                 link.open()
+                self._link_state(-1, "running")
                 # prime: the values before tick 0, so the controller's answer is there at
                 # tick 0 as the built-in controller's is (docs/protocol.md, tick stamps)
                 link.send(-1, -rig.tick, sent)
@@ -303,6 +320,7 @@ class Engine:
             realtime, commands = self.realtime, self.commands
             with _maybe_realtime(realtime, tick_ns) as report:
                 start = clock.now_ns() + START_LEAD_NS
+                loop_start = start if realtime else clock.now_ns()
                 # wall-clock UTC of tick 0: its deadline in real time, the loop start if fast
                 self.tick0_unix_ns = time.time_ns() + (START_LEAD_NS if realtime else 0)
                 slot = 0
@@ -458,34 +476,40 @@ class Engine:
                 traceback.format_exception_only(type(exc), exc)).strip())
             ended, reason = FAULT, f"{type(exc).__name__}: {exc}"
         finally:
+            loop_end = clock.now_ns() if loop_start else 0
             health: dict[str, float] = {k: v for k, v in faults.health().items() if v}
-            if link is not None:
-                try:
+            try:
+                if link is not None:
                     health.update(link.health())
                     for ev in link.drain_events():
                         self._record_event(ev)
-                finally:
+                self.safety.finish(done)
+                tape.end()
+                problem = tape.wait_drained()   # a record the recorder lost is not complete
+                if problem != RECORDER_OK and ended != FAULT:
+                    ended, reason = FAULT, self._recorder_stopped(done, problem)
+                facts = RunFacts(n_ticks, done, link is not None, answered if link else done,
+                                 int(health.get("link_lost", 0)), self.realtime, overruns,
+                                 skipped, tuple(self.safety.trips))
+                outcome = settle(ended, reason, judge(rig.acceptance, facts,
+                                                      self.expected_trips))
+                for rule in outcome.rules if ended == COMPLETED else ():  # they decide it
+                    if rule.passed is False:
+                        self._event(done, "rule_failed", f"{rule.rule}: {rule.measured} "
+                                                         f"(needs {rule.needed})")
+                ended, reason = outcome.ended, outcome.reason
+                if self._told is not None:
+                    self._link_state(done, "fault" if ended == FAULT else "ended", ended)
+            finally:
+                if link is not None:
                     link.close()
-            self.safety.finish(done)
-            tape.end()
-            problem = tape.wait_drained()   # a record the recorder lost is not complete
-            if problem != RECORDER_OK and ended != FAULT:
-                ended, reason = FAULT, self._recorder_stopped(done, problem)
-            facts = RunFacts(n_ticks, done, link is not None, answered if link else done,
-                             int(health.get("link_lost", 0)), self.realtime, overruns, skipped,
-                             tuple(self.safety.trips))
-            outcome = settle(ended, reason, judge(rig.acceptance, facts, self.expected_trips))
-            for rule in outcome.rules if ended == COMPLETED else ():  # they decide it
-                if rule.passed is False:
-                    self._event(done, "rule_failed", f"{rule.rule}: {rule.measured} "
-                                                     f"(needs {rule.needed})")
-            ended, reason = outcome.ended, outcome.reason
             self._event(done, "run_end", f"{ended}: {reason}")
             if self.event_tape is not None:
                 self.event_tape.end()
         wall_s = (clock.now_ns() - wall_start) / 1e9
         return RunOutcome(done, ended, reason, self.events, lateness, work_time, overruns,
-                          skipped, wall_s, report, health, outcome.rules, answered)
+                          skipped, wall_s, report, health, outcome.rules, answered,
+                          max(0, loop_end - loop_start) / 1e9)
 
     def _recorder_stopped(self, k: int, problem: int) -> str:
         """Record why the recorder stopped; the reason the run ends with."""

@@ -246,8 +246,9 @@ class Safety:
             self._latch(k, 0, ESTOP, "operator E-stop")
 
     # -- operator reset --------------------------------------------------------------
-    def reset(self, k: int, name: Any = None) -> None:
-        """An operator's reset of interlock ``name`` (every tripped one when None)."""
+    def reset(self, k: int, name: Any = None, by: str = "operator") -> None:
+        """A reset of interlock ``name`` (every tripped one when None) by the operator,
+        or by whoever ``by`` names (a scenario step)."""
         names = [s.name for s in self.specs]
         if name not in (None, "", "all"):
             if name not in names:
@@ -277,7 +278,7 @@ class Safety:
             self.latched[i] = False
             self._update()
             self.emit(k, "reset", f"{spec.name}: " + (
-                "E-stop released by operator" if i == 0 else "reset by operator"))
+                f"E-stop released by {by}" if i == 0 else f"reset by {by}"))
 
     # -- internals -------------------------------------------------------------------
     def _latch(self, k: int, i: int, cause: str, why: str) -> None:

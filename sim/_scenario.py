@@ -260,7 +260,8 @@ def _step(c: _Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[st
     if reset is not None:
         if reset != "all" and reset not in interlocks:
             c.add(f"{where}.reset", _not_in(reset, ["all", *interlocks], "interlocks"))
-        commands.append(Command("reset", {} if reset == "all" else {"interlock": reset}))
+        commands.append(Command("reset", {"source": f"scenario {label}"} if reset == "all"
+                                else {"interlock": reset, "source": f"scenario {label}"}))
     stop = c.take(e, "stop", where, "bool", default=False)
     if stop:
         commands.append(Command("stop", {"reason": f"scenario {label}"}))

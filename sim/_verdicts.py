@@ -90,13 +90,14 @@ class Verdict:
     unit: str
     passed: bool
     detail: str = ""
+    needs: str = ""             # what passing means, in words ("within 0.4 .. 0.5 m/s")
 
     def as_dict(self) -> dict[str, Any]:
         def num(v: float) -> float | None:
             return float(v) if math.isfinite(v) else None
         return {"name": self.name, "criterion": self.criterion, "measured": num(self.measured),
                 "limit": num(self.limit), "unit": self.unit, "passed": self.passed,
-                "detail": self.detail}
+                "detail": self.detail, "needs": self.needs}
 
 
 def parse_verdicts(c: _Checker, doc: dict[str, Any], rig: Rig, columns: list[str],
@@ -267,12 +268,34 @@ def evaluate(scenario: Scenario, columns: list[str], units: list[str],
 def _judge(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> Verdict:
     unit = UNITS.get(spec.criterion, rec.unit(spec.signal))
     limit = spec.max if spec.max is not None else 0.0
+    needs = _needs(spec, limit, unit)
     try:
         measured, detail = _measure(spec, rec, scenario)
     except (_NotMeasured, ValueError) as exc:
-        return Verdict(spec.name, spec.criterion, math.nan, limit, unit, False, str(exc))
+        return Verdict(spec.name, spec.criterion, math.nan, limit, unit, False, str(exc), needs)
     passed = math.isfinite(measured) and measured <= limit
-    return Verdict(spec.name, spec.criterion, measured, limit, unit, passed, detail)
+    return Verdict(spec.name, spec.criterion, measured, limit, unit, passed, detail, needs)
+
+
+def _needs(spec: VerdictSpec, limit: float, unit: str) -> str:
+    """What the criterion asks for, in the terms of the scenario file."""
+    if spec.criterion == "band":
+        low = f"{spec.low:g}" if math.isfinite(spec.low) else ""
+        high = f"{spec.high:g}" if math.isfinite(spec.high) else ""
+        where = f"{low} .. {high}" if low and high else f">= {low}" if low else f"<= {high}"
+        return f"{spec.signal} {where} {unit}".rstrip()
+    if spec.criterion == "no_unexpected_trip":
+        return "no unexpected trip"
+    return f"<= {_human(limit, unit)}"
+
+
+def _human(value: float, unit: str) -> str:
+    """A value in its unit, long times in seconds (a 76 s trip is not 7.6e+04 ms)."""
+    if not math.isfinite(value):
+        return "-"
+    if unit == "ms" and abs(value) >= 10_000:
+        return f"{value / 1000:.4g} s"
+    return f"{value:.4g} {unit}".rstrip()
 
 
 def _measure(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> tuple[float, str]:
@@ -376,10 +399,18 @@ def write_verdicts(folder: Path, verdicts: list[Verdict]) -> Path:
 
 def verdict_lines(verdicts: list[dict[str, Any]]) -> list[str]:
     """A plain-text pass/fail table of verdicts in their verdicts.json form."""
-    def num(v: Any) -> str:
-        return "-" if v is None else f"{v:.4g}"
-    head = ("verdict", "criterion", "measured", "limit", "unit", "result")
-    body = [(v["name"], v["criterion"], num(v["measured"]), num(v["limit"]), v["unit"],
+    def measured(v: dict[str, Any]) -> str:
+        if v["measured"] is None:
+            return "-"
+        if v["criterion"] == "band":   # how far outside the band, at worst
+            return f"{_human(v['measured'], v['unit'])} outside"
+        return _human(v["measured"], v["unit"])
+
+    def needs(v: dict[str, Any]) -> str:
+        return v.get("needs") or ("-" if v["limit"] is None else
+                                  f"<= {_human(v['limit'], v['unit'])}")
+    head = ("verdict", "criterion", "measured", "needs", "result")
+    body = [(v["name"], v["criterion"], measured(v), needs(v),
              "pass" if v["passed"] else "FAIL") for v in verdicts]
     widths = [max(len(r[i]) for r in [head, *body]) for i in range(len(head))]
     lines = ["  ".join(cell.ljust(w) for cell, w in zip(r, widths, strict=True)).rstrip()

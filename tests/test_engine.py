@@ -263,7 +263,7 @@ def test_cli_run_writes_run_folder(tmp_path: Path) -> None:
     proc = subprocess.run([sys.executable, "-m", "plantrig", "run", str(CONVEYOR), "--out",
                            str(tmp_path)], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
-    (folder,) = tmp_path.iterdir()
+    (folder,) = [p for p in tmp_path.iterdir() if p.is_dir()]
     assert (folder / "rig.toml").read_text() == CONVEYOR.read_text()
     summary = json.loads((folder / "summary.json").read_text())
     assert summary["ended"] == "completed" and summary["ticks_recorded"] == 3000

@@ -130,7 +130,7 @@ def test_a_controller_that_never_answers_is_a_fault(tmp_path: Path) -> None:
     assert code == 1, (out, err)
     assert "outcome: FAULT (acceptance rule 'link kept' not met: lost 1 time(s)" in out
     assert "FAILED  controller answered: 0 % of ticks had a fresh command" in out
-    folder = next(runs.iterdir())
+    folder = next(p for p in runs.iterdir() if p.is_dir())
     summary = json.loads((folder / "summary.json").read_text())
     assert summary["exit_code"] == 1 and summary["ticks_run"] == summary["ticks_planned"]
     rules = {r["rule"]: r["passed"] for r in summary["acceptance"]}

@@ -159,7 +159,7 @@ def test_cli_prints_the_table_and_exits_3_when_a_criterion_fails(tmp_path: Path)
     assert proc.returncode == 3, proc.stderr
     assert "too strict" in proc.stdout and "FAIL" in proc.stdout
     assert "1 of 2 criteria passed" in proc.stdout
-    (folder,) = (tmp_path / "runs").iterdir()
+    (folder,) = [p for p in (tmp_path / "runs").iterdir() if p.is_dir()]
     verdicts = json.loads((folder / "verdicts.json").read_text())
     assert [v["passed"] for v in verdicts] == [False, True]
     assert set(verdicts[0]) >= {"name", "criterion", "measured", "limit", "unit", "passed"}

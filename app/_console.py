@@ -1,0 +1,76 @@
+"""What a finished run prints: the outcome first, then the numbers, in human units.
+
+One function for `run`, `demo` and `rerun`, so the same run reads the same everywhere.
+Every count printed here is the summary's own (summary.json holds the rest, zeros too).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+REHEARSED = {"frames_dropped": "frames dropped", "frames_corrupted": "frames corrupted"}
+
+
+def human_duration(seconds: float) -> str:
+    """A duration in the unit a person reads at a glance: 3.2 us, 2.43 ms, 76.5 s."""
+    s = abs(seconds)
+    if s == 0:
+        return "0 s"
+    if s < 1e-3:
+        return f"{seconds * 1e6:.3g} us"
+    if s < 1.0:
+        return f"{seconds * 1e3:.3g} ms"
+    if s < 600:
+        return f"{seconds:.3g} s"
+    return f"{seconds / 60:.3g} min"
+
+
+def print_outcome(folder: Path, summary: dict[str, Any]) -> None:
+    """The run's outcome, acceptance, timing, link, events and record, on stdout."""
+    timing = summary["timing"]
+    print(f"run folder: {folder}")
+    print(f"outcome: {summary['ended'].upper()} ({summary['reason']})")
+    print(f"ticks: {summary.get('ticks_run', summary['ticks_recorded'])} of "
+          f"{summary['ticks_planned']} planned ran, {summary['ticks_recorded']} recorded")
+    if summary.get("acceptance"):
+        print("acceptance:")
+        for rule in summary["acceptance"]:
+            mark = {True: "held", False: "FAILED", None: "n/a"}[rule["passed"]]
+            print(f"  {mark:<7} {rule['rule']}: {rule['measured']} (needs {rule['needed']})")
+    loop = timing.get("loop_s") or timing["wall_s"]
+    if summary["mode"] == "realtime":
+        print(f"timing: real time, {timing['ticks_per_s']:.0f} ticks/s over "
+              f"{human_duration(loop)} of ticks ({human_duration(timing['wall_s'])} in all); "
+              f"lateness p50 {human_duration(timing['lateness_p50_s'])}, p99 "
+              f"{human_duration(timing['lateness_p99_s'])}, max "
+              f"{human_duration(timing['lateness_max_s'])}; "
+              f"{timing['overruns']} late ticks, {timing['skipped_slots']} skipped slots; "
+              f"scheduler {timing['scheduler']}")
+    else:
+        print(f"timing: fast mode, {timing['ticks_per_s']:.0f} ticks/s "
+              f"({human_duration(loop)} of ticks, {human_duration(timing['wall_s'])} in all)")
+    health = summary.get("link") or {}
+    rehearsed = {k: v for k, v in health.items() if k in REHEARSED and v}
+    link = {k: v for k, v in health.items() if k not in REHEARSED}
+    if link:
+        print(link_lines(link, summary["rig"]["tick_s"]))
+    if rehearsed:
+        print("rehearsed link faults: " + ", ".join(f"{v:.0f} {REHEARSED[k]}"
+                                                    for k, v in rehearsed.items()))
+    if summary["events"]:
+        print("events: " + ", ".join(f"{k} x{v}" for k, v in sorted(summary["events"].items())))
+    record = summary.get("record") or {}
+    for problem in [*record.get("lost", []), *record.get("problems", [])]:
+        print(f"record: {problem}")
+    if record.get("problems"):
+        print(f"record: not finished; free space, then: plantrig recover {folder}")
+
+
+def link_lines(health: dict[str, Any], tick: float) -> str:
+    """The link's health in the words of its own kind (serial frames or MQTT messages)."""
+    if "connects" in health:
+        from plantrig._mqtt_cli import link_report as mqtt_report
+        return mqtt_report(health)
+    from plantrig._hil import link_report as serial_report
+    return serial_report(health, tick)
