@@ -7,6 +7,7 @@ class of the run (plantrig.sim.EXIT_CODE_HELP), 2 is always a rig file or usage 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import signal
@@ -25,6 +26,7 @@ from plantrig._hil import add_parsers as add_link_commands
 from plantrig._model_trust import TRUST_HELP, model_guard
 from plantrig._override_options import add_override_options, overrides_of
 from plantrig._plot_cli import add_parser as add_plot_command
+from plantrig._progress import RunProgress, both
 from plantrig._records_cli import add_record_commands
 from plantrig._rerun_cli import add_parser as add_rerun_command
 from plantrig.sim import (
@@ -116,8 +118,11 @@ def cmd_run(args: argparse.Namespace) -> int:
     dashboard = _open_dashboard(rig, out) if args.gui else None
     if args.gui and dashboard is None:
         return EXIT_USAGE
-    dashboard_args = {"commands": dashboard.commands,
-                      "on_tapes_ready": dashboard.on_tapes_ready} if dashboard else {}
+    fast = not (realtime or (realtime is None and rig.mode == "realtime"))
+    progress = RunProgress(rig.n_ticks) if fast else None
+    dashboard_args = {"commands": dashboard.commands} if dashboard else {}
+    dashboard_args["on_tapes_ready"] = both(dashboard.on_tapes_ready if dashboard else None,
+                                            progress.on_tapes_ready if progress else None)
     try:
         actuator_chain, sensor_chain = build_chains(rig)
         link = None
@@ -138,18 +143,23 @@ def cmd_run(args: argparse.Namespace) -> int:
     except RecordError as exc:  # preflight, or a record that could not be finished
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    print_outcome(folder, summary)
-    if args.json:
-        print(json.dumps(summary["timing"]))
-    if scenario is not None:
-        from plantrig.sim import verdict_lines
-        print(f"scenario: {scenario.name}")
-        print("\n".join(verdict_lines(summary["verdicts"])))
+    finally:
+        if progress is not None:
+            progress.close()
     code = int(summary["exit_code"])
     index_run(out, folder, summary)
     if args.junit and not _write_junit(args.junit, rig.name, scenario, summary) and not code:
         code = EXIT_FAULT   # the run passed, but CI would not see it
-    print(f"exit code {code}: {EXIT_MEANINGS[code]}")
+    # with --json the summary alone goes to stdout; the text a person reads to stderr
+    with contextlib.redirect_stdout(sys.stderr) if args.json else contextlib.nullcontext():
+        print_outcome(folder, summary)
+        if scenario is not None:
+            from plantrig.sim import verdict_lines
+            print(f"scenario: {scenario.name}")
+            print("\n".join(verdict_lines(summary["verdicts"])))
+        print(f"exit code {code}: {EXIT_MEANINGS[code]}")
+    if args.json:
+        print(json.dumps({"folder": str(folder), "exit_code": code, **summary}))
     if dashboard is not None:
         if summary["reason"].startswith("signal "):
             dashboard.close()
@@ -243,7 +253,9 @@ def build_parser() -> argparse.ArgumentParser:
     mode.add_argument("--realtime", action="store_true",
                       help="paced to the wall clock (overrides rig)")
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
-    p.add_argument("--json", action="store_true", help="also print timing as one JSON line")
+    p.add_argument("--json", action="store_true",
+                   help="print the run's summary as one JSON object on stdout (with the run "
+                        "folder and exit code); the text for people goes to stderr")
     p.add_argument("--npy", action="store_true",
                    help="also write ticks.npy beside run.h5 (numpy only, for scripts)")
     p.add_argument("--gui", action="store_true",

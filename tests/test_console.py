@@ -3,6 +3,7 @@ command on stderr, and every quoted caution in the docs is that same text."""
 
 from __future__ import annotations
 
+import json
 import re
 import subprocess
 import sys
@@ -36,3 +37,23 @@ def test_run_shows_the_caution_once_on_stderr(tmp_path: Path) -> None:
     assert proc.returncode == 0, proc.stderr
     assert proc.stderr.count("not a safety function") == 1 and CAUTION in proc.stderr
     assert "safety function" not in proc.stdout
+
+
+def test_json_alone_on_stdout(tmp_path: Path) -> None:
+    proc = subprocess.run([sys.executable, "-m", "plantrig", "run", str(CONVEYOR), "--out",
+                           str(tmp_path), "--json"], capture_output=True, text=True,
+                          timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    doc = json.loads(proc.stdout)             # nothing else on stdout
+    assert doc["ended"] == "completed" and doc["exit_code"] == 0
+    assert Path(doc["folder"]).is_dir() and "outcome: COMPLETED" in proc.stderr
+
+
+def test_a_long_fast_run_shows_its_progress(tmp_path: Path) -> None:
+    # a few seconds of fast ticks: the progress appears on stderr after two seconds
+    proc = subprocess.run([sys.executable, "-m", "plantrig", "run", str(CONVEYOR), "--out",
+                           str(tmp_path), "--duration", "600"], capture_output=True,
+                          text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr
+    assert "fast run:" in proc.stderr and "tick" in proc.stderr
+    assert "fast run:" not in proc.stdout
