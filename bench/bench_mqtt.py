@@ -14,7 +14,7 @@ set_tcp_nodelay true) started for the run, and every number sits beside its peer
    The two loops alternate in one-second blocks, so both see the same machine load.
 3. where the asyncio client lives: the engine at 500 Hz in real time against the
    reference controller, the worker in its own process vs in a thread of the loop's
-   process; the loop's lateness shows what the thread costs (FIELD-NOTES.md: a busy
+   process; the loop's lateness shows what the thread costs (docs/platform.md: a busy
    thread delays every wake-up of the loop by about one GIL switch interval).
 
 Lost: sensor messages (pings) that got no answer by the end of the run.

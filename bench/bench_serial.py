@@ -12,7 +12,7 @@ markdown it prints. Numbers sit beside a peer measured in the same run:
   measured in alternating one-second blocks, so machine load hits both alike;
 - bytes per tick on the wire for the conveyor rig, against the line rate at 115200 and
   921600 baud (8N1: 10 bits per byte, common practice), and the highest tick rate each
-  carries. A pty does not enforce a baud rate (FIELD-NOTES.md), so the round trip above
+  carries. A pty does not enforce a baud rate (docs/platform.md), so the round trip above
   is the software's share only; add the frames' time on a real line.
 """
 

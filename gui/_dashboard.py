@@ -1,7 +1,7 @@
 """The live dashboard: reads a running tape, draws it, sends operator commands back.
 
 It runs in its own process (see _process.py) and only ever reads the tape, so a slow
-or dead dashboard cannot make the loop late. Frames are capped (FIELD-NOTES.md: an
+or dead dashboard cannot make the loop late. Frames are capped (docs/platform.md: an
 uncapped dearpygui window under Mesa used both cores and pushed the loop's p99
 lateness to 3 ms) and series are decimated to about one min-max pair per pixel column.
 """
@@ -129,8 +129,8 @@ class Dashboard:
             (text, None) for text in progress_lines(self.plan, self.model.log)]
         if self.plan_note:
             lines.append((self.plan_note, False))
-        if self.summary is not None:
-            return lines + outcome_lines(self.summary)
+        if self.summary is not None:       # the result first, as in replay
+            return outcome_lines(self.summary) + lines
         if self.ended() is not None:
             lines.append(("the run has ended; waiting for its summary", None))
         return lines + pending_verdicts(self.plan)

@@ -1,6 +1,6 @@
 """Thinning a series for display without hiding its peaks.
 
-FIELD-NOTES.md: 8 plots of 10k points render at ~20 fps under Mesa. A plot a thousand
+docs/platform.md: 8 plots of 10k points render at ~20 fps under Mesa. A plot a thousand
 pixels wide cannot show more than two values per pixel column anyway, so each bucket
 of samples is replaced by its minimum and its maximum, in time order (min-max
 decimation, common practice for oscilloscope-style displays): every spike survives.

@@ -1,6 +1,6 @@
 """The dashboard in its own supervised process.
 
-FIELD-NOTES.md: without a display dearpygui aborts its process (SIGABRT) instead of
+docs/platform.md: without a display dearpygui aborts its process (SIGABRT) instead of
 raising (seen here too: sometimes it spins on GLFW errors instead), so the child checks
 for a display before it loads dearpygui; and an uncapped GUI competes with the loop for
 the cores. So the dashboard

@@ -1,7 +1,7 @@
 """A local mosquitto broker for the MQTT demo and the tests (only), on a free loopback port.
 
 The broker gets a generated configuration file: a listener on 127.0.0.1 only, no
-persistence, ``set_tcp_nodelay true`` (FIELD-NOTES.md: QoS 1 round trip 0.64 ms instead
+persistence, ``set_tcp_nodelay true`` (docs/platform.md: QoS 1 round trip 0.64 ms instead
 of 88 ms with Nagle's algorithm), anonymous access unless a password file is asked for.
 """
 

@@ -6,7 +6,7 @@ come back the same way, already checked. The watchdog runs here, on plant ticks:
 valid command for ``watchdog_timeout`` gives one ``link_lost`` event, the next valid
 command one ``link_restored``.
 
-Why a process and not a thread: FIELD-NOTES.md measured that a busy Python thread in
+Why a process and not a thread: docs/platform.md measured that a busy Python thread in
 the loop's process delays every wake-up by about one GIL switch interval; the worker
 parses JSON and runs paho's packet handling for every message. bench/bench_mqtt.py
 measures both placements (``worker = "thread"`` is kept for that comparison and for
@@ -36,6 +36,7 @@ from plantrig.io._mqtt_worker import (
     setup_record,
     worker_main,
 )
+from plantrig.io._rig_state import RigState
 from plantrig.sim import Event, Rig, Signal
 from plantrig.sim._contracts import Vector
 
@@ -60,7 +61,8 @@ class MqttLink:
     """A ControllerLink over MQTT (see plantrig.io._mqtt_payload for the topics)."""
 
     def __init__(self, settings: MqttSettings, *, inputs: Sequence[Signal],
-                 outputs: Sequence[Signal], tick: float, rig_name: str) -> None:
+                 outputs: Sequence[Signal], tick: float, rig_name: str,
+                 interlocks: Sequence[str] = ()) -> None:
         self.settings = settings
         self.tick = tick
         self.spec = ChannelSpec(rig_name, tick, tuple(s.name for s in inputs),
@@ -86,7 +88,8 @@ class MqttLink:
         self.lost = False
         self._gone = False
         self._fresh = False
-        self.counts = dict.fromkeys(("sends", "receives", "commands_used", "superseded",
+        self.rig_state = RigState(interlocks)
+        self.counts = dict.fromkeys(("receives", "commands_used", "superseded",
                                      "dropped_to_worker", "missed_ticks", "late", "link_lost",
                                      "link_restored"), 0)
         self.age_hist = np.zeros(LATENCY_BINS, dtype=np.int64)
@@ -94,7 +97,7 @@ class MqttLink:
     @classmethod
     def from_rig(cls, rig: Rig, settings: MqttSettings) -> MqttLink:
         return cls(settings, inputs=rig.inputs, outputs=rig.outputs, tick=rig.tick,
-                   rig_name=rig.name)
+                   rig_name=rig.name, interlocks=[i.name for i in rig.interlocks])
 
     # ---- ControllerLink -------------------------------------------------------------
     def open(self) -> None:
@@ -180,7 +183,6 @@ class MqttLink:
         self._events.append(Event(tick, t, "link_lost", why))
 
     def send(self, tick: int, t: float, values: Vector) -> None:
-        self.counts["sends"] += 1
         if self._sock is None or self._gone:
             self.counts["dropped_to_worker"] += 1
             return
@@ -191,6 +193,17 @@ class MqttLink:
             self.counts["dropped_to_worker"] += 1
         except OSError as exc:
             self._worker_gone(tick, t, f"send failed: {exc}")
+
+    def state(self, tick: int, state: str, detail: str = "") -> None:
+        """The rig's run state changed: the worker publishes it in the retained status
+        document at once, and in every status document after (reconnects included)."""
+        self.rig_state.set(tick, state, detail)
+        if self._sock is None or self._gone:
+            return
+        try:
+            self._sock.send(b"T" + json.dumps(self.rig_state.document()).encode())
+        except OSError:
+            self.counts["dropped_to_worker"] += 1
 
     def drain_events(self) -> list[Event]:
         events, self._events = self._events, []
@@ -211,6 +224,8 @@ class MqttLink:
             self._health_raw = None
         merged = {k: float(v) for k, v in self._worker_health.items()}
         merged.update({k: float(v) for k, v in self.counts.items()})
+        # one name for every link (docs/protocol.md 5): values that never left the rig
+        merged["dropped_out"] = merged.get("dropped_out", 0.0) + merged["dropped_to_worker"]
         merged["watchdog_lost"] = 1.0 if self.lost else 0.0
         total = int(self.age_hist.sum())
         if total:

@@ -9,12 +9,14 @@ so nothing untrusted crosses to the plant.
 Records, first byte the type::
 
     loop -> worker   b"S" + <q d {p}d>  sensor values: tick, t, values
+                     b"T" + JSON        the rig's run state (docs/protocol.md 1.2): kept
+                                        in every status document, published at once
                      b"Q"               close: publish 'offline', disconnect, exit
     worker -> loop   b"C" + <q q {m}d>  a valid command: seq, echoed tick, values
                      b"E" + kind TAB detail (UTF-8)   an event for the run record
                      b"H" + JSON        health counters (every 0.1 s and at the end)
 
-Connections follow aiomqtt 2.x practice (FIELD-NOTES.md): no automatic reconnect, so a
+Connections follow aiomqtt 2.x practice (docs/platform.md): no automatic reconnect, so a
 fresh Client for every attempt with exponential backoff; TCP_NODELAY on the socket; the
 retained 'online' status republished on every connect (retained messages vanish when a
 broker without persistence restarts) and a retained last will 'offline'. One TaskGroup
@@ -53,7 +55,7 @@ HEALTH_PERIOD_S = 0.1
 LATENCY_WINDOW = 4096
 TCP_NODELAY = (socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 AUTH_CODES = {4, 5, 134, 135}  # bad user name or password / not authorised (v3.1.1, v5)
-REJECT_REASONS = ("range", "tick", "retained")  # well-formed, but must not be used
+REJECT_REASONS = ("range", "echo", "retained")  # well-formed, but must not be used
 EVENT_RECORD_MAX = 60_000  # bytes of an event record: the loop receives into 64 KiB
 CLOSED = "link closed"  # the reason in the 'offline' status after a clean close
 ABANDONED = "rig process ended without closing the link"
@@ -170,6 +172,7 @@ class Worker:
         self.close_reason = CLOSED
         self.session = f"{os.getpid():x}-{time.time_ns() & 0xFFFFFFFF:08x}"
         self.started = time.monotonic()
+        self.run_state: dict[str, Any] = {}   # the loop's newest b"T" record
         self.queue_type: type[_DropOldestQueue] = type("_Queue", (_DropOldestQueue,),
                                                        {"dropped": 0})
 
@@ -242,6 +245,13 @@ class Worker:
                     self.inc("dropped_out")
                 self.outbox.append((tick, t, tuple(values)))
                 self.outbox_ready.set()
+            elif rec[:1] == b"T":
+                try:
+                    self.run_state = dict(json.loads(rec[1:]))
+                except (ValueError, TypeError):
+                    self.inc("bad_loop_records")
+                    continue
+                self.status_ready.set()
             elif rec[:1] == b"Q":
                 self._stop(CLOSED)
             else:
@@ -266,6 +276,7 @@ class Worker:
                 "outputs": list(self.spec.outputs), "topics": dict(self.topics),
                 "qos": dict(self.s.qos), "connects": int(self.n.get("connects", 0)),
             })
+        doc.update(self.run_state)
         if reason:
             doc["reason"] = reason
         return json.dumps(doc).encode()
@@ -304,6 +315,15 @@ class Worker:
                 await client.publish(topic, payload, qos=qos)
                 self.inc("frames_out")
 
+    async def _status_publisher(self, client: aiomqtt.Client) -> None:
+        """Publish the status document again whenever the rig's run state changes."""
+        while True:
+            await self.status_ready.wait()
+            self.status_ready.clear()
+            await client.publish(self.topics["status"], self._status("online"),
+                                 qos=self.s.qos["status"], retain=True)
+            self.inc("status_out")
+
     async def _heartbeat(self, client: aiomqtt.Client) -> None:
         topic, qos = self.topics["heartbeat"], self.s.qos["heartbeat"]
         while True:
@@ -317,6 +337,8 @@ class Worker:
     def _check(self, message: aiomqtt.Message) -> tuple[int, int, tuple[float, ...]]:
         """(seq, echoed tick, values) of a command that may be used, else PayloadError."""
         payload = message.payload
+        if not payload:   # an empty retained message clears the topic: nothing was said
+            raise PayloadError("empty", "an empty message (clears a retained one)")
         if not isinstance(payload, bytes | bytearray):
             raise PayloadError("schema", f"payload of type {type(payload).__name__}")
         if message.retain:
@@ -325,7 +347,7 @@ class Worker:
         last = self.last_tick
         behind = None if last is None else (last - echo) % TICK_MODULUS
         if last is None or behind is None or behind >= TICK_MODULUS // 2:
-            raise PayloadError("tick", f"echoes tick {echo}, newest sent "
+            raise PayloadError("echo", f"echoes tick {echo}, newest sent "
                                        f"{'none' if last is None else last}")
         echo = last - behind  # a binary frame's tick is u32: unwrap it
         try:
@@ -345,7 +367,10 @@ class Worker:
         try:
             seq, echo, values = self._check(message)
         except PayloadError as exc:
-            if exc.reason in REJECT_REASONS:
+            if exc.reason == "empty":
+                self.inc("empty_messages")
+                return
+            if exc.reason in REJECT_REASONS or exc.rejected:
                 self.inc(f"rejected_{exc.reason}")
                 self.event("rejected_command", f"{exc.reason}: {exc.detail}", exc.reason)
             else:
@@ -387,6 +412,7 @@ class Worker:
             self.inc("reconnects")
         self.outbox.clear()  # values from before an outage are stale
         self.seq.reset()
+        self.status_ready.clear()  # the status below carries the newest run state
         await client.publish(self.topics["status"], self._status("online"),
                              qos=self.s.qos["status"], retain=True)
         self.inc("status_out")
@@ -401,6 +427,7 @@ class Worker:
                 tg.create_task(self._publisher(client), name="mqtt-publish")
                 tg.create_task(self._receiver(client), name="mqtt-receive")
                 tg.create_task(self._heartbeat(client), name="mqtt-heartbeat")
+                tg.create_task(self._status_publisher(client), name="mqtt-status")
                 tg.create_task(self._close_when_asked(client), name="mqtt-close")
         finally:
             self.connected = False
@@ -429,6 +456,7 @@ class Worker:
         loop = asyncio.get_running_loop()
         self.stopping = asyncio.Event()
         self.outbox_ready = asyncio.Event()
+        self.status_ready = asyncio.Event()
         self.sock.setblocking(False)
         loop.add_reader(self.sock.fileno(), self._on_loop_readable)
         ticker = asyncio.create_task(self._health_ticker(), name="mqtt-health")

@@ -4,7 +4,7 @@ os.openpty gives a master fd and a slave device path (/dev/pts/N). One side open
 path like any serial port (pyserial); the other keeps the master fd, which has no path
 of its own, so it is wrapped in FdPort. The slave starts in cooked mode with echo on:
 bytes written to the master before anyone set it raw would come straight back as
-garbage, so the pair is made raw at once (FIELD-NOTES.md: the pty and its failure modes).
+garbage, so the pair is made raw at once (docs/platform.md: the pty and its failure modes).
 
 How a hang-up shows on Linux (checked on both ends by tests/test_pty_hangup.py): a read
 on the master fails with EIO once the slave side is closed and drained; a slave whose

@@ -1,6 +1,6 @@
 """The tick loop: one fixed step, the same code in real time and as fast as possible.
 
-Order inside tick k (DESIGN.md), at plant time t_k = k * tick:
+Order inside tick k, at plant time t_k = k * tick:
 
     1. read link        the controller's newest command (or the built-in controller's,
                         computed from the values sent at tick k-1 and r(t_k))

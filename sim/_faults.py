@@ -2,7 +2,7 @@
 
 A fault is injected at a tick (by a scenario step or an operator command) and acts from
 that tick on, for ``duration`` seconds or until cleared. Where each group acts, in the
-tick order of DESIGN.md:
+tick order of sim/_engine.py:
 
     link (from_controller)  on the command as received, before the actuator chain
     actuator                on u after the actuator chain, before safety: a trip's safe

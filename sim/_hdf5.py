@@ -1,6 +1,6 @@
 """The run record as one self-describing HDF5 file, ``run.h5``.
 
-Written once, at the end of a run or on recovery, never during it (FIELD-NOTES.md: an
+Written once, at the end of a run or on recovery, never during it (docs/platform.md: an
 HDF5 file being written when the process dies may be unreadable; the journal is what
 survives a crash). Default libver, for the same reason and so older readers open it.
 

@@ -1,6 +1,6 @@
 """Making the tick loop's process fit for real time, and undoing it afterwards.
 
-FIELD-NOTES.md: a full garbage collection stalled the loop ~99 ms, so collect, freeze
+docs/platform.md: a full garbage collection stalled the loop ~99 ms, so collect, freeze
 and disable the collector for the run; a busy thread delays wake-ups by one GIL switch
 interval, so lower it; SCHED_FIFO and a pinned core help where permitted, but a thread
 spinning close to 100 % under SCHED_FIFO gets throttled (50 ms stalls), so FIFO is used

@@ -3,7 +3,7 @@
 The journal is raw float64 rows (one tick record each), appended as they come and
 fdatasync'ed at least every 100 ms, so a crash of the rig loses at most the rows of the
 last interval (a SIGKILL keeps the page cache; the sync is for power loss). A torn last
-row is dropped when the journal is read back (FIELD-NOTES.md: raw append survived every
+row is dropped when the journal is read back (docs/platform.md: raw append survived every
 SIGKILL trial).
 
 A killed rig leaves the recorder orphaned: it notices (its parent pid changes), drains

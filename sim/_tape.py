@@ -1,6 +1,6 @@
 """The tape: a ring of fixed-size tick records in a shared-memory file.
 
-Layout of the file (an np.memmap under /dev/shm, see FIELD-NOTES.md for why not
+Layout of the file (an np.memmap under /dev/shm, see docs/platform.md for why not
 multiprocessing.shared_memory): a header of eight int64 words, then ``capacity`` rows of
 ``n_columns`` float64. Column 0 of every row is its sequence number. The writer marks a
 row invalid (-1) while it fills it, writes the data, then the sequence number, then

@@ -57,3 +57,16 @@ def test_a_long_fast_run_shows_its_progress(tmp_path: Path) -> None:
     assert proc.returncode == 0, proc.stderr
     assert "fast run:" in proc.stderr and "tick" in proc.stderr
     assert "fast run:" not in proc.stdout
+
+
+def test_docs_and_code_cite_only_files_the_repository_holds() -> None:
+    cited = re.compile(r"(?<![\w/.-])((?:[\w-]+/)*[\w-]+\.md)\b")
+    sources = [*REPO.glob("*.md"), *REPO.glob("docs/*.md"), *REPO.glob("firmware/*.md"),
+               *REPO.glob("sim/*.py"), *REPO.glob("io/*.py"), *REPO.glob("gui/*.py"),
+               *REPO.glob("app/*.py"), *REPO.glob("bench/*.py"), *REPO.glob("tests/*.py")]
+    missing = []
+    for path in sources:
+        for name in cited.findall(path.read_text(encoding="utf-8")):
+            if not any((base / name).is_file() for base in (path.parent, REPO, REPO / "docs")):
+                missing.append(f"{path.relative_to(REPO)}: {name}")
+    assert not missing, missing

@@ -40,7 +40,7 @@ from plantrig.gui import (
 from plantrig.gui._model import fmt
 from plantrig.gui._operator import MOMENT_PRESETS
 from plantrig.gui._process import EXIT_NO_DISPLAY
-from plantrig.gui._runinfo import live_folder
+from plantrig.gui._runinfo import live_folder, outcome_lines
 from plantrig.gui._theme import (
     ACCENT,
     ALARM,
@@ -574,6 +574,75 @@ def guarded_live_case(tmp_path: Path) -> None:
     print("answers:", [(a.command.kind, a.accepted) for a in op.answers])
 
 
+def test_live_dashboard_shows_scenario_progress_then_the_verdicts(xvfb, tmp_path,
+                                                                  stock_colours):
+    out = run_fresh("scenario_live_case", tmp_path)
+    print(out)
+    for shot in ("scenario_live.png", "scenario_end.png"):
+        print(shot, check_theme(tmp_path / shot, stock_colours))
+
+
+def shown_run_lines() -> list[str]:
+    return [dpg.get_value(f"{T}run.{n}") for n in range(RUN_LINES)
+            if dpg.get_item_configuration(f"{T}run.{n}")["show"]]
+
+
+def scenario_live_case(tmp_path: Path) -> None:
+    rig = replace(load_rig(GUARDED), duration=600.0)       # fast, stopped by the test
+    scenario = load_scenario(SENSOR_STUCK, rig)
+    commands = mp.get_context("spawn").Queue()
+    ready = threading.Event()
+    paths: dict = {}
+    result: dict = {}
+
+    def on_ready(tape, events):
+        paths.update(tape=tape, events=events)
+        ready.set()
+
+    def run():
+        try:
+            result["run"] = run_to_folder(rig, tmp_path, realtime=False, commands=commands,
+                                          on_tapes_ready=on_ready, scenario=scenario)
+        except BaseException as exc:  # reported by the test, not lost on the thread
+            result["error"] = exc
+            ready.set()
+
+    thread = threading.Thread(target=run, daemon=True)
+    thread.start()
+    assert ready.wait(GUARD_S) and "error" not in result, result.get("error")
+    folder = live_folder(paths["tape"], tmp_path)
+    dash = Dashboard(paths["tape"], paths["events"], rig.path, commands, folder=folder)
+    steps = len(scenario.steps)
+    try:
+        frames_until(dash, lambda: len(dash.model.log.steps) == steps and dash.frames > 5,
+                     "every scenario step fired")
+        dash.frame()
+        lines = shown_run_lines()
+        assert f"scenario belt_sensor_stuck: {steps} of {steps} steps fired" in lines
+        assert "phases reached: surge (0.800 s), sensor_stuck (1.200 s)" in lines
+        assert f"verdicts ({len(scenario.verdicts)}), judged when the run ends:" in lines
+        assert all(f"  ..  {v.name}" in lines for v in scenario.verdicts)
+        dash.view.screenshot(tmp_path / "scenario_live.png")
+        press("stop")
+        press("stop_confirm")
+        frames_until(dash, lambda: dash.summary is not None, "the run's summary")
+        dash.frame()
+        summary = dash.summary
+        lines = shown_run_lines()
+        result = [text for text, _ in outcome_lines(summary)]
+        assert lines[:len(result)] == result                  # the result first
+        assert result[0].startswith(f"outcome: {summary['ended']}, exit code "
+                                    f"{summary['exit_code']}")
+        assert len(result) > len(summary["verdicts"]) == len(scenario.verdicts)
+        dash.view.screenshot(tmp_path / "scenario_end.png")
+    finally:
+        if thread.is_alive():
+            commands.put(Command("stop"))
+        thread.join(GUARD_S)
+        dash.close()
+    assert "error" not in result, result.get("error")
+
+
 def replay_case(tmp_path: Path) -> None:
     # the stuck belt sensor rehearsal: the overspeed interlock trips, and is reset later
     rig = load_rig(GUARDED)
@@ -717,7 +786,7 @@ def test_without_a_display_only_the_dashboard_dies(tmp_path, monkeypatch):
                                       on_exit=exits.append)
     try:
         assert process.wait(GUARD_S)
-        # the child refuses before dearpygui can abort or spin (FIELD-NOTES.md)
+        # the child refuses before dearpygui can abort or spin (docs/platform.md)
         assert process.process.exitcode == EXIT_NO_DISPLAY
         deadline = time.monotonic() + GUARD_S
         while not exits and time.monotonic() < deadline:

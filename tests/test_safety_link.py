@@ -42,7 +42,7 @@ def bench_run(duration: float, action: Any = None, at: float = 0.8,
 
 def test_watchdog_interlock_trips_within_timeout_plus_one_tick() -> None:
     # the controller process is stopped mid-run: no more commands, and a serial line
-    # reports nothing (FIELD-NOTES.md); only the link's watchdog can notice
+    # reports nothing (docs/platform.md); only the link's watchdog can notice
     rig, data = bench_run(2.0, action=lambda proc: os.kill(proc.pid, signal.SIGSTOP))
     timeout_ticks = round(0.05 / rig.tick)
     events = data.outcome.events
