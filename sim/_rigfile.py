@@ -456,6 +456,9 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
         if value.shape != (size,):
             c.add(f"plant.{key}", f"expected a vector of {size} values, found shape "
                                   f"{value.shape}")
+        elif not np.all(np.isfinite(value)):
+            c.add(f"plant.{key}", f"returned {value.tolist()} at x0 = {x_probe.tolist()}, "
+                                  "u = 0: expected finite numbers, found NaN or infinite")
     return plant, method, substeps
 
 
@@ -533,69 +536,6 @@ def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
                 c.add(f"{where}.name", f"duplicate reference name {name!r}")
             out.append(NamedReference(name, unit, waveform))
     return out
-
-
-def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
-    """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
-    if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
-        return ramp
-    c.add(f"{where}.rate", f"a rate of {ramp.rate:g} per s never takes the ramp from "
-                           f"{ramp.from_:g} to {ramp.to:g}; give the rate the other sign, "
-                           "or leave 'to' out")
-    return None
-
-
-def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
-    ok = True
-    if sine.high < sine.low:
-        c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
-        ok = False
-    if sine.hz < 0:
-        c.add(f"{where}.hz", f"expected a frequency >= 0 Hz, found {sine.hz:g}")
-        ok = False
-    return sine if ok else None
-
-
-def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
-    """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
-    if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
-        return ramp
-    c.add(f"{where}.rate", f"a rate of {ramp.rate:g} per s never takes the ramp from "
-                           f"{ramp.from_:g} to {ramp.to:g}; give the rate the other sign, "
-                           "or leave 'to' out")
-    return None
-
-
-def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
-    ok = True
-    if sine.high < sine.low:
-        c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
-        ok = False
-    if sine.hz < 0:
-        c.add(f"{where}.hz", f"expected a frequency >= 0 Hz, found {sine.hz:g}")
-        ok = False
-    return sine if ok else None
-
-
-def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
-    """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
-    if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
-        return ramp
-    c.add(f"{where}.rate", f"a rate of {ramp.rate:g} per s never takes the ramp from "
-                           f"{ramp.from_:g} to {ramp.to:g}; give the rate the other sign, "
-                           "or leave 'to' out")
-    return None
-
-
-def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
-    ok = True
-    if sine.high < sine.low:
-        c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
-        ok = False
-    if sine.hz < 0:
-        c.add(f"{where}.hz", f"expected a frequency >= 0 Hz, found {sine.hz:g}")
-        ok = False
-    return sine if ok else None
 
 
 def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
@@ -723,30 +663,6 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                                                        f"found {describe_value(ref)}")
             settings["drive"] = drive
     return ControllerSpec(kind, settings)
-
-
-def _windup(value: str) -> str | None:
-    """One of WINDUP; a value of an earlier version names its replacement."""
-    if value in RENAMED_WINDUP:
-        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
-                f"did you mean '{RENAMED_WINDUP[value]}'?")
-    return one_of(WINDUP)(value)
-
-
-def _windup(value: str) -> str | None:
-    """One of WINDUP; a value of an earlier version names its replacement."""
-    if value in RENAMED_WINDUP:
-        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
-                f"did you mean '{RENAMED_WINDUP[value]}'?")
-    return one_of(WINDUP)(value)
-
-
-def _windup(value: str) -> str | None:
-    """One of WINDUP; a value of an earlier version names its replacement."""
-    if value in RENAMED_WINDUP:
-        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
-                f"did you mean '{RENAMED_WINDUP[value]}'?")
-    return one_of(WINDUP)(value)
 
 
 def _windup(value: str) -> str | None:

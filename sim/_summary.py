@@ -1,27 +1,70 @@
 """Model summary: modes, stability, controllability, observability, tick adequacy.
 
+Stability follows the eigenvalue tests with the Jordan-block condition (Chen, Linear
+System Theory and Design, 3rd ed., section 5.3, Thm 5.4 for x' = A x and Thm 5.D4 for
+x[k+1] = A x[k]): asymptotically stable when every eigenvalue has Re < 0 (|z| < 1);
+marginally stable when, in addition to those, eigenvalues on the imaginary axis (the
+unit circle) are simple roots of the minimal polynomial, i.e. each sits in Jordan blocks
+of size 1 (geometric multiplicity = algebraic multiplicity); otherwise unstable. The
+double integrator 1/s^2 (a 2x2 Jordan block at 0) is therefore unstable, and so is its
+discrete twin with a Jordan block at z = 1: its free response grows like t (like k).
+Numerically, eigenvalues closer than 1e-4 * max(1, ||A||) count as one repeated
+eigenvalue (a Jordan block of size b splits by about eps^(1/b) in floating point, so a
+size-3 block at 0 shows as three eigenvalues about 6e-6 apart); their mean, accurate to
+rounding, is on the boundary when within 1e-9 * max(1, ||A||) of it, and the Jordan
+test uses the ranks of the powers of A - lambda I.
+
 The tick rule: warn when the tick exceeds one tenth of the fastest time constant,
 dt > tau_min / 10 with tau_min = 1 / max|lambda| (continuous eigenvalues). Ten samples
 per fastest time constant is common practice for digital control and for a readable
 record; ZOH itself is exact at any tick, so the warning is about what the controller
-and the record can see, not about integration error. For ODE plants the substep must
-also stay inside the explicit method's stability region on the real axis
-(h*|lambda| < 2 for Euler, about 2.78 for classical RK4; Hairer, Norsett & Wanner,
-Solving ODEs I, section IV.2 — the RK4 bound from memory), checked on a linearisation
-at the initial state.
+and the record can see, not about integration error. A discrete model is defined at its
+own sample time, so it gets no such warning there.
+
+The substep rule for ODE plants: a fixed-step method maps a mode x' = lambda x to
+x+ = R(h lambda) x with its stability function R (Hairer & Wanner, Solving ODEs II,
+section IV.2: R(z) = 1 + z for forward Euler, R(z) = 1 + z + z^2/2 + z^3/6 + z^4/24 for
+classical RK4). A mode that does not grow in the model (Re lambda <= 0) must not grow in
+the simulation: |R(h lambda)| <= 1 for every eigenvalue in the complex plane, not only on
+the real axis (a lightly damped pair leaves forward Euler's disc long before h |lambda|
+reaches 2). The check uses a linearisation at the initial state x0 and the input 0; at a
+state that is not an equilibrium the summary says so and judges no stability.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._plant import DiscretePlant, LinearPlant, OdePlant, Plant
+from plantrig.sim._plant import DiscretePlant, LinearPlant, ModelError, OdePlant, Plant
 
 TICK_FRACTION = 0.1
-STABILITY_LIMIT = {"rk4": 2.78, "euler": 2.0}
+BOUNDARY_TOL = 1e-9     # relative to max(1, ||A||): "on the imaginary axis / unit circle"
+CLUSTER_TOL = 1e-4      # eigenvalues closer than this (relative) count as one repeated one
+EQUILIBRIUM_TOL = 1e-9       # |f(x0, 0)| relative to max(1, ||J|| ||x0||)
+MAX_SUGGESTED_SUBSTEPS = 100_000
+
+Complex = NDArray[np.complex128]
+
+
+def _r_euler(z: Complex) -> Complex:
+    return 1 + z
+
+
+def _r_rk4(z: Complex) -> Complex:
+    return 1 + z + z**2 / 2 + z**3 / 6 + z**4 / 24
+
+
+STABILITY_FUNCTIONS: dict[str, Callable[[Complex], Complex]] = {
+    "euler": _r_euler, "rk4": _r_rk4}
+
+
+def register_stability_function(method: str, r: Callable[[Complex], Complex]) -> None:
+    """Let a fixed-step method defined elsewhere take part in the substep check."""
+    STABILITY_FUNCTIONS[method] = r
 
 
 @dataclass(frozen=True)
@@ -36,6 +79,7 @@ class ModelSummary:
     controllability_rank: int | None
     observability_rank: int | None
     warnings: tuple[str, ...] = field(default=())
+    x0_is_equilibrium: bool | None = None   # None: not asked (linear models)
 
     def as_dict(self) -> dict[str, object]:
         return {
@@ -48,6 +92,7 @@ class ModelSummary:
             "stability": self.stability,
             "controllability_rank": self.controllability_rank,
             "observability_rank": self.observability_rank,
+            "x0_is_equilibrium": self.x0_is_equilibrium,
             "warnings": list(self.warnings),
         }
 
@@ -82,39 +127,192 @@ def _rank(matrix: NDArray[np.float64]) -> int:
     return int(np.linalg.matrix_rank(matrix)) if matrix.size else 0
 
 
-def _jacobians(plant: OdePlant, x0: NDArray[np.float64]) -> tuple[NDArray[np.float64],
-                                                                    NDArray[np.float64]]:
-    """Central-difference linearisation at (x0, u = 0), t = 0."""
+def classify_stability(A: NDArray[np.float64], discrete: bool) -> str:
+    """Lyapunov stability of x' = A x (or x[k+1] = A x[k]), Jordan blocks included."""
+    n = A.shape[0]
+    if n == 0:
+        return "static (no states)"
+    scale = max(1.0, float(np.linalg.norm(A, 1)))
+    where = "on the unit circle" if discrete else "on the imaginary axis"
+    inside = "|z| < 1" if discrete else "Re < 0"
+    verdict = f"asymptotically stable (all {inside})"
+    for lam, k in _eigenvalue_clusters(np.linalg.eigvals(A), CLUSTER_TOL * scale):
+        margin = abs(lam) - 1.0 if discrete else lam.real     # > 0: outside the region
+        if margin > BOUNDARY_TOL * scale:
+            return f"unstable ({'some |z| > 1' if discrete else 'some Re > 0'})"
+        if margin < -BOUNDARY_TOL * scale:
+            continue
+        size = _largest_jordan_block(A, lam, k, CLUSTER_TOL * scale)
+        if size > 1:
+            growth = "k" if discrete else "t"
+            grows = growth if size == 2 else f"{growth}^{size - 1}"
+            return (f"unstable (eigenvalue {_complex_text(lam)} {where} sits in a Jordan block "
+                    f"of size {size}: the free response grows like {grows})")
+        verdict = (f"marginally stable (eigenvalues {where} are simple roots of the minimal "
+                   f"polynomial, the rest {inside})")
+    return verdict
+
+
+def _eigenvalue_clusters(eig: NDArray[np.complex128],
+                         tol: float) -> list[tuple[complex, int]]:
+    """Eigenvalues closer than ``tol`` as one repeated eigenvalue: (mean, multiplicity).
+
+    The mean of a split cluster is accurate to rounding (it is a trace), the members
+    are not (a Jordan block of size b splits by about eps^(1/b)).
+    """
+    left = list(eig)
+    out = []
+    while left:
+        cluster = [left.pop(0)]
+        grew = True
+        while grew:
+            near = [e for e in left if min(abs(e - c) for c in cluster) <= tol]
+            left = [e for e in left if min(abs(e - c) for c in cluster) > tol]
+            cluster += near
+            grew = bool(near)
+        out.append((complex(np.mean(cluster)), len(cluster)))
+    return out
+
+
+def _largest_jordan_block(A: NDArray[np.float64], lam: complex, k: int, tol: float) -> int:
+    """Smallest j with rank((A - lam I)^j) = n - k: the largest Jordan block at lam."""
+    n = A.shape[0]
+    shifted = A - lam * np.eye(n)
+    power = np.eye(n, dtype=complex)
+    scale = max(1.0, float(np.linalg.norm(A, 1)))
+    for size in range(1, k + 1):
+        power = power @ shifted
+        if np.linalg.matrix_rank(power, tol=tol * scale ** (size - 1)) <= n - k:
+            return size
+    return k
+
+
+def _complex_text(value: complex) -> str:
+    re = 0.0 if abs(value.real) < 1e-12 else value.real
+    im = 0.0 if abs(value.imag) < 1e-12 else value.imag
+    return f"{re:g}" if im == 0 else f"{re:g}{im:+g}j"
+
+
+def _ode_at(plant: OdePlant, x: NDArray[np.float64], u: NDArray[np.float64]) -> NDArray[np.float64]:
+    return plant.dynamics(0.0, x, u, plant.params)
+
+
+def linearize(plant: OdePlant, x0: NDArray[np.float64]) -> tuple[NDArray[np.float64],
+                                                                 NDArray[np.float64]]:
+    """Finite-difference Jacobians (A, B) of f at (x0, u = 0), t = 0.
+
+    Central differences, or one-sided ones where f is not finite on one side (a square
+    root at an empty tank, say). Raises ModelError when f raises or is not finite at x0,
+    and ValueError when no difference is finite near it.
+    """
     n, m, _ = plant.shape
     u0 = np.zeros(m)
+    try:
+        f0 = _ode_at(plant, x0, u0)
+    except Exception as exc:  # the user's function is untrusted here
+        raise ModelError("dynamics", f"calling it at x0 raised {type(exc).__name__}: {exc}") \
+            from None
+    if not np.all(np.isfinite(f0)):
+        raise ModelError("dynamics", f"returned {f0.tolist()} at x0 = {x0.tolist()}, u = 0 "
+                                     "(NaN or infinite)")
+
+    def column(x_plus: NDArray[np.float64], x_minus: NDArray[np.float64],
+               u_plus: NDArray[np.float64], u_minus: NDArray[np.float64],
+               step: float) -> NDArray[np.float64]:
+        with np.errstate(all="ignore"):
+            sides = []
+            for x, u in ((x_plus, u_plus), (x_minus, u_minus)):
+                try:
+                    value = _ode_at(plant, x, u)
+                except Exception:  # noqa: BLE001 - one side may lie outside f's domain
+                    value = np.full(n, np.nan)
+                sides.append(value if np.all(np.isfinite(value)) else None)
+        plus, minus = sides
+        if plus is not None and minus is not None:
+            return (plus - minus) / (2 * step)
+        if plus is not None:
+            return (plus - f0) / step
+        if minus is not None:
+            return (f0 - minus) / step
+        raise ValueError("f is not finite on either side of x0")
+
     A = np.zeros((n, n))
     B = np.zeros((n, m))
     for j in range(n):
         step = 1e-6 * max(1.0, abs(x0[j]))
         dx = np.zeros(n)
         dx[j] = step
-        A[:, j] = (plant.dynamics(0.0, x0 + dx, u0, plant.params)
-                   - plant.dynamics(0.0, x0 - dx, u0, plant.params)) / (2 * step)
+        A[:, j] = column(x0 + dx, x0 - dx, u0, u0, step)
     for j in range(m):
         du = np.zeros(m)
         du[j] = 1e-6
-        B[:, j] = (plant.dynamics(0.0, x0, du, plant.params)
-                   - plant.dynamics(0.0, x0, -du, plant.params)) / 2e-6
+        B[:, j] = column(x0, x0, du, -du, 1e-6)
     return A, B
+
+
+def substep_warnings(eig: NDArray[np.complex128], h: float, method: str,
+                     substeps: int) -> list[str]:
+    """Modes that do not grow in the model but would grow under ``method`` at step h."""
+    r = STABILITY_FUNCTIONS.get(method)
+    if r is None or eig.size == 0:
+        return []
+    calm = eig[eig.real <= CLUSTER_TOL * max(1.0, float(np.max(np.abs(eig))))]
+    if calm.size == 0:
+        return []
+    gain = np.abs(r(h * calm))
+    worst = int(np.argmax(gain))
+    if gain[worst] <= 1.0 + 1e-12:
+        return []
+    lam = complex(calm[worst])
+    tick = h * substeps
+    needed = _substeps_needed(calm, tick, r)
+    advice = (f"raise plant.substeps to at least {needed}" if needed is not None else
+              "no substep count makes it decay (forward Euler on an undamped oscillation); "
+              "use method = \"rk4\"")
+    return [f"substep {h:g} s: {method} makes the mode {_complex_text(lam)} grow by "
+            f"|R(h lambda)| = {gain[worst]:.6g} per substep while the model's mode does not "
+            f"grow ({int(np.sum(gain > 1.0 + 1e-12))} of {eig.size} eigenvalues outside the "
+            f"method's stability region); {advice}"]
+
+
+def _substeps_needed(calm: NDArray[np.complex128], tick: float,
+                     r: Callable[[Complex], Complex]) -> int | None:
+    """The fewest substeps per tick that keep every calm mode inside the region."""
+    def ok(count: int) -> bool:
+        return bool(np.all(np.abs(r(tick / count * calm)) <= 1.0 + 1e-12))
+
+    high = 1
+    while not ok(high):
+        high *= 2
+        if high > MAX_SUGGESTED_SUBSTEPS:
+            return None
+    low = max(1, high // 2)
+    while low < high:
+        mid = (low + high) // 2
+        if ok(mid):
+            high = mid
+        else:
+            low = mid + 1
+    return high
 
 
 def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
               method: str = "rk4", substeps: int = 1) -> ModelSummary:
-    """Summarise ``plant`` as it will run at tick ``dt``."""
+    """Summarise ``plant`` as it will run at tick ``dt``.
+
+    Raises ModelError when an ODE's f raises or is not finite at x0 (a rig-file mistake).
+    """
     n, m, p = plant.shape
     warnings: list[str] = []
     ctrb = obsv = None
+    equilibrium: bool | None = None
     if isinstance(plant, LinearPlant):
         kind, A, B, C = "continuous LTI", plant.A, plant.B, plant.C
         eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
         cont_eig = eig
         ctrb = _rank(controllability_matrix(A, B))
         obsv = _rank(controllability_matrix(A.T, C.T))
+        stability = classify_stability(A, discrete=False)
     elif isinstance(plant, DiscretePlant):
         kind, A, B, C = f"discrete LTI (dt {plant.dt:g} s)", plant.Ad, plant.Bd, plant.C
         eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
@@ -122,43 +320,44 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
             cont_eig = np.log(eig.astype(complex)) / plant.dt
         ctrb = _rank(controllability_matrix(A, B))
         obsv = _rank(controllability_matrix(A.T, C.T))
+        stability = classify_stability(A, discrete=True)
     else:
         kind = f"nonlinear ODE ({method}, {substeps} substeps per tick), linearised at x0"
-        A, _ = _jacobians(plant, np.zeros(n) if x0 is None else np.asarray(x0, float))
+        x_lin = np.zeros(n) if x0 is None else np.asarray(x0, dtype=np.float64)
+        try:
+            A, _ = linearize(plant, x_lin)
+        except ValueError as exc:
+            if isinstance(exc, ModelError):
+                raise
+            return ModelSummary(kind, n, m, p, np.zeros(0, complex), (),
+                                f"not judged (no finite linearisation at x0: {exc})", None,
+                                None, (f"no finite linearisation at x0: {exc}",), None)
         eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
         cont_eig = eig
-
-    if isinstance(plant, DiscretePlant):
-        radius = np.abs(eig)
-        stability = ("asymptotically stable (all |z| < 1)" if np.all(radius < 1 - 1e-12)
-                     else "not asymptotically stable (some |z| >= 1)")
-    else:
-        real = cont_eig.real
-        if np.all(real < -1e-12):
-            stability = "asymptotically stable (all Re < 0)"
-        elif np.any(real > 1e-12):
-            stability = "unstable (some Re > 0)"
+        f0 = _ode_at(plant, x_lin, np.zeros(m))
+        residual = float(np.max(np.abs(f0))) if n else 0.0
+        scale = max(1.0, float(np.linalg.norm(A, 1)) * float(np.max(np.abs(x_lin), initial=0)))
+        equilibrium = residual <= EQUILIBRIUM_TOL * scale
+        if equilibrium:
+            stability = classify_stability(A, discrete=False) + " at the equilibrium x0"
         else:
-            stability = "marginally stable (eigenvalues on the imaginary axis)"
+            stability = (f"not judged: x0 is not an equilibrium for u = 0 (max |f(x0, 0)| = "
+                         f"{residual:.4g}); the eigenvalues are the local linearisation's")
 
     magnitudes = np.abs(cont_eig[np.isfinite(cont_eig)])
     nonzero = magnitudes[magnitudes > 1e-12]
     time_constants = tuple(sorted(float(1 / v) for v in nonzero))
-    if nonzero.size:
+    if nonzero.size and not isinstance(plant, DiscretePlant):
         fastest = float(nonzero.max())
         if dt > TICK_FRACTION / fastest:
             warnings.append(
                 f"tick {dt:g} s is coarser than 1/10 of the fastest time constant "
                 f"{1 / fastest:.4g} s; the controller and the record will not resolve that mode")
-        if isinstance(plant, OdePlant):
-            limit = STABILITY_LIMIT[method]
-            if dt / substeps * fastest > limit:
-                warnings.append(
-                    f"substep {dt / substeps:g} s times fastest |lambda| {fastest:.4g} exceeds "
-                    f"{method}'s stability limit {limit}; raise plant.substeps")
+    if isinstance(plant, OdePlant):
+        warnings.extend(substep_warnings(eig, dt / substeps, method, substeps))
     if ctrb is not None and ctrb < n:
         warnings.append(f"not controllable: rank {ctrb} of {n}")
     if obsv is not None and obsv < n:
         warnings.append(f"not observable: rank {obsv} of {n}")
     return ModelSummary(kind, n, m, p, eig, time_constants, stability, ctrb, obsv,
-                        tuple(warnings))
+                        tuple(warnings), equilibrium)
