@@ -182,7 +182,11 @@ def add_parsers(sub: Any, load: Callable[[str], Any],
     p = sub.add_parser("controller", help="run the reference controller on a rig's link",
                        description="Answer the rig's sensor frames with the law in "
                                    "[link.controller], until the far end closes.",
-                       epilog=CAUTION)
+                       epilog="exit codes:\n  0  the far end closed or a signal stopped it\n"
+                              "  1  the port could not be opened\n"
+                              "  2  rig file mistake or no transport for the link kind\n\n"
+                              + CAUTION,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("rig", help="rig file (TOML) with a [link] table")
     p.add_argument("--port", help="device path or pyserial URL (overrides link.port)")
     p.add_argument("--no-realtime", action="store_true",

@@ -70,3 +70,15 @@ def test_docs_and_code_cite_only_files_the_repository_holds() -> None:
             if not any((base / name).is_file() for base in (path.parent, REPO, REPO / "docs")):
                 missing.append(f"{path.relative_to(REPO)}: {name}")
     assert not missing, missing
+
+
+def test_every_command_has_a_description_and_its_exit_codes() -> None:
+    from plantrig.cli import build_parser
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")
+    lacking = []
+    for name, command in sub.choices.items():  # type: ignore[attr-defined]
+        text = command.format_help()
+        if not command.description or "exit code" not in text.lower():
+            lacking.append(name)
+    assert not lacking, f"no description or exit codes in --help of: {lacking}"
