@@ -9,9 +9,11 @@ from __future__ import annotations
 import argparse
 import contextlib
 import json
+import math
 import os
 import signal
 import sys
+import tomllib
 from pathlib import Path
 from typing import Any
 
@@ -72,7 +74,22 @@ def _print_issues(path: str, exc: RigFileError) -> None:
           file=sys.stderr)
 
 
+def _scenario_not_rig(path: str) -> bool:
+    """True (after saying so) when ``path`` is a scenario file given where a rig is due."""
+    try:
+        doc = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
+        return False   # the rig checker says what is wrong with it
+    if "scenario" in doc and "rig" not in doc:
+        print(f"error: {path} is a scenario file, not a rig file; check it against the rig "
+              f"it rehearses: plantrig check RIG --scenario {path}", file=sys.stderr)
+        return True
+    return False
+
+
 def cmd_check(args: argparse.Namespace) -> int:
+    if _scenario_not_rig(args.rig):
+        return EXIT_USAGE
     rig = _load(args.rig, trust_model=args.trust_model)
     try:
         build_chains(rig)
@@ -91,7 +108,39 @@ def cmd_check(args: argparse.Namespace) -> int:
         print(f"{group}: " + ", ".join(f"{s.name} [{s.unit}]" for s in signals))
     print(f"controller: {rig.controller.kind}; references: "
           + (", ".join(r.name for r in rig.references) or "none"))
+    for line in _safety_lines(rig):
+        print(line)
+    if args.scenario:
+        from plantrig.sim import load_scenario
+        try:
+            scenario = load_scenario(args.scenario, rig)
+        except RigFileError as exc:
+            _print_issues(args.scenario, exc)
+            return EXIT_USAGE
+        print(f"scenario: {scenario.name}: {len(scenario.steps)} step(s), "
+              f"{len(scenario.verdicts)} verdict(s); {args.scenario}: ok")
     return EXIT_OK
+
+
+def _safety_lines(rig: Any) -> list[str]:
+    """Link, limits, interlocks and acceptance rules of a checked rig, one line each."""
+    lines = []
+    if rig.link is not None:
+        where = rig.link.get("port") or rig.link.get("host") or ""
+        lines.append(f"link: {rig.link.get('kind', '?')} {where}".rstrip())
+    for lim in rig.limits:
+        low, high = math.isfinite(lim.trip_low), math.isfinite(lim.trip_high)
+        where = (f"outside {lim.trip_low:g} .. {lim.trip_high:g}" if low and high else
+                 f"below {lim.trip_low:g}" if low else f"above {lim.trip_high:g}" if high
+                 else "never (warns only)")
+        lines.append(f"limit: {lim.name} on {lim.column}, trips {where} {lim.unit}".rstrip())
+    for spec in rig.interlocks:
+        lines.append(f"interlock: {spec.name} on {', '.join(spec.on)} -> {spec.action}")
+    a = rig.acceptance
+    lines.append(f"acceptance: controller answers >= {a.min_answered:.0%} of ticks, link "
+                 f"{'may be lost' if a.allow_link_loss else 'never lost'}, late ticks <= "
+                 f"{a.max_late:.0%}, allowed trips: {', '.join(a.allowed_trips) or 'none'}")
+    return lines
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -236,6 +285,8 @@ def build_parser() -> argparse.ArgumentParser:
                                    "written (plantrig check RIG | head), as shell tools do.")
     p.add_argument("rig", help="rig file (TOML)")
     p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
+    p.add_argument("--scenario", metavar="FILE",
+                   help="also check a scenario file against this rig (nothing is run)")
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("run", help="run a rig and write a run folder",

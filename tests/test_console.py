@@ -82,3 +82,24 @@ def test_every_command_has_a_description_and_its_exit_codes() -> None:
         if not command.description or "exit code" not in text.lower():
             lacking.append(name)
     assert not lacking, f"no description or exit codes in --help of: {lacking}"
+
+
+def test_check_lists_safety_and_checks_a_scenario_without_running(tmp_path: Path) -> None:
+    rehearsals = REPO / "configs" / "rehearsals"
+    rig, scenario = rehearsals / "conveyor_guarded.toml", rehearsals / "link_lost.toml"
+    ok = subprocess.run([sys.executable, "-m", "plantrig", "check", str(rig), "--scenario",
+                         str(scenario)], capture_output=True, text=True, timeout=60)
+    assert ok.returncode == 0, ok.stderr
+    assert "limit: belt_fast on x:belt_speed, trips above 1.1 m/s" in ok.stdout
+    assert "interlock: link_watchdog on link_lost -> safe_inputs" in ok.stdout
+    assert f"scenario: link_lost: 4 step(s), 4 verdict(s); {scenario}: ok" in ok.stdout
+    mixed_up = subprocess.run([sys.executable, "-m", "plantrig", "check", str(scenario)],
+                              capture_output=True, text=True, timeout=60)
+    assert mixed_up.returncode == 2 and "is a scenario file, not a rig file" in mixed_up.stderr
+    bad = tmp_path / "bad.toml"
+    bad.write_text(scenario.read_text().replace('reset = "link_watchdog"', 'reset = "nope"'))
+    refused = subprocess.run([sys.executable, "-m", "plantrig", "check", str(rig),
+                              "--scenario", str(bad)], capture_output=True, text=True,
+                             timeout=60)
+    assert refused.returncode == 2 and "reset" in refused.stderr
+    assert "Traceback" not in refused.stderr
