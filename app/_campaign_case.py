@@ -21,7 +21,15 @@ from typing import Any
 import tomli_w
 
 from plantrig._compose import build_chains
-from plantrig.sim import Rig, RigFileError, Scenario, evaluate, load_rig_with_overrides, simulate
+from plantrig.sim import (
+    Rig,
+    RigFileError,
+    RigIssue,
+    Scenario,
+    evaluate,
+    load_rig_with_overrides,
+    simulate,
+)
 from plantrig.sim._campaign_file import Case, _with_verdicts
 from plantrig.sim._outcome import COMPLETED, EXIT_VERDICT
 from plantrig.sim._overrides import apply_overrides
@@ -47,6 +55,10 @@ def build_case(case: Case, scenario_copy: Path | None = None
         settings, issues = parse_link_table(rig)
         if settings is None or issues:
             raise RigFileError(issues)
+        if settings.controller is None:
+            raise RigFileError([RigIssue(str(rig.path), "link.controller", (
+                "missing: a campaign runs without controller hardware, with the law of "
+                "[link.controller] built in"))])
         rig = dataclasses.replace(rig, controller=settings.controller, link=None)
     scenario = None
     if case.scenario_file:

@@ -149,20 +149,20 @@ def _folder(args: argparse.Namespace, campaign: Campaign, cases: list[Case]) -> 
         plan["started_utc"] = stamp.isoformat(timespec="seconds")
         write_atomic(folder / PLAN, (json.dumps(plan, indent=1) + "\n").encode())
         return folder
-    folder = Path(args.resume) if args.resume else _newest(out, campaign.name)
-    if folder is None or not (folder / PLAN).is_file():
+    found = Path(args.resume) if args.resume else _newest(out, campaign.name)
+    if found is None or not (found / PLAN).is_file():
         print(f"error: nothing to resume: no campaign folder of {campaign.name!r} "
-              f"{'at ' + str(folder) if folder else 'in ' + str(out)}", file=sys.stderr)
+              f"{'at ' + str(found) if found else 'in ' + str(out)}", file=sys.stderr)
         return None
-    old = json.loads((folder / PLAN).read_text())
+    old = json.loads((found / PLAN).read_text())
     if json.loads(json.dumps(plan["cases"])) != old["cases"]:
         changed = "the campaign file" if old["campaign"]["sha256"] != campaign.sha256 \
             else "a rig or scenario file it names"
-        print(f"error: {folder}: {changed} changed since this campaign started, so its "
+        print(f"error: {found}: {changed} changed since this campaign started, so its "
               "cases are not the same; start a new campaign (without --resume)",
               file=sys.stderr)
         return None
-    return folder
+    return found
 
 
 def _newest(out: Path, name: str) -> Path | None:

@@ -88,8 +88,9 @@ def write_tables(folder: Path, rows: list[dict[str, Any]]) -> None:
         values = [f.get(name) for f in flat]
         if kind == "string":
             values = [None if v is None else str(v) for v in values]
-        arrays[name] = pa.array(values, type=getattr(pa, kind)() if kind != "bool"
-                                else pa.bool_())
+        types = {"int64": pa.int64(), "float64": pa.float64(), "string": pa.string(),
+                 "bool": pa.bool_()}
+        arrays[name] = pa.array(values, type=types[kind])
     table = pa.table(arrays)
     tmp = folder / f".{CASES_PARQUET}.tmp"
     pq.write_table(table, tmp)

@@ -56,9 +56,9 @@ def write_junit(path: Path, title: str, cases: list[JUnitCase]) -> Path:
     suites: dict[str, list[JUnitCase]] = {}
     for case in cases:
         suites.setdefault(case.suite, []).append(case)
-    root = ET.Element("testsuites", name=title, **_counts(cases))
+    root = ET.Element("testsuites", {"name": title, **_counts(cases)})
     for suite_name, members in suites.items():
-        suite = ET.SubElement(root, "testsuite", name=suite_name, **_counts(members))
+        suite = ET.SubElement(root, "testsuite", {"name": suite_name, **_counts(members)})
         for case in members:
             node = ET.SubElement(suite, "testcase", classname=case.classname, name=case.name,
                                  time=f"{case.time_s:.3f}")

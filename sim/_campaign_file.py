@@ -420,7 +420,8 @@ def expand(campaign: Campaign) -> list[Case]:
         keys = [k for k, _ in entry.grid]
         points = list(itertools.product(*(v for _, v in entry.grid))) or [()]
         rig_sha = _sha256(entry.file)
-        scenario_files = [(p, w, _sha256(p)) for p, w in entry.scenarios] or [(None, "", "")]
+        scenario_files: list[tuple[Path | None, str, str]] = [
+            (p, w, _sha256(p)) for p, w in entry.scenarios] or [(None, "", "")]
         variation = 0
         for point in points:
             grid_values = list(zip(keys, point, strict=True))
