@@ -405,6 +405,13 @@ def test_run_of_a_rig_from_a_folder_needs_trust(marked_tank: tuple[Path, Path, P
     signed, _, _ = marked_tank
     marker = signed.parents[1] / "imported.txt"
     folder = folder_copy(signed, tmp_path, "received")
+    # plot and runs (newer than tests/test_run_folder.py's list) read it as data too
+    for args in (("plot", str(folder), "level", "--out", str(tmp_path / "level.png")),
+                 ("runs", "--out", str(tmp_path))):
+        done = plantrig(*args, cwd=folder)
+        assert done.returncode == 0, done.stdout + done.stderr
+        assert not marker.exists(), f"{args[0]} imported the folder's module"
+    assert (tmp_path / "level.png").is_file()
     done = plantrig("run", str(folder / "rig.toml"), "--duration", "0.2", "--out", "runs",
                     cwd=tmp_path)
     assert done.returncode == 2 and "came with the run folder" in done.stderr
