@@ -37,7 +37,8 @@ REASONS = frozenset({
     "non_finite",    # NaN or infinity among the values
     "range",         # a value outside the signal's min..max
     "oversize",      # longer than max_payload
-    "tick",          # echoes a tick the rig has not sent yet
+    "echo",          # echoes a tick the rig has not sent yet
+    "empty",         # an empty message (what clears a retained one): ignored, counted
     "duplicate",     # sequence number seen last already
     "out_of_order",  # sequence number older than the newest seen (replay, reordering)
     "retained",      # a retained command: stale by definition, never used
@@ -47,12 +48,13 @@ REASONS = frozenset({
 class PayloadError(ValueError):
     """A payload that must not be used; ``reason`` is one of REASONS."""
 
-    def __init__(self, reason: str, detail: str = "") -> None:
+    def __init__(self, reason: str, detail: str = "", *, rejected: bool = False) -> None:
         if reason not in REASONS:
             raise ValueError(f"unknown PayloadError reason {reason!r}")
         super().__init__(f"{reason}: {detail}" if detail else reason)
         self.reason = reason
         self.detail = detail
+        self.rejected = rejected   # well-formed but not for this topic: rejected_<reason>
 
 
 def quoted(value: object, limit: int = 80) -> str:
@@ -134,7 +136,8 @@ class Codec:
         except FrameError as exc:
             raise PayloadError(exc.reason, exc.detail) from None
         if frame.kind != kind:
-            raise PayloadError("kind", f"{frame.kind.name} frame on the {kind.name} topic")
+            raise PayloadError("kind", f"{frame.kind.name} frame on the {kind.name} topic",
+                               rejected=True)
         return frame.seq, frame.tick, frame.values
 
 

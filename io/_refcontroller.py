@@ -143,6 +143,18 @@ class ControllerCounts:
     tx_errors: int = 0      # commands that could not be encoded (beyond the encoding)
     heartbeats: int = 0
     status: int = 0
+    rig_heartbeats: int = 0
+    # the rig's STATUS frames (docs/protocol.md 1.2) as "state/detail", in order, changes only
+    rig_states: list[str] = dataclasses.field(default_factory=list)
+
+
+RIG_STATE_NAMES = {0: "idle", 1: "running", 2: "tripped", 3: "fault", 4: "ended"}
+
+
+def rig_state_word(values: tuple[float, ...]) -> str:
+    """'tripped/1' for a rig STATUS [2, 1, ...]: the state's name and its detail code."""
+    state = RIG_STATE_NAMES.get(int(values[0]), f"state{values[0]:g}")
+    return f"{state}/{values[1]:g}"
 
 
 class ReferenceController:
@@ -191,6 +203,10 @@ class ReferenceController:
             if kind != _SENSOR:
                 if kind not in _QUIET_KINDS:
                     counts.rx_bad += 1
+                elif kind == Kind.STATUS:
+                    self.on_rig_status(frame.values)
+                else:
+                    counts.rig_heartbeats += 1
                 continue
             if len(frame.values) != n_y:
                 counts.rx_bad += 1
@@ -199,6 +215,13 @@ class ReferenceController:
             if reply is not None:
                 replies.append(reply)
         return replies
+
+    def on_rig_status(self, values: tuple[float, ...]) -> None:
+        """Note the rig's state (a firmware would go to its own safe state on 2, 3, 4)."""
+        word = rig_state_word(values)
+        states = self.counts.rig_states
+        if not states or states[-1] != word:
+            states.append(word)
 
     def command_for(self, stamp: int, values: tuple[float, ...]) -> np.ndarray:
         """The command answering the sensor values stamped ``stamp`` (any transport).

@@ -28,6 +28,7 @@ import numpy as np
 from plantrig.io._frames import REASONS, TICK_MODULUS, FrameError, Kind, SeqTracker
 from plantrig.io._link_config import LinkSettings
 from plantrig.io._pty import FdPort
+from plantrig.io._rig_state import RigState
 from plantrig.io._wire import WireFormat
 from plantrig.sim import Event, Rig
 
@@ -163,6 +164,10 @@ class SerialLink:
         self.tx_seq = 0
         self.pending = b""
         self.status: tuple[float, ...] = ()
+        self.rig_state = RigState.for_rig(rig)
+        self.told = False           # the engine has told a state: send status at reconnect
+        self.heartbeat_ticks = max(1, round(settings.heartbeat_period / rig.tick))
+        self.last_tx_tick = 0       # the tick of the newest frame written
         # plain lists: one element at a time they cost a fraction of a numpy scalar access
         self.sent_stamp = [-1] * STAMP_RING
         self.sent_ns = [0] * STAMP_RING
@@ -171,8 +176,9 @@ class SerialLink:
         self.rtt_count = 0
         self.oversize_seen = 0
         self.n: dict[str, int] = dict.fromkeys(
-            ["frames_in", "commands_in", "heartbeats_in", "status_in", "frames_out",
-             "bytes_in", "bytes_out", "dropped_out", "encode_errors", "sensor_clipped",
+            ["frames_in", "commands_in", "commands_used", "heartbeats_in", "status_in",
+             "frames_out", "status_out", "heartbeats_out", "bytes_in", "bytes_out",
+             "dropped_out", "encode_errors", "sensor_clipped",
              "clamped", "late", "missed_ticks", "link_lost", "link_restored", "port_errors"]
             + [f"bad_{r}" for r in sorted(REASONS)]
             + [f"rejected_{r}" for r in REJECT_REASONS], 0)
@@ -212,9 +218,14 @@ class SerialLink:
             self._read_port()
             if self.lockstep and not self.lost:
                 self._wait_for_answer(tick)
+        if tick - self.last_tx_tick >= self.heartbeat_ticks and self.io is not None \
+                and not self.port_down:
+            self._write_extra(self.wire.encode(_HEARTBEAT, self.tx_seq, tick % TICK_MODULUS),
+                              "heartbeats_out")
         if self.fresh:
             out[:] = self.cmd
             self.fresh = False
+            self.n["commands_used"] += 1
             self.last_valid_tick = tick
             if self.lost:
                 self.lost = False
@@ -270,11 +281,19 @@ class SerialLink:
         n = self.n
         n["frames_out"] += 1
         n["bytes_out"] += len(data)
+        self.last_tx_tick = tick
         self.last_sent_stamp = stamp
         if tick >= 0:  # the prime waits out the run's start-up: no round-trip sample
             i = stamp % STAMP_RING
             self.sent_stamp[i] = stamp
             self.sent_ns[i] = self.clock_ns()
+
+    def state(self, tick: int, state: str, detail: str = "") -> None:
+        """The rig's run state changed (the engine calls this on a change only): send
+        a STATUS frame now, and again whenever the port comes back."""
+        self.rig_state.set(tick, state, detail)
+        self.told = True
+        self._send_status()
 
     def drain_events(self) -> list[Event]:
         events, self.events = self.events, []
@@ -363,6 +382,7 @@ class SerialLink:
 
     def _accept(self, piece: bytes) -> None:
         """Decode one piece and, if it is a usable command, make it the newest."""
+        self.n["frames_in"] += 1
         try:
             frame = self.wire.decode(piece, _COMMAND)
         except FrameError as exc:
@@ -370,7 +390,6 @@ class SerialLink:
             self._event("bad_frame", str(exc), exc.reason)
             return
         n = self.n
-        n["frames_in"] += 1
         seq = self.seq
         dups = seq.duplicates
         if not seq.check(frame.seq):
@@ -428,6 +447,40 @@ class SerialLink:
             self.rtt_ms[self.rtt_count % RTT_RING] = (self.clock_ns() - self.sent_ns[i]) / 1e6
             self.rtt_count += 1
 
+    def _send_status(self) -> None:
+        if not self.wire.can_status or self.io is None or self.port_down:
+            return
+        n = self.n
+        bad = sum(v for k, v in n.items() if k.startswith(("bad_", "rejected_")))
+        values = self.rig_state.values(n["commands_in"], bad)
+        stamp = max(self.rig_state.tick, 0) % TICK_MODULUS
+        self._write_extra(self.wire.encode(_STATUS, self.tx_seq, stamp, values), "status_out")
+
+    def _write_extra(self, data: bytes, counter: str) -> None:
+        """Write a status frame or heartbeat (not on the per-tick path): finish a
+        partly written frame first; if the port will not take it all now, the rest
+        goes out before the next frame."""
+        assert self.io is not None
+        try:
+            if self.pending:
+                done = self.io.write_some(self.pending)
+                self.pending = self.pending[done:]
+                if self.pending:
+                    self.n["dropped_out"] += 1
+                    return
+            done = self.io.write_some(data)
+        except OSError as exc:
+            self._port_failed(exc)
+            return
+        if done == 0:
+            self.n["dropped_out"] += 1
+            return
+        self.pending = data[done:]
+        self.tx_seq = (self.tx_seq + 1) & 0xFFFF
+        self.n[counter] += 1
+        self.n["bytes_out"] += len(data)
+        self.last_tx_tick = self._k
+
     def _reject(self, reason: str, detail: str) -> None:
         self.n[f"rejected_{reason}"] += 1
         self._event("rejected_command", f"{reason}: {detail}", reason)
@@ -471,5 +524,7 @@ class SerialLink:
             return
         self.port_down = False
         self.seq.reset()
+        if self.told:
+            self._send_status()   # at reconnect, the controller learns where the rig is
         if data:
             self._feed(data)

@@ -87,20 +87,20 @@ def decode_line(
         line = line[:-1]
     if not line:
         raise FrameError("truncated", "empty line")
-    body, star, check = bytes(line).partition(b"*")
+    # checks in the order of docs/protocol.md section 4.1
+    if not line.isascii():
+        raise FrameError("syntax", "non-ASCII byte")
+    body, star, check = bytes(line).partition(b"*")   # the first '*' starts the checksum
     if star:
-        text = check.decode("ascii", "replace")
+        text = check.decode("ascii")
         if not _HEX2.fullmatch(text):
-            raise FrameError("syntax", f"checksum {text!r} is not two hex digits")
+            raise FrameError("syntax", f"checksum {text[:8]!r} is not two hex digits")
         got = xor_checksum(body)
         if got != int(text, 16):
             raise FrameError("crc", f"line says {text.upper()}, bytes give {got:02X}")
     elif require_checksum:
         raise FrameError("crc", "checksum missing")
-    try:
-        fields = body.decode("ascii").split(",")
-    except UnicodeDecodeError:
-        raise FrameError("syntax", "non-ASCII byte") from None
+    fields = body.decode("ascii").split(",")
     if len(fields) < 2:
         raise FrameError("truncated", "needs at least seq,tick")
     seq_text, tick_text, *value_texts = fields

@@ -45,7 +45,14 @@ class SignalChain(Protocol):
 
 
 class ControllerLink(Protocol):
-    """A link to a controller under test, as the tick loop sees it. Never blocks."""
+    """A link to a controller under test, as the tick loop sees it. Never blocks.
+
+    Optional: ``state(tick, state, detail) -> None``. A link that has it is told the
+    rig's run state so it can tell the controller (docs/protocol.md 1.2): "running"
+    after open, "tripped" (detail: the interlock holding the safe state) or "running"
+    again when latches change, and "fault" or "ended" (detail: the outcome class)
+    before close. The engine calls it on a change only, never per tick.
+    """
 
     def open(self) -> None:
         """Open the port or connect; called once before the first tick."""

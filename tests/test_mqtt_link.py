@@ -405,7 +405,8 @@ def test_bad_json_commands_are_counted_evented_and_never_used(
         (b'{"seq": 1, "tick": -1, "values": [1e999]}', False),   # bad_non_finite (inf)
         (command(1, -1, [1.0]) + b" " * 300, False),             # bad_oversize
         (command(1, -1, [100.0]), False),                        # rejected_range (24 V max)
-        (command(1, 7, [1.0]), False),                           # rejected_tick (not sent yet)
+        (command(1, 7, [1.0]), False),                           # rejected_echo (not sent yet)
+        (b"", False),                                            # empty (clears a retained one)
         (command(5, -1, [3.0]), False),                          # valid
         (command(5, -1, [4.0]), False),                          # duplicate seq
         (command(4, -1, [5.0]), False),                          # out of order (replay)
@@ -416,9 +417,11 @@ def test_bad_json_commands_are_counted_evented_and_never_used(
         link.close()
     assert [u.tolist() for u in used] == [[3.0]]  # only the one valid command
     for key in ("bad_schema", "bad_channels", "bad_oversize", "rejected_range",
-                "rejected_tick", "rejected_retained", "duplicates", "out_of_order"):
+                "rejected_echo", "rejected_retained", "duplicates", "out_of_order",
+                "empty_messages"):
         assert h[key] == 1, f"{key} = {h.get(key)}"
     assert h["bad_json"] == 2 and h["bad_non_finite"] == 2 and h["commands_in"] == 1
+    assert "bad_empty" not in h and "bad_schema" in h  # an empty message is no bad frame
     k = kinds(events)
     assert k.count("bad_frame") == 7 and k.count("rejected_command") == 3
     assert k.count("duplicate_frame") == 1 and k.count("out_of_order_frame") == 1
@@ -443,7 +446,9 @@ def test_bad_binary_commands(tmp_path: Path, mosquitto_broker: LocalBroker) -> N
     finally:
         link.close()
     assert [u.tolist() for u in used] == [[1.5]]
-    assert h["bad_crc"] == 1 and h["bad_non_finite"] == 1 and h["bad_kind"] == 1
+    # a SENSOR frame from the controller is rejected_kind, as on the serial link
+    assert h["bad_crc"] == 1 and h["bad_non_finite"] == 1 and h["rejected_kind"] == 1
+    assert "bad_kind" not in h
     assert h["bad_truncated"] == 1 and h["commands_in"] == 1
 
 

@@ -46,9 +46,27 @@ def test_pinned_lines(vec: dict) -> None:
 
 @pytest.mark.parametrize("vec", VECTORS["bad_text_lines"], ids=lambda v: v["name"])
 def test_rejects_with_reason(vec: dict) -> None:
+    line = bytes.fromhex(vec["line_hex"]) if "line_hex" in vec else vec["line"].encode("ascii")
     with pytest.raises(FrameError) as info:
-        decode_line(vec["line"].encode("ascii"))
+        decode_line(line, require_checksum=vec.get("require_checksum", False))
     assert info.value.reason == vec["reason"]
+
+
+def test_line_checks_follow_the_documented_order() -> None:
+    # docs/protocol.md 4.1: a line failing several checks gets the reason of the first
+    cases = [
+        (b"1,2,1." + b"0" * 1018 + b"\xb5*00\r\n", "oversize"),   # 1 before 3, 4
+        (b"\r\n", "truncated"),                                      # 2
+        (b"\xb5\n", "syntax"),                                       # 3 before 4 (required)
+        (b"x,y,nan*00\n", "crc"),                                   # 4 before 5..8
+        (b"1*31\n", "truncated"),                                    # 5 after 4
+        (b"1,y," + b"0," * 40 + b"nan\n", "syntax"),                  # 6 before 7, 8
+        (b"1,2," + b"nan," * 40 + b"0\n", "channels"),                # 7 before 8
+    ]
+    for line, reason in cases:
+        with pytest.raises(FrameError) as info:
+            decode_line(line, require_checksum=line == b"\xb5\n")
+        assert info.value.reason == reason, line
 
 
 def test_encoder_writes_checksum_and_wraps() -> None:

@@ -1,0 +1,144 @@
+"""The rig tells the controller its state (docs/protocol.md 1.2): STATUS frames on serial,
+the status document on MQTT; heartbeats when it has nothing else to send; a controller
+that sends only heartbeats is lost (only commands feed the rig's watchdog)."""
+
+from __future__ import annotations
+
+import os
+import re
+import subprocess
+import time
+from pathlib import Path
+
+import numpy as np
+from test_mqtt_link import mqtt_rig, retained
+
+from plantrig._hil import controller_command, wait_ready
+from plantrig.io import (
+    FdPort,
+    FrameSplitter,
+    Kind,
+    LocalBroker,
+    build_link,
+    decode_frame,
+    encode_frame,
+    open_pty_pair,
+)
+from plantrig.sim import load_rig, load_scenario, run_to_folder
+
+ROOT = Path(__file__).resolve().parents[1]
+GUARDED = ROOT / "configs" / "rehearsals" / "conveyor_guarded_hil.toml"
+
+
+def guarded_rig(tmp_path: Path, duration: float = 1.5):
+    src = GUARDED.read_text().replace("duration = 4.0", f"duration = {duration}")
+    path = tmp_path / "rig.toml"
+    path.write_text(src)
+    return load_rig(path)
+
+
+def test_controller_hears_running_tripped_running_ended(tmp_path: Path) -> None:
+    rig = guarded_rig(tmp_path)
+    scenario_path = tmp_path / "estop.toml"
+    scenario_path.write_text(
+        '[scenario]\nallow_trips = ["estop"]\n\n'
+        "[[steps]]\nat = 0.4\nestop = true\n\n"
+        '[[steps]]\nat = 0.8\nreset = "estop"\n')
+    scenario = load_scenario(scenario_path, rig)
+    pair = open_pty_pair()
+    proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
+                            stdout=subprocess.PIPE, text=True)
+    try:
+        assert wait_ready(proc, 30.0), "the reference controller did not start"
+        pair.close_slave()
+        link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
+        _, outcome, summary = run_to_folder(rig, tmp_path / "runs", realtime=True, link=link,
+                                            scenario=scenario)
+        time.sleep(0.3)          # let the controller read the last STATUS before hang-up
+    finally:
+        pair.close_master()      # the controller ends when the rig's end closes
+        text, _ = proc.communicate(timeout=20)
+    states = re.search(r"rig states (.*?);", text)
+    assert states, text
+    code = int(summary["exit_code"])
+    # a loaded machine may miss the real-time rule: the run is then a fault, and says so
+    last = "fault" if outcome.ended == "fault" else "ended"
+    # 1 = the E-stop (the first interlock number, docs/protocol.md 1.2); then the exit code
+    assert states.group(1).split() == ["running/0", "tripped/1", "running/0",
+                                       f"{last}/{code}"], (text, outcome.reason)
+    h = summary["link"]
+    # the health is read before the end status goes out: three of the four are in it
+    assert h["status_out"] == 3 and h["commands_used"] > 0.5 * rig.n_ticks
+
+
+def read_frames(fd: int, splitter: FrameSplitter) -> list:
+    out = []
+    while True:
+        try:
+            data = os.read(fd, 4096)
+        except BlockingIOError:
+            return out
+        out += [decode_frame(p) for p in splitter.feed(data)]
+
+
+def test_heartbeats_when_idle_and_heartbeats_alone_are_lost(tmp_path: Path) -> None:
+    rig = guarded_rig(tmp_path)
+    pair = open_pty_pair()
+    slave = pair.slave_fd
+    os.set_blocking(slave, False)
+    try:
+        link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
+        link.open()
+        link.state(-1, "running", "")  # type: ignore[attr-defined]
+        splitter = FrameSplitter()
+        out = np.zeros(1)
+        seq = 0
+        lost_at = None
+        for k in range(400):          # 0.4 s of ticks: no sensor frame sent at all
+            link.receive(k, k * rig.tick, out)
+            if lost_at is None and any(e.kind == "link_lost" for e in link.drain_events()):
+                lost_at = k
+            if k % 20 == 0:           # the controller: heartbeats only, every 20 ms
+                os.write(slave, encode_frame(Kind.HEARTBEAT, seq, 0))
+                seq += 1
+            time.sleep(0.0002)
+        frames = read_frames(slave, splitter)
+        h = link.health()
+        link.close()
+    finally:
+        pair.close_slave()
+        pair.close_master()
+    kinds = [f.kind for f in frames]
+    assert kinds[0] == Kind.STATUS and frames[0].values[:2] == (1.0, 0.0)
+    # heartbeat_period 0.1 s = 100 ticks: ticks 100, 200, 300 (at least three)
+    assert kinds.count(Kind.HEARTBEAT) >= 3 and h["heartbeats_out"] == kinds.count(Kind.HEARTBEAT)
+    assert Kind.SENSOR not in kinds
+    # heartbeats were counted, yet the watchdog (timeout 0.1 s) declared the link lost
+    assert h["heartbeats_in"] >= 10 and h["commands_in"] == 0
+    assert lost_at is not None and lost_at <= 102 and h["link_lost"] == 1
+
+
+def test_mqtt_status_document_carries_the_run_state(tmp_path: Path,
+                                                    mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker)
+    link = build_link(rig)
+    link.open()
+    try:
+        link.state(-1, "running", "")  # type: ignore[attr-defined]
+        link.state(40, "tripped", "estop")  # type: ignore[attr-defined]
+        doc: dict = {}
+        end = time.monotonic() + 5
+        while time.monotonic() < end:
+            doc = retained(mosquitto_broker, "plantrig/conveyor/status")
+            if doc.get("run_state") == "tripped":
+                break
+            time.sleep(0.05)
+        assert doc["state"] == "online" and doc["run_state_code"] == 2
+        assert doc["detail"] == "estop" and doc["detail_code"] == 1 and doc["state_tick"] == 40
+        link.state(90, "fault", "fault")  # type: ignore[attr-defined]
+    finally:
+        link.close()
+    doc = retained(mosquitto_broker, "plantrig/conveyor/status")
+    # the last word after close: offline, and how the run ended (exit code 1, a fault)
+    assert doc["state"] == "offline" and doc["run_state"] == "fault"
+    assert doc["run_state_code"] == 3 and doc["detail_code"] == 1
