@@ -83,30 +83,26 @@ class LinearPlant:
 
     @classmethod
     def from_transfer_function(cls, num: Any, den: Any) -> LinearPlant:
-        """SISO transfer function num(s)/den(s), highest power first, to state space.
+        """Transfer function num(s)/den(s), highest power first, to a minimal state space.
 
-        Uses scipy.signal.tf2ss (controllable canonical form); a non-proper transfer
-        function cannot be simulated causally and is refused.
+        SISO: two coefficient lists (scipy.signal.tf2ss, controllable canonical form).
+        MIMO: two p x m matrices of coefficient lists, realised minimally
+        (sim/_realise.py). A non-proper entry cannot be simulated causally and is refused.
         """
-        num_a = np.atleast_1d(np.array(num, dtype=np.float64))
-        den_a = np.atleast_1d(np.array(den, dtype=np.float64))
-        if num_a.ndim != 1 or den_a.ndim != 1:
-            raise ModelError("num", "expected 1-D coefficient lists (SISO)")
-        den_a = np.trim_zeros(den_a, "f")
-        num_a = np.trim_zeros(num_a, "f")
-        if den_a.size == 0:
-            raise ModelError("den", "denominator is all zeros")
-        if num_a.size == 0:
-            num_a = np.zeros(1)
-        if num_a.size > den_a.size:
-            raise ModelError(
-                "num", f"order {num_a.size - 1} exceeds denominator order {den_a.size - 1}"
-                " (improper transfer function)")
-        if den_a.size == 1:
-            return cls.from_matrices(np.zeros((0, 0)), np.zeros((0, 1)), np.zeros((1, 0)),
-                                     [[num_a[-1] / den_a[0]]])
-        a, b, c, d = scipy.signal.tf2ss(num_a, den_a)
-        return cls.from_matrices(a, b, c, d)
+        from plantrig.sim._realise import tf_matrix_to_ss
+        if is_tf_matrix(num) or is_tf_matrix(den):
+            if not (is_tf_matrix(num) and is_tf_matrix(den)):
+                raise ModelError("den", "expected num and den both as matrices of "
+                                        "coefficient lists (MIMO) or both as lists (SISO)")
+            return cls.from_matrices(*tf_matrix_to_ss(num, den))
+        return cls.from_matrices(*tf_matrix_to_ss([[num]], [[den]], siso=True))
+
+    @classmethod
+    def from_zpk(cls, zeros: Any, poles: Any, gain: float) -> LinearPlant:
+        """SISO k prod(s - z_i) / prod(s - p_i); complex roots come with their conjugates."""
+        from plantrig.sim._realise import zpk_to_num_den
+        num, den = zpk_to_num_den(list(zeros), list(poles), gain)
+        return cls.from_transfer_function(num, den)
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -165,6 +161,14 @@ class OdePlant:
 
 
 Plant = LinearPlant | DiscretePlant | OdePlant
+
+
+def is_tf_matrix(value: Any) -> bool:
+    """A p x m matrix of coefficient lists (MIMO), as opposed to one list (SISO)."""
+    return (isinstance(value, list | tuple) and len(value) > 0
+            and all(isinstance(row, list | tuple) and len(row) > 0
+                    and all(isinstance(e, list | tuple | np.ndarray) for e in row)
+                    for row in value))
 
 
 def zoh(A: Matrix, B: Matrix, dt: float) -> tuple[Matrix, Matrix]:
@@ -318,17 +322,32 @@ def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
 
 
 def from_state_space_object(system: Any) -> LinearPlant | DiscretePlant:
-    """Accept a scipy.signal StateSpace or a python-control StateSpace object.
+    """Accept a scipy.signal or python-control system object.
 
+    StateSpace objects keep their matrices; scipy TransferFunction / ZerosPolesGain and
+    python-control TransferFunction objects (SISO or MIMO) are realised minimally.
     Continuous systems (dt None or 0) become LinearPlant; discrete ones DiscretePlant.
     """
-    try:
-        a, b, c, d = system.A, system.B, system.C, system.D
-    except AttributeError as exc:
-        raise ModelError("system", f"{type(system).__name__} has no A, B, C, D") from exc
     dt = getattr(system, "dt", None)
-    if dt is None or dt is False or dt == 0:
-        return LinearPlant.from_matrices(a, b, c, d)
     if dt is True:
         raise ModelError("system", "discrete system with unspecified sample time (dt=True)")
-    return DiscretePlant.from_matrices(a, b, c, d, float(dt))
+    if all(hasattr(system, k) for k in ("A", "B", "C", "D")):
+        linear = LinearPlant.from_matrices(system.A, system.B, system.C, system.D)
+    elif all(hasattr(system, k) for k in ("zeros", "poles", "gain")):
+        linear = LinearPlant.from_zpk(system.zeros, system.poles, float(system.gain))
+    elif hasattr(system, "num") and hasattr(system, "den"):
+        num, den = system.num, system.den
+        if is_tf_matrix(num):     # python-control: num[i][j] arrays
+            linear = LinearPlant.from_transfer_function(
+                [[list(e) for e in row] for row in num], [[list(e) for e in row] for row in den])
+        else:                     # scipy: 1-D num, or 2-D (one row per output) over one den
+            rows = np.atleast_2d(np.asarray(num, dtype=np.float64))
+            linear = LinearPlant.from_transfer_function(
+                [[list(r)] for r in rows], [[list(np.ravel(den))] for _ in rows]) \
+                if rows.shape[0] > 1 else LinearPlant.from_transfer_function(rows[0], den)
+    else:
+        raise ModelError("system", f"{type(system).__name__} is not a state-space, transfer "
+                                   "function or zero-pole-gain object")
+    if dt is None or dt is False or dt == 0:
+        return linear
+    return DiscretePlant.from_matrices(linear.A, linear.B, linear.C, linear.D, float(dt))

@@ -273,11 +273,16 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
         c.add("rig.duration", f"expected at least one tick ({tick} s), found {duration}")
 
     plant_t = c.table(doc, "plant", "", required=True)
-    states = _signals(c, plant_t, "states")
+    # a transfer function's states have no physical meaning: they may go unnamed
+    unnamed = plant_t.get("kind") == "transfer_function" and "states" not in plant_t
+    states = [] if unnamed else _signals(c, plant_t, "states")
     inputs = _signals(c, plant_t, "inputs")
     outputs = _signals(c, plant_t, "outputs")
     plant, method, substeps = _plant(c, plant_t, path, tick, len(states), len(inputs),
                                      len(outputs))
+    if unnamed and plant is not None:
+        states = [Signal(f"internal_{i + 1}", description="state of the transfer function's "
+                         "minimal realisation") for i in range(plant.shape[0])]
     x0 = _initial_state(c, plant_t, plant)
 
     references = _references(c, doc)
@@ -356,7 +361,7 @@ def _signals(c: _Checker, plant_t: dict[str, Any], group: str) -> list[Signal]:
 
 PLANT_KEYS = {
     "lti": {"A", "B", "C", "D"},
-    "transfer_function": {"num", "den"},
+    "transfer_function": {"num", "den", "zeros", "poles", "gain"},
     "discrete_lti": {"A", "B", "C", "D", "dt"},
     "ode": {"module", "dynamics", "output", "params", "method", "substeps"},
 }
@@ -387,10 +392,7 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
                     c.add("plant.dt", f"expected the rig tick ({tick} s) for a discrete model, "
                                       f"found {dt} s; resample the model or change rig.tick")
         elif kind == "transfer_function":
-            num = c.take(t, "num", "plant", "vector")
-            den = c.take(t, "den", "plant", "vector")
-            if num is not None and den is not None:
-                plant = LinearPlant.from_transfer_function(num, den)
+            plant = _transfer_function(c, t)
         else:
             plant, method, substeps = _ode_plant(c, t, path, n, m, p)
     except ModelError as exc:
@@ -404,6 +406,44 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
                 c.add(f"plant.{group}", f"expected {actual} entries to match the model, "
                                         f"found {count}")
     return plant, method, substeps
+
+
+def _transfer_function(c: _Checker, t: dict[str, Any]) -> LinearPlant | None:
+    """num/den (lists, or p x m matrices of lists for MIMO), or zeros/poles/gain (SISO)."""
+    if not any(k in t for k in ("zeros", "poles", "gain")):
+        num = c.take(t, "num", "plant", "list")
+        den = c.take(t, "den", "plant", "list")
+        return None if num is None or den is None else \
+            LinearPlant.from_transfer_function(num, den)
+    for key in ("num", "den"):
+        if key in t:
+            c.add(f"plant.{key}", "expected either num and den or zeros, poles and gain, "
+                                  "found both forms")
+    zeros = c.take(t, "zeros", "plant", "list", default=[])
+    poles = c.take(t, "poles", "plant", "list")
+    gain = c.take(t, "gain", "plant", "number")
+    roots = [_roots(c, "zeros", zeros), _roots(c, "poles", poles)]
+    if roots[0] is None or roots[1] is None or gain is None or \
+            any(k in t for k in ("num", "den")):
+        return None
+    return LinearPlant.from_zpk(roots[0], roots[1], gain)
+
+
+def _roots(c: _Checker, key: str, values: list[Any] | None) -> list[complex] | None:
+    """Real roots as numbers, complex ones as [re, im] pairs (TOML has no complex type)."""
+    if values is None:
+        return None
+    out: list[complex] = []
+    for i, v in enumerate(values):
+        if _is_number(v):
+            out.append(complex(v))
+        elif isinstance(v, list) and len(v) == 2 and all(_is_number(x) for x in v):
+            out.append(complex(v[0], v[1]))
+        else:
+            c.add(f"plant.{key}[{i}]", f"expected a number or a [re, im] pair, found "
+                                       f"{describe_value(v)}")
+            return None
+    return out
 
 
 def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
