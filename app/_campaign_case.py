@@ -20,12 +20,12 @@ from typing import Any
 
 import tomli_w
 
-from plantrig._compose import build_chains
 from plantrig.sim import (
     Rig,
     RigFileError,
     RigIssue,
     Scenario,
+    build_chains,
     evaluate,
     load_rig_with_overrides,
     simulate,

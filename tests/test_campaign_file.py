@@ -16,14 +16,8 @@ from scipy import stats
 
 from plantrig._campaign_case import run_case
 from plantrig._campaign_cli import add_parser
-from plantrig._compose import build_chains
-from plantrig.sim import (
-    RigFileError,
-    apply_overrides,
-    load_rig_with_overrides,
-    load_scenario,
-    run_to_folder,
-)
+from plantrig.cli import main
+from plantrig.sim import RigFileError, apply_overrides
 from plantrig.sim._campaign_file import Draw, expand, load_campaign
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -193,25 +187,25 @@ def test_grid_typo_reads_like_set(tmp_path: Path) -> None:
 
 
 def test_case_equals_plantrig_run(tmp_path: Path) -> None:
-    """A case's verdicts are those of `plantrig run` with the case's --set assignments and
-    scenario, through the recorder and run folder (bit for bit)."""
-    text = GOOD.replace("draws = 3", "draws = 1").replace(f', "{STUCK}"', "")
-    cases = expand(load_campaign(write(tmp_path, text)))
-    case = next(c for c in cases if not c.scenario_set or c.scenario_set[0] == "steps[0].at=1.0")
+    """A case's row is what `plantrig run RIG --fast --scenario FILE --set ...` with the
+    case's assignments records in its run folder (verdicts bit for bit)."""
+    text = (f'[campaign]\nseed = 3\n[[rigs]]\nfile = "{GUARDED}"\nscenarios = ["{LINK_LOST}"]\n'
+            '[rigs.draw]\n"plant.A[2][2]" = { dist = "uniform", spread_pct = 20 }\n')
+    (case,) = expand(load_campaign(write(tmp_path, text)))
     row = run_case(case)
     assert row["status"] in ("passed", "failed") and row["error"] == ""
-    rig = load_rig_with_overrides(case.rig_file, case.rig_set)
-    scenario = load_scenario(case.scenario_file, rig)
-    actuators, sensors = build_chains(rig)
-    _, outcome, summary = run_to_folder(rig, tmp_path / "runs", realtime=False,
-                                        actuator_chain=actuators, sensor_chain=sensors,
-                                        scenario=scenario)
-    assert (row["outcome"], row["reason"], row["exit_code"], row["ticks"]) == \
-        (outcome.ended, outcome.reason, summary["exit_code"], summary["ticks_run"])
-    recorded = json.loads(json.dumps(summary["verdicts"]))
+    out = tmp_path / "runs"
+    argv = ["run", case.rig_file, "--fast", "--scenario", case.scenario_file, "--out", str(out)]
+    for assignment in case.rig_set:
+        argv += ["--set", assignment]
+    assert main(argv) == row["exit_code"]
+    (folder,) = out.glob("conveyor_guarded-*")
+    summary = json.loads((folder / "summary.json").read_text())
+    assert (row["outcome"], row["reason"], row["ticks"]) == \
+        (summary["ended"], summary["reason"], summary["ticks_run"])
     assert [(v["name"], v["passed"]) for v in row["verdicts"]] == \
-        [(v["name"], v["passed"]) for v in recorded]
-    for ours, theirs in zip(row["verdicts"], recorded, strict=True):
+        [(v["name"], v["passed"]) for v in summary["verdicts"]]
+    for ours, theirs in zip(row["verdicts"], summary["verdicts"], strict=True):
         assert (ours["measured"] == theirs["measured"]) or (
             theirs["measured"] is None and not math.isfinite(ours["measured"]))
 
