@@ -72,7 +72,9 @@ def main() -> None:
             cmd += ["--set", assignment]
         subprocess.run(cmd, capture_output=True, check=False)
     a_wall = time.perf_counter() - t0
-    a_rate = len(shell) * ticks / a_wall
+    a_done = len(list((work / "runs").glob("*/summary.json")))   # runs that finished
+    assert a_done == len(shell), f"only {a_done} of {len(shell)} shell runs finished"
+    a_rate = a_done * ticks / a_wall
 
     # (b) one process, sequentially
     t0 = time.perf_counter()
