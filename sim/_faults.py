@@ -209,6 +209,8 @@ def _matrix_index(token: str, names: list[str], size: int) -> int | None:
 def plant_target(rig: Rig, target: str) -> tuple[tuple[str, int, int] | str | None, str]:
     """('A' or 'B', row, col) for an LTI plant, a parameter name for an ODE, or None, why."""
     plant = rig.plant
+    if getattr(plant, "has_dead_time", False):
+        return None, "a plant with dead time takes no plant faults (not supported yet)"
     if isinstance(plant, OdePlant):
         numeric = sorted(k for k, v in plant.params.items() if _is_number(v))
         if target in numeric:
@@ -399,7 +401,7 @@ class Faults:
         self.counts = {"frames_dropped": 0, "frames_corrupted": 0}
         # plant: the model as given, so faults compose and clear back to it exactly
         plant = rig.plant
-        self._linear = isinstance(stepper, LinearStepper)
+        self._linear = not isinstance(plant, OdePlant)   # LTI (with or without dead time)
         n = plant.shape[0]
         if isinstance(plant, LinearPlant):
             self._a0, self._b0 = plant.A.copy(), plant.B.copy()

@@ -12,6 +12,7 @@ The engine knows nothing of the model's kind.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -20,6 +21,8 @@ import numpy as np
 import scipy.linalg
 import scipy.signal
 from numpy.typing import NDArray
+
+from plantrig.sim._deadtime import DelayedLinearStepper
 
 Vector = NDArray[np.float64]
 Matrix = NDArray[np.float64]
@@ -76,10 +79,33 @@ class LinearPlant:
     B: Matrix
     C: Matrix
     D: Matrix
+    input_delay: tuple[float, ...] = ()    # dead time per input, s (sim/_deadtime.py)
+    output_delay: tuple[float, ...] = ()   # dead time per output, s
 
     @classmethod
     def from_matrices(cls, A: Any, B: Any, C: Any, D: Any = None) -> LinearPlant:
         return cls(*normalize_abcd(A, B, C, D))
+
+    def with_dead_time(self, input_delay: Any = 0.0, output_delay: Any = 0.0) -> LinearPlant:
+        """This plant with transport delays (seconds; one number for every channel, or one
+        per input / output)."""
+        _, m, p = self.shape
+        delays = []
+        for key, value, count in (("input_delay", input_delay, m),
+                                  ("output_delay", output_delay, p)):
+            array = np.broadcast_to(np.asarray(value, dtype=np.float64), (count,)) \
+                if np.ndim(value) == 0 else np.asarray(value, dtype=np.float64)
+            if array.shape != (count,):
+                raise ModelError(key, f"expected one number or {count} (one per "
+                                      f"{key.split('_')[0]}), found {len(array)}")
+            if not np.all(np.isfinite(array)) or np.any(array < 0):
+                raise ModelError(key, f"expected delays >= 0 s, found {array.tolist()}")
+            delays.append(tuple(float(v) for v in array) if np.any(array > 0) else ())
+        return dataclasses.replace(self, input_delay=delays[0], output_delay=delays[1])
+
+    @property
+    def has_dead_time(self) -> bool:
+        return bool(self.input_delay or self.output_delay)
 
     @classmethod
     def from_transfer_function(cls, num: Any, den: Any) -> LinearPlant:
@@ -297,7 +323,7 @@ class OdeStepper:
         self.commit()
 
 
-Stepper = LinearStepper | OdeStepper
+Stepper = LinearStepper | OdeStepper | DelayedLinearStepper
 
 
 def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
@@ -310,6 +336,9 @@ def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
     x_init = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64).reshape(-1)
     if x_init.shape != (n,):
         raise ModelError("x0", f"has {x_init.size} entries, expected {n} (one per state)")
+    if isinstance(plant, LinearPlant) and plant.has_dead_time:
+        return DelayedLinearStepper(plant.A, plant.B, plant.C, plant.D, dt, plant.input_delay,
+                                    plant.output_delay, x_init, xu)
     if isinstance(plant, LinearPlant):
         ad, bd = zoh(plant.A, plant.B, dt)
         return LinearStepper(ad, bd, plant.C, plant.D, x_init, xu)

@@ -224,6 +224,12 @@ def _check_kind(kind: str, value: Any) -> str | None:
     return None
 
 
+def _number_or_numbers(value: Any) -> str | None:
+    if _is_number(value) or (isinstance(value, list) and all(_is_number(v) for v in value)):
+        return None
+    return f"expected a number or a list of numbers (seconds), found {describe_value(value)}"
+
+
 def _positive(value: Any) -> str | None:
     return None if value > 0 else f"expected a positive number, found {value!r}"
 
@@ -360,8 +366,9 @@ def _signals(c: _Checker, plant_t: dict[str, Any], group: str) -> list[Signal]:
 
 
 PLANT_KEYS = {
-    "lti": {"A", "B", "C", "D"},
-    "transfer_function": {"num", "den", "zeros", "poles", "gain"},
+    "lti": {"A", "B", "C", "D", "input_delay", "output_delay"},
+    "transfer_function": {"num", "den", "zeros", "poles", "gain", "input_delay",
+                          "output_delay"},
     "discrete_lti": {"A", "B", "C", "D", "dt"},
     "ode": {"module", "dynamics", "output", "params", "method", "substeps"},
 }
@@ -395,6 +402,12 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
             plant = _transfer_function(c, t)
         else:
             plant, method, substeps = _ode_plant(c, t, path, n, m, p)
+        if isinstance(plant, LinearPlant) and ("input_delay" in t or "output_delay" in t):
+            delays = [c.take(t, key, "plant", "any", default=0.0,
+                             check=_number_or_numbers) for key in ("input_delay",
+                                                                   "output_delay")]
+            if delays[0] is not None and delays[1] is not None:
+                plant = plant.with_dead_time(*delays)
     except ModelError as exc:
         c.add(f"plant.{exc.key}", exc.reason)
         return None, method, substeps

@@ -308,6 +308,9 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
     equilibrium: bool | None = None
     if isinstance(plant, LinearPlant):
         kind, A, B, C = "continuous LTI", plant.A, plant.B, plant.C
+        if plant.has_dead_time:
+            kind += (f" with dead time (inputs {list(plant.input_delay) or 0} s, "
+                     f"outputs {list(plant.output_delay) or 0} s; exact under ZOH)")
         eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
         cont_eig = eig
         ctrb = _rank(controllability_matrix(A, B))
