@@ -58,8 +58,7 @@ def _untrusted_module(args: argparse.Namespace) -> str | None:
 
 
 def cmd_rerun(args: argparse.Namespace, print_outcome: Any) -> int:
-    from plantrig._compose import build_chains
-    from plantrig.sim import load_scenario, run_to_folder
+    from plantrig.sim import build_chains, load_scenario, run_to_folder
     from plantrig.sim._rerun import RerunError, plan_rerun
 
     if not Path(args.folder).is_dir():

@@ -22,7 +22,6 @@ from plantrig._campaign_cli import add_parser as add_campaign_command
 from plantrig._catalogue import add_parser as add_runs_command
 from plantrig._catalogue import index_run
 from plantrig._compare_cli import add_parser as add_compare_command
-from plantrig._compose import build_chains
 from plantrig._console import print_outcome
 from plantrig._hil import add_parsers as add_link_commands
 from plantrig._model_trust import TRUST_HELP, model_guard
@@ -35,6 +34,7 @@ from plantrig.sim import (
     EXIT_CODE_HELP,
     RecordError,
     RigFileError,
+    build_chains,
     load_rig_with_overrides,
     run_to_folder,
     summarize,

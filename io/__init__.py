@@ -1,18 +1,7 @@
-"""Controller links, frame codecs and signal conditioning."""
+"""Controller links and frame codecs (signal conditioning is numeric: plantrig.sim)."""
 
 from plantrig.io._broker import BrokerError, LocalBroker
 from plantrig.io._cobs import CobsError, cobs_decode, cobs_encode
-from plantrig.io._conditioning import (
-    ActuatorChain,
-    ActuatorChannel,
-    ChainSpecError,
-    SensorChain,
-    SensorChannel,
-    build_actuator_chain,
-    build_sensor_chain,
-    counts_to_eng,
-    eng_to_counts,
-)
 from plantrig.io._crc import crc16
 from plantrig.io._frames import (
     MAX_CHANNELS,
@@ -79,15 +68,6 @@ __all__ = [
     "encode_line",
     "xor_checksum",
     # signal conditioning
-    "ActuatorChain",
-    "ActuatorChannel",
-    "ChainSpecError",
-    "SensorChain",
-    "SensorChannel",
-    "build_actuator_chain",
-    "build_sensor_chain",
-    "counts_to_eng",
-    "eng_to_counts",
     # links
     "LINK_KINDS",
     "TRANSPORTS",

@@ -4,8 +4,20 @@ This is what other parts of plantrig (and users' scripts) may use; everything el
 this package is private.
 """
 
+from plantrig.sim._chains import build_chains
 from plantrig.sim._clock import Clock, VirtualClock, WallClock
 from plantrig.sim._commands import Command, CommandInbox
+from plantrig.sim._conditioning import (
+    ActuatorChain,
+    ActuatorChannel,
+    ChainSpecError,
+    SensorChain,
+    SensorChannel,
+    build_actuator_chain,
+    build_sensor_chain,
+    counts_to_eng,
+    eng_to_counts,
+)
 from plantrig.sim._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
 from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
@@ -86,6 +98,10 @@ __all__ = [
     "describe_value", "one_of",
     # what people read for each kind of signal
     "SIGNAL_LABELS", "SIGNAL_MEANINGS",
+    # signal conditioning
+    "ActuatorChain", "ActuatorChannel", "ChainSpecError", "SensorChain", "SensorChannel",
+    "build_actuator_chain", "build_chains", "build_sensor_chain", "counts_to_eng",
+    "eng_to_counts",
     # outcomes
     "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "AcceptanceRules", "RuleResult",
     # run records

@@ -35,6 +35,7 @@ from typing import Protocol
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._chains import build_chains
 from plantrig.sim._clock import SPIN_NS, Clock, WallClock
 from plantrig.sim._commands import COMMAND_POLL_S, Command, CommandInbox
 from plantrig.sim._contracts import ControllerLink, Event, SignalChain
@@ -184,6 +185,10 @@ class Engine:
         self.controller = build_controller(rig)
         if self.controller is None and link is None:
             raise ValueError(f"{rig.path}: controller.kind 'external' needs a link")
+        if actuator_chain is None or sensor_chain is None:   # as the rig file says
+            from_rig = build_chains(rig)
+            actuator_chain = actuator_chain or from_rig[0]
+            sensor_chain = sensor_chain or from_rig[1]
         self.actuator_chain = actuator_chain
         self.sensor_chain = sensor_chain
         self.columns, self.units = tick_columns(rig)

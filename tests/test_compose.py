@@ -2,14 +2,14 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 from pathlib import Path
 
 import numpy as np
 
-from plantrig._compose import build_chains
-from plantrig.sim import load_rig, simulate
+from plantrig.sim import build_chains, load_rig, read_run, simulate
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -64,3 +64,19 @@ rate = -3.0
     assert "sensors[0].name: expected one of belt_speed, motor_current, found 'belt_sped'; " \
            "did you mean 'belt_speed'?" in proc.stderr
     assert "actuators[0].rate" in proc.stderr
+
+
+def test_the_python_api_and_the_cli_compose_the_same_run(tmp_path: Path) -> None:
+    # a sensor that reads double: the PI loop then holds the true belt speed at half its
+    # setpoint, through simulate() exactly as through `plantrig run`
+    path = conveyor_with(tmp_path, '\n[[sensors]]\nname = "belt_speed"\ngain = 2.0\n')
+    api = simulate(load_rig(path))
+    proc = subprocess.run([sys.executable, "-m", "plantrig", "run", str(path), "--out",
+                           str(tmp_path / "runs"), "--json"], capture_output=True, text=True,
+                          timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    cli = read_run(json.loads(proc.stdout)["folder"])
+    assert cli.rows.tobytes() == api.rows.tobytes()
+    setpoint = api["ref:speed_setpoint"][-1]
+    np.testing.assert_allclose(api["y:belt_speed"][-1], setpoint / 2, rtol=1e-3)
+    np.testing.assert_allclose(api["sent:belt_speed"][-1], setpoint, rtol=1e-3)

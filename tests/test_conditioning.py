@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from plantrig.io import _conditioning as cond
-from plantrig.io._conditioning import (
+from plantrig.sim import _conditioning as cond
+from plantrig.sim._conditioning import (
     ActuatorChain,
     ChainSpecError,
     SensorChain,
@@ -325,8 +325,8 @@ def test_bad_seed_is_refused() -> None:
         build_sensor_chain([{}], seed=-1)
 
 
-def test_io_package_exports_the_chains() -> None:
-    import plantrig.io as pio
+def test_sim_package_exports_the_chains() -> None:
+    import plantrig.sim as psim
 
     for name in (
         "SensorChain",
@@ -339,6 +339,6 @@ def test_io_package_exports_the_chains() -> None:
         "eng_to_counts",
         "counts_to_eng",
     ):
-        assert name in pio.__all__
-        assert getattr(pio, name) is getattr(cond, name)
-    assert isinstance(pio.build_sensor_chain([{}], seed=0), SensorChain)
+        assert name in psim.__all__
+        assert getattr(psim, name) is getattr(cond, name)
+    assert isinstance(psim.build_sensor_chain([{}], seed=0), SensorChain)
