@@ -119,6 +119,9 @@ def cmd_check(args: argparse.Namespace) -> int:
             return EXIT_USAGE
         print(f"scenario: {scenario.name}: {len(scenario.steps)} step(s), "
               f"{len(scenario.verdicts)} verdict(s); {args.scenario}: ok")
+    if args.bench:
+        from plantrig._readiness_cli import bench_report
+        return bench_report(rig, args.seconds)
     return EXIT_OK
 
 
@@ -279,7 +282,9 @@ def build_parser() -> argparse.ArgumentParser:
                                    "model summary: modes, stability, ranks, tick warnings. "
                                    "An ODE plant's module is Python code and is imported "
                                    "(its path and SHA-256 are printed first). Exit codes: "
-                                   "0 the rig file is sound, 2 a mistake in it, or a model "
+                                   "0 the rig file is sound (with --bench: and this machine "
+                                   "holds its rate), 1 with --bench: the rate does not hold "
+                                   "here, 2 a mistake in it, or a model "
                                    "module that came with a run folder (see --trust-model); "
                                    "141 the reader closed the pipe before the summary was "
                                    "written (plantrig check RIG | head), as shell tools do.")
@@ -287,6 +292,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
     p.add_argument("--scenario", metavar="FILE",
                    help="also check a scenario file against this rig (nothing is run)")
+    p.add_argument("--bench", action="store_true",
+                   help="also judge whether this machine holds the rig's rate: what decides "
+                        "it here, a short pacing test at the rig's tick, the largest rate "
+                        "that would hold (exit code 1 when the rate does not hold)")
+    p.add_argument("--seconds", type=float, default=2.0,
+                   help="length of the --bench pacing test (default 2)")
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("run", help="run a rig and write a run folder",

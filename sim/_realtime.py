@@ -4,12 +4,16 @@ docs/platform.md: a full garbage collection stalled the loop ~99 ms, so collect,
 and disable the collector for the run; a busy thread delays wake-ups by one GIL switch
 interval, so lower it; SCHED_FIFO and a pinned core help where permitted, but a thread
 spinning close to 100 % under SCHED_FIFO gets throttled (50 ms stalls), so FIFO is used
-only when the spin window is under half the tick.
+only when the spin window is under half the tick. Pages are locked (mlockall) so a page
+fault cannot stall a tick, and the timer slack is cut to 1 ns so the sleeping part of
+each wait wakes when asked (docs/performance.md, "Preparing a bench machine").
 """
 
 from __future__ import annotations
 
 import contextlib
+import ctypes
+import ctypes.util
 import gc
 import os
 import sys
@@ -18,6 +22,8 @@ from dataclasses import dataclass, field
 
 FIFO_PRIORITY = 10
 SWITCH_INTERVAL_S = 1e-4
+PR_SET_TIMERSLACK, PR_GET_TIMERSLACK = 29, 30
+MCL_CURRENT, MCL_FUTURE = 1, 2
 
 
 @dataclass
@@ -25,6 +31,7 @@ class RealtimeReport:
     gc_frozen: bool = False
     cpu: int | None = None
     scheduler: str = "SCHED_OTHER"
+    memory_locked: bool = False
     notes: list[str] = field(default_factory=list)
 
 
@@ -37,6 +44,9 @@ def realtime_process(tick_ns: int, spin_ns: int) -> Iterator[RealtimeReport]:
     old_policy = os.sched_getscheduler(0) if hasattr(os, "sched_getscheduler") else None
     old_param = os.sched_getparam(0) if hasattr(os, "sched_getparam") else None
     gc_was_enabled = gc.isenabled()
+    name = ctypes.util.find_library("c")
+    libc = ctypes.CDLL(name, use_errno=True) if name else None
+    old_slack = libc.prctl(PR_GET_TIMERSLACK, 0, 0, 0, 0) if libc else -1
     try:
         gc.collect()
         gc.freeze()
@@ -59,8 +69,18 @@ def realtime_process(tick_ns: int, spin_ns: int) -> Iterator[RealtimeReport]:
                                     "running under SCHED_OTHER")
         elif old_policy is not None:
             report.notes.append("tick too short to spin under SCHED_FIFO; SCHED_OTHER")
+        if libc is not None:
+            libc.prctl(PR_SET_TIMERSLACK, 1, 0, 0, 0)
+            report.memory_locked = libc.mlockall(MCL_CURRENT | MCL_FUTURE) == 0
+            if not report.memory_locked:
+                report.notes.append(f"memory not locked ({os.strerror(ctypes.get_errno())})")
         yield report
     finally:
+        if libc is not None:
+            if report.memory_locked:
+                libc.munlockall()
+            if old_slack > 0:
+                libc.prctl(PR_SET_TIMERSLACK, old_slack, 0, 0, 0)
         if old_policy is not None and old_param is not None:
             with contextlib.suppress(OSError):
                 os.sched_setscheduler(0, old_policy, old_param)
