@@ -323,6 +323,61 @@ class OdeStepper:
         self.commit()
 
 
+def ticks_per_sample(sample_time: float, tick: float) -> int | None:
+    """The whole number of ticks in a discrete model's sample time, or None."""
+    ratio = sample_time / tick
+    every = round(ratio)
+    return every if every >= 1 and abs(ratio - every) <= 1e-9 * ratio else None
+
+
+class HeldLinearStepper(LinearStepper):
+    """A discrete model whose sample time is ``every`` ticks (multi-rate).
+
+    On the tick of each model sample it reads u, gives y = C x + D u and computes the
+    next model state; on the ticks in between the input is not read and state and
+    output are held (zero-order hold), and the next state shows on the tick of the next
+    sample.
+    """
+
+    def __init__(self, Ad: Matrix, Bd: Matrix, C: Matrix, D: Matrix, x0: Vector, every: int,
+                 xu: Vector | None = None) -> None:
+        self.every = every
+        self._phase = 0
+        self._pending = np.zeros(Ad.shape[0])
+        self._y_held = np.zeros(C.shape[0])
+        super().__init__(Ad, Bd, C, D, x0, xu)
+
+    def reset(self) -> None:
+        super().reset()
+        self._phase = 0
+        self._pending[:] = 0.0
+        self._y_held[:] = 0.0
+
+    def output_only(self, t: float) -> None:
+        if self._phase == 0:
+            super().output_only(t)
+        else:
+            self.y[:] = self._y_held
+
+    def step(self, t: float) -> None:
+        if self._phase == 0:
+            np.dot(self._block, self._xu, out=self._next)
+            self._pending[:] = self.x_next
+        else:
+            self.y[:] = self._y_held
+        self.x_next[:] = self._pending if self._phase == self.every - 1 else self.x
+
+    def commit(self) -> None:
+        if self._phase == 0:
+            self._y_held[:] = self.y
+        self.x[:] = self.x_next
+        self._phase = (self._phase + 1) % self.every
+
+    def output_and_advance(self, t: float) -> None:
+        self.step(t)
+        self.commit()
+
+
 Stepper = LinearStepper | OdeStepper | DelayedLinearStepper
 
 
@@ -343,9 +398,12 @@ def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
         ad, bd = zoh(plant.A, plant.B, dt)
         return LinearStepper(ad, bd, plant.C, plant.D, x_init, xu)
     if isinstance(plant, DiscretePlant):
-        if not np.isclose(plant.dt, dt, rtol=1e-9, atol=0.0):
+        every = ticks_per_sample(plant.dt, dt)
+        if every is None:
             raise ModelError("dt", f"sample time {plant.dt} s differs from the rig tick {dt} s;"
-                             " a discrete model runs only at its own sample time")
+                             " a discrete model runs at the tick or a whole multiple of it")
+        if every > 1:
+            return HeldLinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init, every, xu)
         return LinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init, xu)
     return OdeStepper(plant, dt, method, substeps, x_init, xu)
 

@@ -39,6 +39,7 @@ from plantrig.sim._plant import (
     ModelError,
     OdePlant,
     Plant,
+    ticks_per_sample,
 )
 from plantrig.sim._references import TABLE_BETWEEN, Ramp, Reference, Sine, Step, Table
 
@@ -395,9 +396,10 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
             dt = c.take(t, "dt", "plant", "number", check=_positive)
             if all(v is not None for v in mats[:3]) and dt is not None:
                 plant = DiscretePlant.from_matrices(*mats, dt)
-                if tick is not None and not math.isclose(dt, tick, rel_tol=1e-9):
-                    c.add("plant.dt", f"expected the rig tick ({tick} s) for a discrete model, "
-                                      f"found {dt} s; resample the model or change rig.tick")
+                if tick is not None and ticks_per_sample(dt, tick) is None:
+                    c.add("plant.dt", f"expected the rig tick ({tick} s) or a whole multiple "
+                                      f"of it, found {dt} s ({dt / tick:.4g} ticks); resample "
+                                      "the model or change rig.tick")
         elif kind == "transfer_function":
             plant = _transfer_function(c, t)
         else:

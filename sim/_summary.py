@@ -39,7 +39,14 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._plant import DiscretePlant, LinearPlant, ModelError, OdePlant, Plant
+from plantrig.sim._plant import (
+    DiscretePlant,
+    LinearPlant,
+    ModelError,
+    OdePlant,
+    Plant,
+    ticks_per_sample,
+)
 
 TICK_FRACTION = 0.1
 BOUNDARY_TOL = 1e-9     # relative to max(1, ||A||): "on the imaginary axis / unit circle"
@@ -317,7 +324,9 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
         obsv = _rank(controllability_matrix(A.T, C.T))
         stability = classify_stability(A, discrete=False)
     elif isinstance(plant, DiscretePlant):
-        kind, A, B, C = f"discrete LTI (dt {plant.dt:g} s)", plant.Ad, plant.Bd, plant.C
+        every = ticks_per_sample(plant.dt, dt)
+        held = f" = {every} ticks, held in between" if every and every > 1 else ""
+        kind, A, B, C = f"discrete LTI (dt {plant.dt:g} s{held})", plant.Ad, plant.Bd, plant.C
         eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
         with np.errstate(divide="ignore"):
             cont_eig = np.log(eig.astype(complex)) / plant.dt

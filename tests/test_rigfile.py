@@ -74,8 +74,8 @@ MISTAKES = [
     ("x0_length", ('outputs = [{ name = "y", unit = "V" }]',
                    'outputs = [{ name = "y", unit = "V" }]\nx0 = [1.0, 2.0]'), "plant.x0",
      "expected 1 values (one per state), found 2"),
-    ("discrete_dt", ('kind = "lti"', 'kind = "discrete_lti"\ndt = 0.02'), "plant.dt",
-     "expected the rig tick (0.01 s) for a discrete model, found 0.02 s"),
+    ("discrete_dt", ('kind = "lti"', 'kind = "discrete_lti"\ndt = 0.015'), "plant.dt",
+     "expected the rig tick (0.01 s) or a whole multiple of it, found 0.015 s"),
     ("ode_missing_module", ('kind = "lti"\nA = [[-2.0]]\nB = [[2.0]]\nC = [[1.0]]',
                             'kind = "ode"\nmodule = "nowhere.py"\ndynamics = "f"\n'
                             'output = "h"'), "plant.module", "found no file"),
