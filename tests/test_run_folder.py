@@ -64,7 +64,7 @@ def received(tmp_path_factory: pytest.TempPathFactory) -> Path:
     done = plantrig("run", f"configs/{RIG}", "--scenario", f"configs/{SCENARIO}",
                     "--out", "runs", cwd=bench)
     assert done.returncode == 0, done.stdout + done.stderr
-    [folder] = list((bench / "runs").iterdir())
+    [folder] = [p for p in (bench / "runs").iterdir() if p.is_dir()]
     shutil.rmtree(bench / "configs")
     away = tmp_path_factory.mktemp("elsewhere") / "received" / folder.name
     away.parent.mkdir()

@@ -176,7 +176,7 @@ def test_an_inline_password_is_in_no_record(tmp_path: Path, make_broker: Any) ->
     done = plantrig("rerun", str(inline), "--out", "reruns", "--set",
                     f"link.password={SECOND}", cwd=bench)
     assert done.returncode == 0, done.stdout + done.stderr
-    [rerun] = (bench / "reruns").iterdir()
+    [rerun] = [p for p in (bench / "reruns").iterdir() if p.is_dir()]
     done = plantrig("runs", "--out", "runs", cwd=bench)   # the catalogue, rebuilt too
     assert (bench / "runs" / "catalogue.sqlite").is_file(), done.stdout + done.stderr
 
