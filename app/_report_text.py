@@ -263,7 +263,7 @@ def manifest_section(folder: Path, readiness: Readiness) -> Section:
 
 def record_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
     rows: Rows = [("tick data read from", record.source)]
-    rec = s.get("record") if isinstance(s.get("record"), dict) else {}
+    rec: dict[str, Any] = s["record"] if isinstance(s.get("record"), dict) else {}
     rows += [("record problem", str(p)) for p in rec.get("problems", [])]
     rows += [("lost from the record", str(p)) for p in rec.get("lost", [])]
     if not rec.get("problems") and not rec.get("lost"):

@@ -340,10 +340,10 @@ def _measure(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> tuple[float
                       f"range {y.min():.6g}..{y.max():.6g}"
     if crit in ("tracking_rms", "tracking_max"):
         assert r is not None
-        err = _metrics.tracking_error(t, y, r)
+        tracking = _metrics.tracking_error(t, y, r)
         if crit == "tracking_rms":
-            return err.rms, f"over {start:g}..{stop:g} s ({err.samples} ticks)"
-        return err.max_abs, f"at {err.time_of_max:g} s"
+            return tracking.rms, f"over {start:g}..{stop:g} s ({tracking.samples} ticks)"
+        return tracking.max_abs, f"at {tracking.time_of_max:g} s"
     if crit == "steady_state_error":
         assert r is not None
         target = float(r[-1]) if isinstance(r, np.ndarray) else float(r)
