@@ -53,6 +53,9 @@ def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
         for issue in exc.issues:
             print(f"error: {issue}", file=sys.stderr)
         return EXIT_USAGE
+    if settings.kind == "modbus":  # the controller polls: plantrig._modbus_cli
+        from plantrig._modbus_cli import run_modbus_controller_cli
+        return run_modbus_controller_cli(args, rig, settings, controller, READY_WORD)
     if settings.kind == "mqtt":  # message-based: its own loop (plantrig._mqtt_cli)
         from plantrig._mqtt_cli import run_mqtt_controller
         return run_mqtt_controller(args, rig, settings, controller, READY_WORD)
@@ -112,6 +115,9 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     from plantrig.io import FdPort, build_link, open_pty_pair
     from plantrig.sim import run_to_folder
 
+    if args.modbus:
+        from plantrig._modbus_cli import cmd_demo_modbus
+        return cmd_demo_modbus(args, load, print_outcome, wait_ready)
     if args.mqtt:
         from plantrig._mqtt_cli import cmd_demo_mqtt
         return cmd_demo_mqtt(args, load, print_outcome, wait_ready)
@@ -188,7 +194,8 @@ def add_parsers(sub: Any, load: Callable[[str], Any],
                               + CAUTION,
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("rig", help="rig file (TOML) with a [link] table")
-    p.add_argument("--port", help="device path or pyserial URL (overrides link.port)")
+    p.add_argument("--port", help="device path or pyserial URL (overrides link.port); "
+                                  "MQTT and Modbus TCP: PORT or HOST:PORT")
     p.add_argument("--no-realtime", action="store_true",
                    help="do not ask for SCHED_FIFO")
     p.set_defaults(func=lambda a: cmd_controller(a, load))
@@ -200,9 +207,13 @@ def add_parsers(sub: Any, load: Callable[[str], Any],
                        epilog=f"{EXIT_CODE_HELP}\n\n{CAUTION}",
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--rig", help=f"rig file (default: {DEMO_RIG.name}, or "
-                                 "conveyor_mqtt.toml with --mqtt)")
+                                 "conveyor_mqtt.toml with --mqtt, conveyor_modbus.toml "
+                                 "with --modbus)")
     p.add_argument("--out", default="runs", help="folder for run folders (default: runs)")
     p.add_argument("--mqtt", action="store_true",
                    help="through a local mosquitto it starts on a free loopback port, "
                         "instead of a pty pair")
+    p.add_argument("--modbus", action="store_true",
+                   help="over Modbus TCP on a free loopback port: the rig is the server, "
+                        "the reference controller polls it as a PLC would")
     p.set_defaults(func=lambda a: cmd_demo(a, load, print_outcome))

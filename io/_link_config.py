@@ -40,6 +40,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
+from plantrig.io._modbus_config import MODBUS_KEYS, check_modbus_keys
 from plantrig.io._mqtt_config import MQTT_KEYS, check_mqtt_keys
 from plantrig.sim import (
     ControllerLink,
@@ -189,10 +190,17 @@ def _build_mqtt(rig: Rig, settings: LinkSettings, port: Any) -> ControllerLink:
     return build_mqtt_link(rig, settings, port)
 
 
-# The dispatch on [link].kind; MQTT's keys and checks live in plantrig.io._mqtt_config.
+def _build_modbus(rig: Rig, settings: LinkSettings, port: Any) -> ControllerLink:
+    from plantrig.io._modbus_link import ModbusLink  # pymodbus only when Modbus is used
+    return ModbusLink(rig, settings, port)
+
+
+# The dispatch on [link].kind; MQTT's keys and checks live in plantrig.io._mqtt_config,
+# Modbus's in plantrig.io._modbus_config.
 LINK_KINDS: dict[str, LinkKind] = {
     "serial": LinkKind(frozenset({"port", *SERIAL_DEFAULTS}), _check_serial, _build_serial),
     "mqtt": LinkKind(MQTT_KEYS, check_mqtt_keys, _build_mqtt),
+    "modbus": LinkKind(MODBUS_KEYS, check_modbus_keys, _build_modbus),
 }
 
 

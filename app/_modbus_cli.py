@@ -1,0 +1,112 @@
+"""Command-line parts for a controller on a Modbus link: `plantrig controller` on a
+modbus rig polls it as a PLC would, and `plantrig demo --modbus` runs the whole bench on
+one machine over Modbus TCP on a free loopback port."""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import socket
+import subprocess
+import sys
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from plantrig import show_caution
+
+EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
+DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_modbus.toml"
+READY_TIMEOUT_S = 20.0
+
+
+def run_modbus_controller_cli(args: argparse.Namespace, rig: Any, settings: Any,
+                              controller: Any, ready_word: str) -> int:
+    """`plantrig controller` for a modbus [link]: poll until the rig goes away."""
+    from plantrig.io._modbus_config import modbus_setup
+    from plantrig.io._modbus_controller import run_modbus_controller
+    from plantrig.io._refcontroller import prefer_realtime
+
+    try:
+        setup = modbus_setup(rig, settings, args.port)
+    except ValueError as exc:
+        print(f"error: --port: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    stopping: list[bool] = []
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(sig, lambda *_: stopping.append(True))
+    where = (f"{setup['host']}:{setup['port']}" if setup["transport"] == "tcp"
+             else setup["serial_port"])
+
+    scheduler = prefer_realtime() if not args.no_realtime else "SCHED_OTHER"
+
+    def ready() -> None:
+        print(f"{ready_word} on modbus {setup['transport']} {where} (unit "
+              f"{setup['unit_id']}, {controller.law.__class__.__name__}, {scheduler})",
+              flush=True)
+
+    reason = run_modbus_controller(controller, setup, stop=lambda: bool(stopping),
+                                   on_connected=ready)
+    c = controller.counts
+    print(f"controller: {reason}; answered {c.rx_ok}", flush=True)
+    print(f"controller: rig states {' '.join(c.rig_states) or 'none'}", flush=True)
+    return EXIT_OK if reason != "no connection to the rig" else EXIT_FAULT
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def cmd_demo_modbus(args: argparse.Namespace, load: Callable[[str], Any],
+                    print_outcome: Callable[[Path, dict[str, Any]], None],
+                    wait_ready: Callable[[subprocess.Popen[str], float], str | None]) -> int:
+    """Rig (the Modbus server) and the reference controller (the client), in real time."""
+    from plantrig.io import build_link
+    from plantrig.sim import run_to_folder
+
+    show_caution()
+    rig = load(args.rig or str(DEMO_RIG))
+    if (rig.link or {}).get("kind") != "modbus":
+        print(f"error: {rig.path}: link.kind: expected 'modbus' for demo --modbus, found "
+              f"{(rig.link or {}).get('kind')!r}", file=sys.stderr)
+        return EXIT_USAGE
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    where = f"127.0.0.1:{free_port()}"
+    link = build_link(rig, port=where)
+    link.open()       # the server listens before the controller connects
+    proc = subprocess.Popen([sys.executable, "-m", "plantrig", "controller", str(rig.path),
+                             "--port", where], stdout=subprocess.PIPE, text=True)
+    try:
+        ready = wait_ready(proc, READY_TIMEOUT_S)
+        if ready is None:
+            print("error: the reference controller did not connect", file=sys.stderr)
+            link.close()
+            return EXIT_FAULT
+        print(f"{ready} (pid {proc.pid})")
+        print(f"rig: {rig.name}, {1 / rig.tick:g} Hz for {rig.duration:g} s in real time, "
+              f"Modbus TCP server on {where}")
+        folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
+    finally:
+        try:   # the controller ends when the rig's server closes
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.terminate()
+            proc.wait(timeout=5)
+    assert proc.stdout is not None
+    for line in proc.stdout.read().splitlines():
+        print(line)
+    print_outcome(folder, summary)
+    h = summary["link"]
+    bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
+    print(f"link: requests in {h.get('frames_in', 0):.0f}, commands in "
+          f"{h.get('commands_in', 0):.0f} (used {h.get('commands_used', 0):.0f}), refused "
+          f"{bad:.0f}, late {h.get('late', 0):.0f}, link lost {h.get('link_lost', 0):.0f}; "
+          f"answer used {h.get('latency_ticks_p50', 0):.0f} tick(s) after its sensor "
+          f"values p50, {h.get('latency_ticks_max', 0):.0f} max")
+    code = int(summary["exit_code"])
+    print("demo: ok" if code == EXIT_OK else
+          f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")
+    return code
