@@ -16,7 +16,6 @@ platforms where spawning is costly).
 from __future__ import annotations
 
 import json
-import math
 import select
 import socket
 import subprocess
@@ -37,7 +36,7 @@ from plantrig.io._mqtt_worker import (
     worker_main,
 )
 from plantrig.io._rig_state import RigState
-from plantrig.sim import Event, Rig, Signal
+from plantrig.sim import Event, Rig, Signal, silent_ticks_allowed
 from plantrig.sim._contracts import Vector
 
 SOCKET_BUFFER = 1 << 16
@@ -75,7 +74,7 @@ class MqttLink:
         self._out = bytearray(self._sensor.size)
         self._in = bytearray(65536)
         self._newest = np.zeros(self.m)
-        self.watchdog_ticks = max(1, math.ceil(watchdog_round(settings.watchdog_timeout / tick)))
+        self.watchdog_ticks = silent_ticks_allowed(settings.watchdog_timeout, tick)
         self.lockstep = settings.lockstep
         self._sock: socket.socket | None = None
         self._peer: socket.socket | None = None
@@ -313,11 +312,6 @@ class MqttLink:
             elif code == 0x48:  # b"H"
                 self._health_raw = bytes(buf[1:n])
         return tuple(new)
-
-
-def watchdog_round(ticks: float) -> float:
-    """Tick count of a timeout, robust to float error (0.1 / 0.002 = 50.000000000000001)."""
-    return round(ticks, 9)
 
 
 def build_mqtt_link(rig: Rig, link: Any, endpoint: Any = None) -> MqttLink:

@@ -30,7 +30,7 @@ from plantrig.io._link_config import LinkSettings
 from plantrig.io._pty import FdPort
 from plantrig.io._rig_state import RigState
 from plantrig.io._wire import WireFormat
-from plantrig.sim import Event, Rig
+from plantrig.sim import Event, Rig, silent_ticks_allowed
 
 Vector = np.ndarray
 RETRY_S = 0.5          # a failed port is retried this often (plant time)
@@ -147,7 +147,7 @@ class SerialLink:
         self.hi = [s.max for s in rig.inputs]
         self.clamp = settings.out_of_range == "clamp"
         self.lockstep = settings.lockstep
-        self.timeout_ticks = int(math.floor(settings.watchdog_timeout / rig.tick + 1e-9))
+        self.timeout_ticks = silent_ticks_allowed(settings.watchdog_timeout, rig.tick)
         self.retry_ticks = max(1, round(RETRY_S / rig.tick))
         self.gate = _EventGate(settings.events_per_kind)
         self.events: list[Event] = []

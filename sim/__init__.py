@@ -79,6 +79,7 @@ from plantrig.sim._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
 from plantrig.sim._summary import ModelSummary, summarize
 from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
 from plantrig.sim._verdicts import Verdict, evaluate, verdict_lines, write_verdicts
+from plantrig.sim._watchdog import silent_ticks_allowed
 
 __all__ = [
     "Clock", "Command", "CommandInbox", "ControllerLink", "ControllerSpec", "DiscretePlant",
@@ -102,6 +103,7 @@ __all__ = [
     "ActuatorChain", "ActuatorChannel", "ChainSpecError", "SensorChain", "SensorChannel",
     "build_actuator_chain", "build_chains", "build_sensor_chain", "counts_to_eng",
     "eng_to_counts",
+    "silent_ticks_allowed",
     # outcomes
     "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "AcceptanceRules", "RuleResult",
     # run records

@@ -41,6 +41,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim._plant import DiscretePlant, LinearPlant, LinearStepper, OdePlant, zoh
+from plantrig.sim._watchdog import silent_ticks_allowed
 
 if TYPE_CHECKING:
     from plantrig.sim._plant import Stepper
@@ -211,6 +212,8 @@ def plant_target(rig: Rig, target: str) -> tuple[tuple[str, int, int] | str | No
     plant = rig.plant
     if getattr(plant, "has_dead_time", False):
         return None, "a plant with dead time takes no plant faults (not supported yet)"
+    if getattr(plant, "fmu_file", None) is not None:
+        return None, "an FMU plant takes no plant faults (its parameters are fixed at start)"
     if isinstance(plant, OdePlant):
         numeric = sorted(k for k, v in plant.params.items() if _is_number(v))
         if target in numeric:
@@ -395,13 +398,13 @@ class Faults:
         timeout = rig.safety.watchdog_timeout
         if has_link and isinstance(rig.link, dict):
             timeout = float(rig.link.get("watchdog_timeout", timeout))
-        self.watchdog_ticks = max(1, math.ceil(round(timeout / rig.tick, 9)))
+        self.watchdog_ticks = silent_ticks_allowed(timeout, rig.tick)
         self._last_fresh = self._silent_from = 0
         self.lost = False
         self.counts = {"frames_dropped": 0, "frames_corrupted": 0}
         # plant: the model as given, so faults compose and clear back to it exactly
         plant = rig.plant
-        self._linear = not isinstance(plant, OdePlant)   # LTI (with or without dead time)
+        self._linear = isinstance(plant, LinearPlant | DiscretePlant)  # with dead time too
         n = plant.shape[0]
         if isinstance(plant, LinearPlant):
             self._a0, self._b0 = plant.A.copy(), plant.B.copy()
@@ -643,7 +646,7 @@ class Faults:
                 self._refresh(k)
         else:
             cmd[:] = self._last_cmd
-            if not self.lost and k - self._last_fresh >= self.watchdog_ticks:
+            if not self.lost and k - self._last_fresh > self.watchdog_ticks:
                 self.lost = True
                 self._silent_from = self._last_fresh
                 self.emit(k, "link_lost", f"rehearsed link fault: no command for "

@@ -42,7 +42,7 @@ from plantrig.io import (
     encode_frame,
 )
 from plantrig.io._mqtt_payload import Codec, PayloadError
-from plantrig.sim import Event, Rig, RunData, load_rig, simulate
+from plantrig.sim import Event, Rig, RunData, load_rig, silent_ticks_allowed, simulate
 
 CONFIGS = Path(__file__).parents[1] / "configs"
 MQTT = (CONFIGS / "conveyor_mqtt.toml").read_text()
@@ -255,6 +255,11 @@ def test_broker_restart_mid_run_keeps_the_tick(tmp_path: Path,
     assert events[gone].tick <= lost.tick < reconnected.tick <= restored.tick < rig.n_ticks
     assert h["reconnects"] >= 1 and h["disconnects"] >= 1 and h["dropped_offline"] > 0
     assert wire["fresh"][restored.tick] == 1
+    # the one watchdog rule (sim/_watchdog.py): lost at the first tick whose silence
+    # exceeds the timeout, the same tick as on serial and in a rehearsal
+    last_fresh = int(np.flatnonzero(wire["fresh"][:lost.tick] == 1)[-1])
+    assert lost.tick - last_fresh == silent_ticks_allowed(
+        float(rig.link["watchdog_timeout"]), rig.tick) + 1   # type: ignore[index]
     u = wire["u:voltage"]  # on_link_silence = "hold": the last good command is held
     assert np.isfinite(u).all() and np.all(u[lost.tick:restored.tick] == u[lost.tick])
 
