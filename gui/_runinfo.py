@@ -145,5 +145,6 @@ def pending_verdicts(plan: ScenarioPlan | None) -> list[tuple[str, bool | None]]
     """Before the run has ended: the verdicts it will be judged by, not yet judged."""
     if plan is None or not plan.verdicts:
         return [("outcome and verdicts: judged when the run ends", None)]
-    return [(f"verdicts ({len(plan.verdicts)}), judged when the run ends:", None)] + \
-        [(f"  ..  {name}", None) for name in plan.verdicts]
+    lines: list[tuple[str, bool | None]] = [
+        (f"verdicts ({len(plan.verdicts)}), judged when the run ends:", None)]
+    return lines + [(f"  ..  {name}", None) for name in plan.verdicts]

@@ -56,6 +56,17 @@ ESTOP_KEY = dpg.mvKey_Escape
 ESTOP_KEY_NAME = "Esc"
 
 
+BANNER_CHARS_PER_LINE = 170      # caution text per banner line (15 px condensed font,
+BANNER_LINE_PX = 18              # about 7 px a character on the screenshots)
+
+
+def banner_height() -> int:
+    """About the height the caution banner takes (it sizes itself to show the whole
+    text at all times); the plots share what is left."""
+    lines = -(-len(CAUTION) // BANNER_CHARS_PER_LINE)
+    return 10 + BANNER_LINE_PX * lines
+
+
 class DashboardView:
     """One dashboard window in this process's dearpygui context."""
 
@@ -104,7 +115,8 @@ class DashboardView:
 
     # -- building ----------------------------------------------------------------------
     def _banner(self) -> None:
-        with dpg.child_window(tag=T + "banner", height=44, border=False, no_scrollbar=True):
+        with dpg.child_window(tag=T + "banner", auto_resize_y=True, border=False,
+                              no_scrollbar=True):
             dpg.add_text(CAUTION, wrap=WIDTH - 40)
         dpg.bind_item_theme(T + "banner", self.themes.banner)
 
@@ -140,7 +152,7 @@ class DashboardView:
             dpg.add_text(f"software E-stop (button or the {ESTOP_KEY_NAME} key): the loop "
                          "forces every input to its safe value and latches. Not a safety "
                          "function.", wrap=LEFT_W - 10)
-            self._run_panel(230)
+            self._run_panel(280)
             with dpg.child_window(width=LEFT_W, height=-1, tag=T + "controls"):
                 self._button("Reset interlock / E-stop", self.on_reset, "reset")
                 dpg.add_separator()
@@ -207,7 +219,7 @@ class DashboardView:
 
     def _plots(self, max_span_s: float) -> None:
         n = max(1, len(self.specs))
-        height = int(min(260, max(150, (HEIGHT - 190) / n)))
+        height = int(min(260, max(140, (HEIGHT - 150 - banner_height()) / n)))
         with dpg.child_window(width=CENTRE_W, height=-1, tag=T + "plots"):
             with dpg.group(horizontal=True):
                 dpg.add_slider_double(tag=T + "span", label="window [s]", width=160,
