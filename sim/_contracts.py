@@ -18,14 +18,23 @@ from numpy.typing import NDArray
 Vector = NDArray[np.float64]
 
 
+REHEARSED = "rehearsed"   # Event.source of what a fault injection made happen
+
+
 @dataclass(frozen=True, slots=True)
 class Event:
-    """Something worth a line in the run record: a trip, a bad frame, a link loss."""
+    """Something worth a line in the run record: a trip, a bad frame, a link loss.
+
+    ``source`` says where it came from when logic must tell ("rehearsed" for a link
+    fault a scenario or the operator injected, "" for the real thing); safety reads
+    it, never the wording of ``detail``.
+    """
 
     tick: int
     time: float
     kind: str
     detail: str = ""
+    source: str = ""
 
 
 class SignalChain(Protocol):

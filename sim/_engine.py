@@ -229,8 +229,8 @@ class Engine:
             self.stop_why = why
         self.stop_requested = True
 
-    def _event(self, tick: int, kind: str, detail: str = "") -> None:
-        self._record_event(Event(tick, tick * self.rig.tick, kind, detail))
+    def _event(self, tick: int, kind: str, detail: str = "", source: str = "") -> None:
+        self._record_event(Event(tick, tick * self.rig.tick, kind, detail, source))
 
     def _record_event(self, event: Event) -> None:
         self.events.append(event)

@@ -40,6 +40,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._contracts import REHEARSED
 from plantrig.sim._plant import DiscretePlant, LinearPlant, LinearStepper, OdePlant, zoh
 from plantrig.sim._watchdog import silent_ticks_allowed
 
@@ -372,7 +373,7 @@ class Faults:
     """
 
     def __init__(self, rig: Rig, stepper: Stepper, columns: list[str], row: Vector,
-                 emit: Callable[[int, str, str], None], has_link: bool) -> None:
+                 emit: Callable[..., None], has_link: bool) -> None:
         self.rig = rig
         self.tick = rig.tick
         self.stepper = stepper
@@ -642,7 +643,8 @@ class Faults:
             if self.lost:
                 self.lost = False
                 self.emit(k, "link_restored", "rehearsed link fault: a command got through "
-                                              f"after {(k - self._silent_from) * self.tick:g} s")
+                                              f"after {(k - self._silent_from) * self.tick:g} s",
+                          REHEARSED)
                 self._refresh(k)
         else:
             cmd[:] = self._last_cmd
@@ -651,7 +653,8 @@ class Faults:
                 self._silent_from = self._last_fresh
                 self.emit(k, "link_lost", f"rehearsed link fault: no command for "
                                           f"{(k - self._last_fresh) * self.tick:g} s "
-                                          f"(watchdog timeout {self.watchdog_ticks} ticks)")
+                                          f"(watchdog timeout {self.watchdog_ticks} ticks)",
+                          REHEARSED)
                 self._refresh(k)
         return ok
 

@@ -32,7 +32,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._contracts import Event
+from plantrig.sim._contracts import REHEARSED, Event
 from plantrig.sim._errors import one_of
 from plantrig.sim._limits import LimitBank, LimitSpec
 
@@ -231,7 +231,7 @@ class Safety:
         """Follow link watchdog events (from the link, or from a rehearsed link fault)."""
         if event.kind not in LINK_EVENTS:
             return
-        source = "fault" if event.detail.startswith("rehearsed") else "link"
+        source = "fault" if event.source == REHEARSED else "link"
         if event.kind == "link_lost":
             self._link_sources.add(source)
             self.cause(event.tick, "link_lost", event.detail)

@@ -197,8 +197,9 @@ def test_link_lost_from_a_link_fault_trips_the_watchdog_interlock(tmp_path: Path
         "kind": "link_drop", "target": "from_controller", "duration": 0.5})})
     lost = next(e for e in outcome.events if e.kind == "link_lost")
     trip = next(e for e in outcome.events if e.kind == "trip")
-    # the last command got through at tick -1 (before the run): silence of 5 ticks
-    assert lost.tick == 4 and trip.tick == lost.tick
+    # the last command got through at tick -1 (before the run): at tick 5 the silence
+    # (6 ticks, 60 ms) first exceeds the 50 ms timeout (sim/_watchdog.py)
+    assert lost.tick == 5 and trip.tick == lost.tick
     assert trip.detail.startswith("watchdog: link_lost: ")
     fresh = rows[:, cols.index("fresh")]
     assert not fresh[:50].any() and fresh[50:].all()
