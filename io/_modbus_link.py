@@ -14,7 +14,6 @@ accepted writes: no accepted write for ``watchdog_timeout`` is ``link_lost``.
 from __future__ import annotations
 
 import json
-import math
 import select
 import socket
 import subprocess
@@ -28,7 +27,7 @@ from plantrig.io._link_config import LinkSettings
 from plantrig.io._modbus_config import modbus_setup
 from plantrig.io._modbus_worker import STATE_STRUCT, command_struct, sensor_struct
 from plantrig.io._rig_state import RigState
-from plantrig.sim import Event, Rig
+from plantrig.sim import Event, Rig, silent_ticks_allowed
 from plantrig.sim._contracts import Vector
 
 SOCKET_BUFFER = 1 << 16
@@ -58,7 +57,7 @@ class ModbusLink:
         self._out = bytearray(self._sensor.size)
         self._in = bytearray(65536)
         self._newest = np.zeros(self.m)
-        self.watchdog_ticks = max(1, math.ceil(round(settings.watchdog_timeout / rig.tick, 9)))
+        self.watchdog_ticks = silent_ticks_allowed(settings.watchdog_timeout, rig.tick)
         self.lockstep = settings.lockstep
         self.rig_state = RigState.for_rig(rig)
         self._sock: socket.socket | None = None
