@@ -105,8 +105,8 @@ class ModelSummary:
 
     def lines(self) -> list[str]:
         """Human-readable summary, one fact per line."""
-        out = [f"model: {self.kind}, {self.n_states} states, {self.n_inputs} inputs, "
-               f"{self.n_outputs} outputs"]
+        out = [f"model: {self.kind}, {_count(self.n_states, 'state')}, "
+               f"{_count(self.n_inputs, 'input')}, {_count(self.n_outputs, 'output')}"]
         for e in self.eigenvalues:
             out.append(f"  eigenvalue {e.real:+.6g} {e.imag:+.6g}j")
         if self.time_constants:
@@ -333,8 +333,16 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
         ctrb = _rank(controllability_matrix(A, B))
         obsv = _rank(controllability_matrix(A.T, C.T))
         stability = classify_stability(A, discrete=True)
+    elif not isinstance(plant, OdePlant):   # a co-simulation FMU: its own solver, opaque
+        name = getattr(plant, "fmu_file", None)
+        return ModelSummary(f"co-simulation FMU {name.name if name else ''} (its own solver, "
+                            "one doStep per tick)", n, m, p, np.zeros(0, complex), (),
+                            "not judged (a co-simulation FMU gives no derivatives)", None,
+                            None, (), None)
     else:
-        kind = f"nonlinear ODE ({method}, {substeps} substeps per tick), linearised at x0"
+        fmu = getattr(plant, "fmu_file", None)
+        kind = (f"model exchange FMU {fmu.name}, " if fmu else "nonlinear ODE ") + \
+            f"({method}, {substeps} substeps per tick), linearised at x0"
         x_lin = np.zeros(n) if x0 is None else np.asarray(x0, dtype=np.float64)
         try:
             A, _ = linearize(plant, x_lin)
@@ -373,3 +381,8 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
         warnings.append(f"not observable: rank {obsv} of {n}")
     return ModelSummary(kind, n, m, p, eig, time_constants, stability, ctrb, obsv,
                         tuple(warnings), equilibrium)
+
+
+def _count(n: int, noun: str) -> str:
+    """'1 input', '2 inputs'."""
+    return f"{n} {noun}{'' if n == 1 else 's'}"
