@@ -46,10 +46,11 @@ def model_to_load(rig_path: str | Path, overrides: Sequence[str] = ()) -> Path |
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, RigFileError):
         return None
     plant = doc.get("plant")
-    if not (isinstance(plant, dict) and plant.get("kind") == "ode"
-            and isinstance(plant.get("module"), str)):
+    key = {"ode": "module", "fmu": "file"}.get(plant.get("kind")) \
+        if isinstance(plant, dict) else None     # an FMU's binary is code too
+    if key is None or not isinstance(plant.get(key), str):
         return None
-    return (path.parent / plant["module"]).resolve()
+    return (path.parent / plant[key]).resolve()
 
 
 def model_guard(rig_path: str | Path, *, overrides: Sequence[str] = (), trust: bool = False,
@@ -66,7 +67,8 @@ def model_guard(rig_path: str | Path, *, overrides: Sequence[str] = (), trust: b
         return None         # no module, or loading the rig reports the missing file
     digest = sha256_file(module)
     record = from_folder or run_folder_of(rig_path) or run_folder_of(module)
-    said = f"model module {module} (SHA-256 {digest})"
+    fmu = module.suffix.lower() == ".fmu"
+    said = f"model {'FMU' if fmu else 'module'} {module} (SHA-256 {digest})"
     if record is None:
         print(f"loading {said}: this runs its code")
         return None
@@ -78,8 +80,9 @@ def model_guard(rig_path: str | Path, *, overrides: Sequence[str] = (), trust: b
         print(f"loading {said} (--trust-model): it came with the run folder {record}; "
               f"{finding}; this runs its code")
         return None
-    return (f"plant.module: {said} came with the run folder {record}; {finding}. Loading "
-            "it would run that code. Read it, then pass --trust-model to load it anyway")
+    return (f"plant.{'file' if fmu else 'module'}: {said} came with the run folder {record}; "
+            f"{finding}. Loading it would run that code. Read it, then pass --trust-model to "
+            "load it anyway")
 
 
 def _evidence(record: Path, module: Path, digest: str,

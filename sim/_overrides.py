@@ -166,10 +166,11 @@ def effective_text(doc: dict[str, Any]) -> str:
     return tomli_w.dumps(doc)
 
 
-def effective_copy(rig: Rig, module_copy: str | None) -> bytes:
+def effective_copy(rig: Rig, module_copy: str | None, key: str = "module") -> bytes:
     """The run folder's rig.toml for a rig built with overrides: its effective document,
-    with ``plant.module`` naming the module copy beside it (when there is one)."""
+    with ``plant.module`` (an FMU's ``plant.file``) naming the copy beside it (when there
+    is one)."""
     doc = tomllib.loads(rig.text)
     if module_copy is not None:
-        doc.setdefault("plant", {})["module"] = module_copy
+        doc.setdefault("plant", {})[key] = module_copy
     return effective_text(doc).encode("utf-8")

@@ -389,6 +389,9 @@ def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
     """
     n = plant.shape[0]
     x_init = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64).reshape(-1)
+    from plantrig.sim._fmu import FmuSlavePlant, FmuSlaveStepper  # no cycle: imported late
+    if isinstance(plant, FmuSlavePlant):
+        return FmuSlaveStepper(plant, dt, x_init, xu)
     if x_init.shape != (n,):
         raise ModelError("x0", f"has {x_init.size} entries, expected {n} (one per state)")
     if isinstance(plant, LinearPlant) and plant.has_dead_time:

@@ -24,7 +24,9 @@ from plantrig.sim._rigfile import ControllerSpec, Rig, Signal, build_rig
 
 # Files only plantrig writes, into every run folder at its start; either marks a record.
 RUN_FOLDER_MARKERS = ("run_start.json", "sources.json")
-ODE_ONLY_KEYS = ("module", "dynamics", "output", "params", "method", "substeps")
+ODE_ONLY_KEYS = ("module", "dynamics", "output", "params", "method", "substeps", "file",
+                 "interface", "variables")
+CODE_KINDS = ("ode", "fmu")    # plants whose model is code (a Python module, an FMU binary)
 
 
 class ModelNotLoaded(RuntimeError):
@@ -37,7 +39,8 @@ def _refuse(*_: Any) -> Any:
 
 
 def load_rig_as_data(path: str | Path) -> Rig:
-    """Read and check a rig file as load_rig does, without importing an ODE model.
+    """Read and check a rig file as load_rig does, without importing an ODE model or
+    loading an FMU.
 
     The returned Rig's plant has the right shape and parameters; calling its dynamics
     or output raises ModelNotLoaded.
@@ -45,7 +48,7 @@ def load_rig_as_data(path: str | Path) -> Rig:
     path = Path(path)
     text, doc = _read(path)
     plant_t = doc.get("plant")
-    if not (isinstance(plant_t, dict) and plant_t.get("kind") == "ode"):
+    if not (isinstance(plant_t, dict) and plant_t.get("kind") in CODE_KINDS):
         return build_rig(doc, path, text)
     counts = [len(plant_t.get(group, [])) if isinstance(plant_t.get(group), list) else 0
               for group in ("states", "inputs", "outputs")]

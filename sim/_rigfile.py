@@ -43,7 +43,7 @@ from plantrig.sim._plant import (
 )
 from plantrig.sim._references import TABLE_BETWEEN, Ramp, Reference, Sine, Step, Table
 
-PLANT_KINDS = ("lti", "transfer_function", "discrete_lti", "ode")
+PLANT_KINDS = ("lti", "transfer_function", "discrete_lti", "ode", "fmu")
 CONTROLLER_KINDS = ("pid", "state_feedback", "open_loop", "external")
 REFERENCE_KINDS = ("step", "ramp", "sine", "table", "constant")
 OVERRUN_POLICIES = ("skip", "catch_up", "stop")
@@ -372,6 +372,7 @@ PLANT_KEYS = {
                           "output_delay"},
     "discrete_lti": {"A", "B", "C", "D", "dt"},
     "ode": {"module", "dynamics", "output", "params", "method", "substeps"},
+    "fmu": {"file", "interface", "variables", "params", "method", "substeps"},
 }
 PLANT_COMMON = {"kind", "states", "inputs", "outputs", "x0"}
 
@@ -402,6 +403,8 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
                                       "the model or change rig.tick")
         elif kind == "transfer_function":
             plant = _transfer_function(c, t)
+        elif kind == "fmu":
+            plant, method, substeps = _fmu_plant(c, t, path)
         else:
             plant, method, substeps = _ode_plant(c, t, path, n, m, p)
         if isinstance(plant, LinearPlant) and ("input_delay" in t or "output_delay" in t):
@@ -459,6 +462,40 @@ def _roots(c: _Checker, key: str, values: list[Any] | None) -> list[complex] | N
                                        f"{describe_value(v)}")
             return None
     return out
+
+
+def _fmu_plant(c: _Checker, t: dict[str, Any], path: Path) -> tuple[Any, str, int]:
+    """kind = "fmu": an FMI 2.0 FMU through fmpy (sim/_fmu.py), its mistakes as rig issues."""
+    from plantrig.sim._fmu import INTERFACES, FmuIssue, load_fmu
+    file = c.take(t, "file", "plant", "str")
+    interface = c.take(t, "interface", "plant", "str", default="model_exchange",
+                       check=one_of(INTERFACES))
+    variables = c.take(t, "variables", "plant", "table", default={})
+    params = c.take(t, "params", "plant", "table", default={})
+    method = c.take(t, "method", "plant", "str", default="rk4",
+                    check=one_of(("rk4", "euler"))) or "rk4"
+    substeps = c.take(t, "substeps", "plant", "int", default=1,
+                      check=lambda v: None if v >= 1 else f"expected >= 1, found {v}") or 1
+    for key, value in (variables or {}).items():
+        if not isinstance(value, str):
+            c.add(f"plant.variables.{key}", f"expected an FMU variable name, found "
+                                            f"{describe_value(value)}")
+    for key, value in (params or {}).items():
+        if not _is_number(value):
+            c.add(f"plant.params.{key}", f"expected a number, found {describe_value(value)}")
+    if file is None or interface is None or variables is None or params is None or c.issues:
+        return None, method, substeps
+    names = {g: [e.get("name") for e in t.get(g, []) if isinstance(e, dict)]
+             for g in ("states", "inputs", "outputs")}
+    x0 = t.get("x0", [])
+    try:
+        plant = load_fmu((path.parent / file).resolve(), interface, names["states"],
+                         names["inputs"], names["outputs"], variables, params,
+                         np.array(x0 if isinstance(x0, list) else [], dtype=np.float64))
+    except FmuIssue as exc:
+        c.add(f"plant.{exc.key}", exc.reason)
+        return None, method, substeps
+    return plant, method, substeps
 
 
 def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,

@@ -29,9 +29,11 @@ SCENARIO_COPY = "scenario.toml"
 
 # A table header line: [plant], [ plant ] # comment, [[limits]].
 _HEADER = re.compile(r"^\s*\[\[?\s*([^\[\]]*?)\s*\]\]?\s*(#.*)?$")
-# The module key inside [plant] (or as a dotted key at the top): one string value.
-_MODULE = re.compile(r"""^(?P<lead>\s*(?:plant\s*\.\s*)?module\s*=\s*)"""
-                     r"""(?P<value>"(?:[^"\\\r\n]|\\.)*"|'[^'\r\n]*')""")
+# The model key inside [plant] (or as a dotted key at the top): one string value.
+_MODULE_PATTERN = (r"""^(?P<lead>\s*(?:plant\s*\.\s*)?KEY\s*=\s*)"""
+                   r"""(?P<value>"(?:[^"\\\r\n]|\\.)*"|'[^'\r\n]*')""")
+_MODULE = re.compile(_MODULE_PATTERN.replace("KEY", "module"))
+_MODEL_KEYS = {"ode": "module", "fmu": "file"}   # plant kind -> the key naming its code
 
 
 def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str, Any]:
@@ -45,14 +47,15 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
     files: dict[str, dict[str, Any]] = {}
     rig_bytes = original
     named, module = _module_source(rig)
+    key = "file" if module is not None and module.suffix.lower() == ".fmu" else "module"
     if module is not None:
-        rig_bytes = point_module_at(original, module.name, rig.path)
+        rig_bytes = point_module_at(original, module.name, rig.path, key)
         data = module.read_bytes()
         (folder / module.name).write_bytes(data)
         files[module.name] = _entry("model", module, data)
     if rig.overrides:  # the effective document, so the folder says what really ran
         from plantrig.sim._overrides import effective_copy
-        rig_bytes = effective_copy(rig, module.name if module is not None else None)
+        rig_bytes = effective_copy(rig, module.name if module is not None else None, key)
     redacted, secrets = redact_rig_text(rig_bytes.decode("utf-8"))
     rig_bytes = redacted.encode("utf-8")
     (folder / RIG_COPY).write_bytes(rig_bytes)
@@ -67,7 +70,7 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
         files[RIG_COPY]["overrides"] = redact_assignments(rig.overrides)
     if module is not None and rig_bytes != original:
         files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
-        files[RIG_COPY]["rewritten"] = {"plant.module": {"from": named, "to": module.name}}
+        files[RIG_COPY]["rewritten"] = {f"plant.{key}": {"from": named, "to": module.name}}
     if scenario is not None:
         path = Path(scenario.path)
         data = path.read_bytes() if path.is_file() else scenario.text.encode("utf-8")
@@ -78,12 +81,14 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
     return doc
 
 
-def point_module_at(text: bytes, name: str, file: Path) -> bytes:
-    """The rig file bytes with ``[plant] module`` set to ``name``, all else unchanged.
+def point_module_at(text: bytes, name: str, file: Path, key: str = "module") -> bytes:
+    """The rig file bytes with ``[plant] module`` (``key``: ``file`` for an FMU) set to
+    ``name``, all else unchanged.
 
     Raises RigFileError when the key is not written as a plain ``module = "..."`` line
     (the copy would otherwise point nowhere).
     """
+    pattern = _MODULE if key == "module" else re.compile(_MODULE_PATTERN.replace("KEY", key))
     lines = text.decode("utf-8").splitlines(keepends=True)
     table = ""
     hits = []
@@ -92,7 +97,7 @@ def point_module_at(text: bytes, name: str, file: Path) -> bytes:
         if header:
             table = header.group(1)
             continue
-        match = _MODULE.match(line)
+        match = pattern.match(line)
         dotted = "." in match.group("lead") if match else False
         if match and ((table == "plant" and not dotted) or (table == "" and dotted)):
             hits.append((i, match))
@@ -101,35 +106,38 @@ def point_module_at(text: bytes, name: str, file: Path) -> bytes:
         lines[i] = (match.group("lead") + json.dumps(name)
                     + lines[i][match.end("value"):])
         out = "".join(lines)
-        if _same_apart_from_module(text.decode("utf-8"), out, name):
+        if _same_apart_from_module(text.decode("utf-8"), out, name, key):
             return out.encode("utf-8")
-    raise RigFileError([RigIssue(str(file), "plant.module",
-                                 "cannot point the run folder's copy at its model module; "
-                                 "write it on one line as module = \"file.py\" under "
+    example = "model.fmu" if key == "file" else "file.py"
+    raise RigFileError([RigIssue(str(file), f"plant.{key}",
+                                 "cannot point the run folder's copy at its model; "
+                                 f"write it on one line as {key} = \"{example}\" under "
                                  "[plant]")])
 
 
-def _same_apart_from_module(before: str, after: str, name: str) -> bool:
+def _same_apart_from_module(before: str, after: str, name: str, key: str = "module") -> bool:
     try:
         old, new = tomllib.loads(before), tomllib.loads(after)
     except tomllib.TOMLDecodeError:
         return False
-    if new.get("plant", {}).get("module") != name:
+    if new.get("plant", {}).get(key) != name:
         return False
-    old.setdefault("plant", {})["module"] = name
+    old.setdefault("plant", {})[key] = name
     return old == new
 
 
 def _module_source(rig: Rig) -> tuple[str, Path | None]:
-    """The rig file's ``module`` value and the file it names (resolved as load_rig does)."""
-    if getattr(rig.plant, "f", None) is None:
+    """The rig file's ``module`` (an FMU's ``file``) value and the file it names (resolved
+    as load_rig does)."""
+    if getattr(rig.plant, "f", None) is None and getattr(rig.plant, "fmu_file", None) is None:
         return "", None
     doc = tomllib.loads(rig.text or rig.path.read_text(encoding="utf-8"))
     plant = doc.get("plant", {})
-    if plant.get("kind") != "ode" or not isinstance(plant.get("module"), str):
+    key = _MODEL_KEYS.get(plant.get("kind"))
+    if key is None or not isinstance(plant.get(key), str):
         return "", None
-    path = (rig.path.parent / plant["module"]).resolve()
-    return plant["module"], path if path.is_file() else None
+    path = (rig.path.parent / plant[key]).resolve()
+    return plant[key], path if path.is_file() else None
 
 
 def _entry(role: str, path: Path, data: bytes) -> dict[str, Any]:
