@@ -81,7 +81,8 @@ def check_modbus_keys(rig: Rig, table: dict[str, Any], issues: Issues) -> dict[s
         registers = {}
     names = [s.name for s in rig.outputs] + [s.name for s in rig.inputs]
     issues.unknown(registers, frozenset(names), "link.registers")
-    sensors, commands = [], []
+    sensors: list[RegisterSpec] = []
+    commands: list[RegisterSpec] = []
     for group, signals, tables in (("outputs", rig.outputs, ("input", "discrete")),
                                    ("inputs", rig.inputs, ("holding", "coil"))):
         for s in signals:

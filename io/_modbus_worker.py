@@ -84,10 +84,13 @@ class _Unserved(ModbusPDU):
         return ExceptionResponse(self.function_code, ExcCodes.ILLEGAL_FUNCTION)
 
 
-class ServedTable(dict):  # type: ignore[type-arg]
+_RequestPair = tuple[type[ModbusPDU], type[ModbusPDU]]   # request and response classes
+
+
+class ServedTable(dict[int, _RequestPair]):
     """The decoder's table of request classes: the served ones, _Unserved for the rest."""
 
-    def __init__(self, table: dict[int, Any]) -> None:
+    def __init__(self, table: dict[int, _RequestPair]) -> None:
         super().__init__({fc: entry for fc, entry in table.items() if fc in SERVED})
         self.refused = {fc: type(f"Unserved{fc}", (_Unserved,), {"function_code": fc})
                         for fc in range(1, 0x80) if fc not in SERVED}
@@ -198,8 +201,8 @@ class RegisterImage:
                 return self._refuse(ExcCodes.ILLEGAL_ADDRESS, "partial",
                                     f"write covers {n} of the {width} registers of {name}")
         image = dict(self.words[table])
-        for a, v in zip(range(address, end), values, strict=True):
-            image[a] = int(v)
+        for a, word in zip(range(address, end), values, strict=True):
+            image[a] = int(word)
         command = list(self.command)
         clamped = False
         for owner in touched:
@@ -295,7 +298,7 @@ class Worker:
         kind = "rejected_command" if rejected else "bad_frame"
         self.event(kind, f"{reason}: {detail}; exception {int(code):02d}", f"{kind}:{reason}")
 
-    def trace_pdu(self, sending: bool, pdu: Any) -> Any:
+    def trace_pdu(self, sending: bool, pdu: ModbusPDU) -> ModbusPDU:
         """Count requests in and exception responses out (pymodbus' own among them)."""
         if not sending:
             self.inc("frames_in")
@@ -349,20 +352,25 @@ class Worker:
             else:
                 self.inc("bad_loop_records")
 
-    def _server(self) -> Any:
+    def _server(self) -> ModbusTcpServer | ModbusSerialServer:
         s = self.setup
         # pymodbus wants a device to build; the register image replaces its datastore
         placeholder = SimDevice(id=s["unit_id"], simdata=[SimData(0)])
-        common = {"trace_pdu": self.trace_pdu, "trace_connect": self.trace_connect}
+        server: ModbusTcpServer | ModbusSerialServer
         if s["transport"] == "tcp":
-            server = ModbusTcpServer(placeholder, address=(s["host"], s["port"]), **common)
+            server = ModbusTcpServer(placeholder, address=(s["host"], s["port"]),
+                                     trace_pdu=self.trace_pdu,
+                                     trace_connect=self.trace_connect)
         else:
             server = ModbusSerialServer(placeholder, framer=FramerType.RTU,
                                         port=s["serial_port"], baudrate=s["baud"],
                                         parity=s["parity"][0].upper(),
                                         stopbits=s["stop_bits"], bytesize=s["byte_size"],
-                                        **common)
-        server.context = self.image
+                                        trace_pdu=self.trace_pdu,
+                                        trace_connect=self.trace_connect)
+        # pymodbus types context as its own two datastores, but its server only calls
+        # device_ids and async_getValues/async_setValues, which RegisterImage provides
+        server.context = self.image  # type: ignore[assignment]
         server.decoder.pdu_table = ServedTable(server.decoder.pdu_table)
         return server
 

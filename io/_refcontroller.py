@@ -39,7 +39,7 @@ from plantrig.io._frames import TICK_MODULUS, FrameError, Kind, SeqTracker
 from plantrig.io._link_config import LinkSettings
 from plantrig.io._pty import FdPort
 from plantrig.io._wire import WireFormat
-from plantrig.sim import Rig, RigFileError, RigIssue, build_controller
+from plantrig.sim import ControllerSpec, Rig, RigFileError, RigIssue, build_controller
 
 WRITE_TIMEOUT_S = 0.05
 FIFO_PRIORITY = 5   # below the rig's loop (plantrig.sim uses 10), above ordinary work
@@ -121,7 +121,7 @@ def _write_all(port: FdPort, data: bytes, timeout_s: float) -> bool:
     return True
 
 
-def law_spec(rig: Rig, settings: LinkSettings):  # type: ignore[no-untyped-def]
+def law_spec(rig: Rig, settings: LinkSettings) -> ControllerSpec:
     """The law to run: [link.controller], or the rig's own [controller] if built in."""
     if settings.controller is not None:
         return settings.controller
@@ -163,8 +163,9 @@ class ReferenceController:
     def __init__(self, rig: Rig, settings: LinkSettings) -> None:
         self.rig = rig
         self.settings = settings
-        self.law = build_controller(dataclasses.replace(rig, controller=law_spec(rig, settings)))
-        assert self.law is not None
+        law = build_controller(dataclasses.replace(rig, controller=law_spec(rig, settings)))
+        assert law is not None      # law_spec never gives kind "external", so a law is built
+        self.law = law
         self.wire = WireFormat(settings.protocol, settings.encoding, settings.scale,
                                settings.checksum)
         self.splitter = self.wire.splitter()

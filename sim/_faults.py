@@ -41,7 +41,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim._contracts import REHEARSED
-from plantrig.sim._plant import DiscretePlant, LinearPlant, LinearStepper, OdePlant, zoh
+from plantrig.sim._plant import (
+    DiscretePlant,
+    LinearPlant,
+    LinearStepper,
+    OdePlant,
+    OdeStepper,
+    zoh,
+)
 from plantrig.sim._watchdog import silent_ticks_allowed
 
 if TYPE_CHECKING:
@@ -411,9 +418,12 @@ class Faults:
             self._a0, self._b0 = plant.A.copy(), plant.B.copy()
         elif isinstance(plant, DiscretePlant):
             self._a0, self._b0 = plant.Ad.copy(), plant.Bd.copy()
+        self._ode: OdeStepper | None = None     # the stepper whose parameters faults change
         if isinstance(plant, OdePlant):
+            assert isinstance(stepper, OdeStepper)  # make_stepper steps an OdePlant so
             stepper.params = dict(plant.params)   # a run changes its own copy, never the rig
             self._p0 = dict(plant.params)
+            self._ode = stepper
         # disturbances
         self.dist = list(rig.disturbances)
         self._d = np.zeros(len(self.dist))
@@ -686,7 +696,8 @@ class Faults:
         self.row[self._d_cols[j]] = value
         if not self._linear:
             name = self.dist[j].param
-            self.stepper.params[name] = self._p0[name] + value  # type: ignore[union-attr]
+            assert self._ode is not None    # a disturbance on a parameter: an ODE plant
+            self._ode.params[name] = self._p0[name] + value
 
     def disturb(self) -> None:
         """x_{k+1} += Ed d_k (after the plant step; ZOH of the disturbance column)."""
@@ -723,7 +734,8 @@ class Faults:
                 stepper.set_dynamics(*zoh(a, b, self.tick))
             self._ed = self._discrete_e(a)
         else:
-            params = self.stepper.params  # type: ignore[union-attr]
+            assert self._ode is not None    # not linear: faults change an ODE plant's parameters
+            params = self._ode.params
             for key, value in self._p0.items():
                 params[key] = value
             for j, d in enumerate(self.dist):
