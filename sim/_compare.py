@@ -271,7 +271,6 @@ def compare_runs(folder_a: str | Path, folder_b: str | Path,
 def _deviation(column: str, unit: str, a: NDArray[np.float64], b: NDArray[np.float64],
                t: NDArray[np.float64], tol: Tolerance,
                envelope: bool) -> tuple[SignalDeviation, Envelope | None]:
-    identical = bool(np.array_equal(a, b, equal_nan=True))
     nan_a, nan_b = np.isnan(a), np.isnan(b)
     d = np.abs(a - b)
     both = nan_a & nan_b
@@ -286,6 +285,7 @@ def _deviation(column: str, unit: str, a: NDArray[np.float64], b: NDArray[np.flo
         finite_b = np.abs(b[~nan_b])
         scale = float(finite_b.max()) if finite_b.size else 0.0
     scale = scale or 1.0
+    identical = not d.any()          # equal, NaN where the other has NaN (as array_equal)
     if d.size:
         k = int(np.argmax(d))
         max_abs, t_max = float(d[k]), float(t[k])

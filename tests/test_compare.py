@@ -30,7 +30,7 @@ def run(tmp: Path, rig: Path, *extra: str) -> Path:
     out = tmp / f"runs{len(list(tmp.glob('runs*')))}"
     code = main(["run", str(rig), "--fast", "--out", str(out), *extra])
     assert code in (0, 3, 4), code
-    (folder,) = list(out.iterdir())
+    (folder,) = [p for p in out.iterdir() if p.is_dir()]
     return folder
 
 
@@ -47,7 +47,7 @@ def compare(tmp_path: Path, a: Path, b: Path, *extra: str,
             capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str, Path | None]:
     code = main(["compare", str(a), str(b), "--out", str(tmp_path), *extra])
     out, err = capsys.readouterr()
-    folders = list(tmp_path.iterdir()) if tmp_path.exists() else []
+    folders = [p for p in tmp_path.iterdir() if p.is_dir()] if tmp_path.exists() else []
     return code, out, err, folders[0] if folders else None
 
 
