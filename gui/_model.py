@@ -351,7 +351,8 @@ class DashboardModel:
         silent = since * self.tick
         watchdog = self.watchdog_s
         if silent >= watchdog:
-            lamp = Status(f"LINK LOST: silent {silent:.3f} s, beyond the {watchdog:g} s "
+            length = f"{silent:.3f} s" if nonzero.size else f"all {silent:.3f} s in view"
+            lamp = Status(f"LINK LOST: silent {length}, beyond the {watchdog:g} s "
                           "watchdog", ALARM)
         elif silent >= watchdog / 2:
             lamp = Status(f"LINK LATE: silent {silent:.3f} s; watchdog {watchdog:g} s",
