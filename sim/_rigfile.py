@@ -34,6 +34,7 @@ from plantrig.sim._interlocks import (
 from plantrig.sim._limits import LimitSpec, parse_limits
 from plantrig.sim._outcome import AcceptanceRules, parse_acceptance
 from plantrig.sim._plant import (
+    ODE_METHODS,
     DiscretePlant,
     LinearPlant,
     ModelError,
@@ -371,7 +372,7 @@ PLANT_KEYS = {
     "transfer_function": {"num", "den", "zeros", "poles", "gain", "input_delay",
                           "output_delay"},
     "discrete_lti": {"A", "B", "C", "D", "dt"},
-    "ode": {"module", "dynamics", "output", "params", "method", "substeps"},
+    "ode": {"module", "dynamics", "output", "jacobian", "params", "method", "substeps"},
     "fmu": {"file", "interface", "variables", "params", "method", "substeps"},
 }
 PLANT_COMMON = {"kind", "states", "inputs", "outputs", "x0"}
@@ -473,7 +474,7 @@ def _fmu_plant(c: _Checker, t: dict[str, Any], path: Path) -> tuple[Any, str, in
     variables = c.take(t, "variables", "plant", "table", default={})
     params = c.take(t, "params", "plant", "table", default={})
     method = c.take(t, "method", "plant", "str", default="rk4",
-                    check=one_of(("rk4", "euler"))) or "rk4"
+                    check=one_of(ODE_METHODS)) or "rk4"
     substeps = c.take(t, "substeps", "plant", "int", default=1,
                       check=lambda v: None if v >= 1 else f"expected >= 1, found {v}") or 1
     for key, value in (variables or {}).items():
@@ -505,7 +506,7 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
     h_name = c.take(t, "output", "plant", "str")
     params = c.take(t, "params", "plant", "table", default={})
     method = c.take(t, "method", "plant", "str", default="rk4",
-                    check=one_of(("rk4", "euler"))) or "rk4"
+                    check=one_of(ODE_METHODS)) or "rk4"
     substeps = c.take(t, "substeps", "plant", "int", default=1,
                       check=lambda v: None if v >= 1 else f"expected >= 1, found {v}") or 1
     if module_name is None or f_name is None or h_name is None:
@@ -526,7 +527,10 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
                               f"{type(exc).__name__}: {exc}")
         return None, method, substeps
     functions = []
-    for key, fname in (("dynamics", f_name), ("output", h_name)):
+    jac_name = c.take(t, "jacobian", "plant", "str", default=None)
+    named = [("dynamics", f_name), ("output", h_name)] + \
+        ([("jacobian", jac_name)] if jac_name else [])
+    for key, fname in named:
         fn = getattr(module, fname, None)
         if not callable(fn):
             c.add(f"plant.{key}", f"expected a function named {fname!r} in "
@@ -534,7 +538,8 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
         functions.append(fn)
     if not all(callable(fn) for fn in functions):
         return None, method, substeps
-    plant = OdePlant(functions[0], functions[1], n, m, p, dict(params or {}))
+    plant = OdePlant(functions[0], functions[1], n, m, p, dict(params or {}),
+                     functions[2] if jac_name else None)
     x_probe, u_probe = np.zeros(n), np.zeros(m)
     x0 = t.get("x0")
     if isinstance(x0, list) and len(x0) == n and all(_is_number(v) for v in x0):

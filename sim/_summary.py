@@ -24,11 +24,12 @@ own sample time, so it gets no such warning there.
 The substep rule for ODE plants: a fixed-step method maps a mode x' = lambda x to
 x+ = R(h lambda) x with its stability function R (Hairer & Wanner, Solving ODEs II,
 section IV.2: R(z) = 1 + z for forward Euler, R(z) = 1 + z + z^2/2 + z^3/6 + z^4/24 for
-classical RK4). A mode that does not grow in the model (Re lambda <= 0) must not grow in
-the simulation: |R(h lambda)| <= 1 for every eigenvalue in the complex plane, not only on
-the real axis (a lightly damped pair leaves forward Euler's disc long before h |lambda|
-reaches 2). The check uses a linearisation at the initial state x0 and the input 0; at a
-state that is not an equilibrium the summary says so and judges no stability.
+classical RK4; ROS2's rational R is in sim/_plant.py, L-stable). A mode that does not
+grow in the model (Re lambda <= 0) must not grow in the simulation: |R(h lambda)| <= 1
+for every eigenvalue in the complex plane, not only on the real axis (a lightly damped
+pair leaves forward Euler's disc long before h |lambda| reaches 2). The check uses a
+linearisation at the initial state x0 and the input 0; at a state that is not an
+equilibrium the summary says so and judges no stability.
 """
 
 from __future__ import annotations
@@ -45,6 +46,7 @@ from plantrig.sim._plant import (
     ModelError,
     OdePlant,
     Plant,
+    ros2_stability,
     ticks_per_sample,
 )
 
@@ -66,7 +68,7 @@ def _r_rk4(z: Complex) -> Complex:
 
 
 STABILITY_FUNCTIONS: dict[str, Callable[[Complex], Complex]] = {
-    "euler": _r_euler, "rk4": _r_rk4}
+    "euler": _r_euler, "rk4": _r_rk4, "ros2": ros2_stability}
 
 
 def register_stability_function(method: str, r: Callable[[Complex], Complex]) -> None:
