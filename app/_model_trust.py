@@ -46,8 +46,12 @@ def model_to_load(rig_path: str | Path, overrides: Sequence[str] = ()) -> Path |
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, RigFileError):
         return None
     plant = doc.get("plant")
-    key = {"ode": "module", "fmu": "file"}.get(plant.get("kind")) \
-        if isinstance(plant, dict) else None     # an FMU's binary is code too
+    if not isinstance(plant, dict):
+        return None
+    kind = plant.get("kind")
+    if not isinstance(kind, str):
+        return None
+    key = {"ode": "module", "fmu": "file"}.get(kind)    # an FMU's binary is code too
     if key is None or not isinstance(plant.get(key), str):
         return None
     return (path.parent / plant[key]).resolve()
