@@ -396,9 +396,11 @@ def _draw(c: _Checker, here: str, key: str, spec: Any, nominal: Any) -> Draw | N
             c.add(f"{here}.high", f"expected high >= low ({low}), found {high}")
             return None
     if dist == "uniform":
-        return Draw(key, dist, low=float(low), high=float(high))   # type: ignore[arg-type]
+        assert low is not None and high is not None     # a missing one returned above
+        return Draw(key, dist, low=float(low), high=float(high))
     if dist == "normal":
-        return Draw(key, dist, mean=float(mean), sd=float(sd))     # type: ignore[arg-type]
+        assert mean is not None and sd is not None      # a missing one returned above
+        return Draw(key, dist, mean=float(mean), sd=float(sd))
     assert low is not None and high is not None and mean is not None and sd is not None
     if sd == 0 and not low <= mean <= high:
         c.add(f"{here}.mean", f"expected a mean inside [{low}, {high}] when sd is 0")
