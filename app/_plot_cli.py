@@ -61,7 +61,7 @@ def cmd_plot(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def add_parser(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def add_parser(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Register ``plot`` on the main parser's subparsers."""
     p = sub.add_parser(
         "plot", help="draw chosen signals of a run to a PNG or SVG",

@@ -289,7 +289,7 @@ def _say_draft(draft: bool, readiness: Readiness) -> None:
         print(f"{DRAFT_MARK}: " + ("; ".join(readiness.problems) or "made with --draft"))
 
 
-def add_record_commands(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Register the run-record subcommands on the main parser's subparsers."""
     raw = argparse.RawDescriptionHelpFormatter
     p = sub.add_parser("recover", help="rebuild the record of a run that died",

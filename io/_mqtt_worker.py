@@ -85,7 +85,7 @@ class _Closing(Exception):
     """Raised inside a connection's TaskGroup once 'offline' is published on close."""
 
 
-class _DropOldestQueue(asyncio.Queue):  # type: ignore[type-arg]
+class _DropOldestQueue(asyncio.Queue[Any]):
     """aiomqtt's incoming queue: when full, the oldest message goes (counted)."""
 
     dropped = 0
