@@ -33,6 +33,7 @@ from plantrig._rerun_cli import add_parser as add_rerun_command
 from plantrig.sim import (
     EXIT_CODE_HELP,
     RecordError,
+    Rig,
     RigFileError,
     build_chains,
     load_rig_with_overrides,
@@ -46,8 +47,7 @@ EXIT_MEANINGS = {0: "completed", 1: "fault", 2: "usage mistake", 3: "a verdict f
                  4: "tripped", 5: "stopped", 6: "interrupted"}
 
 
-def _load(path: str, overrides: list[str] | None = None,  # type: ignore[no-untyped-def]
-          trust_model: bool = False):
+def _load(path: str, overrides: list[str] | None = None, trust_model: bool = False) -> Rig:
     refusal = model_guard(path, overrides=overrides or (), trust=trust_model)
     if refusal:
         print(f"error: {path}: {refusal}. replay, verify, report and export read a run "

@@ -29,6 +29,7 @@ from __future__ import annotations
 import math
 import time
 import traceback
+from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
 from typing import Protocol
 
@@ -536,5 +537,6 @@ class _NoRealtime:
         return None
 
 
-def _maybe_realtime(enabled: bool, tick_ns: int):  # type: ignore[no-untyped-def]
+def _maybe_realtime(enabled: bool,
+                    tick_ns: int) -> AbstractContextManager[RealtimeReport | None]:
     return realtime_process(tick_ns, SPIN_NS) if enabled else _NoRealtime()

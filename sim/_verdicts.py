@@ -25,7 +25,7 @@ from __future__ import annotations
 import difflib
 import json
 import math
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -197,7 +197,7 @@ def _column(c: _Checker, e: dict[str, Any], key: str, where: str, columns: list[
     return column
 
 
-def _one_of(options: list[str]):  # type: ignore[no-untyped-def]
+def _one_of(options: list[str]) -> Callable[[Any], str | None]:
     def check(v: Any) -> str | None:
         return None if v in options else _not_in(v, options, "criteria")
     return check
