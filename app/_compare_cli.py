@@ -127,10 +127,10 @@ def write_comparison(result: Any, out: Path, plots: bool = True) -> Path:
         for s in result.signals:
             w.writerow(vars(s))
     with open(folder / "events.csv", "w", newline="") as f:
-        w = csv.writer(f)
-        w.writerow(["kind", "what", "t_a", "t_b", "dt", "within"])
+        rows = csv.writer(f)
+        rows.writerow(["kind", "what", "t_a", "t_b", "dt", "within"])
         for e in result.events:
-            w.writerow([e.kind, e.what, e.t_a, e.t_b, e.dt, e.within])
+            rows.writerow([e.kind, e.what, e.t_a, e.t_b, e.dt, e.within])
     if plots:
         images = _plots(result, folder / "plots")
         (folder / "index.html").write_text(_html(result, images), encoding="utf-8")

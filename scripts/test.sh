@@ -4,6 +4,7 @@
 set -uo pipefail
 source "$(dirname "${BASH_SOURCE[0]}")/setup.sh" || exit 1
 .venv/bin/python -m ruff check . || exit 1
+bash "$(dirname "${BASH_SOURCE[0]}")/typecheck.sh" || exit 1
 .venv/bin/python -m pytest "$@"
 status=$?
 if [ "$status" -eq 5 ]; then

@@ -258,7 +258,8 @@ def compare_runs(folder_a: str | Path, folder_b: str | Path,
         va, vb = a.read(column), b.read(column)
         va = va[:n] if ia is None else va[ia]
         vb = vb[:n] if ib is None else vb[ib]
-        dev, env = _deviation(column, a.unit(column), va, vb, t, tol.of(column), envelopes)
+        dev, env = _deviation(column, a.unit(column), va, vb, np.asarray(t, np.float64),
+                              tol.of(column), envelopes)
         out.append(dev)
         if env is not None:
             plots[column] = env

@@ -397,7 +397,7 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
                     for k in ("A", "B", "C", "D")]
             dt = c.take(t, "dt", "plant", "number", check=_positive)
             if all(v is not None for v in mats[:3]) and dt is not None:
-                plant = DiscretePlant.from_matrices(*mats, dt)
+                plant = DiscretePlant.from_matrices(mats[0], mats[1], mats[2], mats[3], dt)
                 if tick is not None and ticks_per_sample(dt, tick) is None:
                     c.add("plant.dt", f"expected the rig tick ({tick} s) or a whole multiple "
                                       f"of it, found {dt} s ({dt / tick:.4g} ticks); resample "
@@ -490,8 +490,9 @@ def _fmu_plant(c: _Checker, t: dict[str, Any], path: Path) -> tuple[Any, str, in
              for g in ("states", "inputs", "outputs")}
     x0 = t.get("x0", [])
     try:
-        plant = load_fmu((path.parent / file).resolve(), interface, names["states"],
-                         names["inputs"], names["outputs"], variables, params,
+        plant = load_fmu((path.parent / file).resolve(), interface,
+                         [str(n) for n in names["states"]], [str(n) for n in names["inputs"]],
+                         [str(n) for n in names["outputs"]], variables, params,
                          np.array(x0 if isinstance(x0, list) else [], dtype=np.float64))
     except FmuIssue as exc:
         c.add(f"plant.{exc.key}", exc.reason)
@@ -538,7 +539,9 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
         functions.append(fn)
     if not all(callable(fn) for fn in functions):
         return None, method, substeps
-    plant = OdePlant(functions[0], functions[1], n, m, p, dict(params or {}),
+    f, h = functions[0], functions[1]
+    assert f is not None and h is not None   # callable, checked above
+    plant = OdePlant(f, h, n, m, p, dict(params or {}),
                      functions[2] if jac_name else None)
     x_probe, u_probe = np.zeros(n), np.zeros(m)
     x0 = t.get("x0")
@@ -755,7 +758,8 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                     c.add(f"controller.drive.{inp}",
                           name_in(in_names, "plant inputs")(inp) or "unknown input")
                 elif not isinstance(ref, str) or ref not in ref_names:
-                    c.add(f"controller.drive.{inp}", name_in(ref_names, "references")(ref)
+                    c.add(f"controller.drive.{inp}",
+                          (name_in(ref_names, "references")(ref) or "unknown reference")
                           if isinstance(ref, str) else f"expected a reference name, "
                                                        f"found {describe_value(ref)}")
             settings["drive"] = drive

@@ -145,7 +145,8 @@ def classify_stability(A: NDArray[np.float64], discrete: bool) -> str:
     where = "on the unit circle" if discrete else "on the imaginary axis"
     inside = "|z| < 1" if discrete else "Re < 0"
     verdict = f"asymptotically stable (all {inside})"
-    for lam, k in _eigenvalue_clusters(np.linalg.eigvals(A), CLUSTER_TOL * scale):
+    for lam, k in _eigenvalue_clusters(np.linalg.eigvals(A).astype(np.complex128),
+                                       CLUSTER_TOL * scale):
         margin = abs(lam) - 1.0 if discrete else lam.real     # > 0: outside the region
         if margin > BOUNDARY_TOL * scale:
             return f"unstable ({'some |z| > 1' if discrete else 'some Re > 0'})"
@@ -320,7 +321,7 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
         if plant.has_dead_time:
             kind += (f" with dead time (inputs {list(plant.input_delay) or 0} s, "
                      f"outputs {list(plant.output_delay) or 0} s; exact under ZOH)")
-        eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
+        eig = np.linalg.eigvals(A).astype(np.complex128) if n else np.zeros(0, np.complex128)
         cont_eig = eig
         ctrb = _rank(controllability_matrix(A, B))
         obsv = _rank(controllability_matrix(A.T, C.T))
@@ -329,7 +330,7 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
         every = ticks_per_sample(plant.dt, dt)
         held = f" = {every} ticks, held in between" if every and every > 1 else ""
         kind, A, B, C = f"discrete LTI (dt {plant.dt:g} s{held})", plant.Ad, plant.Bd, plant.C
-        eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
+        eig = np.linalg.eigvals(A).astype(np.complex128) if n else np.zeros(0, np.complex128)
         with np.errstate(divide="ignore"):
             cont_eig = np.log(eig.astype(complex)) / plant.dt
         ctrb = _rank(controllability_matrix(A, B))
@@ -354,7 +355,7 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
             return ModelSummary(kind, n, m, p, np.zeros(0, complex), (),
                                 f"not judged (no finite linearisation at x0: {exc})", None,
                                 None, (f"no finite linearisation at x0: {exc}",), None)
-        eig = np.linalg.eigvals(A) if n else np.zeros(0, complex)
+        eig = np.linalg.eigvals(A).astype(np.complex128) if n else np.zeros(0, np.complex128)
         cont_eig = eig
         f0 = _ode_at(plant, x_lin, np.zeros(m))
         residual = float(np.max(np.abs(f0))) if n else 0.0
