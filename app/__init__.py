@@ -20,10 +20,19 @@ CAUTION = (
 )
 
 
+_shown = False
+
+
 def show_caution() -> None:
-    """Print the caution to stderr, once per command: a process started by a command
-    that has shown it (the demo's controller, say) does not show it again."""
-    if os.environ.get(CAUTION_SHOWN) == "1":
+    """Print the caution to stderr, once per command: once per process, and not at all
+    in a process a command started after showing it (started with ``shown_env()``)."""
+    global _shown
+    if _shown or os.environ.get(CAUTION_SHOWN) == "1":
         return
-    os.environ[CAUTION_SHOWN] = "1"
+    _shown = True
     print(CAUTION, file=sys.stderr, flush=True)
+
+
+def shown_env() -> dict[str, str]:
+    """The environment for a child process of a command that has shown the caution."""
+    return {**os.environ, CAUTION_SHOWN: "1"}

@@ -18,7 +18,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from plantrig import CAUTION, show_caution
+from plantrig import CAUTION, show_caution, shown_env
 from plantrig.sim import EXIT_CODE_HELP
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
@@ -128,7 +128,7 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     out.mkdir(parents=True, exist_ok=True)
     pair = open_pty_pair()
     proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
-                            stdout=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, text=True, env=shown_env())
     try:
         ready = wait_ready(proc, READY_TIMEOUT_S)
         if ready is None:

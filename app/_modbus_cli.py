@@ -13,7 +13,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from plantrig import show_caution
+from plantrig import show_caution, shown_env
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_modbus.toml"
@@ -78,7 +78,8 @@ def cmd_demo_modbus(args: argparse.Namespace, load: Callable[[str], Any],
     link = build_link(rig, port=where)
     link.open()       # the server listens before the controller connects
     proc = subprocess.Popen([sys.executable, "-m", "plantrig", "controller", str(rig.path),
-                             "--port", where], stdout=subprocess.PIPE, text=True)
+                             "--port", where], stdout=subprocess.PIPE, text=True,
+                            env=shown_env())
     try:
         ready = wait_ready(proc, READY_TIMEOUT_S)
         if ready is None:

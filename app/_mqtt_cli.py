@@ -18,7 +18,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from plantrig import show_caution
+from plantrig import show_caution, shown_env
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
 DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_mqtt.toml"
@@ -106,7 +106,8 @@ def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any],
     where = f"{broker.host}:{broker.port}"
     print(f"broker: mosquitto on {where} (config {broker.conf})")
     proc = subprocess.Popen([sys.executable, "-m", "plantrig", "controller", str(rig.path),
-                             "--port", where], stdout=subprocess.PIPE, text=True)
+                             "--port", where], stdout=subprocess.PIPE, text=True,
+                            env=shown_env())
     try:
         ready = wait_ready(proc, READY_TIMEOUT_S)
         if ready is None:

@@ -103,3 +103,11 @@ def test_check_lists_safety_and_checks_a_scenario_without_running(tmp_path: Path
                              timeout=60)
     assert refused.returncode == 2 and "reset" in refused.stderr
     assert "Traceback" not in refused.stderr
+
+
+def test_the_demo_shows_the_caution_once_for_both_of_its_processes(tmp_path: Path) -> None:
+    proc = subprocess.run([sys.executable, "-m", "plantrig", "demo", "--out", str(tmp_path)],
+                          capture_output=True, text=True, timeout=180)
+    both = proc.stdout + proc.stderr
+    assert both.count("not a safety function") == 1, both
+    assert "controller: ready" in proc.stdout      # the controller process did run
