@@ -2,115 +2,302 @@
 
 This is what other parts of plantrig (and users' scripts) may use; everything else in
 this package is private.
+
+Names load on first use (PEP 562): `import plantrig.sim` costs almost nothing, so a
+process that needs only a few of them (the recorder, a link worker, `plantrig --help`)
+does not import the rest.
 """
 
-from plantrig.sim._chains import build_chains
-from plantrig.sim._clock import Clock, VirtualClock, WallClock
-from plantrig.sim._commands import Command, CommandInbox
-from plantrig.sim._conditioning import (
-    ActuatorChain,
-    ActuatorChannel,
-    ChainSpecError,
-    SensorChain,
-    SensorChannel,
-    build_actuator_chain,
-    build_sensor_chain,
-    counts_to_eng,
-    eng_to_counts,
-)
-from plantrig.sim._contracts import ControllerLink, Event, SignalChain
-from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
-from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
-from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
-from plantrig.sim._export import export_csv, export_mat
-from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultSpec, parse_fault
-from plantrig.sim._interlocks import InterlockSpec, SafetySettings
-from plantrig.sim._limits import LimitSpec
-from plantrig.sim._manifest import generate_keypair, sign_folder, verify_folder
-from plantrig.sim._outcome import (
-    EXIT_CODE_HELP,
-    EXIT_CODES,
-    OUTCOMES,
-    AcceptanceRules,
-    RuleResult,
-)
-from plantrig.sim._overrides import (
-    apply_overrides,
-    load_rig_with_overrides,
-    shortcut_assignments,
-)
-from plantrig.sim._plant import (
-    DiscretePlant,
-    LinearPlant,
-    LinearStepper,
-    ModelError,
-    OdePlant,
-    OdeStepper,
-    Plant,
-    from_state_space_object,
-    make_stepper,
-    zoh,
-)
-from plantrig.sim._preflight import RecordError
-from plantrig.sim._reader import RunRecord, read_run
-from plantrig.sim._recorder import read_journal
-from plantrig.sim._records import recover_run
-from plantrig.sim._references import Ramp, Sine, Step, Table
-from plantrig.sim._rigdata import (
-    ModelNotLoaded,
-    load_rig_as_data,
-    model_module,
-    rig_from_record,
-    run_folder_of,
-)
-from plantrig.sim._rigfile import (
-    ControllerSpec,
-    NamedReference,
-    Rig,
-    Signal,
-    build_rig,
-    check_controller_table,
-    load_rig,
-)
-from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
-from plantrig.sim._scenario import Scenario, ScenarioFileError, build_scenario, load_scenario
-from plantrig.sim._secrets import SECRET_MARK
-from plantrig.sim._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
-from plantrig.sim._summary import ModelSummary, summarize
-from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
-from plantrig.sim._verdicts import Verdict, evaluate, verdict_lines, write_verdicts
-from plantrig.sim._watchdog import silent_ticks_allowed
+from __future__ import annotations
+
+from importlib import import_module
+from typing import TYPE_CHECKING, Any
+
+# the module (under plantrig.sim) each public name lives in
+_HOME: dict[str, str] = {
+    **dict.fromkeys(["build_chains"], "_chains"),
+    **dict.fromkeys(["Clock", "VirtualClock", "WallClock"], "_clock"),
+    **dict.fromkeys(["Command", "CommandInbox"], "_commands"),
+    **dict.fromkeys(
+        [
+            "ActuatorChain",
+            "ActuatorChannel",
+            "ChainSpecError",
+            "SensorChain",
+            "SensorChannel",
+            "build_actuator_chain",
+            "build_sensor_chain",
+            "counts_to_eng",
+            "eng_to_counts",
+        ],
+        "_conditioning",
+    ),
+    **dict.fromkeys(["ControllerLink", "Event", "SignalChain"], "_contracts"),
+    **dict.fromkeys(["OpenLoop", "Pid", "PidLoops", "StateFeedback"], "_controllers"),
+    **dict.fromkeys(["Engine", "RunOutcome", "build_controller", "tick_columns"], "_engine"),
+    **dict.fromkeys(["RigFileError", "RigIssue", "describe_value", "one_of"], "_errors"),
+    **dict.fromkeys(["export_csv", "export_mat"], "_export"),
+    **dict.fromkeys(
+        ["DisturbanceSpec", "FAULT_KINDS", "FaultKind", "FaultSpec", "parse_fault"], "_faults"
+    ),
+    **dict.fromkeys(["InterlockSpec", "SafetySettings"], "_interlocks"),
+    **dict.fromkeys(["LimitSpec"], "_limits"),
+    **dict.fromkeys(["generate_keypair", "sign_folder", "verify_folder"], "_manifest"),
+    **dict.fromkeys(
+        ["AcceptanceRules", "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "RuleResult"], "_outcome"
+    ),
+    **dict.fromkeys(
+        ["apply_overrides", "load_rig_with_overrides", "shortcut_assignments"], "_overrides"
+    ),
+    **dict.fromkeys(
+        [
+            "DiscretePlant",
+            "LinearPlant",
+            "LinearStepper",
+            "ModelError",
+            "OdePlant",
+            "OdeStepper",
+            "Plant",
+            "from_state_space_object",
+            "make_stepper",
+            "zoh",
+        ],
+        "_plant",
+    ),
+    **dict.fromkeys(["RecordError"], "_preflight"),
+    **dict.fromkeys(["RunRecord", "read_run"], "_reader"),
+    **dict.fromkeys(["read_journal"], "_recorder"),
+    **dict.fromkeys(["recover_run"], "_records"),
+    **dict.fromkeys(["Ramp", "Sine", "Step", "Table"], "_references"),
+    **dict.fromkeys(
+        ["ModelNotLoaded", "load_rig_as_data", "model_module", "rig_from_record", "run_folder_of"],
+        "_rigdata",
+    ),
+    **dict.fromkeys(
+        [
+            "ControllerSpec",
+            "NamedReference",
+            "Rig",
+            "Signal",
+            "build_rig",
+            "check_controller_table",
+            "load_rig",
+        ],
+        "_rigfile",
+    ),
+    **dict.fromkeys(["RunData", "run_to_folder", "simulate", "simulate_inputs"], "_run"),
+    **dict.fromkeys(
+        ["Scenario", "ScenarioFileError", "build_scenario", "load_scenario"], "_scenario"
+    ),
+    **dict.fromkeys(["SECRET_MARK"], "_secrets"),
+    **dict.fromkeys(["SIGNAL_LABELS", "SIGNAL_MEANINGS"], "_signal_labels"),
+    **dict.fromkeys(["ModelSummary", "summarize"], "_summary"),
+    **dict.fromkeys(["EventTape", "MemoryTape", "Tape", "TapeOverflow", "TapeReader"], "_tape"),
+    **dict.fromkeys(["Verdict", "evaluate", "verdict_lines", "write_verdicts"], "_verdicts"),
+    **dict.fromkeys(["silent_ticks_allowed"], "_watchdog"),
+}
 
 __all__ = [
-    "Clock", "Command", "CommandInbox", "ControllerLink", "ControllerSpec", "DiscretePlant",
-    "Engine", "Event", "EventTape",
-    "LinearPlant", "LinearStepper", "MemoryTape", "ModelError", "ModelSummary",
-    "NamedReference", "OdePlant", "OdeStepper", "OpenLoop", "Pid", "PidLoops", "Plant", "Ramp",
-    "Rig", "RigFileError", "RigIssue", "RunData", "RunOutcome", "Signal", "SignalChain", "Sine",
-    "StateFeedback", "Step", "Table", "Tape", "TapeOverflow", "TapeReader", "VirtualClock",
-    "WallClock", "build_controller", "build_rig", "check_controller_table",
-    "from_state_space_object", "load_rig", "make_stepper", "read_journal", "run_to_folder",
-    "simulate", "simulate_inputs",
-    "summarize", "tick_columns", "zoh",
+    "Clock",
+    "Command",
+    "CommandInbox",
+    "ControllerLink",
+    "ControllerSpec",
+    "DiscretePlant",
+    "Engine",
+    "Event",
+    "EventTape",
+    "LinearPlant",
+    "LinearStepper",
+    "MemoryTape",
+    "ModelError",
+    "ModelSummary",
+    "NamedReference",
+    "OdePlant",
+    "OdeStepper",
+    "OpenLoop",
+    "Pid",
+    "PidLoops",
+    "Plant",
+    "Ramp",
+    "Rig",
+    "RigFileError",
+    "RigIssue",
+    "RunData",
+    "RunOutcome",
+    "Signal",
+    "SignalChain",
+    "Sine",
+    "StateFeedback",
+    "Step",
+    "Table",
+    "Tape",
+    "TapeOverflow",
+    "TapeReader",
+    "VirtualClock",
+    "WallClock",
+    "build_controller",
+    "build_rig",
+    "check_controller_table",
+    "from_state_space_object",
+    "load_rig",
+    "make_stepper",
+    "read_journal",
+    "run_to_folder",
+    "simulate",
+    "simulate_inputs",
+    "summarize",
+    "tick_columns",
+    "zoh",
     # safety, faults, scenarios and verdicts
-    "FAULT_KINDS", "DisturbanceSpec", "FaultKind", "FaultSpec", "InterlockSpec", "LimitSpec",
-    "SafetySettings", "Scenario", "ScenarioFileError", "Verdict", "build_scenario", "evaluate",
-    "load_scenario", "parse_fault", "verdict_lines", "write_verdicts",
-    "describe_value", "one_of",
+    "FAULT_KINDS",
+    "DisturbanceSpec",
+    "FaultKind",
+    "FaultSpec",
+    "InterlockSpec",
+    "LimitSpec",
+    "SafetySettings",
+    "Scenario",
+    "ScenarioFileError",
+    "Verdict",
+    "build_scenario",
+    "evaluate",
+    "load_scenario",
+    "parse_fault",
+    "verdict_lines",
+    "write_verdicts",
+    "describe_value",
+    "one_of",
     # what people read for each kind of signal
-    "SIGNAL_LABELS", "SIGNAL_MEANINGS",
+    "SIGNAL_LABELS",
+    "SIGNAL_MEANINGS",
     # signal conditioning
-    "ActuatorChain", "ActuatorChannel", "ChainSpecError", "SensorChain", "SensorChannel",
-    "build_actuator_chain", "build_chains", "build_sensor_chain", "counts_to_eng",
+    "ActuatorChain",
+    "ActuatorChannel",
+    "ChainSpecError",
+    "SensorChain",
+    "SensorChannel",
+    "build_actuator_chain",
+    "build_chains",
+    "build_sensor_chain",
+    "counts_to_eng",
     "eng_to_counts",
     "silent_ticks_allowed",
     # outcomes
-    "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "AcceptanceRules", "RuleResult",
+    "EXIT_CODES",
+    "EXIT_CODE_HELP",
+    "OUTCOMES",
+    "AcceptanceRules",
+    "RuleResult",
     # run records
-    "RecordError", "RunRecord", "export_csv", "export_mat", "generate_keypair", "read_run",
-    "recover_run", "sign_folder", "verify_folder",
-    "ModelNotLoaded", "load_rig_as_data", "model_module", "rig_from_record", "run_folder_of",
+    "RecordError",
+    "RunRecord",
+    "export_csv",
+    "export_mat",
+    "generate_keypair",
+    "read_run",
+    "recover_run",
+    "sign_folder",
+    "verify_folder",
+    "ModelNotLoaded",
+    "load_rig_as_data",
+    "model_module",
+    "rig_from_record",
+    "run_folder_of",
     "SECRET_MARK",
     # overrides
-    "apply_overrides", "load_rig_with_overrides", "shortcut_assignments",
+    "apply_overrides",
+    "load_rig_with_overrides",
+    "shortcut_assignments",
 ]
+
+
+def __getattr__(name: str) -> Any:
+    if name not in _HOME:
+        raise AttributeError(f"module 'plantrig.sim' has no attribute {name!r}")
+    value = getattr(import_module(f"plantrig.sim.{_HOME[name]}"), name)
+    globals()[name] = value  # the next lookup is a plain attribute
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(__all__)
+
+
+if TYPE_CHECKING:  # type checkers and editors see every name where it lives
+    from plantrig.sim._chains import build_chains
+    from plantrig.sim._clock import Clock, VirtualClock, WallClock
+    from plantrig.sim._commands import Command, CommandInbox
+    from plantrig.sim._conditioning import (
+        ActuatorChain,
+        ActuatorChannel,
+        ChainSpecError,
+        SensorChain,
+        SensorChannel,
+        build_actuator_chain,
+        build_sensor_chain,
+        counts_to_eng,
+        eng_to_counts,
+    )
+    from plantrig.sim._contracts import ControllerLink, Event, SignalChain
+    from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
+    from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
+    from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
+    from plantrig.sim._export import export_csv, export_mat
+    from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultSpec, parse_fault
+    from plantrig.sim._interlocks import InterlockSpec, SafetySettings
+    from plantrig.sim._limits import LimitSpec
+    from plantrig.sim._manifest import generate_keypair, sign_folder, verify_folder
+    from plantrig.sim._outcome import (
+        EXIT_CODE_HELP,
+        EXIT_CODES,
+        OUTCOMES,
+        AcceptanceRules,
+        RuleResult,
+    )
+    from plantrig.sim._overrides import (
+        apply_overrides,
+        load_rig_with_overrides,
+        shortcut_assignments,
+    )
+    from plantrig.sim._plant import (
+        DiscretePlant,
+        LinearPlant,
+        LinearStepper,
+        ModelError,
+        OdePlant,
+        OdeStepper,
+        Plant,
+        from_state_space_object,
+        make_stepper,
+        zoh,
+    )
+    from plantrig.sim._preflight import RecordError
+    from plantrig.sim._reader import RunRecord, read_run
+    from plantrig.sim._recorder import read_journal
+    from plantrig.sim._records import recover_run
+    from plantrig.sim._references import Ramp, Sine, Step, Table
+    from plantrig.sim._rigdata import (
+        ModelNotLoaded,
+        load_rig_as_data,
+        model_module,
+        rig_from_record,
+        run_folder_of,
+    )
+    from plantrig.sim._rigfile import (
+        ControllerSpec,
+        NamedReference,
+        Rig,
+        Signal,
+        build_rig,
+        check_controller_table,
+        load_rig,
+    )
+    from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
+    from plantrig.sim._scenario import Scenario, ScenarioFileError, build_scenario, load_scenario
+    from plantrig.sim._secrets import SECRET_MARK
+    from plantrig.sim._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
+    from plantrig.sim._summary import ModelSummary, summarize
+    from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
+    from plantrig.sim._verdicts import Verdict, evaluate, verdict_lines, write_verdicts
+    from plantrig.sim._watchdog import silent_ticks_allowed

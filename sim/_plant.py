@@ -19,7 +19,6 @@ from typing import Any
 
 import numpy as np
 import scipy.linalg
-import scipy.signal
 from numpy.typing import NDArray
 
 from plantrig.sim._deadtime import DelayedLinearStepper
