@@ -5,6 +5,9 @@ set -uo pipefail
 source "$(dirname "${BASH_SOURCE[0]}")/setup.sh" || exit 1
 .venv/bin/python -m ruff check . || exit 1
 bash "$(dirname "${BASH_SOURCE[0]}")/typecheck.sh" || exit 1
+# the package's own byte code once, so the many processes the tests start (rig, recorder,
+# controller) do not each compile it again where PYTHONDONTWRITEBYTECODE is set
+.venv/bin/python -m compileall -q app sim io gui >/dev/null
 .venv/bin/python -m pytest "$@"
 status=$?
 if [ "$status" -eq 5 ]; then

@@ -68,10 +68,14 @@ def serve_pty(fd: int, answers: Answers) -> None:
     os.set_blocking(fd, False)
     splitter = FrameSplitter()
     print("wrong-encoding: ready", flush=True)
+    heard = False
     while True:
-        ready, _, _ = select.select([fd], [], [], 2.0)
+        # a loaded machine may take seconds to start the rig: wait long for the first
+        # frame, then end after 2 s of silence (the rig has stopped)
+        ready, _, _ = select.select([fd], [], [], 2.0 if heard else 30.0)
         if not ready:
             return
+        heard = True
         try:
             data = os.read(fd, 4096)
         except BlockingIOError:
