@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import CAUTION, show_caution, shown_env
+from plantrig._console import print_outcome
 from plantrig.sim import EXIT_CODE_HELP
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
@@ -104,23 +105,48 @@ def wait_ready(proc: subprocess.Popen[str], timeout: float) -> str | None:
     return None
 
 
+def reap(proc: subprocess.Popen[str], wait_s: float = 5.0) -> None:
+    """Wait for a demo's controller to end by itself (it does once the rig closes its
+    end), and stop it if it does not."""
+    try:
+        proc.wait(timeout=wait_s)
+    except subprocess.TimeoutExpired:
+        proc.terminate()
+        proc.wait(timeout=5)
+
+
+def demo_result(proc: subprocess.Popen[str], folder: Path, outcome: Any,
+                summary: dict[str, Any], extra: str = "") -> int:
+    """The end of every demo: what the controller said, the run's outcome, any extra
+    lines, and one verdict line; returns the run's exit code."""
+    assert proc.stdout is not None
+    for line in proc.stdout.read().splitlines():
+        print(line)
+    print_outcome(folder, summary)
+    if extra:
+        print(extra)
+    code = int(summary["exit_code"])
+    print("demo: ok" if code == EXIT_OK else
+          f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")
+    return code
+
+
 def controller_command(rig_path: str | Path, port: str) -> list[str]:
     """The command line that starts the reference controller in its own process."""
     return [sys.executable, "-m", "plantrig", "controller", str(rig_path), "--port", port]
 
 
-def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
-             print_outcome: Callable[[Path, dict[str, Any]], None]) -> int:
+def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Rig and reference controller over a pty pair, in real time; 0 if all went well."""
     from plantrig.io import FdPort, build_link, open_pty_pair
     from plantrig.sim import run_to_folder
 
     if args.modbus:
         from plantrig._modbus_cli import cmd_demo_modbus
-        return cmd_demo_modbus(args, load, print_outcome, wait_ready)
+        return cmd_demo_modbus(args, load)
     if args.mqtt:
         from plantrig._mqtt_cli import cmd_demo_mqtt
-        return cmd_demo_mqtt(args, load, print_outcome, wait_ready)
+        return cmd_demo_mqtt(args, load)
     show_caution()
     rig = load(args.rig or str(DEMO_RIG))
     link_settings(rig)
@@ -145,19 +171,8 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any],
     finally:
         pair.close_slave()
         pair.close_master()   # the controller ends when the rig's end of the pty closes
-        try:
-            proc.wait(timeout=5)
-        except subprocess.TimeoutExpired:
-            proc.terminate()
-            proc.wait(timeout=5)
-    assert proc.stdout is not None
-    for line in proc.stdout.read().splitlines():
-        print(line)
-    print_outcome(folder, summary)
-    code = int(summary["exit_code"])
-    print("demo: ok" if code == EXIT_OK else
-          f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")
-    return code
+        reap(proc)
+    return demo_result(proc, folder, outcome, summary)
 
 
 def link_report(h: dict[str, float], tick: float) -> str:
@@ -182,8 +197,7 @@ def link_report(h: dict[str, float], tick: float) -> str:
     return "\n".join(lines)
 
 
-def add_parsers(sub: Any, load: Callable[[str], Any],
-                print_outcome: Callable[[Path, dict[str, Any]], None]) -> None:
+def add_parsers(sub: Any, load: Callable[[str], Any]) -> None:
     """Add `controller` and `demo` to the CLI's subcommands."""
     p = sub.add_parser("controller", help="run the reference controller on a rig's link",
                        description="Answer the rig's sensor frames with the law in "
@@ -216,4 +230,4 @@ def add_parsers(sub: Any, load: Callable[[str], Any],
     p.add_argument("--modbus", action="store_true",
                    help="over Modbus TCP on a free loopback port: the rig is the server, "
                         "the reference controller polls it as a PLC would")
-    p.set_defaults(func=lambda a: cmd_demo(a, load, print_outcome))
+    p.set_defaults(func=lambda a: cmd_demo(a, load))

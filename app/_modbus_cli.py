@@ -59,10 +59,9 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def cmd_demo_modbus(args: argparse.Namespace, load: Callable[[str], Any],
-                    print_outcome: Callable[[Path, dict[str, Any]], None],
-                    wait_ready: Callable[[subprocess.Popen[str], float], str | None]) -> int:
+def cmd_demo_modbus(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Rig (the Modbus server) and the reference controller (the client), in real time."""
+    from plantrig._hil import demo_result, reap, wait_ready
     from plantrig.io import build_link
     from plantrig.sim import run_to_folder
 
@@ -91,23 +90,12 @@ def cmd_demo_modbus(args: argparse.Namespace, load: Callable[[str], Any],
               f"Modbus TCP server on {where}")
         folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
     finally:
-        try:   # the controller ends when the rig's server closes
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.terminate()
-            proc.wait(timeout=5)
-    assert proc.stdout is not None
-    for line in proc.stdout.read().splitlines():
-        print(line)
-    print_outcome(folder, summary)
+        reap(proc, 10.0)   # the controller ends when the rig's server closes
     h = summary["link"]
     bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
-    print(f"link: requests in {h.get('frames_in', 0):.0f}, commands in "
-          f"{h.get('commands_in', 0):.0f} (used {h.get('commands_used', 0):.0f}), refused "
-          f"{bad:.0f}, late {h.get('late', 0):.0f}, link lost {h.get('link_lost', 0):.0f}; "
-          f"answer used {h.get('latency_ticks_p50', 0):.0f} tick(s) after its sensor "
-          f"values p50, {h.get('latency_ticks_max', 0):.0f} max")
-    code = int(summary["exit_code"])
-    print("demo: ok" if code == EXIT_OK else
-          f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")
-    return code
+    return demo_result(proc, folder, outcome, summary, extra=(
+        f"link: requests in {h.get('frames_in', 0):.0f}, commands in "
+        f"{h.get('commands_in', 0):.0f} (used {h.get('commands_used', 0):.0f}), refused "
+        f"{bad:.0f}, late {h.get('late', 0):.0f}, link lost {h.get('link_lost', 0):.0f}; "
+        f"answer used {h.get('latency_ticks_p50', 0):.0f} tick(s) after its sensor "
+        f"values p50, {h.get('latency_ticks_max', 0):.0f} max"))

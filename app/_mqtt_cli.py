@@ -81,10 +81,9 @@ def link_report(h: dict[str, float]) -> str:
     return "\n".join(lines)
 
 
-def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any],
-                  print_outcome: Callable[[Path, dict[str, Any]], None],
-                  wait_ready: Callable[[subprocess.Popen[str], float], str | None]) -> int:
+def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Rig and reference controller through a local mosquitto, in real time."""
+    from plantrig._hil import demo_result, reap, wait_ready
     from plantrig.io import build_link
     from plantrig.io._broker import BrokerError, LocalBroker
     from plantrig.sim import run_to_folder
@@ -119,17 +118,6 @@ def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any],
               f"over MQTT at {where}")
         folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
     finally:
-        try:  # the controller ends when the rig says 'offline' (link closed)
-            proc.wait(timeout=5)
-        except subprocess.TimeoutExpired:
-            proc.terminate()
-            proc.wait(timeout=5)
+        reap(proc)   # the controller ends when the rig says 'offline' (link closed)
         broker.close()
-    assert proc.stdout is not None
-    for line in proc.stdout.read().splitlines():
-        print(line)
-    print_outcome(folder, summary)
-    code = int(summary["exit_code"])
-    print("demo: ok" if code == EXIT_OK else
-          f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")
-    return code
+    return demo_result(proc, folder, outcome, summary)

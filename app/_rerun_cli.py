@@ -8,6 +8,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from plantrig._console import print_outcome
 from plantrig._model_trust import TRUST_HELP, model_guard
 from plantrig._override_options import add_override_options, overrides_of
 from plantrig.sim import EXIT_CODE_HELP, RecordError, RigFileError
@@ -15,7 +16,7 @@ from plantrig.sim import EXIT_CODE_HELP, RecordError, RigFileError
 EXIT_USAGE = 2
 
 
-def add_parser(sub: Any, print_outcome: Any) -> None:
+def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "rerun", help="re-simulate a run folder with its recorded commands (what-if)",
         description="Re-run a recorded run in fast mode: the plant gets the controller's "
@@ -45,7 +46,7 @@ def add_parser(sub: Any, print_outcome: Any) -> None:
                    help="Ed25519 public key (PEM) of someone you trust: a model module of "
                         "a folder signed with it is imported when its SHA-256 is the one "
                         "the signed manifest lists")
-    p.set_defaults(func=lambda args: cmd_rerun(args, print_outcome))
+    p.set_defaults(func=cmd_rerun)
 
 
 def _untrusted_module(args: argparse.Namespace) -> str | None:
@@ -57,7 +58,7 @@ def _untrusted_module(args: argparse.Namespace) -> str | None:
                        from_folder=Path(args.folder))
 
 
-def cmd_rerun(args: argparse.Namespace, print_outcome: Any) -> int:
+def cmd_rerun(args: argparse.Namespace) -> int:
     from plantrig.sim import build_chains, load_scenario, run_to_folder
     from plantrig.sim._rerun import RerunError, plan_rerun
 

@@ -350,12 +350,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--screenshot", metavar="PNG",
                    help="draw the run once, save the window as a PNG and exit")
     p.set_defaults(func=cmd_replay)
-    add_link_commands(sub, _load, print_outcome)
+    add_link_commands(sub, _load)
     add_compare_command(sub)
     add_plot_command(sub)
     add_campaign_command(sub)
     add_runs_command(sub)
-    add_rerun_command(sub, print_outcome)
+    add_rerun_command(sub)
     return parser
 
 
