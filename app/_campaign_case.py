@@ -51,11 +51,8 @@ def build_case(case: Case, scenario_copy: Path | None = None
                                f"(SHA-256 {sha[:12]}...): workers must see the same files")
     rig = load_rig_with_overrides(case.rig_file, case.rig_set)
     if rig.controller.kind == "external":
-        from plantrig.io import parse_link_table
-        settings, issues = parse_link_table(rig)
-        if settings is None or issues:
-            raise RigFileError(issues)
-        if settings.controller is None:
+        settings = rig.link
+        if settings is None or settings.controller is None:
             raise RigFileError([RigIssue(str(rig.path), "link.controller", (
                 "missing: a campaign runs without controller hardware, with the law of "
                 "[link.controller] built in"))])

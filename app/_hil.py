@@ -30,8 +30,7 @@ READY_WORD = "controller: ready"
 
 def link_settings(rig: Any) -> Any:
     """The checked [link] settings of a rig already loaded (and checked) by the CLI."""
-    from plantrig.io import parse_link_table
-    settings, _ = parse_link_table(rig)
+    settings = rig.link
     if settings is None:
         print(f"error: {rig.path}: link: missing table (the controller is on a link)",
               file=sys.stderr)
@@ -199,7 +198,7 @@ def link_report(h: dict[str, float], tick: float) -> str:
 
 def add_parsers(sub: Any, load: Callable[[str], Any]) -> None:
     """Add `controller` and `demo` to the CLI's subcommands."""
-    p = sub.add_parser("controller", help="run the reference controller on a rig's link",
+    p = sub.add_parser("controller",
                        description="Answer the rig's sensor frames with the law in "
                                    "[link.controller], until the far end closes.",
                        epilog="exit codes:\n  0  the far end closed or a signal stopped it\n"
@@ -214,7 +213,7 @@ def add_parsers(sub: Any, load: Callable[[str], Any]) -> None:
                    help="do not ask for SCHED_FIFO")
     p.set_defaults(func=lambda a: cmd_controller(a, load))
 
-    p = sub.add_parser("demo", help="rig and reference controller over a pty, in real time",
+    p = sub.add_parser("demo",
                        description="Run a rig in real time against the reference controller "
                                    "in another process, over a pseudo-terminal pair. The exit "
                                    "code is the run's outcome, as for `plantrig run`.",

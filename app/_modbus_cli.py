@@ -67,9 +67,10 @@ def cmd_demo_modbus(args: argparse.Namespace, load: Callable[[str], Any]) -> int
 
     show_caution()
     rig = load(args.rig or str(DEMO_RIG))
-    if (rig.link or {}).get("kind") != "modbus":
+    found = rig.link.kind if rig.link else None
+    if found != "modbus":
         print(f"error: {rig.path}: link.kind: expected 'modbus' for demo --modbus, found "
-              f"{(rig.link or {}).get('kind')!r}", file=sys.stderr)
+              f"{found!r}", file=sys.stderr)
         return EXIT_USAGE
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)

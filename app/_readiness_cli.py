@@ -25,11 +25,8 @@ SITE_NOTE = ("advice only: change a bench machine's settings with your site's IT
 def per_tick_cost(rig: Any) -> float:
     """Seconds a tick of ``rig`` takes in fast mode (its controller built in when the rig
     talks to one over a link: the link's own cost is not in this figure)."""
-    if rig.link is not None:
-        from plantrig.io import parse_link_table
-        settings, _ = parse_link_table(rig)
-        if settings is not None:
-            rig = dataclasses.replace(rig, controller=settings.controller, link=None)
+    if rig.link is not None and rig.link.controller is not None:
+        rig = dataclasses.replace(rig, controller=rig.link.controller, link=None)
     ticks = min(rig.n_ticks, COST_TICKS)
     short = dataclasses.replace(rig, duration=ticks * rig.tick, mode="fast")
     best = float("inf")

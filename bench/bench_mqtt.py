@@ -36,7 +36,7 @@ from pathlib import Path
 import aiomqtt
 import numpy as np
 
-from plantrig.io import build_link, parse_link_table
+from plantrig.io import build_link
 from plantrig.io._broker import LocalBroker
 from plantrig.io._mqtt_config import mqtt_settings
 from plantrig.io._mqtt_controller import MqttControllerPeer
@@ -123,7 +123,7 @@ class BareEcho:
 
 def _controller_main(rig_path: str, port: int, ready: multiprocessing.synchronize.Event) -> None:
     rig = load_rig(rig_path)
-    link, _ = parse_link_table(rig)
+    link = rig.link
     assert link is not None
     controller = ReferenceController(rig, link)
     peer = MqttControllerPeer(mqtt_settings(link, port), len(rig.outputs),

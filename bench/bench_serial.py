@@ -38,7 +38,6 @@ from plantrig.io import (
     decode_frame,
     encode_line,
     open_pty_pair,
-    parse_link_table,
 )
 from plantrig.sim import WallClock, load_rig, simulate
 from plantrig.sim._clock import SPIN_NS
@@ -85,7 +84,7 @@ def main() -> None:
                         help="seconds of each of the two loops (default 30)")
     args = parser.parse_args()
     rig = load_rig(RIG)
-    settings, _ = parse_link_table(rig)
+    settings = rig.link
     assert settings is not None
     # realistic sensor values: the conveyor's outputs from a fast run with the law built in
     twin = dataclasses.replace(rig, controller=settings.controller, link=None, mode="fast")

@@ -27,8 +27,8 @@ def watchdog_of(rig: Rig) -> float:
     """The silence after which the engine calls the link lost: the link's own
     ``watchdog_timeout`` for a real link, ``[safety]``'s otherwise (as sim's faults do)."""
     timeout = float(rig.safety.watchdog_timeout)
-    if rig.controller.kind == "external" and isinstance(rig.link, dict):
-        timeout = float(rig.link.get("watchdog_timeout", timeout))
+    if rig.controller.kind == "external" and rig.link is not None:
+        timeout = rig.link.watchdog_timeout
     return timeout
 
 

@@ -1,8 +1,9 @@
 """The Modbus register map of a rig: where each signal lives and how it is encoded.
 
-Kept free of plantrig.sim and pymodbus so the worker process (plantrig.io._modbus_worker)
-loads it quickly. The rig file's ``[link.registers]`` gives each signal a register
-address, a data type, a scale and an offset (docs/modbus_link.md)::
+Kept free of pymodbus so the worker process (plantrig.io._modbus_worker) loads it
+quickly; the rig file's keys are checked by sim/_modbus_settings.py. The rig file's
+``[link.registers]`` gives each signal a register address, a data type, a scale and an
+offset (docs/modbus_link.md)::
 
     raw = round((value - offset) / scale)   int16, uint16, int32, uint32
     raw = (value - offset) / scale          float32 (IEEE 754 binary32)
@@ -31,12 +32,12 @@ import struct
 from dataclasses import dataclass
 from typing import Any
 
-TYPES = {"int16": 1, "uint16": 1, "int32": 2, "uint32": 2, "float32": 2, "bool": 1}
+from plantrig.sim import REGISTER_TYPES as TYPES
+
 INT_RANGE = {"int16": (-(1 << 15), (1 << 15) - 1), "uint16": (0, (1 << 16) - 1),
              "int32": (-(1 << 31), (1 << 31) - 1), "uint32": (0, (1 << 32) - 1),
              "bool": (0, 1)}
 TABLES = ("input", "holding", "discrete", "coil")
-ADDRESS_LIMIT = 1 << 16
 F32_MAX = 3.4028234663852886e38   # the largest finite float32
 
 

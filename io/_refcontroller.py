@@ -36,10 +36,9 @@ from typing import Any, Protocol
 import numpy as np
 
 from plantrig.io._frames import TICK_MODULUS, FrameError, Kind, SeqTracker
-from plantrig.io._link_config import LinkSettings
 from plantrig.io._pty import FdPort
 from plantrig.io._wire import WireFormat
-from plantrig.sim import ControllerSpec, Rig, RigFileError, RigIssue, build_controller
+from plantrig.sim import ControllerSpec, LinkSettings, Rig, RigFileError, RigIssue, build_controller
 
 WRITE_TIMEOUT_S = 0.05
 FIFO_PRIORITY = 5   # below the rig's loop (plantrig.sim uses 10), above ordinary work

@@ -26,11 +26,10 @@ from typing import Any, Protocol
 import numpy as np
 
 from plantrig.io._frames import REASONS, TICK_MODULUS, FrameError, Kind, SeqTracker
-from plantrig.io._link_config import LinkSettings
 from plantrig.io._pty import FdPort
 from plantrig.io._rig_state import RigState
 from plantrig.io._wire import WireFormat
-from plantrig.sim import Event, Rig, silent_ticks_allowed
+from plantrig.sim import Event, LinkSettings, Rig, silent_ticks_allowed
 
 Vector = np.ndarray
 RETRY_S = 0.5          # a failed port is retried this often (plant time)

@@ -35,7 +35,13 @@ _HOME: dict[str, str] = {
     **dict.fromkeys(["ControllerLink", "Event", "SignalChain"], "_contracts"),
     **dict.fromkeys(["OpenLoop", "Pid", "PidLoops", "StateFeedback"], "_controllers"),
     **dict.fromkeys(["Engine", "RunOutcome", "build_controller", "tick_columns"], "_engine"),
-    **dict.fromkeys(["RigFileError", "RigIssue", "describe_value", "one_of"], "_errors"),
+    **dict.fromkeys(
+        ["Checker", "RigFileError", "RigIssue", "describe_value", "did_you_mean", "one_of"],
+        "_checker",
+    ),
+    **dict.fromkeys(["LinkSettings"], "_link_settings"),
+    **dict.fromkeys(["REGISTER_TYPES"], "_modbus_settings"),
+    **dict.fromkeys(["DEFAULT_QOS", "TlsSettings"], "_mqtt_settings"),
     **dict.fromkeys(["export_csv", "export_mat"], "_export"),
     **dict.fromkeys(
         ["DisturbanceSpec", "FAULT_KINDS", "FaultKind", "FaultSpec", "parse_fault"], "_faults"
@@ -80,7 +86,6 @@ _HOME: dict[str, str] = {
             "Rig",
             "Signal",
             "build_rig",
-            "check_controller_table",
             "load_rig",
         ],
         "_rigfile",
@@ -138,7 +143,6 @@ __all__ = [
     "WallClock",
     "build_controller",
     "build_rig",
-    "check_controller_table",
     "from_state_space_object",
     "load_rig",
     "make_stepper",
@@ -166,8 +170,15 @@ __all__ = [
     "parse_fault",
     "verdict_lines",
     "write_verdicts",
+    # checking TOML files, and the typed settings of a rig's link
+    "Checker",
     "describe_value",
+    "did_you_mean",
     "one_of",
+    "LinkSettings",
+    "TlsSettings",
+    "DEFAULT_QOS",
+    "REGISTER_TYPES",
     # what people read for each kind of signal
     "SIGNAL_LABELS",
     "SIGNAL_MEANINGS",
@@ -226,6 +237,14 @@ def __dir__() -> list[str]:
 
 if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim._chains import build_chains
+    from plantrig.sim._checker import (
+        Checker,
+        RigFileError,
+        RigIssue,
+        describe_value,
+        did_you_mean,
+        one_of,
+    )
     from plantrig.sim._clock import Clock, VirtualClock, WallClock
     from plantrig.sim._commands import Command, CommandInbox
     from plantrig.sim._conditioning import (
@@ -242,12 +261,14 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim._contracts import ControllerLink, Event, SignalChain
     from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
     from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
-    from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
     from plantrig.sim._export import export_csv, export_mat
     from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultSpec, parse_fault
     from plantrig.sim._interlocks import InterlockSpec, SafetySettings
     from plantrig.sim._limits import LimitSpec
+    from plantrig.sim._link_settings import LinkSettings
     from plantrig.sim._manifest import generate_keypair, sign_folder, verify_folder
+    from plantrig.sim._modbus_settings import REGISTER_TYPES
+    from plantrig.sim._mqtt_settings import DEFAULT_QOS, TlsSettings
     from plantrig.sim._outcome import (
         EXIT_CODE_HELP,
         EXIT_CODES,
@@ -290,7 +311,6 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         Rig,
         Signal,
         build_rig,
-        check_controller_table,
         load_rig,
     )
     from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs

@@ -33,9 +33,8 @@ from typing import Any
 import numpy as np
 import tomli_w
 
-from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
+from plantrig.sim._checker import Checker, RigFileError, RigIssue, describe_value, one_of
 from plantrig.sim._overrides import apply_overrides, load_rig_with_overrides, parse_path
-from plantrig.sim._rigfile import _Checker
 from plantrig.sim._scenario import build_scenario
 
 TOP_KEYS = {"campaign", "acceptance", "verdicts", "rigs"}
@@ -175,7 +174,7 @@ def load_campaign(path: str | Path) -> Campaign:
         raise CampaignFileError([RigIssue(file, "", f"not UTF-8 text: {exc.reason}")]) from None
     except tomllib.TOMLDecodeError as exc:
         raise CampaignFileError([RigIssue(file, "", f"not valid TOML: {exc}")]) from None
-    c = _Checker(file)
+    c = Checker(file)
     c.no_unknown(doc, TOP_KEYS, "")
     head = c.table(doc, "campaign", "", required=True)
     c.no_unknown(head, CAMPAIGN_KEYS, "campaign")
@@ -212,7 +211,7 @@ def _at_least_one(value: Any) -> str | None:
     return None if value >= 1 else f"expected a whole number >= 1, found {value}"
 
 
-def _entry(c: _Checker, t: dict[str, Any], where: str, campaign: Path,
+def _entry(c: Checker, t: dict[str, Any], where: str, campaign: Path,
            acceptance: tuple[str, ...], verdicts: tuple[dict[str, Any], ...],
            default_draws: int) -> RigEntry | None:
     """Check one [[rigs]] table, loading its rig and scenarios; None after a mistake."""
@@ -308,7 +307,7 @@ def _nominal(key: str, rig_doc: dict[str, Any],
     return _lookup(rig_doc, key)
 
 
-def _key_ok(c: _Checker, here: str, key: str, value: Any, rig_doc: dict[str, Any],
+def _key_ok(c: Checker, here: str, key: str, value: Any, rig_doc: dict[str, Any],
             scenarios: list[tuple[Path, str, dict[str, Any]]]) -> bool:
     """Whether ``key`` is a path the override mechanism can set (rig or each scenario)."""
     if key.startswith(SCENARIO_PREFIX):
@@ -332,7 +331,7 @@ def _key_ok(c: _Checker, here: str, key: str, value: Any, rig_doc: dict[str, Any
     return ok
 
 
-def _draw(c: _Checker, here: str, key: str, spec: Any, nominal: Any) -> Draw | None:
+def _draw(c: Checker, here: str, key: str, spec: Any, nominal: Any) -> Draw | None:
     """One draw table, checked; percentages resolved against ``nominal``."""
     if not isinstance(spec, dict):
         c.add(here, f"expected a table like {{ dist = \"uniform\", spread_pct = 20 }}, "

@@ -32,7 +32,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._errors import RigFileError, RigIssue, describe_value
+from plantrig.sim._checker import RigFileError, RigIssue, describe_value
 from plantrig.sim._records import read_events
 
 SIGNAL_PREFIXES = ("ref", "cmd", "sent", "y", "x", "u", "d", "limit", "trip")

@@ -8,9 +8,11 @@ so the controller under test meets them on the bench. Both satisfy
 together with numpy, and ``apply`` allocates no arrays (every buffer is made at
 construction).
 
-Each channel is described by a plain dict (one table per channel in the rig file).
-Every key is optional; unknown keys are refused. A bad spec raises ChainSpecError (a
-ValueError) naming chain, channel and key, e.g. ``sensors[2].delay_ticks: ...``.
+Each channel is described by a table (one per signal in the rig file; checked into
+SensorChannel and ActuatorChannel by sim/_chain_settings.py), or by a plain dict in
+Python. Every key is optional; unknown keys are refused. A bad dict raises
+ChainSpecError (a ValueError) naming chain, channel and key, e.g.
+``sensors[2].delay_ticks: ...``.
 
 Sensor channel keys (plant output y in engineering units -> value sent):
 
@@ -59,28 +61,37 @@ counts = round((v - lo) / (hi - lo) * (2^bits - 1)), v = lo + counts * (hi - lo)
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+import re
+from collections.abc import Sequence
 from numbers import Real
 from typing import Any
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from plantrig.sim._chain_settings import (
+    MAX_BITS,
+    ActuatorChannel,
+    SensorChannel,
+    actuator_channel,
+    channel_list,
+    sensor_channel,
+)
+from plantrig.sim._checker import Checker, RigFileError, RigIssue
+
 Vector = NDArray[np.float64]
 
-MAX_BITS = 32
-MAX_DELAY_TICKS = 100_000  # 100 s at 1 kHz; the line holds (delay + 1) rows per channel
 
 
-class ChainSpecError(ValueError):
-    """A channel spec is wrong; carries which chain, channel index and key."""
+class ChainSpecError(RigFileError):
+    """Mistakes in a chain given in Python; ``chain``, ``index`` and ``key`` name the
+    first one (a rig file's chains are checked by load_rig instead)."""
 
-    def __init__(self, chain: str, index: int, key: str, message: str) -> None:
-        self.chain = chain
-        self.index = index
-        self.key = key
-        super().__init__(f"{chain}[{index}].{key}: {message}")
+    def __init__(self, issues: Sequence[RigIssue]) -> None:
+        super().__init__(issues)
+        first = re.match(r"(\w+)\[(\d+)\]\.?(.*)", self.issues[0].key)
+        self.chain, self.index, self.key = (first.group(1), int(first.group(2)),
+                                            first.group(3) or "*") if first else ("", 0, "*")
 
 
 # --- converter transfer functions -------------------------------------------------
@@ -135,182 +146,6 @@ def counts_to_eng(counts: ArrayLike, bits: ArrayLike, lo: ArrayLike, hi: ArrayLi
     c = np.clip(np.asarray(counts, dtype=np.float64), 0.0, top)
     out = np.empty(np.broadcast_shapes(c.shape, lo_a.shape))
     return _to_eng(c, lo_a, span, top, out)
-
-
-# --- spec parsing ------------------------------------------------------------------
-
-
-class _Reader:
-    """Reads one channel dict, checking each key and naming it on error."""
-
-    def __init__(self, chain: str, index: int, spec: object, allowed: frozenset[str]) -> None:
-        self.chain, self.index = chain, index
-        if not isinstance(spec, Mapping):
-            raise ChainSpecError(chain, index, "*", f"expected a table, got {type(spec).__name__}")
-        unknown = sorted(set(map(str, spec)) - allowed)
-        if unknown:
-            raise ChainSpecError(
-                chain, index, unknown[0], f"unknown key (allowed: {', '.join(sorted(allowed))})"
-            )
-        self.spec: Mapping[str, Any] = spec
-
-    def fail(self, key: str, message: str) -> ChainSpecError:
-        return ChainSpecError(self.chain, self.index, key, message)
-
-    def has(self, key: str) -> bool:
-        return key in self.spec
-
-    def real(self, key: str, default: float, *, finite: bool = True) -> float:
-        if key not in self.spec:
-            return default
-        v = self.spec[key]
-        if isinstance(v, bool) or not isinstance(v, Real):
-            raise self.fail(key, f"expected a number, got {v!r}")
-        f = float(v)
-        if math.isnan(f) or (finite and math.isinf(f)):
-            raise self.fail(key, f"expected a finite number, got {v!r}")
-        return f
-
-    def whole(self, key: str, default: int, lo: int, hi: int) -> int:
-        if key not in self.spec:
-            return default
-        v = self.spec[key]
-        f = float(v) if isinstance(v, Real) and not isinstance(v, bool) else math.nan
-        if not f.is_integer():
-            raise self.fail(key, f"expected a whole number, got {v!r}")
-        if not lo <= f <= hi:
-            raise self.fail(key, f"expected {lo}..{hi}, got {v!r}")
-        return int(f)
-
-    def flag(self, key: str, default: bool) -> bool:
-        if key not in self.spec:
-            return default
-        v = self.spec[key]
-        if not isinstance(v, bool):
-            raise self.fail(key, f"expected true or false, got {v!r}")
-        return v
-
-    def text(self, key: str, default: str) -> str:
-        if key not in self.spec:
-            return default
-        v = self.spec[key]
-        if not isinstance(v, str) or not v:
-            raise self.fail(key, f"expected a non-empty string, got {v!r}")
-        return v
-
-    def limits(self) -> tuple[float, float]:
-        lo = self.real("lo", -math.inf, finite=False)
-        hi = self.real("hi", math.inf, finite=False)
-        if lo >= hi:
-            raise self.fail("hi", f"must be greater than lo ({lo}), got {hi}")
-        return lo, hi
-
-    def converter(self, prefix: str) -> tuple[int, float, float] | None:
-        bits_key, lo_key, hi_key = f"{prefix}_bits", f"{prefix}_lo", f"{prefix}_hi"
-        if not self.has(bits_key):
-            for k in (lo_key, hi_key):
-                if self.has(k):
-                    raise self.fail(k, f"needs {bits_key}")
-            return None
-        bits = self.whole(bits_key, 0, 1, MAX_BITS)
-        for k in (lo_key, hi_key):
-            if not self.has(k):
-                raise self.fail(k, f"required with {bits_key}")
-        lo, hi = self.real(lo_key, 0.0), self.real(hi_key, 0.0)
-        if lo >= hi:
-            raise self.fail(hi_key, f"must be greater than {lo_key} ({lo}), got {hi}")
-        return bits, lo, hi
-
-
-@dataclass(frozen=True, slots=True)
-class SensorChannel:
-    """One sensor channel, checked (see the module docstring for the keys)."""
-
-    name: str
-    gain: float = 1.0
-    offset: float = 0.0
-    noise_std: float = 0.0
-    delay_ticks: int = 0
-    lo: float = -math.inf
-    hi: float = math.inf
-    step: float = 0.0
-    adc: tuple[int, float, float] | None = None
-    send_counts: bool = False
-
-    @classmethod
-    def from_spec(cls, index: int, spec: Mapping[str, Any]) -> SensorChannel:
-        r = _Reader("sensors", index, spec, _SENSOR_KEYS)
-        noise_std = r.real("noise_std", 0.0)
-        if noise_std < 0:
-            raise r.fail("noise_std", f"must be >= 0, got {noise_std}")
-        step = r.real("step", 0.0)
-        if r.has("step") and step <= 0:
-            raise r.fail("step", f"must be > 0, got {step}")
-        adc = r.converter("adc")
-        if adc is not None and r.has("step"):
-            raise r.fail("step", "cannot be used together with adc_bits")
-        send_counts = r.flag("send_counts", False)
-        if send_counts and adc is None:
-            raise r.fail("send_counts", "needs adc_bits, adc_lo and adc_hi")
-        lo, hi = r.limits()
-        return cls(
-            name=r.text("name", f"sensor{index}"),
-            gain=r.real("gain", 1.0),
-            offset=r.real("offset", 0.0),
-            noise_std=noise_std,
-            delay_ticks=r.whole("delay_ticks", 0, 0, MAX_DELAY_TICKS),
-            lo=lo,
-            hi=hi,
-            step=step,
-            adc=adc,
-            send_counts=send_counts,
-        )
-
-
-@dataclass(frozen=True, slots=True)
-class ActuatorChannel:
-    """One actuator channel, checked (see the module docstring for the keys)."""
-
-    name: str
-    gain: float = 1.0
-    offset: float = 0.0
-    dac: tuple[int, float, float] | None = None
-    lo: float = -math.inf
-    hi: float = math.inf
-    rate: float = math.inf
-    initial: float = 0.0
-
-    @classmethod
-    def from_spec(cls, index: int, spec: Mapping[str, Any]) -> ActuatorChannel:
-        r = _Reader("actuators", index, spec, _ACTUATOR_KEYS)
-        dac = r.converter("dac")
-        if dac is not None:
-            for k in ("gain", "offset"):
-                if r.has(k):
-                    raise r.fail(k, "cannot be used together with dac_bits")
-        rate = r.real("rate", math.inf, finite=False)
-        if r.has("rate") and not rate > 0:
-            raise r.fail("rate", f"must be > 0, got {rate}")
-        lo, hi = r.limits()
-        initial = r.real("initial", 0.0)
-        if not lo <= initial <= hi:
-            raise r.fail("initial", f"must lie inside lo..hi ({lo}..{hi}), got {initial}")
-        return cls(
-            name=r.text("name", f"actuator{index}"),
-            gain=r.real("gain", 1.0),
-            offset=r.real("offset", 0.0),
-            dac=dac,
-            lo=lo,
-            hi=hi,
-            rate=rate,
-            initial=initial,
-        )
-
-
-_SENSOR_KEYS = frozenset(
-    "name gain offset noise_std delay_ticks lo hi step adc_bits adc_lo adc_hi send_counts".split()
-)
-_ACTUATOR_KEYS = frozenset("name dac_bits dac_lo dac_hi gain offset lo hi rate initial".split())
 
 
 def _column(values: Sequence[float]) -> Vector:
@@ -430,9 +265,8 @@ class ActuatorChain:
         if self._has_rate.any():
             i = int(np.argmax(self._has_rate))
             if dt is None or not (isinstance(dt, Real) and math.isfinite(dt) and dt > 0):
-                raise ChainSpecError(
-                    "actuators", i, "rate", f"needs the tick length dt > 0, got dt={dt!r}"
-                )
+                raise ChainSpecError([RigIssue(SPEC, f"actuators[{i}].rate",
+                                               f"needs the tick length dt > 0, found {dt!r}")])
         self.dt = dt
         self._gain = _column([c.gain for c in ch])
         self._offset = _column([c.offset for c in ch])
@@ -488,23 +322,25 @@ class ActuatorChain:
         np.copyto(dst, w)
 
 
-def _channel_list(chain: str, spec: object) -> Sequence[Any]:
-    if isinstance(spec, (str, bytes, Mapping)) or not isinstance(spec, Sequence):
-        raise ChainSpecError(chain, 0, "*", f"expected a list of tables, got {type(spec).__name__}")
-    if not spec:
-        raise ChainSpecError(chain, 0, "*", "expected at least one channel")
-    return spec
+SPEC = "chain spec"   # the "file" named in a ChainSpecError's messages
+
+
+def _checked(group: str, spec: object, read: Any) -> list[Any]:
+    c = Checker(SPEC)
+    tables = channel_list(c, group, spec)
+    channels = [read(c, f"{group}[{i}]", t, f"{group[:-1]}{i}") for i, t in enumerate(tables)]
+    if c.issues:
+        raise ChainSpecError(c.issues)
+    return channels
 
 
 def build_sensor_chain(spec: list[dict[str, Any]], seed: int) -> SensorChain:
     """Sensor chain from one dict per channel (keys in the module docstring)."""
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ValueError(f"sensors: seed must be a whole number >= 0, got {seed!r}")
-    items = _channel_list("sensors", spec)
-    return SensorChain([SensorChannel.from_spec(i, s) for i, s in enumerate(items)], seed)
+    return SensorChain(_checked("sensors", spec, sensor_channel), seed)
 
 
 def build_actuator_chain(spec: list[dict[str, Any]], dt: float | None = None) -> ActuatorChain:
     """Actuator chain from one dict per channel; ``dt`` (s) is needed when a rate is set."""
-    items = _channel_list("actuators", spec)
-    return ActuatorChain([ActuatorChannel.from_spec(i, s) for i, s in enumerate(items)], dt)
+    return ActuatorChain(_checked("actuators", spec, actuator_channel), dt)

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from plantrig.sim._rigfile import _Checker
+    from plantrig.sim._checker import Checker
 
 DUT_KEYS = {"name", "firmware", "serial"}
 
@@ -47,7 +47,7 @@ def _not_blank(value: Any) -> str | None:
     return None if value.strip() else "expected some text, found an empty string"
 
 
-def parse_dut(c: _Checker, doc: dict[str, Any]) -> DutSpec:
+def parse_dut(c: Checker, doc: dict[str, Any]) -> DutSpec:
     """Check the optional ``[dut]`` table; every mistake goes to ``c`` with its key path."""
     t = c.table(doc, "dut", "", required=False)
     c.no_unknown(t, DUT_KEYS, "dut")

@@ -53,7 +53,8 @@ from plantrig.sim._watchdog import silent_ticks_allowed
 
 if TYPE_CHECKING:
     from plantrig.sim._plant import Stepper
-    from plantrig.sim._rigfile import Rig, Signal, _Checker
+    from plantrig.sim._checker import Checker
+    from plantrig.sim._rigfile import Rig, Signal
 
 Vector = NDArray[np.float64]
 REQUIRED = None
@@ -153,7 +154,7 @@ class DisturbanceSpec:
 DISTURBANCE_KEYS = {"name", "unit", "B", "param", "description"}
 
 
-def parse_disturbances(c: _Checker, doc: dict[str, Any], plant: Any,
+def parse_disturbances(c: Checker, doc: dict[str, Any], plant: Any,
                        states: list[Signal]) -> list[DisturbanceSpec]:
     """Check ``[[disturbances]]`` against the plant."""
     value = doc.get("disturbances", [])
@@ -404,8 +405,8 @@ class Faults:
         self._out = np.zeros(p)
         self.has_link = has_link
         timeout = rig.safety.watchdog_timeout
-        if has_link and isinstance(rig.link, dict):
-            timeout = float(rig.link.get("watchdog_timeout", timeout))
+        if has_link and rig.link is not None:
+            timeout = rig.link.watchdog_timeout
         self.watchdog_ticks = silent_ticks_allowed(timeout, rig.tick)
         self._last_fresh = self._silent_from = 0
         self.lost = False

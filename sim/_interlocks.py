@@ -32,12 +32,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._checker import one_of
 from plantrig.sim._contracts import REHEARSED, Event
-from plantrig.sim._errors import one_of
 from plantrig.sim._limits import LimitBank, LimitSpec
 
 if TYPE_CHECKING:
-    from plantrig.sim._rigfile import Signal, _Checker
+    from plantrig.sim._checker import Checker
+    from plantrig.sim._rigfile import Signal
 
 ESTOP = "estop"
 ACTIONS = ("safe_inputs", "freeze", "stop")
@@ -77,7 +78,7 @@ class SafetySettings:
 ESTOP_SPEC = InterlockSpec(ESTOP, (ESTOP,), "safe_inputs", (), "operator E-stop")
 
 
-def parse_safety(c: _Checker, doc: dict[str, Any]) -> SafetySettings:
+def parse_safety(c: Checker, doc: dict[str, Any]) -> SafetySettings:
     t = c.table(doc, "safety", "", required=False)
     c.no_unknown(t, SAFETY_KEYS, "safety")
     timeout = c.take(t, "watchdog_timeout", "safety", "number", default=0.1,
@@ -89,7 +90,7 @@ def parse_safety(c: _Checker, doc: dict[str, Any]) -> SafetySettings:
                           int(streak if streak is not None else 3))
 
 
-def parse_interlocks(c: _Checker, doc: dict[str, Any], limits: list[LimitSpec],
+def parse_interlocks(c: Checker, doc: dict[str, Any], limits: list[LimitSpec],
                      inputs: list[Signal]) -> list[InterlockSpec]:
     """Check ``[[interlocks]]`` against the rig's limits and inputs."""
     value = doc.get("interlocks", [])

@@ -25,7 +25,8 @@ import numpy as np
 from numpy.typing import NDArray
 
 if TYPE_CHECKING:
-    from plantrig.sim._rigfile import Signal, _Checker
+    from plantrig.sim._checker import Checker
+    from plantrig.sim._rigfile import Signal
 
 OK, WARN, TRIP = 0, 1, 2
 LIMIT_KEYS = {"name", "signal", "warn_low", "warn_high", "trip_low", "trip_high",
@@ -97,7 +98,7 @@ def resolve_signal(name: str, groups: dict[str, list[Signal]]) -> tuple[str | No
     return None, f"no state, input or output named {name!r}{hint}"
 
 
-def parse_limits(c: _Checker, doc: dict[str, Any], states: list[Signal], inputs: list[Signal],
+def parse_limits(c: Checker, doc: dict[str, Any], states: list[Signal], inputs: list[Signal],
                  outputs: list[Signal]) -> list[LimitSpec]:
     """Check ``[[limits]]``: every mistake goes to ``c`` with its key path."""
     value = doc.get("limits", [])

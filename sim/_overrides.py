@@ -28,7 +28,7 @@ from typing import Any
 
 import tomli_w
 
-from plantrig.sim._errors import RigFileError, RigIssue, describe_value
+from plantrig.sim._checker import RigFileError, RigIssue, describe_value
 from plantrig.sim._rigfile import TOP_KEYS, Rig, build_rig, load_rig
 
 FREE_FORM_TABLES = {"plant.params"}      # any key is accepted there, so typos must stop here

@@ -38,9 +38,9 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._checker import RigFileError, RigIssue, describe_value
 from plantrig.sim._commands import Command
 from plantrig.sim._contracts import Event
-from plantrig.sim._errors import RigFileError, RigIssue, describe_value
 from plantrig.sim._overrides import apply_overrides, effective_text
 from plantrig.sim._reader import RunRecord, read_run
 from plantrig.sim._rigfile import Rig, build_rig

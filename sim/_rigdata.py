@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._checker import RigFileError, RigIssue
 from plantrig.sim._plant import OdePlant
 from plantrig.sim._rigfile import ControllerSpec, Rig, Signal, build_rig
 

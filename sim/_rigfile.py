@@ -9,7 +9,6 @@ and checked by the part that owns them, through the same issue list.
 
 from __future__ import annotations
 
-import difflib
 import importlib.util
 import math
 import tomllib
@@ -20,9 +19,18 @@ from typing import Any
 
 import numpy as np
 
+from plantrig.sim._chain_settings import ActuatorChannel, SensorChannel, rig_chain
+from plantrig.sim._checker import (
+    MISSING,
+    Checker,
+    RigFileError,
+    RigIssue,
+    describe_value,
+    is_number,
+    one_of,
+)
 from plantrig.sim._controllers import WINDUP
 from plantrig.sim._dut import DutSpec, parse_dut
-from plantrig.sim._errors import RigFileError, RigIssue, describe_value, one_of
 from plantrig.sim._faults import DisturbanceSpec, parse_disturbances
 from plantrig.sim._interlocks import (
     ESTOP,
@@ -32,6 +40,7 @@ from plantrig.sim._interlocks import (
     parse_safety,
 )
 from plantrig.sim._limits import LimitSpec, parse_limits
+from plantrig.sim._link_settings import LinkContext, LinkSettings, check_link
 from plantrig.sim._outcome import AcceptanceRules, parse_acceptance
 from plantrig.sim._plant import (
     ODE_METHODS,
@@ -98,9 +107,9 @@ class Rig:
     outputs: tuple[Signal, ...]
     references: tuple[NamedReference, ...]
     controller: ControllerSpec
-    link: dict[str, Any] | None = None
-    sensors: tuple[dict[str, Any], ...] = ()
-    actuators: tuple[dict[str, Any], ...] = ()
+    link: LinkSettings | None = None
+    sensors: tuple[SensorChannel, ...] = ()       # in output order; () for no chain
+    actuators: tuple[ActuatorChannel, ...] = ()   # in input order; () for no chain
     on_link_silence: str = "hold"
     limits: tuple[LimitSpec, ...] = ()
     interlocks: tuple[InterlockSpec, ...] = ()
@@ -115,119 +124,8 @@ class Rig:
         return int(round(self.duration / self.tick))
 
 
-_MISSING = object()
-
-
-class _Checker:
-    """Walks a parsed TOML document, recording every issue with its key path."""
-
-    def __init__(self, file: str) -> None:
-        self.file = file
-        self.issues: list[RigIssue] = []
-
-    def add(self, key: str, message: str) -> None:
-        self.issues.append(RigIssue(self.file, key, message))
-
-    def table(self, doc: dict[str, Any], key: str, path: str, required: bool) -> dict[str, Any]:
-        value = doc.get(key, _MISSING)
-        if value is _MISSING:
-            if required:
-                self.add(_join(path, key), "missing table")
-            return {}
-        if not isinstance(value, dict):
-            self.add(_join(path, key), f"expected a table, found {describe_value(value)}")
-            return {}
-        return value
-
-    def take(self, table: dict[str, Any], key: str, path: str, kind: str,
-             default: Any = _MISSING, check: Callable[[Any], str | None] | None = None) -> Any:
-        """Read ``table[key]`` as ``kind`` ('number', 'int', 'str', 'bool', 'matrix',
-        'vector', 'list', 'table', 'any'); record an issue and return None when wrong."""
-        full = _join(path, key)
-        if key not in table:
-            if default is _MISSING:
-                self.add(full, f"missing (expected {_KIND_TEXT[kind]})")
-                return None
-            return default
-        value = table[key]
-        problem = _check_kind(kind, value)
-        if problem is None and check is not None:
-            problem = check(value)
-        if problem:
-            self.add(full, problem)
-            return None
-        return value
-
-    def no_unknown(self, table: dict[str, Any], known: set[str], path: str,
-                   renamed: dict[str, str] | None = None) -> None:
-        """Every key not in ``known`` is a mistake; ``renamed`` maps keys of earlier
-        versions to the text naming what replaced them."""
-        for key in table:
-            if key in known:
-                continue
-            if renamed and key in renamed:
-                self.add(_join(path, key), f"old key name, no longer read; did you mean "
-                                           f"{renamed[key]}?")
-            else:
-                close = difflib.get_close_matches(key, sorted(known), n=1, cutoff=0.6)
-                hint = f"; did you mean '{close[0]}'?" if close else (
-                    f"; known keys: {', '.join(sorted(known))}")
-                self.add(_join(path, key), f"unknown key{hint}")
-
-
-_KIND_TEXT = {
-    "number": "a number", "int": "a whole number", "str": "a string", "bool": "true or false",
-    "matrix": "a matrix (list of rows of numbers)", "vector": "a list of numbers",
-    "list": "a list", "table": "a table", "any": "a value",
-}
-
-
-def _join(path: str, key: str) -> str:
-    return f"{path}.{key}" if path else key
-
-
-def _is_number(value: Any) -> bool:
-    return isinstance(value, int | float) and not isinstance(value, bool)
-
-
-def _check_kind(kind: str, value: Any) -> str | None:
-    expected = f"expected {_KIND_TEXT[kind]}, found {describe_value(value)}"
-    if kind == "number":
-        if not _is_number(value):
-            return expected
-        if not math.isfinite(value):
-            return f"expected a finite number, found {value!r}"
-    elif kind == "int":
-        if not isinstance(value, int) or isinstance(value, bool):
-            return expected
-    elif kind == "str":
-        if not isinstance(value, str):
-            return expected
-    elif kind == "bool":
-        if not isinstance(value, bool):
-            return expected
-    elif kind == "vector":
-        if not isinstance(value, list) or not all(_is_number(v) for v in value):
-            return expected
-    elif kind == "matrix":
-        if isinstance(value, list) and all(_is_number(v) for v in value) and value:
-            return None  # a single row is accepted as a 1-row (or 1-column) matrix
-        if not isinstance(value, list) or not all(
-                isinstance(r, list) and all(_is_number(v) for v in r) for r in value):
-            return expected
-        if len({len(r) for r in value}) > 1:
-            return f"rows have different lengths {[len(r) for r in value]}"
-    elif kind == "list":
-        if not isinstance(value, list):
-            return expected
-    elif kind == "table":
-        if not isinstance(value, dict):
-            return expected
-    return None
-
-
 def _number_or_numbers(value: Any) -> str | None:
-    if _is_number(value) or (isinstance(value, list) and all(_is_number(v) for v in value)):
+    if is_number(value) or (isinstance(value, list) and all(is_number(v) for v in value)):
         return None
     return f"expected a number or a list of numbers (seconds), found {describe_value(value)}"
 
@@ -262,7 +160,7 @@ def load_rig(path: str | Path) -> Rig:
 
 def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     """Check a parsed rig document and build the Rig (used by load_rig and by tests)."""
-    c = _Checker(str(path))
+    c = Checker(str(path))
     c.no_unknown(doc, TOP_KEYS, "")
 
     rig_t = c.table(doc, "rig", "", required=True)
@@ -296,22 +194,20 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     references = _references(c, doc)
     controller = _controller(c, doc, inputs, outputs, references, plant)
 
-    link = None
-    if "link" in doc:
-        link = c.table(doc, "link", "", required=False) or None
-    sensors = _list_of_tables(c, doc, "sensors")
+    link = _link(c, doc, path, name, mode, tick, controller, inputs, outputs, references,
+                 plant)
+    sensors = rig_chain(c, "sensors", c.tables(doc, "sensors"), outputs)
     limits = parse_limits(c, doc, states, inputs, outputs)
     interlocks = parse_interlocks(c, doc, limits, inputs)
     safety = parse_safety(c, doc)
     acceptance = parse_acceptance(c, doc, [ESTOP, *(i.name for i in interlocks)])
     disturbances = parse_disturbances(c, doc, plant, states)
-    actuators = _list_of_tables(c, doc, "actuators")
+    actuators = rig_chain(c, "actuators", c.tables(doc, "actuators"), inputs)
     dut = parse_dut(c, doc)
-    if controller.kind == "external" and link is None:
+    if controller.kind == "external" and "link" not in doc:
         c.add("controller.kind", "'external' needs a [link] table to reach the controller")
 
-    if c.issues:
-        raise RigFileError(c.issues)
+    c.raise_if_any()
     assert plant is not None and tick is not None and duration is not None
     return Rig(path=path, text=text, name=name, description=description, tick=float(tick),
                duration=float(duration), mode=mode, seed=int(seed or 0), on_overrun=on_overrun,
@@ -323,15 +219,26 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
                acceptance=acceptance, dut=dut)
 
 
-def _list_of_tables(c: _Checker, doc: dict[str, Any], key: str) -> list[dict[str, Any]]:
-    value = doc.get(key, [])
-    if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
-        c.add(key, f"expected an array of tables ([[{key}]]), found {describe_value(value)}")
-        return []
-    return value
+def _link(c: Checker, doc: dict[str, Any], path: Path, name: str, mode: str,
+          tick: float | None, controller: ControllerSpec, inputs: list[Signal],
+          outputs: list[Signal], references: list[NamedReference],
+          plant: Plant | None) -> LinkSettings | None:
+    """The checked [link] settings (None when the rig has none, or after mistakes)."""
+    if "link" not in doc:
+        return None
+    table = c.table(doc, "link", "")
+    if not table:
+        return None
+
+    def check_law(law: Any, where: str) -> ControllerSpec | None:
+        return _law(c, law, where, inputs, outputs, references, plant)
+
+    context = LinkContext(path, name, mode, tick or 0.0, controller.kind, tuple(inputs),
+                          tuple(outputs), check_law)
+    return check_link(c, table, context)
 
 
-def _signals(c: _Checker, plant_t: dict[str, Any], group: str) -> list[Signal]:
+def _signals(c: Checker, plant_t: dict[str, Any], group: str) -> list[Signal]:
     path = f"plant.{group}"
     entries = c.take(plant_t, group, "plant", "list")
     if entries is None:
@@ -378,7 +285,7 @@ PLANT_KEYS = {
 PLANT_COMMON = {"kind", "states", "inputs", "outputs", "x0"}
 
 
-def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: int, m: int,
+def _plant(c: Checker, t: dict[str, Any], path: Path, tick: float | None, n: int, m: int,
            p: int) -> tuple[Plant | None, str, int]:
     kind = c.take(t, "kind", "plant", "str", check=one_of(PLANT_KINDS))
     if kind is None:
@@ -388,12 +295,12 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
     method, substeps = "rk4", 1
     try:
         if kind == "lti":
-            mats = [c.take(t, k, "plant", "matrix", default=None if k == "D" else _MISSING)
+            mats = [c.take(t, k, "plant", "matrix", default=None if k == "D" else MISSING)
                     for k in ("A", "B", "C", "D")]
             if all(v is not None for v in mats[:3]):
                 plant = LinearPlant.from_matrices(*mats)
         elif kind == "discrete_lti":
-            mats = [c.take(t, k, "plant", "matrix", default=None if k == "D" else _MISSING)
+            mats = [c.take(t, k, "plant", "matrix", default=None if k == "D" else MISSING)
                     for k in ("A", "B", "C", "D")]
             dt = c.take(t, "dt", "plant", "number", check=_positive)
             if all(v is not None for v in mats[:3]) and dt is not None:
@@ -427,7 +334,7 @@ def _plant(c: _Checker, t: dict[str, Any], path: Path, tick: float | None, n: in
     return plant, method, substeps
 
 
-def _transfer_function(c: _Checker, t: dict[str, Any]) -> LinearPlant | None:
+def _transfer_function(c: Checker, t: dict[str, Any]) -> LinearPlant | None:
     """num/den (lists, or p x m matrices of lists for MIMO), or zeros/poles/gain (SISO)."""
     if not any(k in t for k in ("zeros", "poles", "gain")):
         num = c.take(t, "num", "plant", "list")
@@ -448,15 +355,15 @@ def _transfer_function(c: _Checker, t: dict[str, Any]) -> LinearPlant | None:
     return LinearPlant.from_zpk(roots[0], roots[1], gain)
 
 
-def _roots(c: _Checker, key: str, values: list[Any] | None) -> list[complex] | None:
+def _roots(c: Checker, key: str, values: list[Any] | None) -> list[complex] | None:
     """Real roots as numbers, complex ones as [re, im] pairs (TOML has no complex type)."""
     if values is None:
         return None
     out: list[complex] = []
     for i, v in enumerate(values):
-        if _is_number(v):
+        if is_number(v):
             out.append(complex(v))
-        elif isinstance(v, list) and len(v) == 2 and all(_is_number(x) for x in v):
+        elif isinstance(v, list) and len(v) == 2 and all(is_number(x) for x in v):
             out.append(complex(v[0], v[1]))
         else:
             c.add(f"plant.{key}[{i}]", f"expected a number or a [re, im] pair, found "
@@ -465,7 +372,7 @@ def _roots(c: _Checker, key: str, values: list[Any] | None) -> list[complex] | N
     return out
 
 
-def _fmu_plant(c: _Checker, t: dict[str, Any], path: Path) -> tuple[Any, str, int]:
+def _fmu_plant(c: Checker, t: dict[str, Any], path: Path) -> tuple[Any, str, int]:
     """kind = "fmu": an FMI 2.0 FMU through fmpy (sim/_fmu.py), its mistakes as rig issues."""
     from plantrig.sim._fmu import INTERFACES, FmuIssue, load_fmu
     file = c.take(t, "file", "plant", "str")
@@ -482,7 +389,7 @@ def _fmu_plant(c: _Checker, t: dict[str, Any], path: Path) -> tuple[Any, str, in
             c.add(f"plant.variables.{key}", f"expected an FMU variable name, found "
                                             f"{describe_value(value)}")
     for key, value in (params or {}).items():
-        if not _is_number(value):
+        if not is_number(value):
             c.add(f"plant.params.{key}", f"expected a number, found {describe_value(value)}")
     if file is None or interface is None or variables is None or params is None or c.issues:
         return None, method, substeps
@@ -500,7 +407,7 @@ def _fmu_plant(c: _Checker, t: dict[str, Any], path: Path) -> tuple[Any, str, in
     return plant, method, substeps
 
 
-def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
+def _ode_plant(c: Checker, t: dict[str, Any], path: Path, n: int, m: int,
                p: int) -> tuple[OdePlant | None, str, int]:
     module_name = c.take(t, "module", "plant", "str")
     f_name = c.take(t, "dynamics", "plant", "str")
@@ -545,7 +452,7 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
                      functions[2] if jac_name else None)
     x_probe, u_probe = np.zeros(n), np.zeros(m)
     x0 = t.get("x0")
-    if isinstance(x0, list) and len(x0) == n and all(_is_number(v) for v in x0):
+    if isinstance(x0, list) and len(x0) == n and all(is_number(v) for v in x0):
         x_probe = np.array(x0, dtype=np.float64)
     for key, fn, size in (("dynamics", plant.dynamics, n), ("output", plant.output, p)):
         try:
@@ -562,7 +469,7 @@ def _ode_plant(c: _Checker, t: dict[str, Any], path: Path, n: int, m: int,
     return plant, method, substeps
 
 
-def _initial_state(c: _Checker, t: dict[str, Any], plant: Plant | None) -> np.ndarray:
+def _initial_state(c: Checker, t: dict[str, Any], plant: Plant | None) -> np.ndarray:
     n = plant.shape[0] if plant is not None else 0
     x0 = c.take(t, "x0", "plant", "vector", default=None)
     if x0 is None:
@@ -592,9 +499,9 @@ RENAMED_REFERENCE_KEYS = {     # keys of earlier versions -> the key(s) to write
 _FIELDS = {"from": "from_"}    # rig-file key -> waveform field ('from' is a Python keyword)
 
 
-def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
+def _references(c: Checker, doc: dict[str, Any]) -> list[NamedReference]:
     out: list[NamedReference] = []
-    for i, entry in enumerate(_list_of_tables(c, doc, "references")):
+    for i, entry in enumerate(c.tables(doc, "references")):
         where = f"references[{i}]"
         name = c.take(entry, "name", where, "str")
         unit = c.take(entry, "unit", where, "str", default="") or ""
@@ -638,7 +545,7 @@ def _references(c: _Checker, doc: dict[str, Any]) -> list[NamedReference]:
     return out
 
 
-def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
+def _ramp(c: Checker, where: str, ramp: Ramp) -> Ramp | None:
     """A ramp must move towards its ``to`` (a rate of the wrong sign never gets there)."""
     if math.isinf(ramp.to) or ramp.to == ramp.from_ or (ramp.to - ramp.from_) * ramp.rate > 0:
         return ramp
@@ -648,7 +555,7 @@ def _ramp(c: _Checker, where: str, ramp: Ramp) -> Ramp | None:
     return None
 
 
-def _sine(c: _Checker, where: str, sine: Sine) -> Sine | None:
+def _sine(c: Checker, where: str, sine: Sine) -> Sine | None:
     ok = True
     if sine.high < sine.low:
         c.add(f"{where}.high", f"expected high >= low ({sine.low:g}), found {sine.high:g}")
@@ -675,33 +582,28 @@ CONTROLLER_KEYS = {
 }
 
 
-def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs: list[Signal],
-                references: list[NamedReference], plant: Plant | None) -> ControllerSpec:
+def _controller(c: Checker, doc: dict[str, Any], inputs: list[Signal], outputs: list[Signal],
+                references: list[NamedReference], plant: Plant | None,
+                path: str = "controller") -> ControllerSpec:
+    """The [controller] table (or, with ``path``, a law given elsewhere)."""
     t = c.table(doc, "controller", "", required=True)
-    kind = c.take(t, "kind", "controller", "str", check=one_of(CONTROLLER_KINDS))
+    kind = c.take(t, "kind", path, "str", check=one_of(CONTROLLER_KINDS))
     if kind is None:
         return ControllerSpec("external")
-    c.no_unknown(t, {"kind"} | CONTROLLER_KEYS[kind], "controller")
+    c.no_unknown(t, {"kind"} | CONTROLLER_KEYS[kind], path)
     in_names = [s.name for s in inputs]
     out_names = [s.name for s in outputs]
     ref_names = [r.name for r in references]
 
     def name_in(options: list[str], what: str) -> Callable[[Any], str | None]:
-        def check(v: Any) -> str | None:
-            if v in options:
-                return None
-            close = difflib.get_close_matches(v, options, n=1)
-            hint = f"; did you mean '{close[0]}'?" if close else ""
-            return f"expected one of the {what} ({', '.join(options) or 'none defined'}), " \
-                   f"found {v!r}{hint}"
-        return check
+        return one_of(tuple(options), what)
 
     settings: dict[str, Any] = {}
     if kind == "pid":
-        loops = c.take(t, "loops", "controller", "list")
+        loops = c.take(t, "loops", path, "list")
         settings["loops"] = []
         for i, loop in enumerate(loops or []):
-            where = f"controller.loops[{i}]"
+            where = f"{path}.loops[{i}]"
             if not isinstance(loop, dict):
                 c.add(where, "expected a table ([[controller.loops]]), found "
                              f"{describe_value(loop)}")
@@ -715,7 +617,7 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
                 "reference": c.take(loop, "reference", where, "str",
                                     check=name_in(ref_names, "references")),
             }
-            for key, default in (("kp", _MISSING), ("ki", 0.0), ("kd", 0.0),
+            for key, default in (("kp", MISSING), ("ki", 0.0), ("kd", 0.0),
                                  ("derivative_lag", 0.0), ("unwind_time", None),
                                  ("drive_low", None), ("drive_high", None)):
                 ls[key] = c.take(loop, key, where, "number", default=default)
@@ -724,41 +626,41 @@ def _controller(c: _Checker, doc: dict[str, Any], inputs: list[Signal], outputs:
             settings["loops"].append(ls)
         drives = [ls["drive"] for ls in settings["loops"] if ls["drive"]]
         for d in {d for d in drives if drives.count(d) > 1}:
-            c.add("controller.loops", f"input {d!r} is driven by more than one loop")
+            c.add(f"{path}.loops", f"input {d!r} is driven by more than one loop")
     elif kind == "state_feedback":
-        K = c.take(t, "K", "controller", "matrix")
-        N = c.take(t, "N", "controller", "matrix")
-        refs = c.take(t, "references", "controller", "list")
+        K = c.take(t, "K", path, "matrix")
+        N = c.take(t, "N", path, "matrix")
+        refs = c.take(t, "references", path, "list")
         if refs is not None:
             for j, r in enumerate(refs):
                 problem = name_in(ref_names, "references")(r) if isinstance(r, str) else \
                     f"expected a reference name, found {describe_value(r)}"
                 if problem:
-                    c.add(f"controller.references[{j}]", problem)
+                    c.add(f"{path}.references[{j}]", problem)
         m, p = len(inputs), len(outputs)
         if K is not None:
             k = np.atleast_2d(np.array(K, dtype=np.float64))
             if k.shape != (m, p):
-                c.add("controller.K", f"has shape {k.shape}, expected ({m}, {p}) "
+                c.add(f"{path}.K", f"has shape {k.shape}, expected ({m}, {p}) "
                                       f"(inputs x outputs)")
             settings["K"] = k
         if N is not None and refs is not None:
             nn = np.array(N, dtype=np.float64).reshape(m, -1) if np.size(N) == m * len(refs) \
                 else np.atleast_2d(np.array(N, dtype=np.float64))
             if nn.shape != (m, len(refs)):
-                c.add("controller.N", f"has shape {nn.shape}, expected ({m}, {len(refs)}) "
+                c.add(f"{path}.N", f"has shape {nn.shape}, expected ({m}, {len(refs)}) "
                                       f"(inputs x references)")
             settings["N"] = nn
         settings["references"] = refs
     elif kind == "open_loop":
-        drive = c.take(t, "drive", "controller", "table")
+        drive = c.take(t, "drive", path, "table")
         if drive is not None:
             for inp, ref in drive.items():
                 if inp not in in_names:
-                    c.add(f"controller.drive.{inp}",
+                    c.add(f"{path}.drive.{inp}",
                           name_in(in_names, "plant inputs")(inp) or "unknown input")
                 elif not isinstance(ref, str) or ref not in ref_names:
-                    c.add(f"controller.drive.{inp}",
+                    c.add(f"{path}.drive.{inp}",
                           (name_in(ref_names, "references")(ref) or "unknown reference")
                           if isinstance(ref, str) else f"expected a reference name, "
                                                        f"found {describe_value(ref)}")
@@ -774,15 +676,17 @@ def _windup(value: str) -> str | None:
     return one_of(WINDUP)(value)
 
 
-def check_controller_table(rig: Rig, table: Any, path: str) -> tuple[ControllerSpec | None,
-                                                                    list[RigIssue]]:
-    """Check a built-in law given outside [controller] (the reference controller's law in
-    ``[link.controller]``, say) against ``rig``'s signals, with key paths under ``path``."""
-    c = _Checker(str(rig.path))
-    spec = _controller(c, {"controller": table}, list(rig.inputs), list(rig.outputs),
-                       list(rig.references), rig.plant)
-    issues = [RigIssue(i.file, path + i.key[len("controller"):], i.message) for i in c.issues]
-    if not issues and spec.kind == "external":
-        issues.append(RigIssue(str(rig.path), f"{path}.kind", "expected a built-in law "
-                               "(pid, state_feedback, open_loop), found 'external'"))
-    return (None if issues else spec), issues
+def _law(c: Checker, table: Any, path: str, inputs: list[Signal], outputs: list[Signal],
+         references: list[NamedReference], plant: Plant | None) -> ControllerSpec | None:
+    """A built-in law given outside [controller] (the reference controller's law in
+    ``[link.controller]``), checked against the rig's signals with key paths under
+    ``path``; None after recording its mistakes."""
+    if not isinstance(table, dict):
+        c.add(path, f"expected a table, found {describe_value(table)}")
+        return None
+    before = len(c.issues)
+    spec = _controller(c, {"controller": table}, inputs, outputs, references, plant, path)
+    if spec.kind == "external" and len(c.issues) == before:
+        c.add(f"{path}.kind", "expected a built-in law (pid, state_feedback, open_loop), "
+                              "found 'external'")
+    return spec if len(c.issues) == before else None

@@ -34,12 +34,12 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._checker import Checker, RigFileError, RigIssue, describe_value
 from plantrig.sim._commands import Command
 from plantrig.sim._contracts import Event
-from plantrig.sim._errors import RigFileError, RigIssue, describe_value
 from plantrig.sim._faults import parse_fault
 from plantrig.sim._interlocks import ESTOP
-from plantrig.sim._rigfile import Rig, _Checker
+from plantrig.sim._rigfile import Rig
 from plantrig.sim._verdicts import VerdictSpec, parse_verdicts
 
 TRIGGERS = ("at", "when", "on_trip", "on_phase")
@@ -155,7 +155,7 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
     """Check a parsed scenario document against ``rig`` (used by load_scenario and tests)."""
     from plantrig.sim._engine import tick_columns  # the engine imports this module
 
-    c = _Checker(str(path))
+    c = Checker(str(path))
     c.no_unknown(doc, {"scenario", "steps", "verdicts"}, "")
     head = c.table(doc, "scenario", "", required=True)
     c.no_unknown(head, SCENARIO_KEYS, "scenario")
@@ -194,7 +194,7 @@ def _not_in(value: Any, options: list[str], what: str) -> str:
     return f"expected one of the {what} ({', '.join(options) or 'none'}), found {value!r}{hint}"
 
 
-def _step(c: _Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str],
+def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str],
           interlocks: list[str]) -> Step | None:
     c.no_unknown(e, STEP_KEYS, where)
     label = c.take(e, "name", where, "str", default=where) or where
@@ -275,7 +275,7 @@ def _step(c: _Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[st
     return Step(label, at, when, on_trip, on_phase, float(delay or 0.0), tuple(commands), expect)
 
 
-def _fault_ok(c: _Checker, where: str, args: dict[str, Any], rig: Rig) -> bool:
+def _fault_ok(c: Checker, where: str, args: dict[str, Any], rig: Rig) -> bool:
     _, problems = parse_fault(args, rig)
     for key, message in problems:
         c.add(f"{where}.{key}", message)

@@ -18,7 +18,7 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
-from plantrig.sim._errors import RigFileError, RigIssue
+from plantrig.sim._checker import RigFileError, RigIssue
 from plantrig.sim._rigfile import Rig
 from plantrig.sim._scenario import Scenario
 from plantrig.sim._secrets import redact_assignments, redact_rig_text

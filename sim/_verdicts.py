@@ -37,7 +37,8 @@ from plantrig.sim import _metrics
 from plantrig.sim._limits import resolve_signal
 
 if TYPE_CHECKING:
-    from plantrig.sim._rigfile import Rig, _Checker
+    from plantrig.sim._checker import Checker
+    from plantrig.sim._rigfile import Rig
     from plantrig.sim._scenario import Scenario
 
 STEP_KEYS = {"signal", "start", "stop", "final", "initial", "reference"}
@@ -100,7 +101,7 @@ class Verdict:
                 "detail": self.detail, "needs": self.needs}
 
 
-def parse_verdicts(c: _Checker, doc: dict[str, Any], rig: Rig, columns: list[str],
+def parse_verdicts(c: Checker, doc: dict[str, Any], rig: Rig, columns: list[str],
                    interlocks: list[str], faults: set[str], phases: set[str]) -> list[VerdictSpec]:
     """Check ``[[verdicts]]`` against the rig's columns and the scenario's faults and phases."""
     entries = doc.get("verdicts", [])
@@ -178,7 +179,7 @@ def parse_verdicts(c: _Checker, doc: dict[str, Any], rig: Rig, columns: list[str
     return out
 
 
-def _column(c: _Checker, e: dict[str, Any], key: str, where: str, columns: list[str],
+def _column(c: Checker, e: dict[str, Any], key: str, where: str, columns: list[str],
             rig: Rig, required: bool, prefix: str = "") -> str | None:
     value = c.take(e, key, where, "str") if required else e.get(key)
     if value is None:

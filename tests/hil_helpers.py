@@ -14,15 +14,14 @@ from pathlib import Path
 import numpy as np
 
 from plantrig._hil import controller_command, wait_ready
-from plantrig.io import PtyPair, parse_link_table
-from plantrig.sim import Rig
+from plantrig.io import PtyPair
+from plantrig.sim import Rig, RigFileError, RigIssue, load_rig
 
 
 def builtin_twin(rig: Rig) -> Rig:
     """The same rig with the reference controller's law built in and no link."""
-    settings, issues = parse_link_table(rig)
-    assert settings is not None and not issues
-    return dataclasses.replace(rig, controller=settings.controller, link=None)
+    assert rig.link is not None and rig.link.controller is not None
+    return dataclasses.replace(rig, controller=rig.link.controller, link=None)
 
 
 class Float32:
@@ -57,3 +56,12 @@ def pty_controller(rig_path: Path, pair: PtyPair) -> Iterator[subprocess.Popen[s
             proc.wait()
         assert proc.stdout is not None
         proc.stdout.close()
+
+
+def rig_issues(path: Path) -> list[RigIssue]:
+    """Every mistake load_rig finds in a rig file ([] when it loads)."""
+    try:
+        load_rig(path)
+    except RigFileError as exc:
+        return exc.issues
+    return []

@@ -21,7 +21,6 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from plantrig.io import parse_link_table
 from plantrig.sim import Rig, load_rig, load_scenario, simulate
 
 REPO = Path(__file__).resolve().parents[1]
@@ -55,9 +54,8 @@ def fast_twin(rig: Rig) -> Rig:
     """A rig on a link, with its reference controller's law built in instead."""
     if rig.link is None:
         return rig
-    settings, issues = parse_link_table(rig)
-    assert settings is not None and not issues, issues
-    return dataclasses.replace(rig, controller=settings.controller, link=None)
+    assert rig.link.controller is not None
+    return dataclasses.replace(rig, controller=rig.link.controller, link=None)
 
 
 def record_of(rig_path: Path, scenario_path: Path | None) -> dict[str, np.ndarray]:

@@ -529,8 +529,8 @@ def test_the_link_lamp_is_judged_by_the_rigs_watchdog():
     assert lamp.text == "LINK LOST: silent 0.050 s, beyond the 0.05 s watchdog"
     assert model.snapshot(store, t_end, 1.0).link[0].startswith("built-in controller: ")
     hil = load_rig_as_data(CONFIGS / "rehearsals" / "conveyor_guarded_hil.toml")
-    assert watchdog_of(hil) == float(hil.link.get("watchdog_timeout",
-                                                  hil.safety.watchdog_timeout))
+    assert hil.link is not None
+    assert watchdog_of(hil) == hil.link.watchdog_timeout
 
 
 def test_trip_marks_sit_where_a_limit_reached_trip():

@@ -18,10 +18,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hil_helpers import rig_issues
 from pymodbus.client import ModbusTcpClient
 from pymodbus.framer.rtu import FramerRTU
 
-from plantrig.io import build_link, check_link_table
+from plantrig.io import build_link
 from plantrig.sim import load_rig
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -227,7 +228,7 @@ def test_register_map_mistakes_are_rig_errors(tmp_path: Path) -> None:
         'motor_current = { address = 5, type = "int12" }\nspeed = { address = 9 }')
     path = tmp_path / "rig.toml"
     path.write_text(src)
-    issues = {i.key: i.message for i in check_link_table(load_rig(path))}
+    issues = {i.key: i.message for i in rig_issues(path)}
     assert "expected one of int16" in issues["link.registers.motor_current.type"]
     assert "already used by belt_speed" in issues["link.registers.motor_current.address"]
     assert "unknown key" in issues["link.registers.speed"]

@@ -28,7 +28,7 @@ from typing import Any
 import aiomqtt
 import numpy as np
 import pytest
-from hil_helpers import Float32, builtin_twin
+from hil_helpers import Float32, builtin_twin, rig_issues
 
 from plantrig._hil import wait_ready
 from plantrig.io import (
@@ -36,7 +36,6 @@ from plantrig.io import (
     LocalBroker,
     MqttLink,
     build_link,
-    check_link_table,
     cobs_decode,
     crc16,
     encode_frame,
@@ -259,7 +258,7 @@ def test_broker_restart_mid_run_keeps_the_tick(tmp_path: Path,
     # exceeds the timeout, the same tick as on serial and in a rehearsal
     last_fresh = int(np.flatnonzero(wire["fresh"][:lost.tick] == 1)[-1])
     assert lost.tick - last_fresh == silent_ticks_allowed(
-        float(rig.link["watchdog_timeout"]), rig.tick) + 1   # type: ignore[index]
+        rig.link.watchdog_timeout, rig.tick) + 1
     u = wire["u:voltage"]  # on_link_silence = "hold": the last good command is held
     assert np.isfinite(u).all() and np.all(u[lost.tick:restored.tick] == u[lost.tick])
 
@@ -513,7 +512,7 @@ def test_link_table_mistakes_one_message_each(tmp_path: Path) -> None:
     os.environ.pop("PLANTRIG_SURELY_UNSET_VAR", None)
     path = tmp_path / "bad.toml"
     path.write_text(src)
-    issues = check_link_table(load_rig(path))
+    issues = rig_issues(path)
     by_key = {i.key: i.message for i in issues}
     assert len(by_key) == len(issues), "one message per mistake"
     assert "did you mean 'host'" in by_key["link.hots"]

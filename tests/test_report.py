@@ -226,11 +226,11 @@ def test_dut_table_is_checked_like_every_rig_key(tmp_path: Path) -> None:
 
 def test_the_port_really_used_is_recorded(tmp_path: Path) -> None:
     rig = load_rig(REPO / "configs" / "conveyor_hil.toml")
-    assert rig.link["port"] == "/dev/ttyUSB0"                   # what the file asks for
+    assert rig.link.options["port"] == "/dev/ttyUSB0"                   # what the file asks for
     link = build_link(rig, port="loop://")                       # what --port gave
     info = run_info_of({"dut": {"name": "x"}}, link, rig.dut)
     assert info["link_used"]["port"] == "loop://"
-    assert info["link_used"]["baud"] == rig.link["baud"]
+    assert info["link_used"]["baud"] == rig.link.options["baud"]
     assert info["dut"] == {"name": "x"} and info["environment"]["python"]
 
 
@@ -265,7 +265,7 @@ def test_plot_writes_png_and_svg_with_limits_trips_and_faults(belt_run: Path,
 
 def test_help_of_plot_and_run_documents_the_new_options() -> None:
     parser = build_parser()
-    sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")
+    sub = next(a for a in parser._actions if a.dest == "command")
     plot_help = sub.choices["plot"].format_help()
     assert "exit codes:" in plot_help and re.search(r"\b2\s+usage mistake", plot_help)
     run_help = sub.choices["run"].format_help()

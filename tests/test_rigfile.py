@@ -226,7 +226,7 @@ def test_new_reference_and_pid_keys_load(tmp_path: Path) -> None:
      "expected high >= low (1), found 0.5"),
     ('kind = "sine"\nhz = -2.0', "references[0].hz", "expected a frequency >= 0 Hz"),
     ('kind = "table"\npoints = [[0.0, 1.0]]\nbetween = "step"', "references[0].between",
-     "expected one of linear, hold, found 'step'"),
+     "expected one of linear, hold, found string 'step'"),
 ], ids=["ramp_away_from_to", "sine_high_below_low", "sine_negative_hz", "table_between"])
 def test_reference_values_that_cannot_work(tmp_path: Path, block: str, key: str,
                                            words: str) -> None:

@@ -19,13 +19,12 @@ import time
 from pathlib import Path
 
 import numpy as np
-from hil_helpers import Float32, builtin_twin, pty_controller
+from hil_helpers import Float32, builtin_twin, pty_controller, rig_issues
 
 from plantrig.io import (
     FdPort,
     SerialLink,
     build_link,
-    check_link_table,
     open_pty_pair,
 )
 from plantrig.sim import Rig, RunData, load_rig, simulate
@@ -174,7 +173,7 @@ def test_far_end_closed_mid_run(tmp_path: Path) -> None:
 
 def test_watchdog_fires_within_timeout_plus_one_tick(tmp_path: Path) -> None:
     rig = hil_rig(tmp_path)
-    timeout_ticks = round(rig.link["watchdog_timeout"] / rig.tick)   # type: ignore[index]
+    timeout_ticks = round(rig.link.watchdog_timeout / rig.tick)
     wire, health = run_over_pty(rig, action=lambda proc: os.kill(proc.pid, signal.SIGSTOP))
     events = wire.outcome.events
     lost = [e for e in events if e.kind == "link_lost"][-1]    # the one never restored
@@ -264,24 +263,24 @@ def test_link_table_mistakes_are_reported_with_key_paths(tmp_path: Path) -> None
              .replace('watchdog_timeout = 0.1', 'watchdog_timeout = 0.0001\nlockstep = true')
     path = tmp_path / "bad.toml"
     path.write_text(bad)
-    issues = {i.key: i.message for i in check_link_table(load_rig(path))}
+    issues = {i.key: i.message for i in rig_issues(path)}
     assert "did you mean 'baud'" in issues["link.baud_rate"]
     assert "did you mean 'encoding'" in issues["link.encoding_"]
     assert "int16" in issues["link.scale"]
     assert "at least one tick" in issues["link.watchdog_timeout"]
     assert "real-time" in issues["link.lockstep"]
     assert "link.controller.loops[0].kp" in issues
-    assert all(i.file == str(path) for i in check_link_table(load_rig(path)))
+    assert all(i.file == str(path) for i in rig_issues(path))
     fast = tmp_path / "fast.toml"
     fast.write_text(HIL.replace('mode = "realtime"', 'mode = "fast"'))
-    issues = {i.key: i.message for i in check_link_table(load_rig(fast))}
+    issues = {i.key: i.message for i in rig_issues(fast)}
     assert list(issues) == ["link.lockstep"] and "lockstep = true" in issues["link.lockstep"]
 
 
 def test_unknown_link_kind_gets_a_did_you_mean(tmp_path: Path) -> None:
     path = tmp_path / "k.toml"
     path.write_text(HIL.replace('kind = "serial"', 'kind = "serail"'))
-    issues = check_link_table(load_rig(path))
+    issues = rig_issues(path)
     assert len(issues) == 1 and issues[0].key == "link.kind"
     assert "did you mean 'serial'" in issues[0].message
 
