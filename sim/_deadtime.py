@@ -26,7 +26,6 @@ import math
 from collections.abc import Sequence
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
 
 Vector = NDArray[np.float64]
@@ -44,6 +43,8 @@ def split_delay(tau: float, dt: float) -> tuple[int, float]:
 
 def _exp_and_integral(A: Matrix, B: Matrix, t: float) -> tuple[Matrix, Matrix]:
     """(e^(A t), Gamma(t) B) by expm([[A, B], [0, 0]] t) (Van Loan)."""
+    import scipy.linalg  # here: loading or checking a rig needs no scipy (bench_imports)
+
     n, m = B.shape
     block = np.zeros((n + m, n + m))
     block[:n, :n] = A
