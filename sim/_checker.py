@@ -65,16 +65,21 @@ def is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
+def not_one_of(value: Any, options: Iterable[Any], what: str = "") -> str:
+    """The message for a value that is none of ``options`` (``what`` names them)."""
+    options = list(options)
+    listed = ", ".join(str(o) for o in options) or "none defined"
+    expected = f"one of the {what} ({listed})" if what else f"one of {listed}"
+    return f"expected {expected}, found {describe_value(value)}{did_you_mean(value, options)}"
+
+
 def one_of(options: tuple[Any, ...], what: str = "") -> Check:
     """A check: the value is one of ``options`` (``what`` names them in the message)."""
     def check(value: Any) -> str | None:
         if value in options and not isinstance(value, bool) or (
                 isinstance(value, bool) and any(o is value for o in options)):
             return None
-        listed = ", ".join(str(o) for o in options) or "none defined"
-        expected = f"one of the {what} ({listed})" if what else f"one of {listed}"
-        return f"expected {expected}, found {describe_value(value)}" \
-               f"{did_you_mean(value, options)}"
+        return not_one_of(value, options, what)
     return check
 
 

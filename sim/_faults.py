@@ -30,7 +30,6 @@ Random faults (noise, dropped and corrupted frames) draw from a numpy Generator 
 
 from __future__ import annotations
 
-import difflib
 import math
 import re
 from collections.abc import Callable, Mapping
@@ -40,6 +39,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._checker import did_you_mean
 from plantrig.sim._contracts import REHEARSED
 from plantrig.sim._plant import (
     DiscretePlant,
@@ -52,8 +52,8 @@ from plantrig.sim._plant import (
 from plantrig.sim._watchdog import silent_ticks_allowed
 
 if TYPE_CHECKING:
-    from plantrig.sim._plant import Stepper
     from plantrig.sim._checker import Checker
+    from plantrig.sim._plant import Stepper
     from plantrig.sim._rigfile import Rig, Signal
 
 Vector = NDArray[np.float64]
@@ -179,8 +179,7 @@ def parse_disturbances(c: Checker, doc: dict[str, Any], plant: Any,
             param = c.take(entry, "param", where, "str") or ""
             if param and param not in plant.params:
                 known = sorted(plant.params)
-                close = difflib.get_close_matches(param, known, n=1)
-                hint = f"; did you mean '{close[0]}'?" if close else ""
+                hint = did_you_mean(param, known)
                 c.add(f"{where}.param", f"expected a parameter of [plant.params] "
                                         f"({', '.join(known) or 'none'}), found {param!r}{hint}")
             elif param and not _is_number(plant.params[param]):
@@ -227,8 +226,7 @@ def plant_target(rig: Rig, target: str) -> tuple[tuple[str, int, int] | str | No
         numeric = sorted(k for k, v in plant.params.items() if _is_number(v))
         if target in numeric:
             return target, ""
-        close = difflib.get_close_matches(target, numeric, n=1)
-        hint = f"; did you mean '{close[0]}'?" if close else ""
+        hint = did_you_mean(target, numeric)
         return None, f"expected a numeric parameter of [plant.params] " \
                      f"({', '.join(numeric) or 'none'}), found {target!r}{hint}"
     m = _MATRIX_TARGET.match(target)
@@ -258,8 +256,7 @@ def parse_fault(args: Mapping[str, Any], rig: Rig) -> tuple[FaultSpec | None, li
     problems: list[tuple[str, str]] = []
     kind = args.get("kind")
     if kind not in FAULT_KINDS:
-        close = difflib.get_close_matches(str(kind), list(FAULT_KINDS), n=1)
-        hint = f"; did you mean '{close[0]}'?" if close else ""
+        hint = did_you_mean(str(kind), list(FAULT_KINDS))
         problems.append(("kind", f"expected one of {', '.join(FAULT_KINDS)}, found "
                                  f"{kind!r}{hint}"))
         return None, problems
@@ -274,10 +271,7 @@ def parse_fault(args: Mapping[str, Any], rig: Rig) -> tuple[FaultSpec | None, li
         given[first] = given.pop("value")
     for key in given:
         if key not in COMMON_KEYS and key not in info.params:
-            known = sorted(COMMON_KEYS | set(info.params))
-            close = difflib.get_close_matches(key, known, n=1)
-            hint = f"; did you mean '{close[0]}'?" if close else f"; known keys: " \
-                                                                 f"{', '.join(known)}"
+            hint = did_you_mean(key, COMMON_KEYS | set(info.params), known=True)
             problems.append((key, f"unknown key for {kind}{hint}"))
     target = given.get("target", "both" if info.group == "link" else None)
     if not isinstance(target, str) or not target:
@@ -340,8 +334,7 @@ def _check_target(info: FaultKind, target: str, rig: Rig) -> str:
                "disturbance": [d.name for d in rig.disturbances]}[info.target]
     if target in options:
         return ""
-    close = difflib.get_close_matches(target, options, n=1)
-    hint = f"; did you mean '{close[0]}'?" if close else ""
+    hint = did_you_mean(target, options)
     return f"expected {_target_text(info, rig)}; found {target!r}{hint}"
 
 

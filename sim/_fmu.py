@@ -13,7 +13,6 @@ run folder is read as data.
 from __future__ import annotations
 
 import ctypes
-import difflib
 import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,6 +21,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._checker import did_you_mean
 from plantrig.sim._plant import ModelError, OdePlant
 
 Vector = NDArray[np.float64]
@@ -57,8 +57,7 @@ class FmuSlavePlant:
 
 
 def _suggest(name: str, known: list[str]) -> str:
-    close = difflib.get_close_matches(name, known, n=1)
-    return f"; did you mean '{close[0]}'?" if close else ""
+    return did_you_mean(name, known)
 
 
 def load_fmu(path: Path, interface: str, states: list[str], inputs: list[str],

@@ -24,7 +24,6 @@ safety function for real equipment (docs/safety.md).
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
@@ -32,7 +31,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._checker import one_of
+from plantrig.sim._checker import did_you_mean, not_one_of, one_of
 from plantrig.sim._contracts import REHEARSED, Event
 from plantrig.sim._limits import LimitBank, LimitSpec
 
@@ -117,10 +116,7 @@ def parse_interlocks(c: Checker, doc: dict[str, Any], limits: list[LimitSpec],
         good: list[str] = []
         for j, cause in enumerate(on or []):
             if not isinstance(cause, str) or cause not in causes:
-                close = difflib.get_close_matches(str(cause), causes, n=1)
-                hint = f"; did you mean '{close[0]}'?" if close else ""
-                c.add(f"{where}.on[{j}]", f"expected one of {', '.join(causes)}, "
-                                          f"found {cause!r}{hint}")
+                c.add(f"{where}.on[{j}]", not_one_of(cause, causes))
             elif cause.startswith("limit:") and cause not in trip_limits:
                 c.add(f"{where}.on[{j}]", f"{cause} has no trip bound (trip_low, trip_high "
                                           "or rate_trip), so it can never trip")
@@ -133,10 +129,7 @@ def parse_interlocks(c: Checker, doc: dict[str, Any], limits: list[LimitSpec],
         chosen = c.take(entry, "inputs", where, "list", default=[]) or []
         for j, inp in enumerate(chosen):
             if inp not in input_names:
-                close = difflib.get_close_matches(str(inp), input_names, n=1)
-                hint = f"; did you mean '{close[0]}'?" if close else ""
-                c.add(f"{where}.inputs[{j}]", f"expected one of the plant inputs "
-                                              f"({', '.join(input_names)}), found {inp!r}{hint}")
+                c.add(f"{where}.inputs[{j}]", not_one_of(inp, input_names, "plant inputs"))
         desc = c.take(entry, "description", where, "str", default="") or ""
         if name is not None:
             out.append(InterlockSpec(name, tuple(good), action, tuple(chosen), desc))
@@ -253,8 +246,7 @@ class Safety:
         names = [s.name for s in self.specs]
         if name not in (None, "", "all"):
             if name not in names:
-                close = difflib.get_close_matches(str(name), names, n=1)
-                hint = f"; did you mean '{close[0]}'?" if close else ""
+                hint = did_you_mean(str(name), names)
                 self.emit(k, "reset_refused", f"{name}: no such interlock "
                                               f"({', '.join(names)}){hint}")
                 return

@@ -16,13 +16,14 @@ something is outside a warn bound or NaN.
 
 from __future__ import annotations
 
-import difflib
 import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from numpy.typing import NDArray
+
+from plantrig.sim._checker import did_you_mean
 
 if TYPE_CHECKING:
     from plantrig.sim._checker import Checker
@@ -83,8 +84,7 @@ def resolve_signal(name: str, groups: dict[str, list[Signal]]) -> tuple[str | No
         names = [s.name for s in groups[group]]
         if bare in names:
             return name, ""
-        close = difflib.get_close_matches(bare, names, n=1)
-        hint = f"; did you mean '{prefix}:{close[0]}'?" if close else ""
+        hint = did_you_mean(bare, names).replace(" '", f" '{prefix}:", 1)
         return None, f"no {group[:-1]} named {bare!r} ({', '.join(names) or 'none'}){hint}"
     found = [f"{p}:{name}" for p, g in GROUP_PREFIX if name in [s.name for s in groups[g]]]
     if len(found) == 1:
@@ -93,8 +93,7 @@ def resolve_signal(name: str, groups: dict[str, list[Signal]]) -> tuple[str | No
         return None, (f"{name!r} names more than one signal; write one of "
                       f"{', '.join(repr(f) for f in found)}")
     every = [s.name for _, g in GROUP_PREFIX for s in groups[g]]
-    close = difflib.get_close_matches(name, every, n=1)
-    hint = f"; did you mean '{close[0]}'?" if close else ""
+    hint = did_you_mean(name, every)
     return None, f"no state, input or output named {name!r}{hint}"
 
 

@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import copy
 import dataclasses
-import difflib
 import re
 import tomllib
 from collections.abc import Sequence
@@ -28,7 +27,7 @@ from typing import Any
 
 import tomli_w
 
-from plantrig.sim._checker import RigFileError, RigIssue, describe_value
+from plantrig.sim._checker import RigFileError, RigIssue, describe_value, did_you_mean
 from plantrig.sim._rigfile import TOP_KEYS, Rig, build_rig, load_rig
 
 FREE_FORM_TABLES = {"plant.params"}      # any key is accepted there, so typos must stop here
@@ -126,9 +125,8 @@ def _assign(doc: dict[str, Any], path: list[str | int], raw: str) -> str | None:
             if depth == 0 and step in TOP_KEYS and not last:
                 node[step] = {}          # a table the file leaves out, e.g. [acceptance]
             else:
-                close = difflib.get_close_matches(step, sorted(map(str, node)), n=1)
-                hint = f"; did you mean '{close[0]}'?" if close else (
-                    f"; it has {', '.join(sorted(map(str, node)))}" if node else "")
+                hint = did_you_mean(step, map(str, node), known=True).replace(
+                    "; known keys:", "; it has") if node else ""
                 return f"no key '{step}' in {where} ({here} does not exist){hint}"
         if last:
             node[step] = parse_value(raw)

@@ -21,7 +21,6 @@ and a real-time run against hardware follows the same timeline. ``[[verdicts]]``
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import math
 import operator
 import re
@@ -34,7 +33,14 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._checker import Checker, RigFileError, RigIssue, describe_value
+from plantrig.sim._checker import (
+    Checker,
+    RigFileError,
+    RigIssue,
+    describe_value,
+    did_you_mean,
+    not_one_of,
+)
 from plantrig.sim._commands import Command
 from plantrig.sim._contracts import Event
 from plantrig.sim._faults import parse_fault
@@ -83,8 +89,7 @@ def parse_condition(text: Any, columns: list[str]) -> tuple[Condition | None, st
                       f"{', '.join(OPS)}, found {text!r}")
     column, op, number = m.groups()
     if column not in columns:
-        close = difflib.get_close_matches(column, columns, n=1)
-        hint = f"; did you mean '{close[0]}'?" if close else ""
+        hint = did_you_mean(column, columns)
         return None, f"no tick column {column!r}{hint}"
     try:
         value = float(number)
@@ -168,7 +173,7 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
     allow = c.take(head, "allow_trips", "scenario", "list", default=[]) or []
     for j, item in enumerate(allow):
         if item not in interlocks:
-            c.add(f"scenario.allow_trips[{j}]", _not_in(item, interlocks, "interlocks"))
+            c.add(f"scenario.allow_trips[{j}]", not_one_of(item, interlocks, "interlocks"))
     columns = tick_columns(dataclasses.replace(rig, duration=duration or rig.duration))[0]
     entries = doc.get("steps", [])
     if not isinstance(entries, list) or not all(isinstance(e, dict) for e in entries):
@@ -188,12 +193,6 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
                     tuple(s for s in steps if s is not None), tuple(verdicts), tuple(allow))
 
 
-def _not_in(value: Any, options: list[str], what: str) -> str:
-    close = difflib.get_close_matches(str(value), options, n=1)
-    hint = f"; did you mean '{close[0]}'?" if close else ""
-    return f"expected one of the {what} ({', '.join(options) or 'none'}), found {value!r}{hint}"
-
-
 def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str],
           interlocks: list[str]) -> Step | None:
     c.no_unknown(e, STEP_KEYS, where)
@@ -211,7 +210,7 @@ def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str
             c.add(f"{where}.when", why)
     on_trip = c.take(e, "on_trip", where, "str", default=None)
     if on_trip is not None and on_trip not in interlocks:
-        c.add(f"{where}.on_trip", _not_in(on_trip, interlocks, "interlocks"))
+        c.add(f"{where}.on_trip", not_one_of(on_trip, interlocks, "interlocks"))
     on_phase = c.take(e, "on_phase", where, "str", default=None)
     delay = c.take(e, "delay", where, "number", default=0.0,
                    check=lambda v: None if v >= 0 else f"expected seconds >= 0, found {v}")
@@ -228,7 +227,7 @@ def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str
     names = [r.name for r in rig.references]
     for ref, value in refs.items():
         if ref not in names:
-            c.add(f"{where}.set_reference.{ref}", _not_in(ref, names, "references"))
+            c.add(f"{where}.set_reference.{ref}", not_one_of(ref, names, "references"))
         elif not isinstance(value, int | float) or isinstance(value, bool) \
                 or not math.isfinite(value):
             c.add(f"{where}.set_reference.{ref}", f"expected a finite number, found "
@@ -259,7 +258,7 @@ def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str
     reset = c.take(e, "reset", where, "str", default=None)
     if reset is not None:
         if reset != "all" and reset not in interlocks:
-            c.add(f"{where}.reset", _not_in(reset, ["all", *interlocks], "interlocks"))
+            c.add(f"{where}.reset", not_one_of(reset, ["all", *interlocks], "interlocks"))
         commands.append(Command("reset", {"source": f"scenario {label}"} if reset == "all"
                                 else {"interlock": reset, "source": f"scenario {label}"}))
     stop = c.take(e, "stop", where, "bool", default=False)

@@ -22,10 +22,9 @@ written to verdicts.json in the run folder.
 
 from __future__ import annotations
 
-import difflib
 import json
 import math
-from collections.abc import Callable, Iterable
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -34,6 +33,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim import _metrics
+from plantrig.sim._checker import did_you_mean, not_one_of, one_of
 from plantrig.sim._limits import resolve_signal
 
 if TYPE_CHECKING:
@@ -111,7 +111,7 @@ def parse_verdicts(c: Checker, doc: dict[str, Any], rig: Rig, columns: list[str]
     out: list[VerdictSpec] = []
     for i, e in enumerate(entries):
         where = f"verdicts[{i}]"
-        criterion = c.take(e, "criterion", where, "str", check=_one_of(list(CRITERIA)))
+        criterion = c.take(e, "criterion", where, "str", check=one_of(tuple(CRITERIA), "criteria"))
         if criterion is None:
             continue
         keys = CRITERIA[criterion]
@@ -135,7 +135,7 @@ def parse_verdicts(c: Checker, doc: dict[str, Any], rig: Rig, columns: list[str]
                 value = e[key]
                 if isinstance(value, str):
                     if value not in phases:
-                        c.add(f"{where}.{key}", _not_in(value, sorted(phases),
+                        c.add(f"{where}.{key}", not_one_of(value, sorted(phases),
                                                         "phases the scenario marks"))
                     v[key] = value
                 else:
@@ -163,17 +163,17 @@ def parse_verdicts(c: Checker, doc: dict[str, Any], rig: Rig, columns: list[str]
         if criterion == "trip_within":
             il = c.take(e, "interlock", where, "str")
             if il is not None and il not in interlocks:
-                c.add(f"{where}.interlock", _not_in(il, interlocks, "interlocks"))
+                c.add(f"{where}.interlock", not_one_of(il, interlocks, "interlocks"))
             fault = c.take(e, "fault", where, "str")
             if fault is not None and fault not in faults:
-                c.add(f"{where}.fault", _not_in(fault, sorted(faults),
+                c.add(f"{where}.fault", not_one_of(fault, sorted(faults),
                                                 "faults the scenario injects"))
             v["interlock"], v["fault"] = il, fault
         if criterion == "no_unexpected_trip":
             allow = c.take(e, "allow", where, "list", default=[]) or []
             for j, il in enumerate(allow):
                 if il not in interlocks:
-                    c.add(f"{where}.allow[{j}]", _not_in(il, interlocks, "interlocks"))
+                    c.add(f"{where}.allow[{j}]", not_one_of(il, interlocks, "interlocks"))
             v["allow"] = tuple(allow)
         out.append(VerdictSpec(name=str(name), criterion=criterion, **v))
     return out
@@ -192,22 +192,10 @@ def _column(c: Checker, e: dict[str, Any], key: str, where: str, columns: list[s
               "outputs": list(rig.outputs)}
     column, why = resolve_signal(value, groups)
     if column is None:
-        close = difflib.get_close_matches(value, columns, n=1)
-        c.add(f"{where}.{key}", why if "more than one" in why or not close else
-              f"no tick column {value!r}; did you mean '{close[0]}'?")
+        hint = did_you_mean(value, columns)
+        c.add(f"{where}.{key}", why if "more than one" in why or not hint else
+              f"no tick column {value!r}{hint}")
     return column
-
-
-def _one_of(options: list[str]) -> Callable[[Any], str | None]:
-    def check(v: Any) -> str | None:
-        return None if v in options else _not_in(v, options, "criteria")
-    return check
-
-
-def _not_in(value: Any, options: list[str], what: str) -> str:
-    close = difflib.get_close_matches(str(value), options, n=1)
-    hint = f"; did you mean '{close[0]}'?" if close else ""
-    return f"expected one of the {what} ({', '.join(options) or 'none'}), found {value!r}{hint}"
 
 
 # -- judging a run ---------------------------------------------------------------------

@@ -120,7 +120,7 @@ BAD = [
     ("unknown key", f'[campaign]\nseeed = 1\n[[rigs]]\nfile = "{GUARDED}"\n', "campaign.seeed",
      "unknown key; did you mean 'seed'?"),
     ("keep", f'[campaign]\nkeep = "some"\n[[rigs]]\nfile = "{GUARDED}"\n', "campaign.keep",
-     "expected one of nothing, failing, all, found 'some'"),
+     "expected one of nothing, failing, all, found string 'some'"),
     ("draws zero", f'[campaign]\ndraws = 0\n[[rigs]]\nfile = "{GUARDED}"\n', "campaign.draws",
      "expected a whole number >= 1, found 0"),
     ("seed type", f'[campaign]\nseed = "x"\n[[rigs]]\nfile = "{GUARDED}"\n', "campaign.seed",
@@ -137,7 +137,7 @@ BAD = [
     ("dist typo", f'[campaign]\n[[rigs]]\nfile = "{TANK}"\n[rigs.draw]\n'
                   '"plant.params.area" = { dist = "uniforn", low = 1, high = 2 }\n',
      'rigs[0].draw."plant.params.area".dist',
-     "expected one of uniform, normal, truncnormal, choice, found 'uniforn'; did you mean "
+     "expected one of uniform, normal, truncnormal, choice, found string 'uniforn'; did you mean "
      "'uniform'?"),
     ("uniform without bounds", f'[campaign]\n[[rigs]]\nfile = "{TANK}"\n[rigs.draw]\n'
                                '"plant.params.area" = { dist = "uniform", low = 1 }\n',

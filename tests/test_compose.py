@@ -61,8 +61,8 @@ rate = -3.0
     proc = subprocess.run([sys.executable, "-m", "plantrig", "check", str(path)],
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode == 2 and "Traceback" not in proc.stderr
-    assert "sensors[0].name: expected one of belt_speed, motor_current, found 'belt_sped'; " \
-           "did you mean 'belt_speed'?" in proc.stderr
+    assert "sensors[0].name: expected one of the plant outputs (belt_speed, motor_current), " \
+           "found string 'belt_sped'; did you mean 'belt_speed'?" in proc.stderr
     assert "actuators[0].rate" in proc.stderr
 
 

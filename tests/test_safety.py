@@ -266,8 +266,9 @@ def test_rig_file_safety_mistakes_are_reported_together(tmp_path: Path) -> None:
                    "did you mean 'limit:b'?",
                    "interlocks[1].on[1]:", "did you mean 'link_lost'?",
                    "interlocks[1].action: expected one of safe_inputs, freeze, stop, found "
-                   "'halt'",
-                   "interlocks[1].inputs[0]: expected one of the plant inputs (u), found 'uu'; "
+                   "string 'halt'",
+                   "interlocks[1].inputs[0]: expected one of the plant inputs (u), found "
+                   "string 'uu'; "
                    "did you mean 'u'?",
                    "limits[3]: limit 'd' has a trip bound but no interlock lists"):
         assert needle in text, needle

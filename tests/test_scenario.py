@@ -182,22 +182,23 @@ def test_scenario_file_mistakes_are_reported_together(tmp_path: Path) -> None:
     text = str(err.value)
     for needle in ("scenario.duraton: unknown key; did you mean 'duration'?",
                    "scenario.allow_trips[0]: expected one of the interlocks (estop, guard), "
-                   "found 'gaurd'; did you mean 'guard'?",
+                   "found string 'gaurd'; did you mean 'guard'?",
                    "steps[0]: expected exactly one trigger (at, when, on_trip, on_phase), "
                    "found at, when",
                    "steps[0]: expected at least one action",
                    "steps[1].when: no tick column 'y:yy'; did you mean 'y:y'?",
                    "steps[2].inject.bias: missing (expected a number",
-                   "steps[3].set_reference.rr: expected one of the references (r), found 'rr'",
+                   "steps[3].set_reference.rr: expected one of the references (r), found "
+                   "string 'rr'",
                    "steps[3].reset: expected one of the interlocks (all, estop, guard), found "
-                   "'gard'; did you mean 'guard'?",
+                   "string 'gard'; did you mean 'guard'?",
                    "steps[4].on_trip: expected one of the interlocks",
                    "steps[4].expect: expected '<column> <op> <number>'",
                    "verdicts[0].criterion: expected one of the criteria",
                    "did you mean 'rise_time'?",
                    "verdicts[1].fault: expected one of the faults the scenario injects",
                    "verdicts[2].start: expected one of the phases the scenario marks (p), "
-                   "found 'nowhere'",
+                   "found string 'nowhere'",
                    "verdicts[2]: expected `low`, `high` or both"):
         assert needle in text, needle
     assert isinstance(err.value, RigFileError)

@@ -128,6 +128,8 @@ kind = "external"
 
 [link]
 kind = "serial"
+port = "/dev/ttyUSB0"
+lockstep = true
 """
 
 
