@@ -43,7 +43,7 @@ EXIT_MEANINGS = {0: "every case passed", 1: "a case could not be judged",
 
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
-        "campaign", help="run many rehearsals (a campaign file) on Dask",
+        "campaign",
         description="Run every case of a campaign file (rigs x scenarios x variations) in "
                     "fast mode, one case per Dask task, on an embedded local cluster or an "
                     "existing Dask scheduler, and write a campaign folder: cases table "

@@ -149,7 +149,7 @@ def sync(runs: Path) -> int:
 
 
 def add_parser(sub: Any) -> None:
-    p = sub.add_parser("runs", help="list the run and campaign folders in a runs folder",
+    p = sub.add_parser("runs",
                        description="List every run and campaign folder in the runs folder "
                                    f"from its catalogue ({CATALOGUE}), newest first. The "
                                    "catalogue is brought up to date with the folders first "

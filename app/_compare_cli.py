@@ -30,7 +30,7 @@ HELP = """exit codes:
 
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
-        "compare", help="compare two run folders signal by signal",
+        "compare",
         description="Put two run folders side by side: align them by plant time (tick by "
                     "tick when the ticks are equal, otherwise on the coarser grid with the "
                     "finer run held at its latest sample), then per signal the largest "

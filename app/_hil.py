@@ -20,10 +20,11 @@ from typing import Any
 
 from plantrig import CAUTION, show_caution, shown_env
 from plantrig._console import print_outcome
+from plantrig.configs import CONFIGS
 from plantrig.sim import EXIT_CODE_HELP
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
-DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_hil.toml"
+DEMO_RIG = CONFIGS / "conveyor_hil.toml"
 READY_TIMEOUT_S = 20.0
 READY_WORD = "controller: ready"
 

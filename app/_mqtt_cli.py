@@ -19,9 +19,10 @@ from pathlib import Path
 from typing import Any
 
 from plantrig import show_caution, shown_env
+from plantrig.configs import CONFIGS
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE = 0, 1, 2
-DEMO_RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_mqtt.toml"
+DEMO_RIG = CONFIGS / "conveyor_mqtt.toml"
 READY_TIMEOUT_S = 20.0
 
 

@@ -64,7 +64,7 @@ def cmd_plot(args: argparse.Namespace) -> int:
 def add_parser(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Register ``plot`` on the main parser's subparsers."""
     p = sub.add_parser(
-        "plot", help="draw chosen signals of a run to a PNG or SVG",
+        "plot",
         description="Draw chosen signals of a run folder as the report does: limit warn "
                     "and trip lines, trips marked, injected faults and disturbances "
                     "shaded from the events. A SIGNAL is a name (belt_speed: the plant "

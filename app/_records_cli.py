@@ -292,7 +292,7 @@ def _say_draft(draft: bool, readiness: Readiness) -> None:
 def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     """Register the run-record subcommands on the main parser's subparsers."""
     raw = argparse.RawDescriptionHelpFormatter
-    p = sub.add_parser("recover", help="rebuild the record of a run that died",
+    p = sub.add_parser("recover",
                        description="Rebuild run.h5, ticks.npy, summary.json and the manifest "
                                    "of a run folder whose rig was killed, from the journal, "
                                    "events.jsonl and the tapes left in shared memory; "
@@ -306,7 +306,7 @@ def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
     p.add_argument("folder", help="run folder")
     p.set_defaults(func=cmd_recover)
 
-    p = sub.add_parser("verify", help="check a run folder against its manifest",
+    p = sub.add_parser("verify",
                        description="Check every field of manifest.json (it must be intact "
                                    "to the bit), then the size and SHA-256 of every file of "
                                    "the record; report files changed, missing or added, "
@@ -320,7 +320,7 @@ def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
     p.add_argument("--public-key", metavar="FILE", help="Ed25519 public key (PEM)")
     p.set_defaults(func=cmd_verify)
 
-    p = sub.add_parser("keygen", help="make an Ed25519 key pair for signing run folders",
+    p = sub.add_parser("keygen",
                        description="Write PREFIX.private.pem (mode 0600) and "
                                    "PREFIX.public.pem. With --passphrase-env the private "
                                    "key is encrypted (PKCS#8, the cryptography library's "
@@ -337,7 +337,7 @@ def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
                         "environment variable NAME")
     p.set_defaults(func=cmd_keygen)
 
-    p = sub.add_parser("sign", help="sign a run folder's manifest (Ed25519)",
+    p = sub.add_parser("sign",
                        description="Sign manifest.json of a finished run folder that passes "
                                    "verify. A folder already signed is not signed again. "
                                    "An encrypted key's passphrase comes from "
@@ -354,7 +354,7 @@ def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
                         "NAME instead of asking")
     p.set_defaults(func=cmd_sign)
 
-    p = sub.add_parser("report", help="write report.html and report.pdf for a run",
+    p = sub.add_parser("report",
                        description="Write a sign-off report (self-contained HTML and PDF) "
                                    f"into RUN_FOLDER/{DERIVED}/ (not covered by the "
                                    "manifest, so it never changes it). Refuses a folder "
@@ -373,7 +373,7 @@ def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
     p.add_argument("--draft", action="store_true", help=DRAFT_HELP)
     p.set_defaults(func=cmd_report)
 
-    p = sub.add_parser("export", help="export a run as CSV and/or MATLAB .mat",
+    p = sub.add_parser("export",
                        description=f"Export a run into RUN_FOLDER/{DERIVED}/ (not covered by "
                                    "the manifest). Refuses a folder still being written, "
                                    "not finished, or failing verify, unless --draft.",

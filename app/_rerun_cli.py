@@ -18,7 +18,7 @@ EXIT_USAGE = 2
 
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
-        "rerun", help="re-simulate a run folder with its recorded commands (what-if)",
+        "rerun",
         description="Re-run a recorded run in fast mode: the plant gets the controller's "
                     "commands exactly as recorded at each tick (after the link, before the "
                     "actuator chain, with their freshness), the scenario's steps, the "

@@ -14,32 +14,17 @@ import os
 import signal
 import sys
 import tomllib
+from importlib import import_module
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from plantrig import CAUTION, __version__, show_caution
-from plantrig._campaign_cli import add_parser as add_campaign_command
-from plantrig._catalogue import add_parser as add_runs_command
-from plantrig._catalogue import index_run
-from plantrig._compare_cli import add_parser as add_compare_command
-from plantrig._console import print_outcome
-from plantrig._hil import add_parsers as add_link_commands
-from plantrig._model_trust import TRUST_HELP, model_guard
-from plantrig._override_options import add_override_options, overrides_of
-from plantrig._plot_cli import add_parser as add_plot_command
-from plantrig._progress import RunProgress, both
-from plantrig._records_cli import add_record_commands
-from plantrig._rerun_cli import add_parser as add_rerun_command
-from plantrig.sim import (
-    EXIT_CODE_HELP,
-    RecordError,
-    Rig,
-    RigFileError,
-    build_chains,
-    load_rig_with_overrides,
-    run_to_folder,
-    summarize,
-)
+from plantrig.sim._outcome import EXIT_CODE_HELP
+
+if TYPE_CHECKING:
+    from plantrig.sim import Rig, RigFileError
+
+    Subcommands = argparse._SubParsersAction[argparse.ArgumentParser]
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE, EXIT_VERDICT, EXIT_STOPPED = 0, 1, 2, 3, 5
 EXIT_CLOSED_PIPE = 141   # 128 + SIGPIPE, what shell tools give when their reader quits
@@ -48,19 +33,16 @@ EXIT_MEANINGS = {0: "completed", 1: "fault", 2: "usage mistake", 3: "a verdict f
 
 
 def _load(path: str, overrides: list[str] | None = None, trust_model: bool = False) -> Rig:
+    from plantrig._model_trust import model_guard
+    from plantrig.sim import RigFileError, load_rig_with_overrides
+
     refusal = model_guard(path, overrides=overrides or (), trust=trust_model)
     if refusal:
         print(f"error: {path}: {refusal}. replay, verify, report and export read a run "
               "folder without running it", file=sys.stderr)
         raise SystemExit(EXIT_USAGE)
     try:
-        rig = load_rig_with_overrides(path, overrides or ())
-        if rig.link is not None:
-            from plantrig.io import check_link_table  # links load only when a rig has one
-            issues = check_link_table(rig)
-            if issues:
-                raise RigFileError(issues)
-        return rig
+        return load_rig_with_overrides(path, overrides or ())
     except RigFileError as exc:
         _print_issues(path, exc)
         raise SystemExit(EXIT_USAGE) from None
@@ -88,14 +70,11 @@ def _scenario_not_rig(path: str) -> bool:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
+    from plantrig.sim import RigFileError, summarize
+
     if _scenario_not_rig(args.rig):
         return EXIT_USAGE
     rig = _load(args.rig, trust_model=args.trust_model)
-    try:
-        build_chains(rig)
-    except RigFileError as exc:
-        _print_issues(args.rig, exc)
-        return EXIT_USAGE
     model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
     print(f"{rig.path}: ok")
     print(f"rig: {rig.name} — {rig.description}" if rig.description else f"rig: {rig.name}")
@@ -129,8 +108,7 @@ def _safety_lines(rig: Any) -> list[str]:
     """Link, limits, interlocks and acceptance rules of a checked rig, one line each."""
     lines = []
     if rig.link is not None:
-        where = rig.link.get("port") or rig.link.get("host") or ""
-        lines.append(f"link: {rig.link.get('kind', '?')} {where}".rstrip())
+        lines.append(f"link: {rig.link.kind} {rig.link.where}".rstrip())
     for lim in rig.limits:
         low, high = math.isfinite(lim.trip_low), math.isfinite(lim.trip_high)
         where = (f"outside {lim.trip_low:g} .. {lim.trip_high:g}" if low and high else
@@ -147,6 +125,12 @@ def _safety_lines(rig: Any) -> list[str]:
 
 
 def cmd_run(args: argparse.Namespace) -> int:
+    from plantrig._catalogue import index_run
+    from plantrig._console import print_outcome
+    from plantrig._override_options import overrides_of
+    from plantrig._progress import RunProgress, both
+    from plantrig.sim import RecordError, RigFileError, build_chains, run_to_folder
+
     rig = _load(args.rig, overrides_of(args), trust_model=args.trust_model)
     scenario = None
     if args.scenario:
@@ -270,14 +254,10 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return replay(args.folder, screenshot=args.screenshot)
 
 
-def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
-        prog="plantrig", description="A virtual plant on the controller test bench.",
-        epilog=CAUTION)
-    parser.add_argument("--version", action="version", version=f"plantrig {__version__}")
-    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+def add_check(sub: Subcommands) -> None:
+    from plantrig._model_trust import TRUST_HELP
 
-    p = sub.add_parser("check", help="check a rig file and print the model summary",
+    p = sub.add_parser("check",
                        description="Check a rig file (every mistake at once) and print the "
                                    "model summary: modes, stability, ranks, tick warnings. "
                                    "An ODE plant's module is Python code and is imported "
@@ -300,7 +280,12 @@ def build_parser() -> argparse.ArgumentParser:
                    help="length of the --bench pacing test (default 2)")
     p.set_defaults(func=cmd_check)
 
-    p = sub.add_parser("run", help="run a rig and write a run folder",
+
+def add_run(sub: Subcommands) -> None:
+    from plantrig._model_trust import TRUST_HELP
+    from plantrig._override_options import add_override_options
+
+    p = sub.add_parser("run",
                        description="Run a rig closed-loop and write a run folder with the "
                                    "tick data, a copy of the rig file and a summary. The run "
                                    "ends as one outcome: completed, stopped, tripped or "
@@ -338,8 +323,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
     add_override_options(p)
     p.set_defaults(func=cmd_run)
-    add_record_commands(sub)
-    p = sub.add_parser("replay", help="open a run folder in the dashboard",
+
+
+def add_replay(sub: Subcommands) -> None:
+    p = sub.add_parser("replay",
                        description="Open a recorded run folder in the dashboard, with a "
                                    "time slider (needs dearpygui and a display). Reads "
                                    "data only: a model module in the folder is never "
@@ -350,17 +337,82 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--screenshot", metavar="PNG",
                    help="draw the run once, save the window as a PNG and exit")
     p.set_defaults(func=cmd_replay)
-    add_link_commands(sub, _load)
-    add_compare_command(sub)
-    add_plot_command(sub)
-    add_campaign_command(sub)
-    add_runs_command(sub)
-    add_rerun_command(sub)
+
+
+def add_link_commands(sub: Subcommands) -> None:
+    from plantrig._hil import add_parsers
+    add_parsers(sub, _load)
+
+
+RECORDS = "plantrig._records_cli:add_record_commands"
+LINK = "plantrig.cli:add_link_commands"
+# Every command: the line `plantrig --help` shows for it (its only home) and the
+# "module:function" that adds its full parser (a function may add a group of commands).
+# main() imports only the module of the command typed, so `plantrig --help` and
+# `plantrig check` load nothing that other commands need (h5py, matplotlib, Dask,
+# pymodbus, aiomqtt...); bench/bench_imports.py measures the start-up.
+COMMANDS: dict[str, tuple[str, str]] = {
+    "check": ("check a rig file and print the model summary", "plantrig.cli:add_check"),
+    "run": ("run a rig and write a run folder", "plantrig.cli:add_run"),
+    "recover": ("rebuild the record of a run that died", RECORDS),
+    "verify": ("check a run folder against its manifest", RECORDS),
+    "keygen": ("make an Ed25519 key pair for signing run folders", RECORDS),
+    "sign": ("sign a run folder's manifest (Ed25519)", RECORDS),
+    "report": ("write report.html and report.pdf for a run", RECORDS),
+    "export": ("export a run as CSV and/or MATLAB .mat", RECORDS),
+    "replay": ("open a run folder in the dashboard", "plantrig.cli:add_replay"),
+    "controller": ("run the reference controller on a rig's link", LINK),
+    "demo": ("rig and reference controller over a pty, in real time", LINK),
+    "compare": ("compare two run folders signal by signal", "plantrig._compare_cli:add_parser"),
+    "plot": ("draw chosen signals of a run to a PNG or SVG", "plantrig._plot_cli:add_parser"),
+    "campaign": ("run many rehearsals (a campaign file) on Dask",
+                 "plantrig._campaign_cli:add_parser"),
+    "runs": ("list the run and campaign folders in a runs folder",
+             "plantrig._catalogue:add_parser"),
+    "rerun": ("re-simulate a run folder with its recorded commands (what-if)",
+              "plantrig._rerun_cli:add_parser"),
+}
+
+
+class Commands(argparse._SubParsersAction):  # type: ignore[type-arg]
+    """The subcommands' action: each parser gets its line of help from COMMANDS."""
+
+    def add_parser(self, name: str, **kwargs: Any) -> argparse.ArgumentParser:
+        kwargs.setdefault("help", COMMANDS[name][0])
+        return super().add_parser(name, **kwargs)
+
+
+def _add_full(sub: Subcommands, name: str) -> None:
+    module, function = COMMANDS[name][1].split(":")
+    getattr(import_module(module), function)(sub)
+
+
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
+    """The command line, every command's parser in full; with ``only`` (the word typed
+    after plantrig, perhaps none or a typo) just that command's, the others a name and
+    its line of help, which is all their listing in `plantrig --help` needs."""
+    parser = argparse.ArgumentParser(
+        prog="plantrig", description="A virtual plant on the controller test bench.",
+        epilog=CAUTION)
+    parser.add_argument("--version", action="version", version=f"plantrig {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND",
+                                action=Commands)
+    if only in COMMANDS:
+        _add_full(sub, only)
+    for name in COMMANDS:
+        if name not in sub.choices:
+            if only is None:
+                _add_full(sub, name)
+            else:
+                sub.add_parser(name)
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = build_parser()
+    argv = sys.argv[1:] if argv is None else argv
+    # the first word that is not an option names the command (plantrig's own options,
+    # --help and --version, take no value)
+    parser = build_parser(only=next((a for a in argv if not a.startswith("-")), ""))
     args = parser.parse_args(argv)
     # outside a run, SIGTERM is treated as Ctrl-C: stop quietly (a run installs its own
     # graceful handlers, plantrig.sim.run_to_folder)

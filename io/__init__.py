@@ -1,49 +1,66 @@
-"""Controller links and frame codecs (signal conditioning is numeric: plantrig.sim)."""
+"""Controller links and frame codecs (signal conditioning is numeric: plantrig.sim).
 
-from plantrig.io._broker import BrokerError, LocalBroker
-from plantrig.io._cobs import CobsError, cobs_decode, cobs_encode
-from plantrig.io._crc import crc16
-from plantrig.io._frames import (
-    MAX_CHANNELS,
-    MAX_ENCODED_SIZE,
-    PROTOCOL_VERSION,
-    REASONS,
-    Encoding,
-    Frame,
-    FrameError,
-    FrameSplitter,
-    Kind,
-    SeqTracker,
-    decode_frame,
-    encode_frame,
-)
-from plantrig.io._link_config import (
-    LINK_KINDS,
-    Issues,
-    LinkKind,
-    LinkSettings,
-    build_link,
-    check_link_table,
-    parse_link_table,
-)
-from plantrig.io._mqtt_config import MqttSettings, TlsSettings
-from plantrig.io._pty import FdPort, PtyPair, open_pty_pair
-from plantrig.io._refcontroller import (
-    TRANSPORTS,
-    ReferenceController,
-    SerialTransport,
-    Transport,
-    run_controller,
-)
-from plantrig.io._serial_link import BytePort, LinkError, SerialLink, open_serial_port
-from plantrig.io._textline import (
-    MAX_LINE_LENGTH,
-    LineSplitter,
-    decode_line,
-    encode_line,
-    xor_checksum,
-)
-from plantrig.io._wire import WireFormat
+Names load on first use (PEP 562), as in plantrig.sim: `import plantrig.io` costs
+almost nothing, so `plantrig check` needs neither pyserial nor aiomqtt nor pymodbus,
+and a link's worker process (`python -m plantrig.io._mqtt_worker`) imports only what it
+uses.
+"""
+
+from __future__ import annotations
+
+from importlib import import_module
+from typing import TYPE_CHECKING, Any
+
+# the module (under plantrig.io) each public name lives in
+_HOME: dict[str, str] = {
+    **dict.fromkeys(["BrokerError", "LocalBroker"], "_broker"),
+    **dict.fromkeys(["CobsError", "cobs_decode", "cobs_encode"], "_cobs"),
+    **dict.fromkeys(["crc16"], "_crc"),
+    **dict.fromkeys(
+        [
+            "MAX_CHANNELS",
+            "MAX_ENCODED_SIZE",
+            "PROTOCOL_VERSION",
+            "REASONS",
+            "Encoding",
+            "Frame",
+            "FrameError",
+            "FrameSplitter",
+            "Kind",
+            "SeqTracker",
+            "decode_frame",
+            "encode_frame",
+        ],
+        "_frames",
+    ),
+    **dict.fromkeys(["build_link"], "_link_config"),
+    **dict.fromkeys(["MqttSettings"], "_mqtt_config"),
+    **dict.fromkeys(["MqttControllerPeer"], "_mqtt_controller"),
+    **dict.fromkeys(["MqttLink"], "_mqtt_link"),
+    **dict.fromkeys(["FdPort", "PtyPair", "open_pty_pair"], "_pty"),
+    **dict.fromkeys(
+        [
+            "TRANSPORTS",
+            "ReferenceController",
+            "SerialTransport",
+            "Transport",
+            "run_controller",
+        ],
+        "_refcontroller",
+    ),
+    **dict.fromkeys(["BytePort", "LinkError", "SerialLink", "open_serial_port"], "_serial_link"),
+    **dict.fromkeys(
+        [
+            "MAX_LINE_LENGTH",
+            "LineSplitter",
+            "decode_line",
+            "encode_line",
+            "xor_checksum",
+        ],
+        "_textline",
+    ),
+    **dict.fromkeys(["WireFormat"], "_wire"),
+}
 
 __all__ = [
     "MAX_CHANNELS",
@@ -67,16 +84,11 @@ __all__ = [
     "encode_frame",
     "encode_line",
     "xor_checksum",
-    # signal conditioning
     # links
-    "LINK_KINDS",
     "TRANSPORTS",
     "BytePort",
     "FdPort",
-    "Issues",
     "LinkError",
-    "LinkKind",
-    "LinkSettings",
     "PtyPair",
     "ReferenceController",
     "SerialLink",
@@ -84,26 +96,66 @@ __all__ = [
     "Transport",
     "WireFormat",
     "build_link",
-    "check_link_table",
     "open_pty_pair",
     "open_serial_port",
-    "parse_link_table",
     "run_controller",
-    # MQTT (MqttLink and MqttControllerPeer load aiomqtt on first use)
+    # MQTT
     "BrokerError",
     "LocalBroker",
     "MqttControllerPeer",
     "MqttLink",
     "MqttSettings",
-    "TlsSettings",
 ]
 
-_LAZY = {"MqttLink": "plantrig.io._mqtt_link", "MqttControllerPeer": "plantrig.io._mqtt_controller"}
+
+def __getattr__(name: str) -> Any:
+    if name not in _HOME:
+        raise AttributeError(f"module 'plantrig.io' has no attribute {name!r}")
+    value = getattr(import_module(f"plantrig.io.{_HOME[name]}"), name)
+    globals()[name] = value  # the next lookup is a plain attribute
+    return value
 
 
-def __getattr__(name: str) -> object:
-    """Load the MQTT link's names when first used, so `plantrig check` needs no aiomqtt."""
-    if name in _LAZY:
-        import importlib
-        return getattr(importlib.import_module(_LAZY[name]), name)
-    raise AttributeError(f"module 'plantrig.io' has no attribute {name!r}")
+def __dir__() -> list[str]:
+    return sorted(__all__)
+
+
+if TYPE_CHECKING:  # type checkers and editors see every name where it lives
+    from plantrig.io._broker import BrokerError, LocalBroker
+    from plantrig.io._cobs import CobsError, cobs_decode, cobs_encode
+    from plantrig.io._crc import crc16
+    from plantrig.io._frames import (
+        MAX_CHANNELS,
+        MAX_ENCODED_SIZE,
+        PROTOCOL_VERSION,
+        REASONS,
+        Encoding,
+        Frame,
+        FrameError,
+        FrameSplitter,
+        Kind,
+        SeqTracker,
+        decode_frame,
+        encode_frame,
+    )
+    from plantrig.io._link_config import build_link
+    from plantrig.io._mqtt_config import MqttSettings
+    from plantrig.io._mqtt_controller import MqttControllerPeer
+    from plantrig.io._mqtt_link import MqttLink
+    from plantrig.io._pty import FdPort, PtyPair, open_pty_pair
+    from plantrig.io._refcontroller import (
+        TRANSPORTS,
+        ReferenceController,
+        SerialTransport,
+        Transport,
+        run_controller,
+    )
+    from plantrig.io._serial_link import BytePort, LinkError, SerialLink, open_serial_port
+    from plantrig.io._textline import (
+        MAX_LINE_LENGTH,
+        LineSplitter,
+        decode_line,
+        encode_line,
+        xor_checksum,
+    )
+    from plantrig.io._wire import WireFormat

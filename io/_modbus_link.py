@@ -23,26 +23,20 @@ from typing import Any
 
 import numpy as np
 
-from plantrig.io._link_config import LinkSettings
 from plantrig.io._modbus_config import modbus_setup
 from plantrig.io._modbus_worker import STATE_STRUCT, command_struct, sensor_struct
 from plantrig.io._rig_state import RigState
-from plantrig.sim import Event, Rig, silent_ticks_allowed
+from plantrig.sim import Event, LinkSettings, Rig, silent_ticks_allowed
 from plantrig.sim._contracts import Vector
 
 SOCKET_BUFFER = 1 << 16
 LATENCY_BINS = 64
 OPEN_TIMEOUT_S = 10.0
 CLOSE_WAIT_S = 2.0
-# the worker imports only the Modbus modules (plantrig.io's __init__ pulls in the sim)
-WORKER_BOOT = (
-    "import importlib.util, sys, types\n"
-    "spec = importlib.util.find_spec('plantrig.io')\n"
-    "pkg = types.ModuleType('plantrig.io')\n"
-    "pkg.__path__ = list(spec.submodule_search_locations)\n"
-    "sys.modules['plantrig.io'] = pkg\n"
-    "from plantrig.io._modbus_worker import process_main\n"
-    "sys.exit(process_main(sys.argv))\n")
+# the server process: `python -m` imports plantrig.io's light __init__ and the worker
+# module with what it needs (pymodbus), never the simulator
+WORKER_COMMAND = [sys.executable, "-m", "plantrig.io._modbus_worker"]
+
 
 class ModbusLink:
     """A ControllerLink over Modbus TCP or RTU (see the module doc)."""
@@ -84,8 +78,7 @@ class ModbusLink:
             s.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, SOCKET_BUFFER)
             s.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, SOCKET_BUFFER)
         mine.send(json.dumps(self.setup).encode())
-        self._worker = subprocess.Popen([sys.executable, "-c", WORKER_BOOT,
-                                         str(theirs.fileno())],
+        self._worker = subprocess.Popen([*WORKER_COMMAND, str(theirs.fileno())],
                                         pass_fds=(theirs.fileno(),), stdin=subprocess.DEVNULL)
         theirs.close()
         mine.setblocking(False)

@@ -41,17 +41,9 @@ from plantrig.sim._contracts import Vector
 
 SOCKET_BUFFER = 1 << 16
 LATENCY_BINS = 64
-# The worker process imports only what it needs: plantrig.io's __init__ pulls in the
-# whole simulator (scipy; about 3 s on a loaded 2-core machine against 0.3 s without it),
-# so the bootstrap stands in an empty package module for it.
-WORKER_BOOT = (
-    "import importlib.util, sys, types\n"
-    "spec = importlib.util.find_spec('plantrig.io')\n"
-    "pkg = types.ModuleType('plantrig.io')\n"
-    "pkg.__path__ = list(spec.submodule_search_locations)\n"
-    "sys.modules['plantrig.io'] = pkg\n"
-    "from plantrig.io._mqtt_worker import process_main\n"
-    "sys.exit(process_main(sys.argv))\n")
+# the worker process: `python -m` imports plantrig.io's light __init__ and the worker
+# module with what it needs (aiomqtt), never the simulator
+WORKER_COMMAND = [sys.executable, "-m", "plantrig.io._mqtt_worker"]
 CLOSE_WAIT_S = 3.0
 READY_EVENTS = {"link_connected", "link_auth_failed", "link_connect_failed"}
 
@@ -116,7 +108,7 @@ class MqttLink:
         else:
             mine.send(setup_record(self.settings, self.spec))
             self._worker = subprocess.Popen(
-                [sys.executable, "-c", WORKER_BOOT, str(theirs.fileno())],
+                [*WORKER_COMMAND, str(theirs.fileno())],
                 pass_fds=(theirs.fileno(),), stdin=subprocess.DEVNULL)
             theirs.close()  # the child holds its own copy
             self._peer = None
@@ -315,5 +307,5 @@ class MqttLink:
 
 
 def build_mqtt_link(rig: Rig, link: Any, endpoint: Any = None) -> MqttLink:
-    """The LINK_KINDS builder: an MqttLink from a checked [link] (plantrig.io._link_config)."""
+    """An MqttLink from a rig's checked [link] settings (plantrig.io._link_config builds it)."""
     return MqttLink.from_rig(rig, mqtt_settings(link, endpoint))

@@ -503,7 +503,7 @@ def setup_record(settings: MqttSettings, spec: ChannelSpec) -> bytes:
 
 
 def process_main(argv: list[str]) -> int:
-    """Worker process entry (see plantrig.io._mqtt_link.WORKER_BOOT); argv[1] is the fd of
+    """Worker process entry (plantrig.io._mqtt_link.WORKER_COMMAND); argv[1] is the fd of
     its end of the socket pair. The settings arrive as the first record, never on the
     command line, which other users can read. A Ctrl-C reaches the whole process
     group: the worker leaves it to the rig, which closes the link when it has stopped."""
@@ -520,3 +520,7 @@ def process_main(argv: list[str]) -> int:
         return 2
     worker_main(settings, spec, sock)
     return 0
+
+
+if __name__ == "__main__":
+    sys.exit(process_main(sys.argv))

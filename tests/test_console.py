@@ -75,7 +75,7 @@ def test_docs_and_code_cite_only_files_the_repository_holds() -> None:
 def test_every_command_has_a_description_and_its_exit_codes() -> None:
     from plantrig.cli import build_parser
     parser = build_parser()
-    sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")
+    sub = next(a for a in parser._actions if a.dest == "command")
     lacking = []
     for name, command in sub.choices.items():  # type: ignore[attr-defined]
         text = command.format_help()

@@ -48,6 +48,39 @@ def test_io_folder_never_shadows_the_standard_library() -> None:
     assert hasattr(__import__("io"), "BytesIO")
 
 
+# libraries only some commands need; each loads where it is used
+HEAVY = {"scipy", "h5py", "matplotlib", "dask", "distributed", "pyarrow", "pymodbus",
+         "aiomqtt", "paho", "serial", "tqdm", "cryptography", "dearpygui", "fmpy", "control"}
+LOADED_AT_EXIT = ("import atexit, sys; atexit.register(lambda: print(' '.join("
+                  "{m.split('.')[0] for m in sys.modules}), file=sys.stderr)); ")
+
+
+def packages_loaded(code: str, *args: str) -> set[str]:
+    """The top-level packages a fresh interpreter holds when ``code`` has run."""
+    proc = subprocess.run([sys.executable, "-c", LOADED_AT_EXIT + code, *args], cwd=REPO,
+                          capture_output=True, text=True, timeout=60)
+    assert "Traceback" not in proc.stderr, proc.stderr
+    return set(proc.stderr.split("\n")[-2].split())
+
+
+def test_help_and_check_load_only_what_they_need() -> None:
+    cli = "from plantrig.cli import main; sys.exit(main(sys.argv[1:]))"
+    assert packages_loaded(cli, "--help") & (HEAVY | {"numpy"}) == set()
+    # scipy: still imported at the top of sim/_plant.py (used there only to build a
+    # stepper); the checker itself needs neither it nor numpy
+    for rig in ("conveyor.toml", "conveyor_hil.toml", "conveyor_mqtt.toml",
+                "conveyor_modbus.toml", "tank.toml"):
+        loaded = packages_loaded(cli, "check", f"configs/{rig}") & (HEAVY - {"scipy"})
+        assert (rig, loaded) == (rig, set())
+
+
+def test_link_workers_load_no_simulator() -> None:
+    # the worker processes start as `python -m plantrig.io._mqtt_worker` (and _modbus_):
+    # plantrig.io's names load on first use, so nothing of the rig model comes along
+    code = "import plantrig.io._mqtt_worker, plantrig.io._modbus_worker"
+    assert packages_loaded(code) & {"numpy", "scipy"} == set()
+
+
 def test_every_subcommand_has_help() -> None:
     from plantrig.cli import build_parser
 
