@@ -71,6 +71,7 @@ _HOME: dict[str, str] = {
         "_plant",
     ),
     **dict.fromkeys(["RecordError"], "_preflight"),
+    **dict.fromkeys(["rig_from_python", "write_rig"], "_rig_builder"),
     **dict.fromkeys(["RunRecord", "read_run"], "_reader"),
     **dict.fromkeys(["read_journal"], "_recorder"),
     **dict.fromkeys(["recover_run"], "_records"),
@@ -143,6 +144,8 @@ __all__ = [
     "WallClock",
     "build_controller",
     "build_rig",
+    "rig_from_python",
+    "write_rig",
     "from_state_space_object",
     "load_rig",
     "make_stepper",
@@ -298,6 +301,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim._recorder import read_journal
     from plantrig.sim._records import recover_run
     from plantrig.sim._references import Ramp, Sine, Step, Table
+    from plantrig.sim._rig_builder import rig_from_python, write_rig
     from plantrig.sim._rigdata import (
         ModelNotLoaded,
         load_rig_as_data,

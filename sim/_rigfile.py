@@ -13,7 +13,7 @@ import importlib.util
 import math
 import tomllib
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields, is_dataclass
 from pathlib import Path
 from typing import Any
 
@@ -85,9 +85,13 @@ class ControllerSpec:
     settings: dict[str, Any] = field(default_factory=dict)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Rig:
-    """Everything a run needs, checked."""
+    """Everything a run needs, checked.
+
+    Two rigs are equal when every setting is (matrices compared by value); where the rig
+    came from (``path``, ``text``) does not count.
+    """
 
     path: Path
     text: str
@@ -122,6 +126,34 @@ class Rig:
     @property
     def n_ticks(self) -> int:
         return int(round(self.duration / self.tick))
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, Rig):
+            return NotImplemented
+        return all(same_value(getattr(self, f.name), getattr(other, f.name))
+                   for f in fields(self) if f.name not in ("path", "text"))
+
+    __hash__ = None   # type: ignore[assignment]  # equal by value, and mutable inside
+
+
+def same_value(a: Any, b: Any) -> bool:
+    """Equality by value through dataclasses, containers, numpy arrays and functions (a
+    model function is the same when its name and code are)."""
+    if isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
+        return bool(np.shape(a) == np.shape(b) and np.array_equal(a, b))
+    if type(a) is not type(b):
+        return False
+    if is_dataclass(a) and not isinstance(a, type):
+        return all(same_value(getattr(a, f.name), getattr(b, f.name)) for f in fields(a))
+    if isinstance(a, dict):
+        return a.keys() == b.keys() and all(same_value(a[k], b[k]) for k in a)
+    if isinstance(a, list | tuple):
+        return len(a) == len(b) and all(same_value(x, y) for x, y in zip(a, b, strict=True))
+    if callable(a) and hasattr(a, "__code__"):
+        return bool(a.__qualname__ == b.__qualname__ and a.__code__.co_code == b.__code__.co_code)
+    if hasattr(a, "__dict__") and not callable(a):
+        return same_value(vars(a), vars(b))
+    return bool(a == b)
 
 
 def _number_or_numbers(value: Any) -> str | None:
