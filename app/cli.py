@@ -13,13 +13,11 @@ import math
 import os
 import signal
 import sys
-import tomllib
 from importlib import import_module
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from plantrig import CAUTION, __version__, show_caution
-from plantrig.sim._outcome import EXIT_CODE_HELP
 
 if TYPE_CHECKING:
     from plantrig.sim import Rig, RigFileError
@@ -58,6 +56,8 @@ def _print_issues(path: str, exc: RigFileError) -> None:
 
 def _scenario_not_rig(path: str) -> bool:
     """True (after saying so) when ``path`` is a scenario file given where a rig is due."""
+    import tomllib
+
     try:
         doc = tomllib.loads(Path(path).read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
@@ -284,6 +284,7 @@ def add_check(sub: Subcommands) -> None:
 def add_run(sub: Subcommands) -> None:
     from plantrig._model_trust import TRUST_HELP
     from plantrig._override_options import add_override_options
+    from plantrig.sim import EXIT_CODE_HELP
 
     p = sub.add_parser("run",
                        description="Run a rig closed-loop and write a run folder with the "
