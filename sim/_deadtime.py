@@ -28,6 +28,8 @@ from collections.abc import Sequence
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim._plant import DisturbanceInput, LinearForm, LtiModel, ParameterChange
+
 Vector = NDArray[np.float64]
 Matrix = NDArray[np.float64]
 
@@ -56,16 +58,20 @@ def _exp_and_integral(A: Matrix, B: Matrix, t: float) -> tuple[Matrix, Matrix]:
 class DelayedLinearStepper:
     """One tick of x' = A x + B u(t - tau_in), y_i = (C x + D u(. - tau_in))_i (t - tau_out_i).
 
-    Keeps the stepper contract of LinearStepper (x, u, y, x_next views; step is pure
-    until commit) and its history of past states and inputs privately.
+    A Stepper (sim/_plant.py) that keeps its history of past states and inputs privately.
+    Disturbance inputs add Ed d_k to x_{k+1} (they act on the plant, not delayed); a
+    parameter change builds the tick's matrices again from the changed A and B.
     """
 
     def __init__(self, A: Matrix, B: Matrix, C: Matrix, D: Matrix, dt: float,
                  input_delay: Sequence[float], output_delay: Sequence[float], x0: Vector,
-                 xu: Vector | None = None) -> None:
+                 xu: Vector | None = None, *,
+                 disturbances: Sequence[DisturbanceInput] = ()) -> None:
         n, m, p = A.shape[0], B.shape[1], C.shape[0]
         self.n_states, self.n_inputs, self.n_outputs = n, m, p
         self._A, self._B, self._C, self._D, self.dt = A, B, C, D, dt
+        self._delays = (list(input_delay), list(output_delay))   # as given, for the summary
+        self.model = LtiModel(A, B, dt, False, disturbances)
         ins = [split_delay(t, dt) for t in (input_delay or [0.0] * m)]
         outs = [split_delay(t, dt) for t in (output_delay or [0.0] * p)]
         # lags of the input history each output row needs, and of the state history
@@ -151,6 +157,8 @@ class DelayedLinearStepper:
         self._load()
         np.dot(self.My, self._v, out=self.y)
         np.dot(self.Mx, self._v, out=self.x_next)
+        if self.model.disturbed:
+            self.x_next += self.model.Ed_d
 
     def commit(self) -> None:
         """Push x_k and u_k into the history, then move x to x_{k+1}."""
@@ -167,3 +175,17 @@ class DelayedLinearStepper:
     def output_and_advance(self, t: float) -> None:
         self.step(t)
         self.commit()
+
+    def change_parameters(self, changes: Sequence[ParameterChange]) -> None:
+        """Entries of A or B changed: the tick's matrices are built again."""
+        self._A, self._B = self.model.changed(changes)
+        self._build()
+
+    def set_disturbance(self, j: int, value: float) -> None:
+        self.model.set_disturbance(j, value)
+
+    def linear_form(self) -> LinearForm:
+        ins, outs = self._delays
+        return LinearForm(f"continuous LTI with dead time (inputs {ins or 0} s, outputs "
+                          f"{outs or 0} s; exact under ZOH)", self.model.A, self.model.B,
+                          self._C)

@@ -202,7 +202,8 @@ class Engine:
         self.y_rec = self.row[cuts[3]:cuts[4]]
         # x_k and u_k live in the record itself: the stepper works on that view
         self.stepper: Stepper = make_stepper(rig.plant, rig.tick, rig.x0, rig.method,
-                                             rig.substeps, xu=self.row[cuts[4]:cuts[6]])
+                                             rig.substeps, xu=self.row[cuts[4]:cuts[6]],
+                                             disturbances=rig.disturbances)
         self.safe_u = np.array([i.safe for i in rig.inputs], dtype=np.float64)
         self.events: list[Event] = []
         self.stop_requested = False
@@ -420,8 +421,6 @@ class Engine:
                     if faults.plant_on:
                         faults.plant(k)
                     stepper.step(t)
-                    if faults.disturbing:
-                        faults.disturb()
                     y_rec[:] = stepper.y
                     if safety.checking:
                         if forced:
@@ -430,8 +429,6 @@ class Engine:
                             # tripped in this tick: the same step again, with the safe inputs
                             safety.force(u)
                             stepper.step(t)
-                            if faults.disturbing:
-                                faults.disturb()
                             y_rec[:] = stepper.y
                         elif forced:
                             safety.force(u)

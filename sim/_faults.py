@@ -41,19 +41,12 @@ from numpy.typing import NDArray
 
 from plantrig.sim._checker import did_you_mean
 from plantrig.sim._contracts import REHEARSED
-from plantrig.sim._plant import (
-    DiscretePlant,
-    LinearPlant,
-    LinearStepper,
-    OdePlant,
-    OdeStepper,
-    zoh,
-)
+from plantrig.sim._plant import OdePlant
 from plantrig.sim._watchdog import silent_ticks_allowed
 
 if TYPE_CHECKING:
     from plantrig.sim._checker import Checker
-    from plantrig.sim._plant import Stepper
+    from plantrig.sim._plant import ParameterChange, Stepper
     from plantrig.sim._rigfile import Rig, Signal
 
 Vector = NDArray[np.float64]
@@ -404,29 +397,9 @@ class Faults:
         self._last_fresh = self._silent_from = 0
         self.lost = False
         self.counts = {"frames_dropped": 0, "frames_corrupted": 0}
-        # plant: the model as given, so faults compose and clear back to it exactly
-        plant = rig.plant
-        self._linear = isinstance(plant, LinearPlant | DiscretePlant)  # with dead time too
-        n = plant.shape[0]
-        if isinstance(plant, LinearPlant):
-            self._a0, self._b0 = plant.A.copy(), plant.B.copy()
-        elif isinstance(plant, DiscretePlant):
-            self._a0, self._b0 = plant.Ad.copy(), plant.Bd.copy()
-        self._ode: OdeStepper | None = None     # the stepper whose parameters faults change
-        if isinstance(plant, OdePlant):
-            assert isinstance(stepper, OdeStepper)  # make_stepper steps an OdePlant so
-            stepper.params = dict(plant.params)   # a run changes its own copy, never the rig
-            self._p0 = dict(plant.params)
-            self._ode = stepper
-        # disturbances
+        # disturbances: the stepper adds them to the plant; the record shows their values
         self.dist = list(rig.disturbances)
-        self._d = np.zeros(len(self.dist))
         self._d_cols = [columns.index(f"d:{d.name}") for d in self.dist]
-        self._e = np.array([d.column for d in self.dist], dtype=np.float64).reshape(
-            len(self.dist), -1).T if self.dist and self._linear else np.zeros((n, 0))
-        self._ed = self._discrete_e(self._a0 if self._linear else None)
-        self._dx = np.zeros(n)
-        self.disturbing = False
 
     # -- injecting and clearing ------------------------------------------------------
     def inject(self, k: int, args: Mapping[str, Any]) -> None:
@@ -506,7 +479,6 @@ class Faults:
         if self.link_out_on and not out_before:
             self.delivered[:] = self.row[self._sent_col:self._sent_col + len(self.outputs)]
         self.plant_on = any(g == "plant" for g, _ in groups)
-        self.disturbing = bool(self._d.any()) and self._linear
         self.next_end = min((f.end for f in self.active if f.end is not None),
                             default=math.inf)
         self.on = bool(self.active) or self.lost
@@ -678,25 +650,9 @@ class Faults:
             self.delivered[:] = out
 
     # -- plant faults and disturbances -----------------------------------------------------
-    def _discrete_e(self, a: NDArray[np.float64] | None) -> NDArray[np.float64]:
-        if not self.dist or not self._linear or a is None:
-            return np.zeros((self.stepper.n_states, 0))
-        if isinstance(self.rig.plant, DiscretePlant):
-            return self._e.copy()
-        return zoh(a, self._e, self.tick)[1]
-
     def _set_disturbance(self, j: int, value: float) -> None:
-        self._d[j] = value
         self.row[self._d_cols[j]] = value
-        if not self._linear:
-            name = self.dist[j].param
-            assert self._ode is not None    # a disturbance on a parameter: an ODE plant
-            self._ode.params[name] = self._p0[name] + value
-
-    def disturb(self) -> None:
-        """x_{k+1} += Ed d_k (after the plant step; ZOH of the disturbance column)."""
-        np.dot(self._ed, self._d, out=self._dx)
-        self.stepper.x_next += self._dx
+        self.stepper.set_disturbance(j, value)
 
     def plant(self, k: int) -> None:
         """Before the plant step: apply drifting parameters when their update is due."""
@@ -704,6 +660,7 @@ class Faults:
             self._rebuild_plant(k)
 
     def _rebuild_plant(self, k: int) -> None:
+        """The model as given with every active plant fault applied, in injection order."""
         t = k * self.tick
         faults = [f for f in self.active if f.group == "plant"]
         drifts = [f for f in faults if f.spec.kind == "plant_drift"]
@@ -712,30 +669,15 @@ class Faults:
             self._next_drift = k + every
         else:
             self._next_drift = math.inf
-        if self._linear:
-            a, b = self._a0.copy(), self._b0.copy()
-            for f in faults:
-                where, _ = plant_target(self.rig, f.spec.target)
-                assert isinstance(where, tuple)
-                which, r, c = where
-                mat = a if which == "A" else b
-                mat[r, c] = self._changed(f, float(mat[r, c]), t)
-            stepper = self.stepper
-            assert isinstance(stepper, LinearStepper)
-            if isinstance(self.rig.plant, DiscretePlant):
-                stepper.set_dynamics(a, b)
-            else:
-                stepper.set_dynamics(*zoh(a, b, self.tick))
-            self._ed = self._discrete_e(a)
-        else:
-            assert self._ode is not None    # not linear: faults change an ODE plant's parameters
-            params = self._ode.params
-            for key, value in self._p0.items():
-                params[key] = value
-            for j, d in enumerate(self.dist):
-                params[d.param] = self._p0[d.param] + self._d[j]
-            for f in faults:
-                params[f.spec.target] = self._changed(f, float(params[f.spec.target]), t)
+        changes: list[ParameterChange] = []
+        for f in faults:
+            where, _ = plant_target(self.rig, f.spec.target)
+            assert where is not None        # checked when the fault was injected
+            changes.append((where, self._change(f, t)))
+        self.stepper.change_parameters(changes)
+
+    def _change(self, f: _Active, t: float) -> Callable[[float], float]:
+        return lambda base: self._changed(f, base, t)
 
     def _changed(self, f: _Active, base: float, t: float) -> float:
         p = f.spec.params

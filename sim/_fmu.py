@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import ctypes
 import zipfile
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,7 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim._checker import did_you_mean
-from plantrig.sim._plant import ModelError, OdePlant
+from plantrig.sim._plant import LinearForm, ModelError, OdePlant, ParameterChange
 
 Vector = NDArray[np.float64]
 INTERFACES = ("model_exchange", "co_simulation")
@@ -180,9 +181,11 @@ def _exchange_plant(fmu: Any, path: Path, n: int, in_refs: list[int], out_refs: 
 class FmuSlaveStepper:
     """One tick of a co-simulation FMU: u set, y read, doStep over the tick.
 
-    step() is pure until commit(): when the engine steps a tick again (a trip re-runs it
-    with the safe inputs) the FMU state saved before the first doStep is restored first;
-    an FMU that cannot save its state keeps the first step's state for that tick.
+    A Stepper (sim/_plant.py). step() is pure until commit(): when the engine steps a tick
+    again (a trip re-runs it with the safe inputs) the FMU state saved before the first
+    doStep is restored first; an FMU that cannot save its state keeps the first step's
+    state for that tick. Its parameters are fixed at start and it takes no disturbance
+    inputs (its own solver owns its equations).
     """
 
     def __init__(self, plant: FmuSlavePlant, dt: float, x0: Vector,
@@ -239,3 +242,14 @@ class FmuSlaveStepper:
     def output_and_advance(self, t: float) -> None:
         self.step(t)
         self.commit()
+
+    def change_parameters(self, changes: Sequence[ParameterChange]) -> None:
+        raise ModelError("plant", "a co-simulation FMU's parameters are fixed at start")
+
+    def set_disturbance(self, j: int, value: float) -> None:
+        raise ModelError("disturbances", "a co-simulation FMU takes no disturbance input")
+
+    def linear_form(self) -> LinearForm:
+        return LinearForm(f"co-simulation FMU {self.plant.fmu_file.name} (its own solver, "
+                          "one doStep per tick)",
+                          unjudged="a co-simulation FMU gives no derivatives")

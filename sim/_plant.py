@@ -7,25 +7,118 @@ Every plant meets the engine through one contract (after python-control's
     y_k     = h(t_k, x_k, u_k)        (D feed-through: u_k reaches y_k in the same tick)
     x_{k+1} = F(t_k, x_k, u_k)        (exact ZOH for LTI, RK4 or Euler substeps for ODEs)
 
-The engine knows nothing of the model's kind.
+The engine knows nothing of the model's kind, and neither do the faults or the model
+summary: every stepper meets the ``Stepper`` protocol below, which also covers what a
+run changes in a model (parameters, disturbance inputs) and the linear form the summary
+judges.
 """
 
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
-import scipy.linalg
 from numpy.typing import NDArray
-
-from plantrig.sim._deadtime import DelayedLinearStepper
 
 Vector = NDArray[np.float64]
 Matrix = NDArray[np.float64]
 OdeFunction = Callable[[float, Vector, Vector, Mapping[str, Any]], Any]
+
+# A model parameter a run may change: ("A" or "B", row, col) of an LTI model's matrices as
+# the model gives them (continuous for lti, discrete for discrete_lti), or the name of an
+# ODE parameter. sim/_faults.py's plant_target turns a rig file's target into one.
+ParameterKey = tuple[str, int, int] | str
+# One parameter change: the new value from the value before it (changes compose in order)
+ParameterChange = tuple[ParameterKey, Callable[[float], float]]
+
+
+class DisturbanceInput(Protocol):
+    """How one disturbance input d_j enters the model (a ``[[disturbances]]`` entry).
+
+    LTI models read ``column`` (how d enters dx/dt, beside B; used as given by a discrete
+    model); ODE models read ``param`` (the parameter of ``[plant.params]`` d is added to).
+    """
+
+    @property
+    def column(self) -> tuple[float, ...]: ...
+
+    @property
+    def param(self) -> str: ...
+
+
+@dataclass(frozen=True)
+class LinearForm:
+    """A model as the model summary judges it: its kind in words and, where it has one, a
+    linear form x' = A x + B u, y = C x (continuous), or x[k+1] = A x[k] + B u[k]
+    (discrete, ``sample_time`` set).
+
+    An LTI model gives its own matrices. A nonlinear model gives its Jacobian A at ``x0``
+    (u = 0), no B or C (no rank tests), ``drift`` = f(x0, 0) (zero at an equilibrium) and
+    the fixed-step ``method`` with its ``substep`` h, whose stability region the modes must
+    stay in. A model with no linear form (A None) says why in ``unjudged``.
+    """
+
+    kind: str
+    A: Matrix | None = None
+    B: Matrix | None = None
+    C: Matrix | None = None
+    sample_time: float | None = None
+    x0: Vector | None = None
+    drift: Vector | None = None
+    method: str = ""
+    substep: float = 0.0
+    substeps: int = 1
+    unjudged: str = ""
+    warnings: tuple[str, ...] = ()
+
+
+class Stepper(Protocol):
+    """One tick of a plant model, whatever its kind: all that the engine, the faults and
+    the model summary may ask of it.
+
+    ``x`` and ``u`` are views the caller may place (``xu`` of make_stepper): the engine
+    writes u_k into ``u``; ``step`` computes ``y`` = y_k and ``x_next`` = x_{k+1} and
+    changes nothing else, so a tick can be stepped again (a trip re-steps it with the
+    safe inputs); ``commit`` then moves x to x_{k+1}.
+    """
+
+    n_states: int
+    n_inputs: int
+    n_outputs: int
+    x: Vector
+    u: Vector
+    y: Vector
+    x_next: Vector
+
+    def reset(self) -> None:
+        """Back to x0 with u = 0."""
+
+    def output_only(self, t: float) -> None:
+        """y from the present (x, u), without advancing (the values before tick 0)."""
+
+    def step(self, t: float) -> None:
+        """y_k and x_{k+1} from (x_k, u_k), the disturbance inputs included; x keeps x_k."""
+
+    def commit(self) -> None:
+        """Move x to x_{k+1} (after the tick has been recorded)."""
+
+    def output_and_advance(self, t: float) -> None:
+        """step() then commit(), for loops that record nothing in between."""
+
+    def change_parameters(self, changes: Sequence[ParameterChange]) -> None:
+        """The model as given (with its present disturbance inputs), then each change
+        applied in order to the parameter it names; no changes: the model as given.
+        Raises ModelError for a parameter this model cannot change."""
+
+    def set_disturbance(self, j: int, value: float) -> None:
+        """Disturbance input j (in the order given to make_stepper) holds ``value`` from
+        the next step on. Raises ModelError when the model takes no disturbance input."""
+
+    def linear_form(self) -> LinearForm:
+        """The model as the summary judges it (sim/_summary.py)."""
 
 
 class ModelError(ValueError):
@@ -162,6 +255,13 @@ class DiscretePlant:
     def shape(self) -> tuple[int, int, int]:
         return self.Ad.shape[0], self.Bd.shape[1], self.C.shape[0]
 
+    def dynamics(self, t: float, x: Vector, u: Vector, params: Mapping[str, Any]) -> Vector:
+        """The next state x[k+1] (a discrete model's dynamics is its update)."""
+        return self.Ad @ x + self.Bd @ u
+
+    def output(self, t: float, x: Vector, u: Vector, params: Mapping[str, Any]) -> Vector:
+        return self.C @ x + self.D @ u
+
 
 @dataclass(frozen=True)
 class OdePlant:
@@ -203,6 +303,8 @@ def zoh(A: Matrix, B: Matrix, dt: float) -> tuple[Matrix, Matrix]:
     expm([[A, B], [0, 0]] * dt) = [[Ad, Bd], [0, I]]  (Van Loan's block form; the same
     construction scipy.signal.cont2discrete uses for method='zoh').
     """
+    import scipy.linalg  # here: loading or checking a rig needs no scipy
+
     n, m = B.shape
     block = np.zeros((n + m, n + m))
     block[:n, :n] = A
@@ -211,18 +313,78 @@ def zoh(A: Matrix, B: Matrix, dt: float) -> tuple[Matrix, Matrix]:
     return phi[:n, :n].copy(), phi[:n, n:].copy()
 
 
+class LtiModel:
+    """An LTI model as given and as a run changed it (what the LTI steppers share).
+
+    The model as given (``A``, ``B``: continuous, discretised by exact ZOH over ``dt``, or
+    already discrete at sample time ``dt``) stays untouched, so parameter changes compose
+    and clear back to it exactly: a change re-discretises once. Disturbance inputs d enter
+    as x_{k+1} += Ed d_k after every step, Ed the ZOH of their columns E (E itself for a
+    discrete model); Ed d is worked out when d or the model changes, not per tick.
+    """
+
+    def __init__(self, A: Matrix, B: Matrix, dt: float, discrete: bool,
+                 disturbances: Sequence[DisturbanceInput]) -> None:
+        n, q = A.shape[0], len(disturbances)
+        self.A, self.B, self.dt, self.discrete = A.copy(), B.copy(), dt, discrete
+        self.E = np.array([d.column for d in disturbances], dtype=np.float64).reshape(
+            q, -1).T if q else np.zeros((n, 0))
+        self.d = np.zeros(q)
+        self.Ed = self.disturbance_matrix(self.A)
+        self.Ed_d = np.zeros(n)          # Ed d, added to x_{k+1} while any d is nonzero
+        self.disturbed = False
+
+    def discretise(self, a: Matrix, b: Matrix) -> tuple[Matrix, Matrix]:
+        return (a, b) if self.discrete else zoh(a, b, self.dt)
+
+    def disturbance_matrix(self, a: Matrix) -> Matrix:
+        if not self.E.shape[1] or self.discrete:
+            return self.E.copy()
+        return zoh(a, self.E, self.dt)[1]
+
+    def changed(self, changes: Sequence[ParameterChange]) -> tuple[Matrix, Matrix]:
+        """(A, B) as given with ``changes`` applied in order; Ed follows the new A."""
+        a, b = self.A.copy(), self.B.copy()
+        for key, change in changes:
+            if not isinstance(key, tuple):
+                raise ModelError("parameter", f"expected A[row, col] or B[row, col] of a "
+                                              f"linear model, found {key!r}")
+            which, row, col = key
+            matrix = a if which == "A" else b
+            matrix[row, col] = change(float(matrix[row, col]))
+        self.Ed = self.disturbance_matrix(a)
+        self._update()
+        return a, b
+
+    def set_disturbance(self, j: int, value: float) -> None:
+        self.d[j] = value
+        self._update()
+
+    def _update(self) -> None:
+        np.dot(self.Ed, self.d, out=self.Ed_d)
+        self.disturbed = bool(self.d.any())
+
+
 class LinearStepper:
     """One tick of a discrete LTI model as a single matrix product.
 
-    [x_{k+1}; y_k] = [[Ad, Bd], [C, D]] @ [x_k; u_k]. The engine writes u into the
-    ``u`` view and reads ``x`` and ``y``; nothing is allocated per tick.
+    [x_{k+1}; y_k] = [[Ad, Bd], [C, D]] @ [x_k; u_k] (+ Ed d_k on x_{k+1} while a
+    disturbance input is nonzero). ``A`` and ``B`` are continuous and discretised by exact
+    ZOH over ``dt`` (the tick), or, with ``discrete``, already discrete at sample time
+    ``dt``. The engine writes u into the ``u`` view and reads ``x`` and ``y``; nothing is
+    allocated per tick.
     """
 
-    def __init__(self, Ad: Matrix, Bd: Matrix, C: Matrix, D: Matrix, x0: Vector,
-                 xu: Vector | None = None) -> None:
-        n, m, p = Ad.shape[0], Bd.shape[1], C.shape[0]
+    def __init__(self, A: Matrix, B: Matrix, C: Matrix, D: Matrix, x0: Vector,
+                 xu: Vector | None = None, *, dt: float, discrete: bool = False,
+                 disturbances: Sequence[DisturbanceInput] = ()) -> None:
+        n, m, p = A.shape[0], B.shape[1], C.shape[0]
         self.n_states, self.n_inputs, self.n_outputs = n, m, p
-        self._block = np.ascontiguousarray(np.block([[Ad, Bd], [C, D]]))
+        self.model = LtiModel(A, B, dt, discrete, disturbances)
+        self._C = C
+        self._block = np.ascontiguousarray(np.block([[*self.model.discretise(A, B)], [C, D]]))
+        self._disturbed = False                  # a copy of model.disturbed: read per tick
+        self._Ed_d = self.model.Ed_d
         # ``xu`` lets the engine keep [x; u] inside its tick record, saving two copies
         self._xu = np.zeros(n + m) if xu is None else xu
         self._next = np.zeros(n + p)
@@ -242,15 +404,11 @@ class LinearStepper:
         """Compute y from the present (x, u) without advancing."""
         np.dot(self._block[self.n_states:], self._xu, out=self.y)
 
-    def set_dynamics(self, Ad: Matrix, Bd: Matrix) -> None:
-        """Replace Ad and Bd in place (a parameter fault), keeping C, D and the state."""
-        n = self.n_states
-        self._block[:n, :n] = Ad
-        self._block[:n, n:] = Bd
-
     def step(self, t: float) -> None:
         """Compute y_k and x_{k+1} from (x_k, u_k); x keeps x_k until commit()."""
         np.dot(self._block, self._xu, out=self._next)
+        if self._disturbed:
+            self.x_next += self._Ed_d
 
     def commit(self) -> None:
         """Move x to x_{k+1} (after the tick has been recorded)."""
@@ -259,7 +417,27 @@ class LinearStepper:
     def output_and_advance(self, t: float) -> None:
         """step() then commit(), for loops that record nothing in between."""
         np.dot(self._block, self._xu, out=self._next)
+        if self._disturbed:
+            self.x_next += self._Ed_d
         self.x[:] = self.x_next
+
+    def change_parameters(self, changes: Sequence[ParameterChange]) -> None:
+        """Entries of A or B changed; the model is discretised again (exact ZOH)."""
+        ad, bd = self.model.discretise(*self.model.changed(changes))
+        n = self.n_states
+        self._block[:n, :n] = ad
+        self._block[:n, n:] = bd
+
+    def set_disturbance(self, j: int, value: float) -> None:
+        self.model.set_disturbance(j, value)
+        self._disturbed = self.model.disturbed
+
+    def linear_form(self) -> LinearForm:
+        model = self.model
+        if model.discrete:
+            return LinearForm(f"discrete LTI (dt {model.dt:g} s)", model.A, model.B, self._C,
+                              sample_time=model.dt)
+        return LinearForm("continuous LTI", model.A, model.B, self._C)
 
 
 ODE_METHODS = ("rk4", "euler", "ros2")
@@ -299,7 +477,9 @@ class OdeStepper:
     """
 
     def __init__(self, plant: OdePlant, dt: float, method: str, substeps: int,
-                 x0: Vector, xu: Vector | None = None) -> None:
+                 x0: Vector, xu: Vector | None = None, *,
+                 disturbances: Sequence[DisturbanceInput] = (),
+                 name: str = "nonlinear ODE") -> None:
         if method not in ODE_METHODS:
             raise ModelError("method", f"expected one of {', '.join(ODE_METHODS)}, "
                                        f"found {method!r}")
@@ -317,7 +497,11 @@ class OdeStepper:
         self.y = np.zeros(self.n_outputs)
         self.x_next = np.zeros(n)
         self.x0 = np.array(x0, dtype=np.float64)
-        self.params = dict(plant.params)   # a run's parameter faults change only this copy
+        self.params = dict(plant.params)   # a run's changes act on this copy, never the plant
+        self.name = name                   # how the model summary names the model
+        # disturbance input j adds to parameter _disturbed[j]: p = p0 + d_j
+        self._disturbed = [d.param for d in disturbances]
+        self._d = np.zeros(len(disturbances))
         self.reset()
 
     def reset(self) -> None:
@@ -358,6 +542,8 @@ class OdeStepper:
             jac = np.asarray(self.plant.jacobian(t, x, u, p), dtype=np.float64)
         else:
             jac = finite_difference_jacobian(lambda z: f(t, z, u, p), x, fx)
+        import scipy.linalg  # here: loading or checking a rig needs no scipy
+
         lu = scipy.linalg.lu_factor(np.eye(x.size) - ROS2_GAMMA * h * jac)
         k1 = scipy.linalg.lu_solve(lu, fx)
         k2 = scipy.linalg.lu_solve(lu, f(t + h, x + h * k1, u, p) - 2.0 * k1)
@@ -372,6 +558,94 @@ class OdeStepper:
         self.step(t)
         self.commit()
 
+    def change_parameters(self, changes: Sequence[ParameterChange]) -> None:
+        """The parameters as given, disturbance inputs added, then ``changes`` in order."""
+        given, params = self.plant.params, self.params
+        for name, value in given.items():
+            params[name] = value
+        for name, d in zip(self._disturbed, self._d, strict=True):
+            params[name] = given[name] + d
+        for key, change in changes:
+            if not isinstance(key, str):
+                raise ModelError("parameter", f"expected a parameter of [plant.params], "
+                                              f"found {key!r}")
+            params[key] = change(float(params[key]))
+
+    def set_disturbance(self, j: int, value: float) -> None:
+        """p = p0 + d_j on the parameter the disturbance input names."""
+        self._d[j] = value
+        name = self._disturbed[j]
+        self.params[name] = self.plant.params[name] + value
+
+    def linear_form(self) -> LinearForm:
+        """The Jacobian of f at (x0, u = 0) and f there; see linearize."""
+        kind = f"{self.name} ({self.method}, {self.substeps} substeps per tick), linearised at x0"
+        try:
+            A, _ = linearize(self.plant, self.x0)
+        except ValueError as exc:
+            if isinstance(exc, ModelError):
+                raise
+            why = f"no finite linearisation at x0: {exc}"
+            return LinearForm(kind, unjudged=why, warnings=(why,))
+        drift = _ode_at(self.plant, self.x0, np.zeros(self.n_inputs))
+        return LinearForm(kind, A, x0=self.x0, drift=drift, method=self.method,
+                          substep=self.h_step, substeps=self.substeps)
+
+
+def _ode_at(plant: OdePlant, x: Vector, u: Vector) -> Vector:
+    return plant.dynamics(0.0, x, u, plant.params)
+
+
+def linearize(plant: OdePlant, x0: Vector) -> tuple[Matrix, Matrix]:
+    """Finite-difference Jacobians (A, B) of f at (x0, u = 0), t = 0.
+
+    Central differences, or one-sided ones where f is not finite on one side (a square
+    root at an empty tank, say). Raises ModelError when f raises or is not finite at x0,
+    and ValueError when no difference is finite near it.
+    """
+    n, m, _ = plant.shape
+    u0 = np.zeros(m)
+    try:
+        f0 = _ode_at(plant, x0, u0)
+    except Exception as exc:  # the user's function is untrusted here
+        raise ModelError("dynamics", f"calling it at x0 raised {type(exc).__name__}: {exc}") \
+            from None
+    if not np.all(np.isfinite(f0)):
+        raise ModelError("dynamics", f"returned {f0.tolist()} at x0 = {x0.tolist()}, u = 0 "
+                                     "(NaN or infinite)")
+
+    def column(x_plus: Vector, x_minus: Vector, u_plus: Vector, u_minus: Vector,
+               step: float) -> Vector:
+        with np.errstate(all="ignore"):
+            sides = []
+            for x, u in ((x_plus, u_plus), (x_minus, u_minus)):
+                try:
+                    value = _ode_at(plant, x, u)
+                except Exception:  # noqa: BLE001 - one side may lie outside f's domain
+                    value = np.full(n, np.nan)
+                sides.append(value if np.all(np.isfinite(value)) else None)
+        plus, minus = sides
+        if plus is not None and minus is not None:
+            return (plus - minus) / (2 * step)
+        if plus is not None:
+            return (plus - f0) / step
+        if minus is not None:
+            return (f0 - minus) / step
+        raise ValueError("f is not finite on either side of x0")
+
+    A = np.zeros((n, n))
+    B = np.zeros((n, m))
+    for j in range(n):
+        step = 1e-6 * max(1.0, abs(x0[j]))
+        dx = np.zeros(n)
+        dx[j] = step
+        A[:, j] = column(x0 + dx, x0 - dx, u0, u0, step)
+    for j in range(m):
+        du = np.zeros(m)
+        du[j] = 1e-6
+        B[:, j] = column(x0, x0, du, -du, 1e-6)
+    return A, B
+
 
 def ticks_per_sample(sample_time: float, tick: float) -> int | None:
     """The whole number of ticks in a discrete model's sample time, or None."""
@@ -381,21 +655,22 @@ def ticks_per_sample(sample_time: float, tick: float) -> int | None:
 
 
 class HeldLinearStepper(LinearStepper):
-    """A discrete model whose sample time is ``every`` ticks (multi-rate).
+    """A discrete model whose sample time ``dt`` is ``every`` ticks (multi-rate).
 
     On the tick of each model sample it reads u, gives y = C x + D u and computes the
     next model state; on the ticks in between the input is not read and state and
     output are held (zero-order hold), and the next state shows on the tick of the next
-    sample.
+    sample. A disturbance input adds Ed d to x_{k+1} on every tick, held ones included.
     """
 
-    def __init__(self, Ad: Matrix, Bd: Matrix, C: Matrix, D: Matrix, x0: Vector, every: int,
-                 xu: Vector | None = None) -> None:
+    def __init__(self, A: Matrix, B: Matrix, C: Matrix, D: Matrix, x0: Vector, every: int,
+                 xu: Vector | None = None, *, dt: float,
+                 disturbances: Sequence[DisturbanceInput] = ()) -> None:
         self.every = every
         self._phase = 0
-        self._pending = np.zeros(Ad.shape[0])
+        self._pending = np.zeros(A.shape[0])
         self._y_held = np.zeros(C.shape[0])
-        super().__init__(Ad, Bd, C, D, x0, xu)
+        super().__init__(A, B, C, D, x0, xu, dt=dt, discrete=True, disturbances=disturbances)
 
     def reset(self) -> None:
         super().reset()
@@ -416,6 +691,8 @@ class HeldLinearStepper(LinearStepper):
         else:
             self.y[:] = self._y_held
         self.x_next[:] = self._pending if self._phase == self.every - 1 else self.x
+        if self._disturbed:
+            self.x_next += self._Ed_d
 
     def commit(self) -> None:
         if self._phase == 0:
@@ -427,38 +704,49 @@ class HeldLinearStepper(LinearStepper):
         self.step(t)
         self.commit()
 
-
-Stepper = Any   # LinearStepper | OdeStepper | DelayedLinearStepper | FmuSlaveStepper
+    def linear_form(self) -> LinearForm:
+        model = self.model
+        return LinearForm(f"discrete LTI (dt {model.dt:g} s = {self.every} ticks, held in "
+                          "between)", model.A, model.B, self._C, sample_time=model.dt)
 
 
 def make_stepper(plant: Plant, dt: float, x0: Any = None, method: str = "rk4",
-                 substeps: int = 1, xu: Vector | None = None) -> Stepper:
-    """Build the per-tick stepper for any plant kind at tick ``dt`` seconds.
+                 substeps: int = 1, xu: Vector | None = None, *,
+                 disturbances: Sequence[DisturbanceInput] = ()) -> Stepper:
+    """Build the per-tick stepper for any plant kind at tick ``dt`` seconds (the one place
+    that asks a plant's kind).
 
-    ``xu``, if given, is a float64 view of n + m elements the stepper keeps x and u in.
+    ``xu``, if given, is a float64 view of n + m elements the stepper keeps x and u in;
+    ``disturbances`` are the model's disturbance inputs, all zero until set.
     """
+    from plantrig.sim._deadtime import DelayedLinearStepper  # no cycles: imported late
+    from plantrig.sim._fmu import FmuOdePlant, FmuSlavePlant, FmuSlaveStepper
     n = plant.shape[0]
     x_init = np.zeros(n) if x0 is None else np.array(x0, dtype=np.float64).reshape(-1)
-    from plantrig.sim._fmu import FmuSlavePlant, FmuSlaveStepper  # no cycle: imported late
     if isinstance(plant, FmuSlavePlant):
         return FmuSlaveStepper(plant, dt, x_init, xu)
     if x_init.shape != (n,):
         raise ModelError("x0", f"has {x_init.size} entries, expected {n} (one per state)")
     if isinstance(plant, LinearPlant) and plant.has_dead_time:
         return DelayedLinearStepper(plant.A, plant.B, plant.C, plant.D, dt, plant.input_delay,
-                                    plant.output_delay, x_init, xu)
+                                    plant.output_delay, x_init, xu, disturbances=disturbances)
     if isinstance(plant, LinearPlant):
-        ad, bd = zoh(plant.A, plant.B, dt)
-        return LinearStepper(ad, bd, plant.C, plant.D, x_init, xu)
+        return LinearStepper(plant.A, plant.B, plant.C, plant.D, x_init, xu, dt=dt,
+                             disturbances=disturbances)
     if isinstance(plant, DiscretePlant):
         every = ticks_per_sample(plant.dt, dt)
         if every is None:
             raise ModelError("dt", f"sample time {plant.dt} s differs from the rig tick {dt} s;"
                              " a discrete model runs at the tick or a whole multiple of it")
         if every > 1:
-            return HeldLinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init, every, xu)
-        return LinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init, xu)
-    return OdeStepper(plant, dt, method, substeps, x_init, xu)
+            return HeldLinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init, every, xu,
+                                     dt=plant.dt, disturbances=disturbances)
+        return LinearStepper(plant.Ad, plant.Bd, plant.C, plant.D, x_init, xu, dt=plant.dt,
+                             discrete=True, disturbances=disturbances)
+    name = f"model exchange FMU {plant.fmu_file.name}," if isinstance(plant, FmuOdePlant) \
+        else "nonlinear ODE"
+    return OdeStepper(plant, dt, method, substeps, x_init, xu, disturbances=disturbances,
+                      name=name)
 
 
 def from_state_space_object(system: Any) -> LinearPlant | DiscretePlant:

@@ -40,15 +40,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim._plant import (
-    DiscretePlant,
-    LinearPlant,
-    ModelError,
-    OdePlant,
-    Plant,
-    ros2_stability,
-    ticks_per_sample,
-)
+from plantrig.sim._plant import Plant, make_stepper, ros2_stability
 
 TICK_FRACTION = 0.1
 BOUNDARY_TOL = 1e-9     # relative to max(1, ||A||): "on the imaginary axis / unit circle"
@@ -203,63 +195,6 @@ def _complex_text(value: complex) -> str:
     return f"{re:g}" if im == 0 else f"{re:g}{im:+g}j"
 
 
-def _ode_at(plant: OdePlant, x: NDArray[np.float64], u: NDArray[np.float64]) -> NDArray[np.float64]:
-    return plant.dynamics(0.0, x, u, plant.params)
-
-
-def linearize(plant: OdePlant, x0: NDArray[np.float64]) -> tuple[NDArray[np.float64],
-                                                                 NDArray[np.float64]]:
-    """Finite-difference Jacobians (A, B) of f at (x0, u = 0), t = 0.
-
-    Central differences, or one-sided ones where f is not finite on one side (a square
-    root at an empty tank, say). Raises ModelError when f raises or is not finite at x0,
-    and ValueError when no difference is finite near it.
-    """
-    n, m, _ = plant.shape
-    u0 = np.zeros(m)
-    try:
-        f0 = _ode_at(plant, x0, u0)
-    except Exception as exc:  # the user's function is untrusted here
-        raise ModelError("dynamics", f"calling it at x0 raised {type(exc).__name__}: {exc}") \
-            from None
-    if not np.all(np.isfinite(f0)):
-        raise ModelError("dynamics", f"returned {f0.tolist()} at x0 = {x0.tolist()}, u = 0 "
-                                     "(NaN or infinite)")
-
-    def column(x_plus: NDArray[np.float64], x_minus: NDArray[np.float64],
-               u_plus: NDArray[np.float64], u_minus: NDArray[np.float64],
-               step: float) -> NDArray[np.float64]:
-        with np.errstate(all="ignore"):
-            sides = []
-            for x, u in ((x_plus, u_plus), (x_minus, u_minus)):
-                try:
-                    value = _ode_at(plant, x, u)
-                except Exception:  # noqa: BLE001 - one side may lie outside f's domain
-                    value = np.full(n, np.nan)
-                sides.append(value if np.all(np.isfinite(value)) else None)
-        plus, minus = sides
-        if plus is not None and minus is not None:
-            return (plus - minus) / (2 * step)
-        if plus is not None:
-            return (plus - f0) / step
-        if minus is not None:
-            return (f0 - minus) / step
-        raise ValueError("f is not finite on either side of x0")
-
-    A = np.zeros((n, n))
-    B = np.zeros((n, m))
-    for j in range(n):
-        step = 1e-6 * max(1.0, abs(x0[j]))
-        dx = np.zeros(n)
-        dx[j] = step
-        A[:, j] = column(x0 + dx, x0 - dx, u0, u0, step)
-    for j in range(m):
-        du = np.zeros(m)
-        du[j] = 1e-6
-        B[:, j] = column(x0, x0, du, -du, 1e-6)
-    return A, B
-
-
 def substep_warnings(eig: NDArray[np.complex128], h: float, method: str,
                      substeps: int) -> list[str]:
     """Modes that do not grow in the model but would grow under ``method`` at step h."""
@@ -308,57 +243,31 @@ def _substeps_needed(calm: NDArray[np.complex128], tick: float,
 
 def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
               method: str = "rk4", substeps: int = 1) -> ModelSummary:
-    """Summarise ``plant`` as it will run at tick ``dt``.
+    """Summarise ``plant`` as it will run at tick ``dt``: the linear form of its stepper.
 
     Raises ModelError when an ODE's f raises or is not finite at x0 (a rig-file mistake).
     """
-    n, m, p = plant.shape
+    stepper = make_stepper(plant, dt, x0, method, substeps)
+    n, m, p = stepper.n_states, stepper.n_inputs, stepper.n_outputs
+    form = stepper.linear_form()
+    A = form.A
+    if A is None:
+        return ModelSummary(form.kind, n, m, p, np.zeros(0, complex), (),
+                            f"not judged ({form.unjudged})", None, None, form.warnings, None)
     warnings: list[str] = []
-    ctrb = obsv = None
-    equilibrium: bool | None = None
-    if isinstance(plant, LinearPlant):
-        kind, A, B, C = "continuous LTI", plant.A, plant.B, plant.C
-        if plant.has_dead_time:
-            kind += (f" with dead time (inputs {list(plant.input_delay) or 0} s, "
-                     f"outputs {list(plant.output_delay) or 0} s; exact under ZOH)")
-        eig = np.linalg.eigvals(A).astype(np.complex128) if n else np.zeros(0, np.complex128)
-        cont_eig = eig
-        ctrb = _rank(controllability_matrix(A, B))
-        obsv = _rank(controllability_matrix(A.T, C.T))
-        stability = classify_stability(A, discrete=False)
-    elif isinstance(plant, DiscretePlant):
-        every = ticks_per_sample(plant.dt, dt)
-        held = f" = {every} ticks, held in between" if every and every > 1 else ""
-        kind, A, B, C = f"discrete LTI (dt {plant.dt:g} s{held})", plant.Ad, plant.Bd, plant.C
-        eig = np.linalg.eigvals(A).astype(np.complex128) if n else np.zeros(0, np.complex128)
+    eig = np.linalg.eigvals(A).astype(np.complex128) if n else np.zeros(0, np.complex128)
+    cont_eig = eig
+    if form.sample_time is not None:
         with np.errstate(divide="ignore"):
-            cont_eig = np.log(eig.astype(complex)) / plant.dt
-        ctrb = _rank(controllability_matrix(A, B))
-        obsv = _rank(controllability_matrix(A.T, C.T))
-        stability = classify_stability(A, discrete=True)
-    elif not isinstance(plant, OdePlant):   # a co-simulation FMU: its own solver, opaque
-        name = getattr(plant, "fmu_file", None)
-        return ModelSummary(f"co-simulation FMU {name.name if name else ''} (its own solver, "
-                            "one doStep per tick)", n, m, p, np.zeros(0, complex), (),
-                            "not judged (a co-simulation FMU gives no derivatives)", None,
-                            None, (), None)
+            cont_eig = np.log(eig.astype(complex)) / form.sample_time
+    ctrb = _rank(controllability_matrix(A, form.B)) if form.B is not None else None
+    obsv = _rank(controllability_matrix(A.T, form.C.T)) if form.C is not None else None
+    equilibrium: bool | None = None
+    if form.drift is None:
+        stability = classify_stability(A, discrete=form.sample_time is not None)
     else:
-        fmu = getattr(plant, "fmu_file", None)
-        kind = (f"model exchange FMU {fmu.name}, " if fmu else "nonlinear ODE ") + \
-            f"({method}, {substeps} substeps per tick), linearised at x0"
-        x_lin = np.zeros(n) if x0 is None else np.asarray(x0, dtype=np.float64)
-        try:
-            A, _ = linearize(plant, x_lin)
-        except ValueError as exc:
-            if isinstance(exc, ModelError):
-                raise
-            return ModelSummary(kind, n, m, p, np.zeros(0, complex), (),
-                                f"not judged (no finite linearisation at x0: {exc})", None,
-                                None, (f"no finite linearisation at x0: {exc}",), None)
-        eig = np.linalg.eigvals(A).astype(np.complex128) if n else np.zeros(0, np.complex128)
-        cont_eig = eig
-        f0 = _ode_at(plant, x_lin, np.zeros(m))
-        residual = float(np.max(np.abs(f0))) if n else 0.0
+        x_lin = form.x0 if form.x0 is not None else np.zeros(n)
+        residual = float(np.max(np.abs(form.drift))) if n else 0.0
         scale = max(1.0, float(np.linalg.norm(A, 1)) * float(np.max(np.abs(x_lin), initial=0)))
         equilibrium = residual <= EQUILIBRIUM_TOL * scale
         if equilibrium:
@@ -370,19 +279,19 @@ def summarize(plant: Plant, dt: float, x0: NDArray[np.float64] | None = None,
     magnitudes = np.abs(cont_eig[np.isfinite(cont_eig)])
     nonzero = magnitudes[magnitudes > 1e-12]
     time_constants = tuple(sorted(float(1 / v) for v in nonzero))
-    if nonzero.size and not isinstance(plant, DiscretePlant):
+    if nonzero.size and form.sample_time is None:  # a discrete model is defined at its own
         fastest = float(nonzero.max())
         if dt > TICK_FRACTION / fastest:
             warnings.append(
                 f"tick {dt:g} s is coarser than 1/10 of the fastest time constant "
                 f"{1 / fastest:.4g} s; the controller and the record will not resolve that mode")
-    if isinstance(plant, OdePlant):
-        warnings.extend(substep_warnings(eig, dt / substeps, method, substeps))
+    if form.method:
+        warnings.extend(substep_warnings(eig, form.substep, form.method, form.substeps))
     if ctrb is not None and ctrb < n:
         warnings.append(f"not controllable: rank {ctrb} of {n}")
     if obsv is not None and obsv < n:
         warnings.append(f"not observable: rank {obsv} of {n}")
-    return ModelSummary(kind, n, m, p, eig, time_constants, stability, ctrb, obsv,
+    return ModelSummary(form.kind, n, m, p, eig, time_constants, stability, ctrb, obsv,
                         tuple(warnings), equilibrium)
 
 
