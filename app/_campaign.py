@@ -27,7 +27,7 @@ from typing import Any
 
 from plantrig._campaign_case import ERROR, FAILED, run_case
 from plantrig._campaign_out import read_journal
-from plantrig.sim._campaign_file import Case
+from plantrig.sim import Case
 
 SHOWN_FAILURES = 20
 CLOSE_TIMEOUT_S = 20

@@ -21,19 +21,21 @@ from typing import Any
 import tomli_w
 
 from plantrig.sim import (
+    COMPLETED,
+    EXIT_VERDICT,
+    Case,
     Rig,
     RigFileError,
     RigIssue,
     Scenario,
+    apply_overrides,
     build_chains,
+    build_scenario,
     evaluate,
     load_rig_with_overrides,
     simulate,
+    with_verdicts,
 )
-from plantrig.sim._campaign_file import Case, _with_verdicts
-from plantrig.sim._outcome import COMPLETED, EXIT_VERDICT
-from plantrig.sim._overrides import apply_overrides
-from plantrig.sim._scenario import build_scenario
 
 PASSED, FAILED, ERROR = "passed", "failed", "error"
 
@@ -66,9 +68,9 @@ def build_case(case: Case, scenario_copy: Path | None = None
             text = tomli_w.dumps(doc)
             scenario_copy.write_text(text, encoding="utf-8")
             path = scenario_copy
-        scenario = build_scenario(_with_verdicts(doc, case.verdicts), path, rig, text)
+        scenario = build_scenario(with_verdicts(doc, case.verdicts), path, rig, text)
     elif case.verdicts:
-        scenario = build_scenario(_with_verdicts({"scenario": {"name": "campaign"}},
+        scenario = build_scenario(with_verdicts({"scenario": {"name": "campaign"}},
                                                  case.verdicts), Path(case.rig_file), rig)
     actuator_chain, sensor_chain = build_chains(rig)
     return rig, scenario, actuator_chain, sensor_chain

@@ -34,8 +34,7 @@ from plantrig._campaign_out import (
     write_manifest,
     write_tables,
 )
-from plantrig.sim._campaign_file import Campaign, CampaignFileError, Case, expand, load_campaign
-from plantrig.sim._manifest import write_atomic
+from plantrig.sim import Campaign, CampaignFileError, Case, expand, load_campaign, write_atomic
 
 EXIT_MEANINGS = {0: "every case passed", 1: "a case could not be judged",
                  3: "a case failed", 5: "stopped; finish with --resume"}

@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from plantrig._junit import judged_case, write_junit
-from plantrig.sim._manifest import sha256_file, write_atomic
+from plantrig.sim import sha256_file, write_atomic
 
 CASES_PARQUET, CASES_CSV, SUMMARY, JUNIT = "cases.parquet", "cases.csv", "summary.json", "junit.xml"
 CAMPAIGN_MANIFEST, PLAN, JOURNAL = "campaign_manifest.json", "plan.json", "cases.jsonl"

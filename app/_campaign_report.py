@@ -18,7 +18,7 @@ import statistics
 from pathlib import Path
 from typing import Any
 
-from plantrig.sim._manifest import write_atomic
+from plantrig.sim import write_atomic
 
 PASS_INK, FAIL_INK, ERROR_INK, RULE_INK = "#33557a", "#b8332b", "#8a6d00", "#222222"
 STYLE = """

@@ -62,7 +62,7 @@ def add_parser(sub: Any) -> None:
 
 
 def _tolerances(args: argparse.Namespace) -> Any:
-    from plantrig.sim._compare import Tolerance, Tolerances, load_tolerances, parse_tolerance_option
+    from plantrig.sim import Tolerance, Tolerances, load_tolerances, parse_tolerance_option
     tol = load_tolerances(args.tolerances) if args.tolerances else Tolerances()
     for name in ("abs", "rel", "event_time"):
         value = getattr(args, name)
@@ -79,7 +79,7 @@ def _tolerances(args: argparse.Namespace) -> Any:
 
 
 def cmd_compare(args: argparse.Namespace) -> int:
-    from plantrig.sim._compare import NotComparable, compare_runs, iter_lines
+    from plantrig.sim import NotComparable, compare_runs, iter_lines
     try:
         tol = _tolerances(args)
     except RigFileError as exc:

@@ -13,8 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from plantrig.sim import verdict_lines
-from plantrig.sim._manifest import write_atomic
+from plantrig.sim import verdict_lines, write_atomic
 
 
 @dataclass(frozen=True)

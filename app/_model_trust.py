@@ -21,12 +21,14 @@ import tomllib
 from collections.abc import Sequence
 from pathlib import Path
 
-from plantrig.sim import RigFileError, apply_overrides, run_folder_of
-from plantrig.sim._manifest import (
+from plantrig.sim import (
     ManifestError,
+    RigFileError,
+    apply_overrides,
     check_signature,
     read_manifest,
     read_signature,
+    run_folder_of,
     sha256_file,
 )
 

@@ -12,8 +12,7 @@ import sys
 from pathlib import Path
 
 from plantrig._plots import context, known_signals, panels_for, plot_signals
-from plantrig.sim import read_run
-from plantrig.sim._manifest import DERIVED
+from plantrig.sim import DERIVED, read_run
 
 EXIT_OK, EXIT_USAGE = 0, 2
 EXIT_CODES = """exit codes:

@@ -14,8 +14,7 @@ import time
 from typing import Any
 
 from plantrig._console import human_duration
-from plantrig.sim import simulate
-from plantrig.sim._readiness import machine_facts, pacing_test
+from plantrig.sim import machine_facts, pacing_test, simulate
 
 COST_TICKS = 2000
 SITE_NOTE = ("advice only: change a bench machine's settings with your site's IT and "

@@ -21,16 +21,21 @@ from pathlib import Path
 from typing import Any
 
 from plantrig.sim import (
+    DERIVED,
+    DRAFT_MARK,
+    MANIFEST,
+    RUN_START,
+    ManifestError,
+    Readiness,
     RecordError,
+    WrongPassphrase,
+    check_folder,
     generate_keypair,
     read_run,
     recover_run,
     sign_folder,
     verify_folder,
 )
-from plantrig.sim._manifest import DERIVED, MANIFEST, ManifestError, WrongPassphrase
-from plantrig.sim._records import RUN_START
-from plantrig.sim._signoff import DRAFT_MARK, Readiness, check_folder
 
 EXIT_OK, EXIT_NOT_INTACT, EXIT_USAGE, EXIT_NOT_FINISHED = 0, 1, 2, 4
 EXIT_PASSPHRASE = 3     # sign: the key is encrypted and the passphrase does not open it

@@ -52,8 +52,7 @@ from plantrig._report_text import (
     run_facts,
     sections,
 )
-from plantrig.sim._reader import RunRecord
-from plantrig.sim._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
+from plantrig.sim import DRAFT_MARK, DRAFT_PREFIX, Readiness, RunRecord, check_folder
 
 PAGE = (8.27, 11.69)         # A4 portrait, inches
 PANELS_PER_PAGE = 4

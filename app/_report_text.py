@@ -21,8 +21,7 @@ import numpy as np
 
 from plantrig import __version__
 from plantrig._plots import PlotContext, label
-from plantrig.sim._reader import RunRecord
-from plantrig.sim._signoff import DRAFT_MARK, Readiness
+from plantrig.sim import DRAFT_MARK, Readiness, RunRecord
 
 Rows = list[tuple[str, str]]
 Section = tuple[str, Rows]

@@ -59,8 +59,7 @@ def _untrusted_module(args: argparse.Namespace) -> str | None:
 
 
 def cmd_rerun(args: argparse.Namespace) -> int:
-    from plantrig.sim import build_chains, load_scenario, run_to_folder
-    from plantrig.sim._rerun import RerunError, plan_rerun
+    from plantrig.sim import RerunError, build_chains, load_scenario, plan_rerun, run_to_folder
 
     if not Path(args.folder).is_dir():
         print(f"error: {args.folder}: not a folder", file=sys.stderr)

@@ -101,129 +101,52 @@ _HOME: dict[str, str] = {
     **dict.fromkeys(["EventTape", "MemoryTape", "Tape", "TapeOverflow", "TapeReader"], "_tape"),
     **dict.fromkeys(["Verdict", "evaluate", "verdict_lines", "write_verdicts"], "_verdicts"),
     **dict.fromkeys(["silent_ticks_allowed"], "_watchdog"),
+    **dict.fromkeys(["RerunError", "plan_rerun"], "_rerun"),
+    **dict.fromkeys(
+        [
+            "Campaign",
+            "CampaignFileError",
+            "Case",
+            "expand",
+            "load_campaign",
+            "with_verdicts",
+        ],
+        "_campaign_file",
+    ),
+    **dict.fromkeys(
+        [
+            "DERIVED",
+            "MANIFEST",
+            "ManifestError",
+            "WrongPassphrase",
+            "check_signature",
+            "read_manifest",
+            "read_signature",
+            "sha256_file",
+            "write_atomic",
+        ],
+        "_manifest",
+    ),
+    **dict.fromkeys(["DRAFT_MARK", "DRAFT_PREFIX", "Readiness", "check_folder"], "_signoff"),
+    **dict.fromkeys(["RUN_START"], "_records"),
+    **dict.fromkeys(
+        [
+            "NotComparable",
+            "Tolerance",
+            "Tolerances",
+            "compare_runs",
+            "iter_lines",
+            "load_tolerances",
+            "parse_tolerance_option",
+        ],
+        "_compare",
+    ),
+    **dict.fromkeys(["machine_facts", "pacing_test"], "_readiness"),
+    **dict.fromkeys(["COMPLETED", "EXIT_VERDICT"], "_outcome"),
+    **dict.fromkeys(["Vector"], "_contracts"),
 }
 
-__all__ = [
-    "Clock",
-    "Command",
-    "CommandInbox",
-    "ControllerLink",
-    "ControllerSpec",
-    "DiscretePlant",
-    "Engine",
-    "Event",
-    "EventTape",
-    "LinearPlant",
-    "LinearStepper",
-    "MemoryTape",
-    "ModelError",
-    "ModelSummary",
-    "NamedReference",
-    "OdePlant",
-    "OdeStepper",
-    "OpenLoop",
-    "Pid",
-    "PidLoops",
-    "Plant",
-    "Ramp",
-    "Rig",
-    "RigFileError",
-    "RigIssue",
-    "RunData",
-    "RunOutcome",
-    "Signal",
-    "SignalChain",
-    "Sine",
-    "StateFeedback",
-    "Step",
-    "Table",
-    "Tape",
-    "TapeOverflow",
-    "TapeReader",
-    "VirtualClock",
-    "WallClock",
-    "build_controller",
-    "build_rig",
-    "rig_from_python",
-    "write_rig",
-    "from_state_space_object",
-    "load_rig",
-    "make_stepper",
-    "read_journal",
-    "run_to_folder",
-    "simulate",
-    "simulate_inputs",
-    "summarize",
-    "tick_columns",
-    "zoh",
-    # safety, faults, scenarios and verdicts
-    "FAULT_KINDS",
-    "DisturbanceSpec",
-    "FaultKind",
-    "FaultSpec",
-    "InterlockSpec",
-    "LimitSpec",
-    "SafetySettings",
-    "Scenario",
-    "ScenarioFileError",
-    "Verdict",
-    "build_scenario",
-    "evaluate",
-    "load_scenario",
-    "parse_fault",
-    "verdict_lines",
-    "write_verdicts",
-    # checking TOML files, and the typed settings of a rig's link
-    "Checker",
-    "describe_value",
-    "did_you_mean",
-    "one_of",
-    "LinkSettings",
-    "TlsSettings",
-    "DEFAULT_QOS",
-    "REGISTER_TYPES",
-    # what people read for each kind of signal
-    "SIGNAL_LABELS",
-    "SIGNAL_MEANINGS",
-    # signal conditioning
-    "ActuatorChain",
-    "ActuatorChannel",
-    "ChainSpecError",
-    "SensorChain",
-    "SensorChannel",
-    "build_actuator_chain",
-    "build_chains",
-    "build_sensor_chain",
-    "counts_to_eng",
-    "eng_to_counts",
-    "silent_ticks_allowed",
-    # outcomes
-    "EXIT_CODES",
-    "EXIT_CODE_HELP",
-    "OUTCOMES",
-    "AcceptanceRules",
-    "RuleResult",
-    # run records
-    "RecordError",
-    "RunRecord",
-    "export_csv",
-    "export_mat",
-    "generate_keypair",
-    "read_run",
-    "recover_run",
-    "sign_folder",
-    "verify_folder",
-    "ModelNotLoaded",
-    "load_rig_as_data",
-    "model_module",
-    "rig_from_record",
-    "run_folder_of",
-    "SECRET_MARK",
-    # overrides
-    "apply_overrides",
-    "load_rig_with_overrides",
-    "shortcut_assignments",
-]
+__all__ = sorted(_HOME)
 
 
 def __getattr__(name: str) -> Any:
@@ -239,6 +162,14 @@ def __dir__() -> list[str]:
 
 
 if TYPE_CHECKING:  # type checkers and editors see every name where it lives
+    from plantrig.sim._campaign_file import (
+        Campaign,
+        CampaignFileError,
+        Case,
+        expand,
+        load_campaign,
+        with_verdicts,
+    )
     from plantrig.sim._chains import build_chains
     from plantrig.sim._checker import (
         Checker,
@@ -250,6 +181,15 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     )
     from plantrig.sim._clock import Clock, VirtualClock, WallClock
     from plantrig.sim._commands import Command, CommandInbox
+    from plantrig.sim._compare import (
+        NotComparable,
+        Tolerance,
+        Tolerances,
+        compare_runs,
+        iter_lines,
+        load_tolerances,
+        parse_tolerance_option,
+    )
     from plantrig.sim._conditioning import (
         ActuatorChain,
         ActuatorChannel,
@@ -261,7 +201,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         counts_to_eng,
         eng_to_counts,
     )
-    from plantrig.sim._contracts import ControllerLink, Event, SignalChain
+    from plantrig.sim._contracts import ControllerLink, Event, SignalChain, Vector
     from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
     from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
     from plantrig.sim._export import export_csv, export_mat
@@ -269,12 +209,27 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim._interlocks import InterlockSpec, SafetySettings
     from plantrig.sim._limits import LimitSpec
     from plantrig.sim._link_settings import LinkSettings
-    from plantrig.sim._manifest import generate_keypair, sign_folder, verify_folder
+    from plantrig.sim._manifest import (
+        DERIVED,
+        MANIFEST,
+        ManifestError,
+        WrongPassphrase,
+        check_signature,
+        generate_keypair,
+        read_manifest,
+        read_signature,
+        sha256_file,
+        sign_folder,
+        verify_folder,
+        write_atomic,
+    )
     from plantrig.sim._modbus_settings import REGISTER_TYPES
     from plantrig.sim._mqtt_settings import DEFAULT_QOS, TlsSettings
     from plantrig.sim._outcome import (
+        COMPLETED,
         EXIT_CODE_HELP,
         EXIT_CODES,
+        EXIT_VERDICT,
         OUTCOMES,
         AcceptanceRules,
         RuleResult,
@@ -298,9 +253,11 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     )
     from plantrig.sim._preflight import RecordError
     from plantrig.sim._reader import RunRecord, read_run
+    from plantrig.sim._readiness import machine_facts, pacing_test
     from plantrig.sim._recorder import read_journal
-    from plantrig.sim._records import recover_run
+    from plantrig.sim._records import RUN_START, recover_run
     from plantrig.sim._references import Ramp, Sine, Step, Table
+    from plantrig.sim._rerun import RerunError, plan_rerun
     from plantrig.sim._rig_builder import rig_from_python, write_rig
     from plantrig.sim._rigdata import (
         ModelNotLoaded,
@@ -321,6 +278,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim._scenario import Scenario, ScenarioFileError, build_scenario, load_scenario
     from plantrig.sim._secrets import SECRET_MARK
     from plantrig.sim._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
+    from plantrig.sim._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
     from plantrig.sim._summary import ModelSummary, summarize
     from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
     from plantrig.sim._verdicts import Verdict, evaluate, verdict_lines, write_verdicts

@@ -253,14 +253,14 @@ def _entry(c: Checker, t: dict[str, Any], where: str, campaign: Path,
                                              f"{getattr(exc, 'strerror', None) or exc}")
             continue
         try:
-            build_scenario(_with_verdicts(s_doc, verdicts), s_path, rig, s_text)
+            build_scenario(with_verdicts(s_doc, verdicts), s_path, rig, s_text)
         except RigFileError as exc:
             c.issues.extend(exc.issues)
             continue
         scenarios.append((s_path, item, s_doc))
     if verdicts and not scenario_files:
         try:
-            build_scenario(_with_verdicts({"scenario": {"name": "campaign"}}, verdicts),
+            build_scenario(with_verdicts({"scenario": {"name": "campaign"}}, verdicts),
                            campaign, rig)
         except RigFileError as exc:
             c.issues.extend(exc.issues)
@@ -288,7 +288,7 @@ def _entry(c: Checker, t: dict[str, Any], where: str, campaign: Path,
                     tuple(draws), int(n_draws or 1))
 
 
-def _with_verdicts(doc: dict[str, Any], verdicts: tuple[dict[str, Any], ...]) -> dict[str, Any]:
+def with_verdicts(doc: dict[str, Any], verdicts: tuple[dict[str, Any], ...]) -> dict[str, Any]:
     """The scenario document with the campaign's own verdicts after its own."""
     if not verdicts:
         return doc
