@@ -1,6 +1,6 @@
 """Controller links and frame codecs (signal conditioning is numeric: plantrig.sim).
 
-Names load on first use (PEP 562), as in plantrig.sim: `import plantrig.io` costs
+Names load on first use (PEP 562, plantrig._lazy): `import plantrig.io` costs
 almost nothing, so `plantrig check` needs neither pyserial nor aiomqtt nor pymodbus,
 and a link's worker process (`python -m plantrig.io._mqtt_worker`) imports only what it
 uses.
@@ -8,8 +8,9 @@ uses.
 
 from __future__ import annotations
 
-from importlib import import_module
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
+
+from plantrig._lazy import lazy_names
 
 # the module (under plantrig.io) each public name lives in
 _HOME: dict[str, str] = {
@@ -107,18 +108,7 @@ __all__ = [
     "MqttSettings",
 ]
 
-
-def __getattr__(name: str) -> Any:
-    if name not in _HOME:
-        raise AttributeError(f"module 'plantrig.io' has no attribute {name!r}")
-    value = getattr(import_module(f"plantrig.io.{_HOME[name]}"), name)
-    globals()[name] = value  # the next lookup is a plain attribute
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(__all__)
-
+__getattr__, __dir__ = lazy_names(__name__, _HOME, __all__)
 
 if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.io._broker import BrokerError, LocalBroker
