@@ -362,6 +362,25 @@ def _draw(c: Checker, here: str, key: str, spec: Any, nominal: Any) -> Draw | No
             c.add(f"{here}.values", "expected a non-empty list of values, found an empty list")
             return None
         return None if values is None else Draw(key, dist, values=tuple(values))
+    bounds = _bounds(c, here, dist, nums, nominal)
+    spread = _spread(c, here, key, dist, nums, nominal) if bounds is not None else None
+    if bounds is None or spread is None:
+        return None
+    (low, high), (mean, sd) = bounds, spread
+    if dist == "uniform":
+        return Draw(key, dist, low=low, high=high)
+    if dist == "normal":
+        return Draw(key, dist, mean=mean, sd=sd)
+    if sd == 0 and not low <= mean <= high:
+        c.add(f"{here}.mean", f"expected a mean inside [{low}, {high}] when sd is 0")
+        return None
+    return Draw(key, dist, low=low, high=high, mean=mean, sd=sd)
+
+
+def _bounds(c: Checker, here: str, dist: str, nums: dict[str, Any],
+            nominal: Any) -> tuple[float, float] | None:
+    """(low, high) of a uniform or truncated draw, from low/high or spread_pct around
+    ``nominal``; (0, 0) for a normal draw; None after recording a mistake."""
     low, high = nums.get("low"), nums.get("high")
     if nums.get("spread_pct") is not None:
         if low is not None or high is not None:
@@ -369,42 +388,40 @@ def _draw(c: Checker, here: str, key: str, spec: Any, nominal: Any) -> Draw | No
             return None
         a, b = nominal * (1 - nums["spread_pct"] / 100), nominal * (1 + nums["spread_pct"] / 100)
         low, high = min(a, b), max(a, b)
-    mean = nums.get("mean")
-    if dist in ("normal", "truncnormal"):
-        mean = nominal if mean is None else mean
-        if not isinstance(mean, int | float) or isinstance(mean, bool):
-            c.add(f"{here}.mean", f"missing, and {key} holds {describe_value(mean)} "
-                                  "to take it from (expected a number)")
-            return None
-        sd = nums.get("sd")
-        if nums.get("sd_pct") is not None:
-            if sd is not None:
-                c.add(f"{here}.sd_pct", "give sd or sd_pct, not both")
-                return None
-            sd = abs(nominal) * nums["sd_pct"] / 100
-        if sd is None or sd < 0:
-            c.add(f"{here}.sd", "missing (expected a number >= 0, or sd_pct)" if sd is None
-                  else f"expected a number >= 0, found {sd}")
-            return None
-    if dist in ("uniform", "truncnormal"):
-        if low is None or high is None:
-            c.add(f"{here}.{'low' if low is None else 'high'}",
-                  "missing (expected a number, or spread_pct around the rig's value)")
-            return None
-        if low > high:
-            c.add(f"{here}.high", f"expected high >= low ({low}), found {high}")
-            return None
-    if dist == "uniform":
-        assert low is not None and high is not None     # a missing one returned above
-        return Draw(key, dist, low=float(low), high=float(high))
     if dist == "normal":
-        assert mean is not None and sd is not None      # a missing one returned above
-        return Draw(key, dist, mean=float(mean), sd=float(sd))
-    assert low is not None and high is not None and mean is not None and sd is not None
-    if sd == 0 and not low <= mean <= high:
-        c.add(f"{here}.mean", f"expected a mean inside [{low}, {high}] when sd is 0")
+        return 0.0, 0.0
+    if low is None or high is None:
+        c.add(f"{here}.{'low' if low is None else 'high'}",
+              "missing (expected a number, or spread_pct around the rig's value)")
         return None
-    return Draw(key, dist, low=float(low), high=float(high), mean=float(mean), sd=float(sd))
+    if low > high:
+        c.add(f"{here}.high", f"expected high >= low ({low}), found {high}")
+        return None
+    return float(low), float(high)
+
+
+def _spread(c: Checker, here: str, key: str, dist: str, nums: dict[str, Any],
+            nominal: Any) -> tuple[float, float] | None:
+    """(mean, sd) of a normal or truncated draw (the mean defaults to ``nominal``, sd
+    may be sd_pct of it); (0, 0) for a uniform draw; None after recording a mistake."""
+    if dist == "uniform":
+        return 0.0, 0.0
+    mean = nominal if nums.get("mean") is None else nums["mean"]
+    if not isinstance(mean, int | float) or isinstance(mean, bool):
+        c.add(f"{here}.mean", f"missing, and {key} holds {describe_value(mean)} "
+                              "to take it from (expected a number)")
+        return None
+    sd = nums.get("sd")
+    if nums.get("sd_pct") is not None:
+        if sd is not None:
+            c.add(f"{here}.sd_pct", "give sd or sd_pct, not both")
+            return None
+        sd = abs(nominal) * nums["sd_pct"] / 100
+    if sd is None or sd < 0:
+        c.add(f"{here}.sd", "missing (expected a number >= 0, or sd_pct)" if sd is None
+              else f"expected a number >= 0, found {sd}")
+        return None
+    return float(mean), float(sd)
 
 
 def _hash_int(*parts: Any, nbytes: int = 8) -> int:

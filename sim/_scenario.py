@@ -195,31 +195,51 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
 
 def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str],
           interlocks: list[str]) -> Step | None:
+    """One [[steps]] table: its trigger, then its actions in a fixed order."""
     c.no_unknown(e, STEP_KEYS, where)
     label = c.take(e, "name", where, "str", default=where) or where
     triggers = [t for t in TRIGGERS if t in e]
     if len(triggers) != 1:
         c.add(where, f"expected exactly one trigger ({', '.join(TRIGGERS)}), found "
                      f"{', '.join(triggers) or 'none'}")
-    at = c.take(e, "at", where, "number", default=None,
-                check=lambda v: None if v >= 0 else f"expected seconds >= 0, found {v}")
-    when = None
-    if "when" in e:
-        when, why = parse_condition(e["when"], columns)
-        if when is None:
-            c.add(f"{where}.when", why)
+    at = c.take(e, "at", where, "number", default=None, check=_seconds)
+    when = _condition(c, e, "when", where, columns)
     on_trip = c.take(e, "on_trip", where, "str", default=None)
     if on_trip is not None and on_trip not in interlocks:
         c.add(f"{where}.on_trip", not_one_of(on_trip, interlocks, "interlocks"))
     on_phase = c.take(e, "on_phase", where, "str", default=None)
-    delay = c.take(e, "delay", where, "number", default=0.0,
-                   check=lambda v: None if v >= 0 else f"expected seconds >= 0, found {v}")
+    delay = c.take(e, "delay", where, "number", default=0.0, check=_seconds)
     if "delay" in e and "at" in e:
         c.add(f"{where}.delay", "a delay goes with when, on_trip or on_phase; with `at`, "
                                 "give the time itself")
-    commands: list[Command] = []
     if not any(a in e for a in ACTIONS):
         c.add(where, f"expected at least one action ({', '.join(ACTIONS)})")
+    commands = [*_setting_actions(c, e, where, rig), *_fault_actions(c, e, where, rig),
+                *_safety_actions(c, e, where, label, interlocks)]
+    expect = _condition(c, e, "expect", where, columns)
+    if len(triggers) != 1:
+        return None
+    return Step(label, at, when, on_trip, on_phase, float(delay or 0.0), tuple(commands), expect)
+
+
+def _seconds(value: float) -> str | None:
+    return None if value >= 0 else f"expected seconds >= 0, found {value}"
+
+
+def _condition(c: Checker, e: dict[str, Any], key: str, where: str,
+               columns: list[str]) -> Condition | None:
+    """``when`` or ``expect``: '<column> <op> <number>' (None when absent or wrong)."""
+    if key not in e:
+        return None
+    condition, why = parse_condition(e[key], columns)
+    if condition is None:
+        c.add(f"{where}.{key}", why)
+    return condition
+
+
+def _setting_actions(c: Checker, e: dict[str, Any], where: str, rig: Rig) -> list[Command]:
+    """``phase`` and ``set_reference``."""
+    commands: list[Command] = []
     phase = c.take(e, "phase", where, "str", default=None)
     if phase is not None:
         commands.append(Command("mark_phase", {"name": phase}))
@@ -234,6 +254,12 @@ def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str
                                                   f"{describe_value(value)}")
         else:
             commands.append(Command("set_reference", {"name": ref, "value": float(value)}))
+    return commands
+
+
+def _fault_actions(c: Checker, e: dict[str, Any], where: str, rig: Rig) -> list[Command]:
+    """``set_parameter``, ``inject`` and ``clear``."""
+    commands: list[Command] = []
     param = c.take(e, "set_parameter", where, "table", default=None)
     if param is not None:
         for key in {"kind", "duration", "name"} & set(param):
@@ -252,8 +278,14 @@ def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str
     clear = c.take(e, "clear", where, "str", default=None)
     if clear is not None:
         commands.append(Command("clear_fault", {} if clear == "all" else {"name": clear}))
-    estop = c.take(e, "estop", where, "bool", default=False)
-    if estop:
+    return commands
+
+
+def _safety_actions(c: Checker, e: dict[str, Any], where: str, label: str,
+                    interlocks: list[str]) -> list[Command]:
+    """``estop``, ``reset`` and ``stop``."""
+    commands: list[Command] = []
+    if c.take(e, "estop", where, "bool", default=False):
         commands.append(Command("estop", {"source": f"scenario {label}"}))
     reset = c.take(e, "reset", where, "str", default=None)
     if reset is not None:
@@ -261,17 +293,9 @@ def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str
             c.add(f"{where}.reset", not_one_of(reset, ["all", *interlocks], "interlocks"))
         commands.append(Command("reset", {"source": f"scenario {label}"} if reset == "all"
                                 else {"interlock": reset, "source": f"scenario {label}"}))
-    stop = c.take(e, "stop", where, "bool", default=False)
-    if stop:
+    if c.take(e, "stop", where, "bool", default=False):
         commands.append(Command("stop", {"reason": f"scenario {label}"}))
-    expect = None
-    if "expect" in e:
-        expect, why = parse_condition(e["expect"], columns)
-        if expect is None:
-            c.add(f"{where}.expect", why)
-    if len(triggers) != 1:
-        return None
-    return Step(label, at, when, on_trip, on_phase, float(delay or 0.0), tuple(commands), expect)
+    return commands
 
 
 def _fault_ok(c: Checker, where: str, args: dict[str, Any], rig: Rig) -> bool:

@@ -121,45 +121,9 @@ def parse_verdicts(c: Checker, doc: dict[str, Any], rig: Rig, columns: list[str]
         if "signal" in keys:
             v["signal"] = _column(c, e, "signal", where, columns, rig, required=True)
         if "reference" in keys:
-            ref = e.get("reference")
-            if isinstance(ref, int | float) and not isinstance(ref, bool):
-                v["reference"] = float(ref)
-            elif ref is not None:
-                v["reference"] = _column(c, e, "reference", where, columns, rig,
-                                         required=True, prefix="ref")
-            elif criterion in ("steady_state_error", "tracking_rms", "tracking_max"):
-                c.add(f"{where}.reference", "missing (expected a number or a column such as "
-                                            "ref:<name>)")
-        for key in ("start", "stop"):
-            if key in keys and key in e:
-                value = e[key]
-                if isinstance(value, str):
-                    if value not in phases:
-                        c.add(f"{where}.{key}", not_one_of(value, sorted(phases),
-                                                        "phases the scenario marks"))
-                    v[key] = value
-                else:
-                    v[key] = c.take(e, key, where, "number")
-        for key in ("final", "initial", "low", "high", "max", "band_pct", "tail"):
-            if key in keys:
-                got = c.take(e, key, where, "number", default=None)
-                if got is not None:
-                    v[key] = float(got)
-        if "max" in keys and "max" not in v and "max" not in e:
-            c.add(f"{where}.max", f"missing (expected the largest acceptable value, in "
-                                  f"{UNITS.get(criterion, 'the signal unit')})")
-        if criterion in ("rise_time", "settling_time", "overshoot") and "final" not in v \
-                and "reference" not in v:
-            c.add(where, "expected `final` (the value the step goes to) or `reference`")
-        if criterion == "band" and "low" not in v and "high" not in v:
-            c.add(where, "expected `low`, `high` or both")
-        if "rise_pct" in e:
-            rp = c.take(e, "rise_pct", where, "vector")
-            if rp is not None and (len(rp) != 2 or not 0 <= rp[0] < rp[1] <= 100):
-                c.add(f"{where}.rise_pct", f"expected [low, high] percentages with "
-                                           f"0 <= low < high <= 100, found {rp}")
-            elif rp is not None:
-                v["rise_pct"] = (float(rp[0]), float(rp[1]))
+            _reference(c, e, where, criterion, columns, rig, v)
+        _window(c, e, where, keys, phases, v)
+        _numbers(c, e, where, criterion, keys, v)
         if criterion == "trip_within":
             il = c.take(e, "interlock", where, "str")
             if il is not None and il not in interlocks:
@@ -167,7 +131,7 @@ def parse_verdicts(c: Checker, doc: dict[str, Any], rig: Rig, columns: list[str]
             fault = c.take(e, "fault", where, "str")
             if fault is not None and fault not in faults:
                 c.add(f"{where}.fault", not_one_of(fault, sorted(faults),
-                                                "faults the scenario injects"))
+                                                   "faults the scenario injects"))
             v["interlock"], v["fault"] = il, fault
         if criterion == "no_unexpected_trip":
             allow = c.take(e, "allow", where, "list", default=[]) or []
@@ -177,6 +141,60 @@ def parse_verdicts(c: Checker, doc: dict[str, Any], rig: Rig, columns: list[str]
             v["allow"] = tuple(allow)
         out.append(VerdictSpec(name=str(name), criterion=criterion, **v))
     return out
+
+
+def _reference(c: Checker, e: dict[str, Any], where: str, criterion: str, columns: list[str],
+               rig: Rig, v: dict[str, Any]) -> None:
+    """``reference``: a number, or a column such as ref:<name>."""
+    ref = e.get("reference")
+    if isinstance(ref, int | float) and not isinstance(ref, bool):
+        v["reference"] = float(ref)
+    elif ref is not None:
+        v["reference"] = _column(c, e, "reference", where, columns, rig, required=True,
+                                 prefix="ref")
+    elif criterion in ("steady_state_error", "tracking_rms", "tracking_max"):
+        c.add(f"{where}.reference", "missing (expected a number or a column such as "
+                                    "ref:<name>)")
+
+
+def _window(c: Checker, e: dict[str, Any], where: str, keys: set[str], phases: set[str],
+            v: dict[str, Any]) -> None:
+    """``start`` and ``stop``: a time in seconds, or a phase the scenario marks."""
+    for key in ("start", "stop"):
+        if key in keys and key in e:
+            value = e[key]
+            if isinstance(value, str):
+                if value not in phases:
+                    c.add(f"{where}.{key}", not_one_of(value, sorted(phases),
+                                                       "phases the scenario marks"))
+                v[key] = value
+            else:
+                v[key] = c.take(e, key, where, "number")
+
+
+def _numbers(c: Checker, e: dict[str, Any], where: str, criterion: str, keys: set[str],
+             v: dict[str, Any]) -> None:
+    """The criterion's numeric keys, and the ones it cannot do without."""
+    for key in ("final", "initial", "low", "high", "max", "band_pct", "tail"):
+        if key in keys:
+            got = c.take(e, key, where, "number", default=None)
+            if got is not None:
+                v[key] = float(got)
+    if "max" in keys and "max" not in v and "max" not in e:
+        c.add(f"{where}.max", f"missing (expected the largest acceptable value, in "
+                              f"{UNITS.get(criterion, 'the signal unit')})")
+    if criterion in ("rise_time", "settling_time", "overshoot") and "final" not in v \
+            and "reference" not in v:
+        c.add(where, "expected `final` (the value the step goes to) or `reference`")
+    if criterion == "band" and "low" not in v and "high" not in v:
+        c.add(where, "expected `low`, `high` or both")
+    if "rise_pct" in e:
+        rp = c.take(e, "rise_pct", where, "vector")
+        if rp is not None and (len(rp) != 2 or not 0 <= rp[0] < rp[1] <= 100):
+            c.add(f"{where}.rise_pct", f"expected [low, high] percentages with "
+                                       f"0 <= low < high <= 100, found {rp}")
+        elif rp is not None:
+            v["rise_pct"] = (float(rp[0]), float(rp[1]))
 
 
 def _column(c: Checker, e: dict[str, Any], key: str, where: str, columns: list[str],
