@@ -17,7 +17,6 @@ rewritten module and manifest together), a signature that does not verify.
 
 from __future__ import annotations
 
-import tomllib
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -27,6 +26,7 @@ from plantrig.sim import (
     apply_overrides,
     check_signature,
     read_manifest,
+    read_rig_document,
     read_signature,
     run_folder_of,
     sha256_file,
@@ -42,10 +42,10 @@ def model_to_load(rig_path: str | Path, overrides: Sequence[str] = ()) -> Path |
     reports the mistake)."""
     path = Path(rig_path)
     try:
-        doc = tomllib.loads(path.read_text(encoding="utf-8"))
+        doc = read_rig_document(path).doc   # a part may give the plant
         if overrides:
             doc = apply_overrides(doc, overrides, str(path))
-    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, RigFileError):
+    except RigFileError:
         return None
     plant = doc.get("plant")
     if not isinstance(plant, dict):

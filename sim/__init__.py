@@ -72,6 +72,7 @@ _HOME: dict[str, str] = {
     ),
     **dict.fromkeys(["RecordError"], "_preflight"),
     **dict.fromkeys(["rig_from_python", "write_rig"], "_rig_builder"),
+    **dict.fromkeys(["RigDocument", "read_rig_document"], "_rig_document"),
     **dict.fromkeys(["RunRecord", "read_run"], "_reader"),
     **dict.fromkeys(["read_journal"], "_recorder"),
     **dict.fromkeys(["recover_run"], "_records"),
@@ -259,6 +260,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim._references import Ramp, Sine, Step, Table
     from plantrig.sim._rerun import RerunError, plan_rerun
     from plantrig.sim._rig_builder import rig_from_python, write_rig
+    from plantrig.sim._rig_document import RigDocument, read_rig_document
     from plantrig.sim._rigdata import (
         ModelNotLoaded,
         load_rig_as_data,

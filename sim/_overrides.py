@@ -28,7 +28,8 @@ from typing import Any
 import tomli_w
 
 from plantrig.sim._checker import RigFileError, RigIssue, describe_value, did_you_mean
-from plantrig.sim._rigfile import TOP_KEYS, Rig, build_rig, load_rig
+from plantrig.sim._rig_document import read_rig_document
+from plantrig.sim._rigfile import TOP_KEYS, Rig, build_rig_document, load_rig
 
 FREE_FORM_TABLES = {"plant.params"}      # any key is accepted there, so typos must stop here
 _SEGMENT = re.compile(r"([A-Za-z0-9_-]+)((?:\[\d+\])*)")
@@ -148,14 +149,11 @@ def load_rig_with_overrides(path: str | Path, overrides: Sequence[str] = (), *,
     if rig is not None:
         return rig
     path = Path(path)
-    file = str(path)
-    try:
-        doc = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
-        load_rig(path)   # raises the usual message for an unreadable file
-        raise            # pragma: no cover - load_rig always raises here
-    effective = apply_overrides(doc, assignments, file)
-    rig = build_rig(effective, path, effective_text(effective))
+    document = read_rig_document(path)
+    effective = apply_overrides(document.doc, assignments, str(path))
+    set_here = tuple(a.split("=", 1)[0].strip() for a in assignments)
+    rig = build_rig_document(dataclasses.replace(
+        document, doc=effective, text=effective_text(effective), set_here=set_here), path)
     return dataclasses.replace(rig, overrides=tuple(assignments))
 
 

@@ -12,7 +12,6 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
-import tomllib
 from pathlib import Path
 from typing import Any
 
@@ -20,7 +19,8 @@ import numpy as np
 
 from plantrig.sim._checker import RigFileError, RigIssue
 from plantrig.sim._plant import OdePlant
-from plantrig.sim._rigfile import ControllerSpec, Rig, Signal, build_rig
+from plantrig.sim._rig_document import read_rig_document
+from plantrig.sim._rigfile import ControllerSpec, Rig, Signal, build_rig_document
 
 # Files only plantrig writes, into every run folder at its start; either marks a record.
 RUN_FOLDER_MARKERS = ("run_start.json", "sources.json")
@@ -46,17 +46,19 @@ def load_rig_as_data(path: str | Path) -> Rig:
     or output raises ModelNotLoaded.
     """
     path = Path(path)
-    text, doc = _read(path)
+    document = read_rig_document(path)
+    doc = document.doc
     plant_t = doc.get("plant")
     if not (isinstance(plant_t, dict) and plant_t.get("kind") in CODE_KINDS):
-        return build_rig(doc, path, text)
+        return build_rig_document(document, path)
     counts = [len(plant_t.get(group, [])) if isinstance(plant_t.get(group), list) else 0
               for group in ("states", "inputs", "outputs")]
     n, m, p = counts
     stand_in = {k: v for k, v in plant_t.items() if k not in ODE_ONLY_KEYS}
     stand_in.update(kind="lti", A=np.zeros((n, n)).tolist(), B=np.zeros((n, m)).tolist(),
                     C=np.zeros((p, n)).tolist(), D=np.zeros((p, m)).tolist())
-    rig = build_rig({**doc, "plant": stand_in}, path, text)
+    rig = build_rig_document(dataclasses.replace(document, doc={**doc, "plant": stand_in}),
+                             path)
     params = plant_t.get("params", {})
     method = plant_t.get("method", "rk4")
     substeps = plant_t.get("substeps", 1)
@@ -115,7 +117,7 @@ def _bound(value: Any, default: float) -> float:
 def model_module(path: str | Path) -> Path | None:
     """The Python file an ODE rig file names as its model (resolved), or None."""
     path = Path(path)
-    _, doc = _read(path)
+    doc = read_rig_document(path).doc
     plant_t = doc.get("plant")
     if not (isinstance(plant_t, dict) and plant_t.get("kind") == "ode"
             and isinstance(plant_t.get("module"), str)):
@@ -140,15 +142,3 @@ def _plantrig_manifest(path: Path) -> bool:
         return False
 
 
-def _read(path: Path) -> tuple[str, dict[str, Any]]:
-    file = str(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise RigFileError([RigIssue(file, "", f"cannot read: {exc.strerror or exc}")]) from None
-    except UnicodeDecodeError as exc:
-        raise RigFileError([RigIssue(file, "", f"not UTF-8 text: {exc.reason}")]) from None
-    try:
-        return text, tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise RigFileError([RigIssue(file, "", f"not valid TOML: {exc}")]) from None

@@ -9,9 +9,9 @@ and checked by the part that owns them, through the same issue list.
 
 from __future__ import annotations
 
+import dataclasses
 import importlib.util
 import math
-import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, field, fields, is_dataclass
 from pathlib import Path
@@ -24,7 +24,6 @@ from plantrig.sim._checker import (
     MISSING,
     Checker,
     RigFileError,
-    RigIssue,
     describe_value,
     is_number,
     one_of,
@@ -52,6 +51,7 @@ from plantrig.sim._plant import (
     ticks_per_sample,
 )
 from plantrig.sim._references import TABLE_BETWEEN, Ramp, Reference, Sine, Step, Table
+from plantrig.sim._rig_document import RigDocument, read_rig_document
 
 PLANT_KINDS = ("lti", "transfer_function", "discrete_lti", "ode", "fmu")
 CONTROLLER_KINDS = ("pid", "state_feedback", "open_loop", "external")
@@ -85,12 +85,15 @@ class ControllerSpec:
     settings: dict[str, Any] = field(default_factory=dict)
 
 
+PROVENANCE = ("path", "text", "parts", "overrides")   # where a rig came from, not what it is
+
+
 @dataclass(frozen=True, eq=False)
 class Rig:
     """Everything a run needs, checked.
 
     Two rigs are equal when every setting is (matrices compared by value); where the rig
-    came from (``path``, ``text``) does not count.
+    came from (PROVENANCE: file, text, parts, ``--set`` assignments) does not count.
     """
 
     path: Path
@@ -122,6 +125,7 @@ class Rig:
     acceptance: AcceptanceRules = AcceptanceRules()
     dut: DutSpec = DutSpec()           # the device under test, as the rig file names it
     overrides: tuple[str, ...] = ()    # KEY=VALUE assignments applied (sim/_overrides.py)
+    parts: tuple[Path, ...] = ()       # part files the rig file took sections from
 
     @property
     def n_ticks(self) -> int:
@@ -131,7 +135,7 @@ class Rig:
         if not isinstance(other, Rig):
             return NotImplemented
         return all(same_value(getattr(self, f.name), getattr(other, f.name))
-                   for f in fields(self) if f.name not in ("path", "text"))
+                   for f in fields(self) if f.name not in PROVENANCE)
 
     __hash__ = None   # type: ignore[assignment]  # equal by value, and mutable inside
 
@@ -175,19 +179,17 @@ SIGNAL_KEYS = {"name", "unit", "min", "max", "description", "safe"}
 
 def load_rig(path: str | Path) -> Rig:
     """Read and check a rig file; raise RigFileError listing every mistake."""
-    path = Path(path)
-    file = str(path)
+    return build_rig_document(read_rig_document(path), Path(path))
+
+
+def build_rig_document(document: RigDocument, path: Path) -> Rig:
+    """build_rig for a document read by read_rig_document: mistakes in what a part gave
+    name the part, and the Rig records the parts."""
     try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise RigFileError([RigIssue(file, "", f"cannot read: {exc.strerror or exc}")]) from None
-    except UnicodeDecodeError as exc:
-        raise RigFileError([RigIssue(file, "", f"not UTF-8 text: {exc.reason}")]) from None
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise RigFileError([RigIssue(file, "", f"not valid TOML: {exc}")]) from None
-    return build_rig(doc, path, text)
+        rig = build_rig(document.doc, path, document.text)
+    except RigFileError as exc:
+        raise RigFileError(document.blame(exc.issues)) from None
+    return dataclasses.replace(rig, parts=document.parts) if document.parts else rig
 
 
 def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:

@@ -26,6 +26,7 @@ from plantrig.sim._secrets import redact_assignments, redact_rig_text
 SOURCES = "sources.json"
 RIG_COPY = "rig.toml"
 SCENARIO_COPY = "scenario.toml"
+PARTS_COPY = "sources"     # a composed rig's files as written (sim/_rig_document.py)
 
 # A table header line: [plant], [ plant ] # comment, [[limits]].
 _HEADER = re.compile(r"^\s*\[\[?\s*([^\[\]]*?)\s*\]\]?\s*(#.*)?$")
@@ -53,7 +54,7 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
         data = module.read_bytes()
         (folder / module.name).write_bytes(data)
         files[module.name] = _entry("model", module, data)
-    if rig.overrides:  # the effective document, so the folder says what really ran
+    if rig.overrides or rig.parts:  # the effective document: what really ran
         from plantrig.sim._overrides import effective_copy
         rig_bytes = effective_copy(rig, module.name if module is not None else None, key)
     redacted, secrets = redact_rig_text(rig_bytes.decode("utf-8"))
@@ -68,6 +69,9 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
     if rig.overrides:
         files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
         files[RIG_COPY]["overrides"] = redact_assignments(rig.overrides)
+    if rig.parts:
+        files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
+        files.update(_copy_parts(rig, folder))
     if module is not None and rig_bytes != original:
         files[RIG_COPY]["copy_sha256"] = hashlib.sha256(rig_bytes).hexdigest()
         files[RIG_COPY]["rewritten"] = {f"plant.{key}": {"from": named, "to": module.name}}
@@ -79,6 +83,22 @@ def copy_sources(rig: Rig, scenario: Scenario | None, folder: Path) -> dict[str,
     doc = {"format": "plantrig sources", "version": 1, "files": files}
     (folder / SOURCES).write_text(json.dumps(doc, indent=2) + "\n", encoding="utf-8")
     return doc
+
+
+def _copy_parts(rig: Rig, folder: Path) -> dict[str, dict[str, Any]]:
+    """The rig file as written and every part it took, under sources/ (rig.toml beside
+    them is the resolved document)."""
+    (folder / PARTS_COPY).mkdir(exist_ok=True)
+    files = {}
+    for i, path in enumerate((rig.path, *rig.parts)):
+        data = path.read_bytes()
+        redacted = redact_rig_text(data.decode("utf-8"))[0].encode("utf-8")
+        name = f"{PARTS_COPY}/{i:02d}_{path.name}"
+        (folder / name).write_bytes(redacted)
+        files[name] = _entry("rig as written" if i == 0 else "part", path, data)
+        if redacted != data:
+            files[name].update(sha256=None, bytes=None)
+    return files
 
 
 def point_module_at(text: bytes, name: str, file: Path, key: str = "module") -> bytes:

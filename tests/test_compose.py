@@ -8,6 +8,7 @@ import sys
 from pathlib import Path
 
 import numpy as np
+from rig_text import rig_text
 
 from plantrig.sim import build_chains, load_rig, read_run, simulate
 
@@ -16,7 +17,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 def conveyor_with(tmp_path: Path, extra: str) -> Path:
     path = tmp_path / "conveyor.toml"
-    path.write_text((REPO / "configs" / "conveyor.toml").read_text() + extra)
+    path.write_text(rig_text(REPO / "configs" / "conveyor.toml") + extra)
     return path
 
 

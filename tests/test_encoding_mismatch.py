@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from rig_text import rig_text
 
 from plantrig.io import MqttLink, SerialLink, build_link, open_pty_pair
 from plantrig.io._broker import LocalBroker
@@ -87,7 +88,7 @@ def check_run(data: RunData, encoding: str, said: list[str]) -> None:
 
 @pytest.mark.parametrize("encoding", ["float32", "int16"])
 def test_serial_link_refuses_the_other_encoding(tmp_path: Path, encoding: str) -> None:
-    src = (CONFIGS / "conveyor_hil.toml").read_text().replace("duration = 3.0",
+    src = rig_text(CONFIGS / "conveyor_hil.toml").replace("duration = 3.0",
                                                              "duration = 1.5")
     path = tmp_path / "rig.toml"
     path.write_text(with_encoding(src, encoding))
@@ -107,7 +108,7 @@ def test_serial_link_refuses_the_other_encoding(tmp_path: Path, encoding: str) -
 
 
 def mqtt_rig(tmp_path: Path, broker: LocalBroker, encoding: str) -> Rig:
-    src = ((CONFIGS / "conveyor_mqtt.toml").read_text()
+    src = (rig_text(CONFIGS / "conveyor_mqtt.toml")
            .replace("duration = 3.0", "duration = 1.5")
            .replace("port = 1883", f"port = {broker.port}")
            .replace('payload = "json"', 'payload = "binary"'))

@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import scipy.signal
+from rig_text import rig_text
 
 from plantrig.sim import (
     Command,
@@ -238,7 +239,7 @@ def test_tape_reader_sees_every_row_and_counts_losses(tmp_path: Path) -> None:
 @pytest.mark.slow
 def test_realtime_run_records_every_tick_with_lateness(tmp_path: Path) -> None:
     # 2 s at 1 kHz, in real time, through the recorder process; no wall-clock assertions
-    text = CONVEYOR.read_text().replace("duration = 3.0", "duration = 2.0")
+    text = rig_text(CONVEYOR).replace("duration = 3.0", "duration = 2.0")
     rig_path = tmp_path / "conveyor.toml"
     rig_path.write_text(text)
     folder, outcome, summary = run_to_folder(load_rig(rig_path), tmp_path / "runs",
@@ -264,7 +265,7 @@ def test_cli_run_writes_run_folder(tmp_path: Path) -> None:
                            str(tmp_path)], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
     (folder,) = [p for p in tmp_path.iterdir() if p.is_dir()]
-    assert (folder / "rig.toml").read_text() == CONVEYOR.read_text()
+    assert (folder / "rig.toml").read_text() == rig_text(CONVEYOR)
     summary = json.loads((folder / "summary.json").read_text())
     assert summary["ended"] == "completed" and summary["ticks_recorded"] == 3000
     ticks = read_run(folder)

@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from rig_text import rig_text
 
 from plantrig.sim import Command, EventTape, load_rig, run_to_folder
 from plantrig.sim._hdf5 import read_run_h5
@@ -85,7 +86,7 @@ def test_an_event_tape_of_another_layout_is_refused(tmp_path: Path) -> None:
 def test_a_5000_byte_detail_arrives_whole_in_events_jsonl_and_run_h5(tmp_path: Path) -> None:
     """End to end: the engine writes the event to the tape, the recorder process copies
     it to events.jsonl, the finish writes run.h5 from that."""
-    src = (CONFIGS / "conveyor.toml").read_text().replace("duration = 3.0", "duration = 0.5")
+    src = rig_text(CONFIGS / "conveyor.toml").replace("duration = 3.0", "duration = 0.5")
     (tmp_path / "rig.toml").write_text(src)
     rig = load_rig(tmp_path / "rig.toml")
     detail = TEXT.encode()[:5000].decode("utf-8", "ignore")

@@ -21,6 +21,7 @@ import pytest
 from hil_helpers import rig_issues
 from pymodbus.client import ModbusTcpClient
 from pymodbus.framer.rtu import FramerRTU
+from rig_text import rig_text
 
 from plantrig.io import build_link
 from plantrig.sim import load_rig
@@ -223,7 +224,7 @@ def test_rtu_crc_check_values() -> None:
 
 
 def test_register_map_mistakes_are_rig_errors(tmp_path: Path) -> None:
-    src = DEMO.read_text().replace(
+    src = rig_text(DEMO).replace(
         'motor_current = { address = 6, type = "int16", scale = 0.01 }',
         'motor_current = { address = 5, type = "int12" }\nspeed = { address = 9 }')
     path = tmp_path / "rig.toml"

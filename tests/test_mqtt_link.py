@@ -29,6 +29,7 @@ import aiomqtt
 import numpy as np
 import pytest
 from hil_helpers import Float32, builtin_twin, rig_issues
+from rig_text import rig_text
 
 from plantrig._hil import wait_ready
 from plantrig.io import (
@@ -44,7 +45,7 @@ from plantrig.io._mqtt_payload import Codec, PayloadError
 from plantrig.sim import Event, Rig, RunData, load_rig, silent_ticks_allowed, simulate
 
 CONFIGS = Path(__file__).parents[1] / "configs"
-MQTT = (CONFIGS / "conveyor_mqtt.toml").read_text()
+MQTT = rig_text(CONFIGS / "conveyor_mqtt.toml")
 VECTORS = json.loads((Path(__file__).parents[1] / "docs" / "protocol_vectors.json").read_text())
 STATE_COLUMNS = ["u:voltage", "y:belt_speed", "y:motor_current", "x:current",
                  "x:motor_speed", "x:belt_speed"]

@@ -21,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from rig_text import rig_text
 from test_records_crash import realtime_rig, same_as_fast_run, tmpfs
 
 from plantrig.sim import load_rig, run_to_folder
@@ -116,7 +117,7 @@ def test_a_signal_stops_the_run_and_finishes_its_record(tmp_path: Path, how: str
 
 def test_a_controller_that_never_answers_is_a_fault(tmp_path: Path) -> None:
     rig_path = tmp_path / "hil.toml"
-    rig_path.write_text(HIL.read_text().replace("duration = 3.0", "duration = 1.0"))
+    rig_path.write_text(rig_text(HIL).replace("duration = 3.0", "duration = 1.0"))
     assert load_rig(rig_path).duration == 1.0
     master, slave = os.openpty()                      # nobody on the other end answers
     try:
@@ -225,7 +226,7 @@ def test_link_loss_with_a_trip_is_not_completed(tmp_path: Path) -> None:
 
 def test_acceptance_table_mistakes_are_rig_file_mistakes(tmp_path: Path) -> None:
     rig_path = tmp_path / "conveyor.toml"
-    rig_path.write_text((REPO / "configs" / "conveyor.toml").read_text() + """
+    rig_path.write_text(rig_text(REPO / "configs" / "conveyor.toml") + """
 [acceptance]
 min_answerd = 0.95
 max_late = 1.5

@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from rig_text import rig_text
 
 from plantrig.cli import main
 from plantrig.sim import (
@@ -41,7 +42,7 @@ def only_folder(out: Path) -> Path:
 
 def test_override_equals_an_edited_rig_file() -> None:
     rig = load_rig_with_overrides(CONVEYOR, ["controller.loops[0].kp=30"], duration=0.4)
-    doc = tomllib.loads(CONVEYOR.read_text())
+    doc = tomllib.loads(rig_text(CONVEYOR))
     doc["controller"]["loops"][0]["kp"] = 30.0
     doc["rig"]["duration"] = 0.4
     edited = build_rig(doc, CONVEYOR)
@@ -71,9 +72,11 @@ def test_run_folder_records_effective_values(tmp_path: Path) -> None:
 
 
 def test_no_override_keeps_the_copy_byte_identical(tmp_path: Path) -> None:
-    assert main(["run", str(CONVEYOR), "--fast", "--out", str(tmp_path)]) == 0
-    folder = only_folder(tmp_path)
-    assert (folder / "rig.toml").read_bytes() == CONVEYOR.read_bytes()
+    rig = tmp_path / "conveyor.toml"     # a rig file of one piece (no parts)
+    rig.write_text("# a comment the copy keeps\n" + rig_text(CONVEYOR))
+    assert main(["run", str(rig), "--fast", "--out", str(tmp_path / "runs")]) == 0
+    folder = only_folder(tmp_path / "runs")
+    assert (folder / "rig.toml").read_bytes() == rig.read_bytes()
     assert "overrides" not in json.loads((folder / "sources.json").read_text())["files"][
         "rig.toml"]
 
@@ -111,7 +114,7 @@ def test_paths_that_do_not_exist_name_the_key() -> None:
 
 def test_values_are_checked_by_the_rig_checker() -> None:
     """The same message as the same mistake in the file."""
-    doc = tomllib.loads(CONVEYOR.read_text())
+    doc = tomllib.loads(rig_text(CONVEYOR))
     doc["rig"]["tick"] = "fast"
     doc["controller"]["loops"][0]["kpp"] = 1.0
     with pytest.raises(RigFileError) as in_file:
@@ -134,7 +137,7 @@ def test_a_table_left_out_of_the_file_can_be_set() -> None:
 
 
 def test_apply_overrides_leaves_the_input_alone() -> None:
-    doc = tomllib.loads(CONVEYOR.read_text())
+    doc = tomllib.loads(rig_text(CONVEYOR))
     out = apply_overrides(doc, ["rig.seed=9"], str(CONVEYOR))
     assert out["rig"]["seed"] == 9 and doc["rig"]["seed"] == 7
 

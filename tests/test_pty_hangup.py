@@ -23,12 +23,13 @@ from pathlib import Path
 
 import pytest
 from hil_helpers import pty_controller
+from rig_text import rig_text
 
 from plantrig.io import FdPort, PtyPair, SerialLink, build_link, open_pty_pair
 from plantrig.io._serial_link import open_serial_port
 from plantrig.sim import Rig, RunData, load_rig, simulate
 
-HIL = (Path(__file__).parents[1] / "configs" / "conveyor_hil.toml").read_text()
+HIL = rig_text(Path(__file__).parents[1] / "configs" / "conveyor_hil.toml")
 RELAY = Path(__file__).with_name("pty_relay.py")
 LINE = {"baud": 921600, "byte_size": 8, "parity": "none", "stop_bits": 1}
 # The clean relay run: 20 s in the suite; PLANTRIG_RELAY_S=60 for the long check by hand.

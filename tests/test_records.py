@@ -16,6 +16,7 @@ import matplotlib.image
 import numpy as np
 import pytest
 import scipy.io
+from rig_text import rig_text
 
 from plantrig import __version__
 from plantrig._report import write_report
@@ -195,7 +196,7 @@ def red_pixels(page: np.ndarray) -> int:
 def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> None:
     # a short real-time run, so the lateness histogram has something to show
     rig_path = tmp_path / "conveyor.toml"
-    rig_path.write_text(CONVEYOR.read_text().replace("duration = 3.0", "duration = 1.0"))
+    rig_path.write_text(rig_text(CONVEYOR).replace("duration = 3.0", "duration = 1.0"))
     folder, _, _ = run_to_folder(load_rig(rig_path), tmp_path / "runs", realtime=True)
     # a verdict file from the safety checks (written before the manifest) shows as a table
     (folder / "verdicts.json").write_text(json.dumps(

@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from rig_text import rig_text
 
 from plantrig.cli import main
 from plantrig.sim import _run as run_module
@@ -51,7 +52,7 @@ def tmpfs(path: Path, size: str, readonly: bool = False) -> Iterator[Path]:
 
 def realtime_rig(tmp_path: Path, duration: float = 30.0) -> Path:
     path = tmp_path / "conveyor_rt.toml"
-    path.write_text(CONVEYOR.read_text().replace('mode = "fast"', 'mode = "realtime"')
+    path.write_text(rig_text(CONVEYOR).replace('mode = "fast"', 'mode = "realtime"')
                     .replace("duration = 3.0", f"duration = {duration}"))
     return path
 

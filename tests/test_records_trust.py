@@ -26,6 +26,7 @@ import h5py
 import numpy as np
 import pytest
 import scipy.io
+from rig_text import rig_text
 
 from plantrig.cli import main
 from plantrig.sim import load_rig, run_to_folder
@@ -59,7 +60,7 @@ def run_copy(finished_run: Path, tmp_path: Path) -> Path:
 
 def realtime_rig(tmp_path: Path, duration: float) -> Path:
     path = tmp_path / "conveyor_rt.toml"
-    path.write_text(CONVEYOR.read_text().replace('mode = "fast"', 'mode = "realtime"')
+    path.write_text(rig_text(CONVEYOR).replace('mode = "fast"', 'mode = "realtime"')
                     .replace("duration = 3.0", f"duration = {duration}"))
     return path
 

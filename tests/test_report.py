@@ -16,6 +16,7 @@ from pathlib import Path
 import matplotlib.image
 import numpy as np
 import pytest
+from rig_text import rig_text
 
 from plantrig.cli import build_parser, main
 from plantrig.io import build_link
@@ -208,7 +209,7 @@ def test_tank_rehearsal_report_reads_the_ode_rig_as_data(tmp_path: Path) -> None
 
 
 def test_dut_table_is_checked_like_every_rig_key(tmp_path: Path) -> None:
-    doc_text = (REHEARSALS / "conveyor_guarded.toml").read_text()
+    doc_text = rig_text(REHEARSALS / "conveyor_guarded.toml")
     import tomllib
     doc = tomllib.loads(doc_text)
     rig = build_rig({**doc, "dut": {"name": "drive B", "firmware": "2.4.1",

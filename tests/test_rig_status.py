@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+from rig_text import rig_text
 from test_mqtt_link import mqtt_rig, retained
 
 from plantrig._hil import controller_command, wait_ready
@@ -31,7 +32,7 @@ GUARDED = ROOT / "configs" / "rehearsals" / "conveyor_guarded_hil.toml"
 
 
 def guarded_rig(tmp_path: Path, duration: float = 1.5):
-    src = GUARDED.read_text().replace("duration = 4.0", f"duration = {duration}")
+    src = rig_text(GUARDED).replace("duration = 4.0", f"duration = {duration}")
     path = tmp_path / "rig.toml"
     path.write_text(src)
     return load_rig(path)

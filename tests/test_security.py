@@ -38,6 +38,7 @@ from typing import Any
 import h5py
 import pytest
 import scipy.io
+from rig_text import rig_text
 
 from plantrig._hil import wait_ready
 from plantrig.io import LocalBroker
@@ -122,7 +123,7 @@ def where_found(root: Path, needle: str) -> list[str]:
 # ---- secrets -----------------------------------------------------------------------------
 
 def mqtt_rig_text(port: int, password: str | None) -> str:
-    src = (CONFIGS / "conveyor_mqtt.toml").read_text()
+    src = rig_text(CONFIGS / "conveyor_mqtt.toml")
     login = 'username = "rig"\n' + (
         f'# the broker password, inline (docs steer to password_env)\n'
         f'password = "{password}"   # for the test broker only\n' if password else "")

@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 from hil_helpers import Float32, builtin_twin, pty_controller, rig_issues
+from rig_text import rig_text
 
 from plantrig.io import (
     FdPort,
@@ -30,7 +31,7 @@ from plantrig.io import (
 from plantrig.sim import Rig, RunData, load_rig, simulate
 
 CONFIGS = Path(__file__).parents[1] / "configs"
-HIL = (CONFIGS / "conveyor_hil.toml").read_text()
+HIL = rig_text(CONFIGS / "conveyor_hil.toml")
 INJECTOR = Path(__file__).with_name("pty_injector.py")
 # Float32 keeps 24 significant bits: unit roundoff 2**-24 (IEEE 754 binary32; Higham,
 # Accuracy and Stability of Numerical Algorithms, 2nd ed., section 2.1). Each tick rounds
