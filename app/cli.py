@@ -353,6 +353,7 @@ LINK = "plantrig.cli:add_link_commands"
 # `plantrig check` load nothing that other commands need (h5py, matplotlib, Dask,
 # pymodbus, aiomqtt...); bench/bench_imports.py measures the start-up.
 COMMANDS: dict[str, tuple[str, str]] = {
+    "new": ("write a commented starter rig file", "plantrig._new_cli:add_parser"),
     "check": ("check a rig file and print the model summary", "plantrig.cli:add_check"),
     "run": ("run a rig and write a run folder", "plantrig.cli:add_run"),
     "recover": ("rebuild the record of a run that died", RECORDS),
