@@ -9,12 +9,14 @@ time on the other; the run folder, the link health and the timing are printed at
 from __future__ import annotations
 
 import argparse
+import contextlib
+import dataclasses
 import select
 import signal
 import subprocess
 import sys
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -136,9 +138,52 @@ def controller_command(rig_path: str | Path, port: str) -> list[str]:
     return [sys.executable, "-m", "plantrig", "controller", str(rig_path), "--port", port]
 
 
+class ControllerDidNotStart(RuntimeError):
+    """The reference controller process said nothing ready in time."""
+
+
+@contextlib.contextmanager
+def reference_controller_on_pty(rig: Any) -> Iterator[tuple[Any, subprocess.Popen[str], str]]:
+    """The reference controller in its own process on one end of a pty pair: yields the
+    rig's end (a byte port for build_link), the process and its ready line. On leaving,
+    the rig's end closes, which ends the controller."""
+    from plantrig.io import FdPort, open_pty_pair
+
+    pair = open_pty_pair()
+    proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
+                            stdout=subprocess.PIPE, text=True, env=shown_env())
+    try:
+        ready = wait_ready(proc, READY_TIMEOUT_S)
+        if ready is None:
+            raise ControllerDidNotStart("the reference controller did not start")
+        # from here the controller's end is the only one open: if it goes, we see it
+        pair.close_slave()
+        yield FdPort(pair.master_fd, name=f"pty {pair.slave_path}", owns_fd=False), proc, ready
+    finally:
+        pair.close_slave()
+        pair.close_master()
+        reap(proc)
+
+
+def fast_rehearsal(rig: Any) -> Any:
+    """The rig for `run --fast` of a bench rig: its link in lockstep with the reference
+    controller running [link.controller] over a pty, so the rehearsal uses the bench's
+    law. Raises ValueError saying why it cannot."""
+    link = rig.link
+    if link is None or link.controller is None:
+        raise ValueError("a fast run of a rig whose controller is external needs the law "
+                         "to rehearse with ([link.controller]), or --port to a controller "
+                         "that answers in lockstep")
+    if link.kind != "serial":
+        raise ValueError(f"a fast rehearsal runs the reference controller over a pty, "
+                         f"which serves serial links; for a {link.kind} link start "
+                         "`plantrig controller` yourself and give --port")
+    return dataclasses.replace(rig, mode="fast", link=dataclasses.replace(link, lockstep=True))
+
+
 def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Rig and reference controller over a pty pair, in real time; 0 if all went well."""
-    from plantrig.io import FdPort, build_link, open_pty_pair
+    from plantrig.io import build_link
     from plantrig.sim import run_to_folder
 
     if args.modbus:
@@ -152,26 +197,16 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     link_settings(rig)
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
-    pair = open_pty_pair()
-    proc = subprocess.Popen(controller_command(rig.path, pair.slave_path),
-                            stdout=subprocess.PIPE, text=True, env=shown_env())
     try:
-        ready = wait_ready(proc, READY_TIMEOUT_S)
-        if ready is None:
-            print("error: the reference controller did not start", file=sys.stderr)
-            return EXIT_FAULT
-        print(f"{ready} (pid {proc.pid})")
-        # from here the controller's end is the only one open: if it goes, we see it
-        pair.close_slave()
-        port = FdPort(pair.master_fd, name=f"pty {pair.slave_path}", owns_fd=False)
-        link = build_link(rig, port=port)
-        print(f"rig: {rig.name}, {1 / rig.tick:g} Hz for {rig.duration:g} s in real time "
-              f"over {pair.slave_path}")
-        folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
-    finally:
-        pair.close_slave()
-        pair.close_master()   # the controller ends when the rig's end of the pty closes
-        reap(proc)
+        with reference_controller_on_pty(rig) as (port, proc, ready):
+            print(f"{ready} (pid {proc.pid})")
+            link = build_link(rig, port=port)
+            print(f"rig: {rig.name}, {1 / rig.tick:g} Hz for {rig.duration:g} s in real time "
+                  f"over {port.name}")
+            folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
+    except ControllerDidNotStart as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_FAULT
     return demo_result(proc, folder, outcome, summary)
 
 

@@ -155,19 +155,38 @@ def cmd_run(args: argparse.Namespace) -> int:
     if args.gui and dashboard is None:
         return EXIT_USAGE
     fast = not (realtime or (realtime is None and rig.mode == "realtime"))
+    rehearse = fast and rig.controller.kind == "external" and args.port is None
+    if rehearse:   # the bench's law in lockstep over a pty: the same law as on the bench
+        from plantrig._hil import fast_rehearsal
+        try:
+            rig = fast_rehearsal(rig)
+        except ValueError as exc:
+            print(f"error: {args.rig}: {exc}", file=sys.stderr)
+            return EXIT_USAGE
     progress = RunProgress(rig.n_ticks) if fast else None
     dashboard_args = {"commands": dashboard.commands} if dashboard else {}
     dashboard_args["on_tapes_ready"] = both(dashboard.on_tapes_ready if dashboard else None,
                                             progress.on_tapes_ready if progress else None)
+    bench = contextlib.ExitStack()
     try:
         actuator_chain, sensor_chain = build_chains(rig)
         link = None
         if rig.controller.kind == "external":
             from plantrig.io import build_link
-            link = build_link(rig, port=args.port)
+            port = args.port
+            if rehearse:
+                from plantrig._hil import reference_controller_on_pty
+                port, _proc, ready = bench.enter_context(reference_controller_on_pty(rig))
+                print(f"{ready}; rehearsing in lockstep (fast mode)", file=sys.stderr)
+            link = build_link(rig, port=port)
     except RigFileError as exc:
+        bench.close()
         _print_issues(args.rig, exc)
         return EXIT_USAGE
+    except RuntimeError as exc:   # the reference controller did not start
+        bench.close()
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_FAULT
     try:
         folder, _outcome, summary = run_to_folder(rig, out, realtime=realtime,
                                                   **dashboard_args,
@@ -180,6 +199,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
     finally:
+        bench.close()
         if progress is not None:
             progress.close()
     code = int(summary["exit_code"])
