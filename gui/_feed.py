@@ -50,7 +50,8 @@ class LiveFeed:
             reader.next_seq += jump
             self.skipped += jump
         rows = reader.read_new(max_rows=self.keep_rows)
-        events = self.events.read_new() if self.events is not None else []
+        events = [(e["tick"], e["time"], e["kind"], e["detail"])
+                  for e in (self.events.read_new() if self.events is not None else [])]
         return rows, events
 
     @property

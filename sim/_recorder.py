@@ -107,9 +107,8 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
             if disk.error != RECORDER_OK:
                 not_written = reader.next_seq - journal_bytes // row_bytes
             new_events = event_tape.read_new()
-            for tick, t, kind, detail in new_events:
-                disk.write(events, (json.dumps({"tick": tick, "time": t, "kind": kind,
-                                                "detail": detail}) + "\n").encode())
+            for event in new_events:
+                disk.write(events, (json.dumps(event) + "\n").encode())
             now = time.monotonic()
             if now - last_sync >= SYNC_INTERVAL_S:
                 _sync(disk, journal, events)

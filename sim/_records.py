@@ -370,8 +370,7 @@ def recover_run(folder: Path) -> dict[str, Any]:
         etape = None
     if etape is not None:
         etape.next_seq = len(events)
-        events_salvaged = [{"tick": tk, "time": t, "kind": k, "detail": d}
-                           for tk, t, k, d in etape.read_new()]
+        events_salvaged = etape.read_new()
         etape.close()
     recovered = count_ticks(folder, n)
     timing = timing_from_blocks(tick_blocks(folder, n), columns)

@@ -40,7 +40,7 @@ from numpy.typing import NDArray
 
 from plantrig.sim._checker import RigFileError, RigIssue, describe_value
 from plantrig.sim._commands import Command
-from plantrig.sim._contracts import Event
+from plantrig.sim._contracts import REHEARSED, Event
 from plantrig.sim._overrides import apply_overrides, effective_text
 from plantrig.sim._reader import RunRecord, read_run
 from plantrig.sim._rigfile import Rig, build_rig
@@ -201,7 +201,7 @@ def plan_rerun(folder: str | Path, *, overrides: Sequence[str] = (),
     link_events = [] if built_in else [
         Event(int(e["tick"]), float(e["time"]), e["kind"], str(e.get("detail", "")))
         for e in events if e["kind"] in REPLAYED_LINK_EVENTS
-        and not str(e.get("detail", "")).startswith("rehearsed")]
+        and e.get("source") != REHEARSED]
     if not built_in and (folder / "scenario.toml").is_file():
         _refuse_link_faults_on_commands(folder / "scenario.toml")
     cmd = np.column_stack([record[n] for n in names]) if names else np.zeros((ticks, 0))

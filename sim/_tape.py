@@ -233,11 +233,12 @@ class TapeReader:
         self._map._mmap.close()  # type: ignore[attr-defined]
 
 
-EVENT_VERSION = 2
+EVENT_VERSION = 3
 EVENT_HEADER_WORDS = HEADER_WORDS + 2
 W_HEAP_SIZE, W_HEAP_WRITTEN = HEADER_WORDS, HEADER_WORDS + 1
 EVENT_DTYPE = np.dtype([("seq", np.int64), ("tick", np.int64), ("time", np.float64),
-                        ("kind", "S32"), ("at", np.int64), ("size", np.int64)])
+                        ("kind", "S32"), ("source", "S16"), ("at", np.int64),
+                        ("size", np.int64)])
 HEAP_BYTES = 1 << 20
 
 
@@ -293,7 +294,10 @@ class EventTape:
             self.rows["seq"] = -1
         self.next_seq = 0
 
-    def append(self, tick: int, time_s: float, kind: str, detail: str) -> None:
+    def append(self, tick: int, time_s: float, kind: str, detail: str,
+               source: str = "") -> None:
+        """One event; ``source`` is Event.source ("rehearsed" for an injected fault's
+        doing), recorded so readers never parse ``detail`` to tell."""
         data = detail.encode("utf-8", "replace")
         if len(data) > self.max_detail:
             data = _cut(data, self.max_detail - 120)  # room for the marker
@@ -310,6 +314,7 @@ class EventTape:
         slot["tick"] = tick
         slot["time"] = time_s
         slot["kind"] = kind.encode("utf-8", "replace")[:32]
+        slot["source"] = source.encode("utf-8", "replace")[:16]
         slot["at"] = at
         slot["size"] = len(data)
         slot["seq"] = n
@@ -324,17 +329,21 @@ class EventTape:
                     "heap is full of newer details]")
         return data.decode("utf-8", "replace")
 
-    def read_new(self) -> list[tuple[int, float, str, str]]:
-        """Events since the last call as (tick, time, kind, detail)."""
+    def read_new(self) -> list[dict[str, Any]]:
+        """Events since the last call, as events.jsonl holds them: tick, time, kind,
+        detail, and source when there is one."""
         written = int(self.header[W_WRITTEN])
         self.next_seq = max(self.next_seq, written - self.capacity)
         out = []
         while self.next_seq < written:
             slot = self.rows[self.next_seq % self.capacity].copy()
             if int(slot["seq"]) == self.next_seq:
-                out.append((int(slot["tick"]), float(slot["time"]),
-                            slot["kind"].decode("utf-8", "replace"),
-                            self._detail(int(slot["at"]), int(slot["size"]))))
+                event = {"tick": int(slot["tick"]), "time": float(slot["time"]),
+                         "kind": slot["kind"].decode("utf-8", "replace"),
+                         "detail": self._detail(int(slot["at"]), int(slot["size"]))}
+                if slot["source"]:
+                    event["source"] = slot["source"].decode("utf-8", "replace")
+                out.append(event)
             self.next_seq += 1
         return out
 
