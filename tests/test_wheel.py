@@ -58,11 +58,15 @@ def fresh_install(wheel: Path, venv: Path) -> Path:
 
 def test_a_built_wheel_runs_the_demo_outside_the_checkout(tmp_path: Path) -> None:
     wheel = build_wheel(tmp_path)
-    shipped = {f"plantrig/configs/{p.relative_to(REPO / 'configs').as_posix()}"
-               for p in (REPO / "configs").rglob("*")
-               if p.is_file() and "__pycache__" not in p.parts}
-    in_wheel = {n for n in zipfile.ZipFile(wheel).namelist() if n.startswith("plantrig/configs/")}
-    assert in_wheel == shipped   # every rig, rehearsal, campaign and the tank's ODE module
+    # every file of every folder pyproject maps onto the package: code, the rigs,
+    # rehearsals, parts and campaign of configs/, the tank's ODE module, the starters
+    tree = set()
+    for package, folder in PYPROJECT["tool"]["setuptools"]["package-dir"].items():
+        tree |= {f"{package.replace('.', '/')}/{p.relative_to(REPO / folder).as_posix()}"
+                 for p in (REPO / folder).rglob("*")
+                 if p.is_file() and "__pycache__" not in p.parts}
+    in_wheel = {n for n in zipfile.ZipFile(wheel).namelist() if n.startswith("plantrig/")}
+    assert in_wheel == tree
 
     venv = tmp_path / "venv"
     site = fresh_install(wheel, venv)
