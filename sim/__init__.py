@@ -10,8 +10,9 @@ does not import the rest.
 
 from __future__ import annotations
 
-from importlib import import_module
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
+
+from plantrig._lazy import lazy_names
 
 # the module (under plantrig.sim) each public name lives in
 _HOME: dict[str, str] = {
@@ -150,16 +151,7 @@ _HOME: dict[str, str] = {
 __all__ = sorted(_HOME)
 
 
-def __getattr__(name: str) -> Any:
-    if name not in _HOME:
-        raise AttributeError(f"module 'plantrig.sim' has no attribute {name!r}")
-    value = getattr(import_module(f"plantrig.sim.{_HOME[name]}"), name)
-    globals()[name] = value  # the next lookup is a plain attribute
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(__all__)
+__getattr__, __dir__ = lazy_names(__name__, _HOME, __all__)
 
 
 if TYPE_CHECKING:  # type checkers and editors see every name where it lives
