@@ -34,6 +34,7 @@ from plantrig._campaign_out import (
     write_manifest,
     write_tables,
 )
+from plantrig._model_trust import TRUST_HELP, model_guard
 from plantrig.sim import Campaign, CampaignFileError, Case, expand, load_campaign, write_atomic
 
 EXIT_MEANINGS = {0: "every case passed", 1: "a case could not be judged",
@@ -64,6 +65,7 @@ def add_parser(sub: Any) -> None:
                    help="finish an interrupted campaign: its folder, or by default the "
                         "newest folder of this campaign in --out")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--trust-model", action="store_true", help=TRUST_HELP)
     p.set_defaults(func=cmd_campaign)
 
 
@@ -81,6 +83,11 @@ def cmd_campaign(args: argparse.Namespace) -> int:
     except ValueError as exc:   # a draw that cannot be made (truncated normal far off)
         print(f"error: {args.file}: {exc}; nothing was run", file=sys.stderr)
         return EXIT_USAGE
+    for rig_file, rig_set in {c.rig_file: c.rig_set for c in cases}.items():
+        refusal = model_guard(rig_file, overrides=rig_set, trust=args.trust_model)
+        if refusal:   # the workers would import it: the same rule as plantrig run
+            print(f"error: {rig_file}: {refusal}", file=sys.stderr)
+            return EXIT_USAGE
     if args.workers is not None and args.workers < 1:
         print(f"error: --workers: expected a whole number >= 1, found {args.workers}",
               file=sys.stderr)

@@ -226,3 +226,21 @@ def test_link_rig_runs_with_its_controller_built_in(tmp_path: Path) -> None:
     row = run_case(case)
     assert row["error"] == "" and row["outcome"] == "completed", row
     assert row["verdicts"] and row["ticks"] > 0
+
+
+def test_a_model_module_from_a_run_folder_is_not_imported_by_workers(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # the tank's run folder: its rig.toml names the module copy beside it, which no
+    # signature vouches for once it is edited; the campaign refuses before any worker
+    assert main(["run", str(TANK), "--fast", "--duration", "1", "--out",
+                 str(tmp_path / "runs")]) == 0
+    [folder] = [p for p in (tmp_path / "runs").iterdir() if p.is_dir()]
+    module = next(folder.glob("*.py"))
+    module.write_text(module.read_text() + "\n# edited after the run\n")
+    campaign = write(tmp_path, f'[campaign]\nname = "t"\n\n[[rigs]]\nfile = '
+                               f'"{folder / "rig.toml"}"\n')
+    capsys.readouterr()
+    assert campaign_command([str(campaign), "--out", str(tmp_path / "c")]) == 2
+    err = capsys.readouterr().err
+    assert "came with the run folder" in err and "--trust-model" in err
+    assert not (tmp_path / "c").exists()
