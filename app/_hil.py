@@ -43,8 +43,7 @@ def link_settings(rig: Any) -> Any:
 
 def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Serve the rig's link with the reference controller until the far end closes."""
-    from plantrig.io import TRANSPORTS, ReferenceController, run_controller
-    from plantrig.io._refcontroller import prefer_realtime
+    from plantrig.io import TRANSPORTS, ReferenceController, prefer_realtime, run_controller
     from plantrig.sim import RigFileError
 
     show_caution()
@@ -174,10 +173,6 @@ def fast_rehearsal(rig: Any) -> Any:
         raise ValueError("a fast run of a rig whose controller is external needs the law "
                          "to rehearse with ([link.controller]), or --port to a controller "
                          "that answers in lockstep")
-    if link.kind != "serial":
-        raise ValueError(f"a fast rehearsal runs the reference controller over a pty, "
-                         f"which serves serial links; for a {link.kind} link start "
-                         "`plantrig controller` yourself and give --port")
     return dataclasses.replace(rig, mode="fast", link=dataclasses.replace(link, lockstep=True))
 
 

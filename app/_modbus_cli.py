@@ -24,9 +24,7 @@ READY_TIMEOUT_S = 20.0
 def run_modbus_controller_cli(args: argparse.Namespace, rig: Any, settings: Any,
                               controller: Any, ready_word: str) -> int:
     """`plantrig controller` for a modbus [link]: poll until the rig goes away."""
-    from plantrig.io._modbus_config import modbus_setup
-    from plantrig.io._modbus_controller import run_modbus_controller
-    from plantrig.io._refcontroller import prefer_realtime
+    from plantrig.io import modbus_setup, prefer_realtime, run_modbus_controller
 
     try:
         setup = modbus_setup(rig, settings, args.port)

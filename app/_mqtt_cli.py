@@ -32,9 +32,7 @@ def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
 
     ``--port`` overrides the broker: a port number or host:port.
     """
-    from plantrig.io._mqtt_config import mqtt_settings
-    from plantrig.io._mqtt_controller import serve_reference
-    from plantrig.io._refcontroller import prefer_realtime
+    from plantrig.io import mqtt_settings, prefer_realtime, serve_reference
 
     try:
         mqtt = mqtt_settings(settings, args.port)
@@ -85,8 +83,7 @@ def link_report(h: dict[str, float]) -> str:
 def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Rig and reference controller through a local mosquitto, in real time."""
     from plantrig._hil import demo_result, reap, wait_ready
-    from plantrig.io import build_link
-    from plantrig.io._broker import BrokerError, LocalBroker
+    from plantrig.io import BrokerError, LocalBroker, build_link
     from plantrig.sim import run_to_folder
 
     show_caution()

@@ -155,8 +155,11 @@ def cmd_run(args: argparse.Namespace) -> int:
     if args.gui and dashboard is None:
         return EXIT_USAGE
     fast = not (realtime or (realtime is None and rig.mode == "realtime"))
-    rehearse = fast and rig.controller.kind == "external" and args.port is None
-    if rehearse:   # the bench's law in lockstep over a pty: the same law as on the bench
+    # a serial bench rig run fast gets the bench's law in lockstep over a pty; an MQTT or
+    # Modbus rig talks to whatever controller serves its broker or server, as on the bench
+    rehearse = (fast and rig.controller.kind == "external" and args.port is None
+                and rig.link is not None and rig.link.kind == "serial")
+    if rehearse:
         from plantrig._hil import fast_rehearsal
         try:
             rig = fast_rehearsal(rig)

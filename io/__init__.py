@@ -35,8 +35,11 @@ _HOME: dict[str, str] = {
         "_frames",
     ),
     **dict.fromkeys(["build_link"], "_link_config"),
-    **dict.fromkeys(["MqttSettings"], "_mqtt_config"),
-    **dict.fromkeys(["MqttControllerPeer"], "_mqtt_controller"),
+    **dict.fromkeys(["modbus_setup"], "_modbus_config"),
+    **dict.fromkeys(["run_modbus_controller"], "_modbus_controller"),
+    **dict.fromkeys(["ModbusLink"], "_modbus_link"),
+    **dict.fromkeys(["MqttSettings", "mqtt_settings"], "_mqtt_config"),
+    **dict.fromkeys(["MqttControllerPeer", "serve_reference"], "_mqtt_controller"),
     **dict.fromkeys(["MqttLink"], "_mqtt_link"),
     **dict.fromkeys(["FdPort", "PtyPair", "open_pty_pair"], "_pty"),
     **dict.fromkeys(
@@ -45,6 +48,7 @@ _HOME: dict[str, str] = {
             "ReferenceController",
             "SerialTransport",
             "Transport",
+            "prefer_realtime",
             "run_controller",
         ],
         "_refcontroller",
@@ -99,6 +103,7 @@ __all__ = [
     "build_link",
     "open_pty_pair",
     "open_serial_port",
+    "prefer_realtime",
     "run_controller",
     # MQTT
     "BrokerError",
@@ -106,6 +111,12 @@ __all__ = [
     "MqttControllerPeer",
     "MqttLink",
     "MqttSettings",
+    "mqtt_settings",
+    "serve_reference",
+    # Modbus
+    "ModbusLink",
+    "modbus_setup",
+    "run_modbus_controller",
 ]
 
 __getattr__, __dir__ = lazy_names(__name__, _HOME, __all__)
@@ -129,8 +140,11 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         encode_frame,
     )
     from plantrig.io._link_config import build_link
-    from plantrig.io._mqtt_config import MqttSettings
-    from plantrig.io._mqtt_controller import MqttControllerPeer
+    from plantrig.io._modbus_config import modbus_setup
+    from plantrig.io._modbus_controller import run_modbus_controller
+    from plantrig.io._modbus_link import ModbusLink
+    from plantrig.io._mqtt_config import MqttSettings, mqtt_settings
+    from plantrig.io._mqtt_controller import MqttControllerPeer, serve_reference
     from plantrig.io._mqtt_link import MqttLink
     from plantrig.io._pty import FdPort, PtyPair, open_pty_pair
     from plantrig.io._refcontroller import (
@@ -138,6 +152,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         ReferenceController,
         SerialTransport,
         Transport,
+        prefer_realtime,
         run_controller,
     )
     from plantrig.io._serial_link import BytePort, LinkError, SerialLink, open_serial_port

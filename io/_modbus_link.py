@@ -26,8 +26,7 @@ import numpy as np
 from plantrig.io._modbus_config import modbus_setup
 from plantrig.io._modbus_worker import STATE_STRUCT, command_struct, sensor_struct
 from plantrig.io._rig_state import RigState
-from plantrig.sim import Event, LinkSettings, Rig, silent_ticks_allowed
-from plantrig.sim._contracts import Vector
+from plantrig.sim import Event, LinkSettings, Rig, Vector, silent_ticks_allowed
 
 SOCKET_BUFFER = 1 << 16
 LATENCY_BINS = 64

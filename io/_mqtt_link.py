@@ -36,8 +36,7 @@ from plantrig.io._mqtt_worker import (
     worker_main,
 )
 from plantrig.io._rig_state import RigState
-from plantrig.sim import Event, Rig, Signal, silent_ticks_allowed
-from plantrig.sim._contracts import Vector
+from plantrig.sim import Event, Rig, Signal, Vector, silent_ticks_allowed
 
 SOCKET_BUFFER = 1 << 16
 LATENCY_BINS = 64

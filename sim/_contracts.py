@@ -10,7 +10,7 @@ for bad controller input (count it and report an event instead).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 from numpy.typing import NDArray
@@ -35,6 +35,14 @@ class Event:
     kind: str
     detail: str = ""
     source: str = ""
+
+    def record(self) -> dict[str, Any]:
+        """The event as events.jsonl holds it (source only when there is one)."""
+        line: dict[str, Any] = {"tick": self.tick, "time": self.time, "kind": self.kind,
+                                "detail": self.detail}
+        if self.source:
+            line["source"] = self.source
+        return line
 
 
 class SignalChain(Protocol):

@@ -237,7 +237,8 @@ class Engine:
     def _record_event(self, event: Event) -> None:
         self.events.append(event)
         if self.event_tape is not None:
-            self.event_tape.append(event.tick, event.time, event.kind, event.detail)
+            self.event_tape.append(event.tick, event.time, event.kind, event.detail,
+                                   event.source)
         self.safety.on_event(event)        # a link loss may trip an interlock
         if self.scenario is not None:
             self.scenario.on_event(event)  # trips and phases may arm scenario steps

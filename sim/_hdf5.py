@@ -13,7 +13,8 @@ Layout::
                            compressed (shuffle + gzip, filters every HDF5 build has);
                            attrs column, index, unit, description, min, max (NaN where
                            the rig gives no bound)
-    /events              compound (tick int64, time float64, kind str, detail str)
+    /events              compound (tick int64, time float64, kind str, detail str,
+                         source str: "rehearsed" for a fault's doing, else "")
     /sources/<file>      text of the rig file, model module, scenario file
 
 Groups by column prefix: see GROUPS. h5py is an optional dependency, imported here only.
@@ -105,11 +106,11 @@ def write_run_h5(path: Path, blocks: Iterable[NDArray[np.float64]],
                 done = end
             text = h5py.string_dtype()
             dtype = np.dtype([("tick", np.int64), ("time", np.float64), ("kind", text),
-                              ("detail", text)])
+                              ("detail", text), ("source", text)])
             table = np.empty(len(events), dtype=dtype)
             for i, ev in enumerate(events):
                 table[i] = (int(ev["tick"]), float(ev["time"]), str(ev["kind"]),
-                            str(ev.get("detail", "")))
+                            str(ev.get("detail", "")), str(ev.get("source", "")))
             f.create_dataset("events", data=table)
             src = f.create_group("sources")
             for name, body in sources.items():
@@ -158,9 +159,13 @@ def read_run_h5(path: Path, columns: list[str] | None = None,
             info.append({"name": name, "unit": str(ds.attrs["unit"]),
                          "description": str(ds.attrs["description"]),
                          "min": _bound(ds.attrs["min"]), "max": _bound(ds.attrs["max"])})
+        table = f["events"][()]
         events = [{"tick": int(e["tick"]), "time": float(e["time"]),
-                   "kind": _text(e["kind"]), "detail": _text(e["detail"])}
-                  for e in f["events"][()]]
+                   "kind": _text(e["kind"]), "detail": _text(e["detail"])} for e in table]
+        if table.dtype.names and "source" in table.dtype.names:   # older records have none
+            for event, row in zip(events, table, strict=True):
+                if _text(row["source"]):
+                    event["source"] = _text(row["source"])
         sources = {name: _text(ds[()]) for name, ds in f["sources"].items()}
         attrs: dict[str, Any] = {}
         for key, value in f.attrs.items():

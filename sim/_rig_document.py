@@ -11,7 +11,7 @@ files: a rig file lists them at its top, and its own sections add to them::
     [link]
     port = "/dev/ttyACM0"    # a local override of the bench file's [link]
 
-Rules (docs/rig_files.md, "Parts"): paths are relative to the file that names them; a
+Rules (docs/rigfile.md, "Parts"): paths are relative to the file that names them; a
 part may name parts of its own; the parts are taken in order, and two parts giving the
 same section is a mistake naming both; the rig file's own tables are merged over what
 the parts give, key by key (its arrays of tables replace theirs whole); a part that leads

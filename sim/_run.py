@@ -197,7 +197,7 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
         event_tape.close(unlink=True)
     if recorder.exitcode != 0:   # events.jsonl from the loop's own complete list
         write_atomic(folder / "events.jsonl", "".join(
-            json.dumps({"tick": e.tick, "time": e.time, "kind": e.kind, "detail": e.detail})
+            json.dumps(e.record())
             + "\n" for e in outcome.events).encode())
     recorded = count_ticks(folder, len(columns))
     recorder_status = json.loads(status.read_text()) if status.exists() else {}

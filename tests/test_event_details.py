@@ -34,14 +34,14 @@ def test_details_of_every_length_come_back_whole(tmp_path: Path) -> None:
         for k, detail in enumerate(sent):
             writer.append(k, k * 0.5, "phase", detail)
         got = reader.read_new()
-        assert [g[3] for g in got] == sent
-        assert [(g[0], g[1], g[2]) for g in got] == [(k, k * 0.5, "phase")
-                                                      for k in range(len(sent))]
+        assert [g["detail"] for g in got] == sent
+        assert [(g["tick"], g["time"], g["kind"]) for g in got] == [
+            (k, k * 0.5, "phase") for k in range(len(sent))]
         # many more than the heap holds, read as they come: each wraps the heap in turn
         for k in range(100):
             detail = TEXT[k:k + 3000 + 17 * k]
             writer.append(k, 0.0, "long", detail)
-            assert reader.read_new() == [(k, 0.0, "long", detail)]
+            assert reader.read_new() == [{"tick": k, "time": 0.0, "kind": "long", "detail": detail}]
     finally:
         writer.close(unlink=True)
         reader.close()
@@ -52,7 +52,8 @@ def test_a_detail_beyond_a_quarter_of_the_heap_is_cut_with_a_marker(tmp_path: Pa
     try:
         huge = "z" * 10_000
         tape.append(1, 0.0, "model_error", huge)
-        [(_, _, _, detail)] = tape.read_new()
+        [event] = tape.read_new()
+        detail = event["detail"]
         head, marker = detail.split(" [... cut: ")
         assert huge.startswith(head) and len(detail.encode()) <= tape.max_detail
         assert marker == f"10000 bytes in all, the event record keeps the first {len(head)}]"
@@ -68,9 +69,9 @@ def test_a_reader_left_behind_gets_a_marker_not_a_torn_detail(tmp_path: Path) ->
         for k in range(1, 6):               # 5000 more bytes: the heap (4096) laps "first"
             writer.append(k, 0.0, "next", "b" * 1000)
         got = reader.read_new()
-        assert got[0][3] == ("[detail of 1000 bytes overwritten before it was read: the "
+        assert got[0]["detail"] == ("[detail of 1000 bytes overwritten before it was read: the "
                              "event heap is full of newer details]")
-        assert [g[3] for g in got[2:]] == ["b" * 1000] * 4
+        assert [g["detail"] for g in got[2:]] == ["b" * 1000] * 4
     finally:
         writer.close(unlink=True)
         reader.close()

@@ -224,9 +224,11 @@ def test_rtu_crc_check_values() -> None:
 
 
 def test_register_map_mistakes_are_rig_errors(tmp_path: Path) -> None:
-    src = rig_text(DEMO).replace(
-        'motor_current = { address = 6, type = "int16", scale = 0.01 }',
-        'motor_current = { address = 5, type = "int12" }\nspeed = { address = 9 }')
+    shipped = rig_text(DEMO)
+    register = '[link.registers.motor_current]\naddress = 6\ntype = "int16"\nscale = 0.01\n'
+    assert register in shipped
+    src = shipped.replace(register, '[link.registers.motor_current]\naddress = 5\n'
+                          'type = "int12"\n\n[link.registers.speed]\naddress = 9\n')
     path = tmp_path / "rig.toml"
     path.write_text(src)
     issues = {i.key: i.message for i in rig_issues(path)}

@@ -79,6 +79,10 @@ def test_every_shipped_rehearsal_reruns_bit_for_bit(tmp_path: Path, rig: str,
     kinds = ("trip", "reset", "fault_injected", "fault_cleared", "link_lost", "phase")
     assert [(e["tick"], e["kind"]) for e in a.events if e["kind"] in kinds] == \
         [(e["tick"], e["kind"]) for e in b.events if e["kind"] in kinds]
+    # the record says which link losses a fault made, so a rerun never reads the wording
+    links = [e for e in a.events if e["kind"] in ("link_lost", "link_restored")]
+    assert all(e.get("source") == "rehearsed" for e in links)
+    assert len(links) == (2 if scenario == "link_lost" else 0)
 
 
 def test_model_module_from_a_folder_needs_trust(tmp_path: Path,
