@@ -97,9 +97,7 @@ def context(record: RunRecord) -> PlotContext:
         try:
             rig = load_rig_as_data(rig_path)
             ctx.limits = list(rig.limits)
-            for loop in rig.controller.settings.get("loops", []):
-                if loop.get("measure") and loop.get("reference"):
-                    ctx.loops[loop["measure"]] = loop["reference"]
+            ctx.loops.update(rig.controller.loop_pairs())
         except RigFileError as exc:
             ctx.rig_note = (f"rig.toml cannot be read by this version ({exc.issues[0]}): "
                             "no limit lines or loops")

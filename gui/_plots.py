@@ -112,5 +112,4 @@ def plot_specs(groups: ColumnGroups, rig: Rig) -> list[PlotSpec]:
 
 def _loop_pairs(rig: Rig) -> dict[str, str]:
     """Output name -> reference name, from the built-in controller's loops."""
-    loops = rig.controller.settings.get("loops", []) if rig.controller.kind == "pid" else []
-    return {str(loop["measure"]): str(loop["reference"]) for loop in loops}
+    return rig.controller.loop_pairs()

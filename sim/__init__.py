@@ -35,6 +35,7 @@ _HOME: dict[str, str] = {
     ),
     **dict.fromkeys(["ControllerLink", "Event", "SignalChain"], "_contracts"),
     **dict.fromkeys(["OpenLoop", "Pid", "PidLoops", "StateFeedback"], "_controllers"),
+    **dict.fromkeys(["ControllerSpec", "PidLoopSpec"], "_controller_settings"),
     **dict.fromkeys(["Engine", "RunOutcome", "build_controller", "tick_columns"], "_engine"),
     **dict.fromkeys(
         ["Checker", "RigFileError", "RigIssue", "describe_value", "did_you_mean", "one_of"],
@@ -84,7 +85,6 @@ _HOME: dict[str, str] = {
     ),
     **dict.fromkeys(
         [
-            "ControllerSpec",
             "NamedReference",
             "Rig",
             "Signal",
@@ -195,6 +195,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         eng_to_counts,
     )
     from plantrig.sim._contracts import ControllerLink, Event, SignalChain, Vector
+    from plantrig.sim._controller_settings import ControllerSpec, PidLoopSpec
     from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
     from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
     from plantrig.sim._export import export_csv, export_mat
@@ -261,7 +262,6 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         run_folder_of,
     )
     from plantrig.sim._rigfile import (
-        ControllerSpec,
         NamedReference,
         Rig,
         Signal,

@@ -95,30 +95,29 @@ def tick_columns(rig: Rig) -> tuple[list[str], list[str]]:
 def build_controller(rig: Rig) -> Controller | None:
     """The built-in controller the rig file asks for (None for an external one)."""
     spec = rig.controller
-    s = spec.settings
     inputs = [i.name for i in rig.inputs]
     outputs = [o.name for o in rig.outputs]
     refs = [r.name for r in rig.references]
     if spec.kind == "pid":
         loops = []
-        for ls in s["loops"]:
-            drive = inputs.index(ls["drive"])
-            lo = ls["drive_low"] if ls["drive_low"] is not None else rig.inputs[drive].min
-            hi = ls["drive_high"] if ls["drive_high"] is not None else rig.inputs[drive].max
-            loops.append(Pid(measure=outputs.index(ls["measure"]), drive=drive,
-                             reference=refs.index(ls["reference"]), kp=ls["kp"], ki=ls["ki"],
-                             kd=ls["kd"], dt=rig.tick, derivative_lag=ls["derivative_lag"],
-                             drive_low=lo, drive_high=hi, windup=ls["windup"],
-                             unwind_time=ls["unwind_time"]))
+        for loop in spec.loops:
+            drive = inputs.index(loop.drive)
+            lo = loop.drive_low if loop.drive_low is not None else rig.inputs[drive].min
+            hi = loop.drive_high if loop.drive_high is not None else rig.inputs[drive].max
+            loops.append(Pid(measure=outputs.index(loop.measure), drive=drive,
+                             reference=refs.index(loop.reference), kp=loop.kp, ki=loop.ki,
+                             kd=loop.kd, dt=rig.tick, derivative_lag=loop.derivative_lag,
+                             drive_low=lo, drive_high=hi, windup=loop.windup,
+                             unwind_time=loop.unwind_time))
         return loops[0] if len(loops) == 1 else PidLoops(loops)  # one call less per tick
-    if spec.kind == "state_feedback":
-        order = [refs.index(r) for r in s["references"]]
+    if spec.kind == "state_feedback" and spec.K is not None and spec.N is not None:
+        order = [refs.index(r) for r in spec.references]
         n_matrix = np.zeros((len(inputs), len(refs)))
-        n_matrix[:, order] = s["N"]
-        return StateFeedback(s["K"], n_matrix, np.array([i.min for i in rig.inputs]),
+        n_matrix[:, order] = spec.N
+        return StateFeedback(spec.K, n_matrix, np.array([i.min for i in rig.inputs]),
                              np.array([i.max for i in rig.inputs]))
     if spec.kind == "open_loop":
-        return OpenLoop([(inputs.index(i), refs.index(r)) for i, r in s["drive"].items()])
+        return OpenLoop([(inputs.index(i), refs.index(r)) for i, r in spec.drive.items()])
     return None
 
 
@@ -166,8 +165,20 @@ class RunOutcome:
         }
 
 
+class _RunEnds(Exception):
+    """A stage ends the run: the outcome class (sim/_outcome.py) and the reason."""
+
+    def __init__(self, ended: str, reason: str) -> None:
+        super().__init__(reason)
+        self.ended, self.reason = ended, reason
+
+
 class Engine:
-    """Runs one rig for its duration, in real time or as fast as possible."""
+    """Runs one rig for its duration, in real time or as fast as possible.
+
+    run() primes the link, then each tick paces (real time or tape room) and runs the
+    stages in the order of this module's docstring, one method each.
+    """
 
     def __init__(self, rig: Rig, tape: TapeLike, *, realtime: bool | None = None,
                  clock: Clock | None = None, link: ControllerLink | None = None,
@@ -223,6 +234,18 @@ class Engine:
         # the link's optional state(tick, state, detail) (sim/_contracts.py), told on changes
         self._tell_link = getattr(link, "state", None)
         self._told: tuple[str, str] | None = None
+        # what the stages read each tick, fixed for the run
+        self.tick_ns = int(round(rig.tick * 1e9))
+        self.ref_values = [(i, r.waveform.value) for i, r in enumerate(rig.references)]
+        self.hold_on_silence = rig.on_link_silence == "hold"
+        self.poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick)))
+        self.demand = np.zeros(m)           # u before the safe values, for the limits
+        # what the run counts, and the pacing's state
+        self.lateness, self.work_time = DurationHistogram(), DurationHistogram()
+        self.overruns = self.skipped = self.done = self.answered = 0
+        self.loop_start = 0
+        self._start = self._slot = self._streak = self._began = self._late = 0
+        self._room = 0
 
     def request_stop(self, why: str = "stop requested") -> None:
         """Ask the loop to end at the next tick boundary (from a signal handler, say);
@@ -288,232 +311,276 @@ class Engine:
             self._event(k, "command_refused", f"{command.kind}: not available in this run")
 
     def run(self) -> RunOutcome:
-        """Run every tick; whatever happens, end the tape and return the outcome."""
-        rig = self.rig
-        n_ticks = rig.n_ticks
-        tick_ns = int(round(rig.tick * 1e9))
-        lateness, work_time = DurationHistogram(), DurationHistogram()
-        overruns = skipped = done = answered = 0
+        """Run every tick; whatever happens, end the tape and return the outcome.
+
+        A stage that ends the run raises _RunEnds with the outcome class and reason;
+        an error from the model, controller or link ends it as a fault. Both are caught
+        here, in the one place that closes the run.
+        """
+        wall_start = self.clock.now_ns()
         ended, reason = COMPLETED, "duration reached"
         report: RealtimeReport | None = None
+        try:
+            self._prime()
+            with _maybe_realtime(self.realtime, self.tick_ns) as report:
+                self._ticks()
+        except _RunEnds as end:
+            ended, reason = end.ended, end.reason
+        except Exception as exc:  # the one stop path for model, controller and link errors
+            self._event(self.done, "error", "".join(
+                traceback.format_exception_only(type(exc), exc)).strip())
+            ended, reason = FAULT, f"{type(exc).__name__}: {exc}"
+        finally:
+            loop_end = self.clock.now_ns() if self.loop_start else 0
+            ended, reason, rules, health = self._close(ended, reason)
+        wall_s = (self.clock.now_ns() - wall_start) / 1e9
+        return RunOutcome(self.done, ended, reason, self.events, self.lateness,
+                          self.work_time, self.overruns, self.skipped, wall_s, report,
+                          health, rules, self.answered,
+                          max(0, loop_end - self.loop_start) / 1e9)
+
+    # -- before tick 0 and the loop ------------------------------------------------------
+
+    def _prime(self) -> None:
+        """What the controller sees before tick 0: the output at x0 with the safe input;
+        the link opened and sent those values, so its answer is there at tick 0 as the
+        built-in controller's is (docs/protocol.md, tick stamps)."""
         self.cmd[:] = self.safe_u
-        # what the controller sees before tick 0: the output at x0 with the safe input
         self.stepper.u[:] = self.safe_u
         self.stepper.output_only(0.0)
         if self.sensor_chain is not None:
             self.sensor_chain.apply(-1, self.stepper.y, self.sent)
         else:
             self.sent[:] = self.stepper.y
-        ref_values = [(i, r.waveform.value) for i, r in enumerate(rig.references)]
-        stepper, row, tape, clock = self.stepper, self.row, self.tape, self.clock
-        controller, link = self.controller, self.link
-        actuator, sensor = self.actuator_chain, self.sensor_chain
-        cmd, r, u, sent, y_rec = self.cmd, self.r, stepper.u, self.sent, self.y_rec
-        hold_on_silence = rig.on_link_silence == "hold"
-        poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick)))
-        override = self.ref_override
-        safety, faults, scenario = self.safety, self.faults, self.scenario
-        demand = np.zeros(len(rig.inputs))     # u before the safe values, for the limits
-        streak, streak_trip = 0, rig.safety.overrun_streak
-        wall_start = clock.now_ns()
-        loop_start = loop_end = 0
+        if self.link is not None:
+            self.link.open()
+            self._link_state(-1, "running")
+            self.link.send(-1, -self.rig.tick, self.sent)
+        self._room = self.tape.free()
+
+    def _ticks(self) -> None:
+        """The tick loop: pacing, then the stages of one tick in their fixed order."""
+        clock, tick = self.clock, self.rig.tick
+        pace = self._wait_for_deadline if self.realtime else self._wait_for_tape_room
+        self._start = clock.now_ns() + START_LEAD_NS
+        self.loop_start = self._start if self.realtime else clock.now_ns()
+        # wall-clock UTC of tick 0: its deadline in real time, the loop start if fast
+        self.tick0_unix_ns = time.time_ns() + (START_LEAD_NS if self.realtime else 0)
+        for k in range(self.rig.n_ticks):
+            if self.stop_requested:
+                raise _RunEnds(STOPPED, self.stop_why)
+            t = k * tick
+            pace(k)
+            self._take_orders(k)
+            fresh = self._controller_command(k, t)
+            forced = self._plant_input(k)
+            self._plant_step(k, t, forced)
+            self._sense_and_send(k, t)
+            self._record(k, t, fresh)
+
+    # -- pacing: real time or as fast as the recorder keeps up ---------------------------
+
+    def _wait_for_deadline(self, k: int) -> None:
+        """Real time: sleep to tick k's slot; count lateness, overruns and skipped slots.
+        A streak of late ticks is a safety cause; on_overrun = 'stop' ends the run."""
+        clock, tick_ns = self.clock, self.tick_ns
+        deadline = self._start + self._slot * tick_ns
+        clock.sleep_until_ns(deadline)
+        self._began = began = clock.now_ns()
+        self._late = late = began - deadline
+        self.lateness.add(late)
+        if late >= tick_ns:
+            self.overruns += 1
+            self._streak += 1
+            rig = self.rig
+            if self._streak == rig.safety.overrun_streak:
+                self.safety.cause(k, "overruns", f"{self._streak} ticks in a row started late")
+            if rig.on_overrun == "stop":
+                self._event(k, "overrun", f"tick started {late / 1e6:.3f} ms late; "
+                                          "on_overrun = 'stop'")
+                raise _RunEnds(FAULT, "real time not held: a tick started late and "
+                                      "on_overrun = 'stop'")
+            if rig.on_overrun == "skip":
+                missed = late // tick_ns
+                self._slot += missed
+                self.skipped += missed
+        elif self._streak:
+            if self._streak >= self.rig.safety.overrun_streak:
+                self.safety.clear_cause("overruns")
+            self._streak = 0
+        self._slot += 1
+
+    def _wait_for_tape_room(self, k: int) -> None:
+        """Fast mode: never outrun the recorder; wait when the tape is full."""
+        self._room -= 1
+        if self._room < 0:
+            self.tape.wait_for_room()   # returns early if the recorder stops
+            self._room = self.tape.free() - 1
+
+    # -- the stages of tick k --------------------------------------------------------------
+
+    def _take_orders(self, k: int) -> None:
+        """Operator commands (and the recorder's health) every few ms of plant time,
+        fault expiry, and the scenario steps due at tick k."""
+        if k % self.poll_every == 0 or self._room < 0:
+            problem = self.tape.recorder_error()
+            if problem != RECORDER_OK:
+                raise _RunEnds(FAULT, self._recorder_stopped(k, problem))
+            if self.commands is not None:
+                for command in self.commands.take():
+                    self._apply_command(k, command)
+        faults = self.faults
+        if faults.on and k >= faults.next_end:
+            faults.expire(k)
+        scenario = self.scenario
+        if scenario is not None and k >= scenario.next_tick:
+            for command in scenario.due(k):
+                self._apply_command(k, command)
+
+    def _controller_command(self, k: int, t: float) -> bool:
+        """1. The references r(t_k), then the command: the link's newest (after link
+        faults) or the built-in controller's. Whether it is fresh."""
+        r, cmd, faults, link = self.r, self.cmd, self.faults, self.link
+        for i, value in self.ref_values:
+            r[i] = value(t)
+        if self.any_override:
+            np.copyto(r, self.ref_override, where=~np.isnan(self.ref_override))
+        if link is not None:
+            fresh = link.receive(k, t, cmd)
+            self.answered += fresh
+            for ev in link.drain_events():
+                self._record_event(ev)
+        else:
+            self.controller.compute(  # type: ignore[union-attr]
+                t, faults.delivered if faults.link_out_on else self.sent, r, cmd)
+            fresh = True
+        if faults.link_in_on:
+            fresh = faults.incoming(k, t, cmd, fresh)
+        if not fresh and not self.hold_on_silence:
+            cmd[:] = self.safe_u
+        return fresh
+
+    def _plant_input(self, k: int) -> bool:
+        """2. Actuator chain and faults, 3. safety: a non-finite command never reaches
+        the plant (u keeps last tick's good value); a latched stop forces the safe
+        inputs. Whether they were forced (the demanded u is kept for the limits)."""
+        cmd, u = self.cmd, self.stepper.u
+        if not math.isfinite(cmd.dot(cmd)):  # NaN/inf anywhere (or |v| > 1e154)
+            self._event(k, "non_finite_input", f"command {cmd.tolist()}; last good input held")
+        elif self.actuator_chain is not None:
+            self.actuator_chain.apply(k, cmd, u)
+        else:
+            u[:] = cmd
+        if self.faults.actuator_on:
+            self.faults.actuator(k, u)
+        forced = self.safety.forcing
+        if forced:
+            self.demand[:] = u
+            self.safety.force(u)
+        return forced
+
+    def _plant_step(self, k: int, t: float, forced: bool) -> None:
+        """4. y_k and x_{k+1} from (x_k, u_k), both already in the record; x moves to
+        x_{k+1} only after the record. The limits judge the demanded input; a trip in
+        this tick steps again with the safe inputs, so safety acts in its cause's tick."""
+        stepper, safety = self.stepper, self.safety
+        if self.faults.plant_on:
+            self.faults.plant(k)
+        stepper.step(t)
+        self.y_rec[:] = stepper.y
+        if safety.checking:
+            u = stepper.u
+            if forced:
+                u[:] = self.demand
+            if safety.check(k):
+                safety.force(u)
+                stepper.step(t)
+                self.y_rec[:] = stepper.y
+            elif forced:
+                safety.force(u)
+
+    def _sense_and_send(self, k: int, t: float) -> None:
+        """5. Sensor chain and faults, 6. the values to the link (through link faults)."""
+        sent, faults = self.sent, self.faults
+        if self.sensor_chain is not None:
+            self.sensor_chain.apply(k, self.stepper.y, sent)
+        else:
+            sent[:] = self.stepper.y
+        if faults.sensor_on:
+            faults.sensor(k, t, sent)
+        if faults.link_out_on:
+            faults.outgoing(k, t, sent, self.link)
+        elif self.link is not None:
+            self.link.send(k, t, sent)
+
+    def _record(self, k: int, t: float, fresh: bool) -> None:
+        """7. One row on the tape, then x moves on (unless frozen). A non-finite state,
+        a trip that stops, or a tape the recorder fell behind on ends the run here."""
+        row, stepper, safety = self.row, self.stepper, self.safety
+        row[1] = t
+        row[4] = 1.0 if fresh else 0.0
+        if self.realtime:
+            row[2] = self._late / 1e9
+            work = self.clock.now_ns() - self._began
+            self.work_time.add(work)
+            row[3] = work / 1e9
+            if self.tape.free() <= 0:
+                self._event(k, "tape_overflow", "recorder fell a full ring behind")
+                raise _RunEnds(FAULT, "tape overflow: the recorder fell a full ring behind")
+        x_next = stepper.x_next
+        finite = math.isfinite(x_next.dot(x_next))  # a dot is half a sum's cost
+        if not finite:
+            safety.cause(k, "non_finite", f"x = {x_next.tolist()}")
+        self.tape.append(row)
+        self.done = k + 1
+        if not safety.freezing:
+            stepper.commit()
+        if self.scenario is not None and self.scenario.watching:
+            self.scenario.after_record(k, row)
+        if not finite:
+            self._event(k, "non_finite_state", f"x = {stepper.x_next.tolist()}")
+            raise _RunEnds(FAULT, "model error: plant state became NaN or infinite")
+        if safety.stop_reason:
+            raise _RunEnds(TRIPPED, safety.stop_reason)
+
+    # -- after the last tick ---------------------------------------------------------------
+
+    def _close(self, ended: str, reason: str) -> tuple[str, str, list[RuleResult],
+                                                        dict[str, float]]:
+        """Drain and close the link, end the tape, judge the acceptance rules; the
+        outcome class and reason they settle, the rules, and the link's health."""
+        link, done = self.link, self.done
+        health: dict[str, float] = {k: v for k, v in self.faults.health().items() if v}
         try:
             if link is not None:
-                link.open()
-                self._link_state(-1, "running")
-                # prime: the values before tick 0, so the controller's answer is there at
-                # tick 0 as the built-in controller's is (docs/protocol.md, tick stamps)
-                link.send(-1, -rig.tick, sent)
-            room = tape.free()
-            realtime, commands = self.realtime, self.commands
-            with _maybe_realtime(realtime, tick_ns) as report:
-                start = clock.now_ns() + START_LEAD_NS
-                loop_start = start if realtime else clock.now_ns()
-                # wall-clock UTC of tick 0: its deadline in real time, the loop start if fast
-                self.tick0_unix_ns = time.time_ns() + (START_LEAD_NS if realtime else 0)
-                slot = 0
-                for k in range(n_ticks):
-                    if self.stop_requested:
-                        ended, reason = STOPPED, self.stop_why
-                        break
-                    t = k * rig.tick
-                    if realtime:
-                        deadline = start + slot * tick_ns
-                        clock.sleep_until_ns(deadline)
-                        began = clock.now_ns()
-                        late = began - deadline
-                        lateness.add(late)
-                        if late >= tick_ns:
-                            overruns += 1
-                            streak += 1
-                            if streak == streak_trip:
-                                safety.cause(k, "overruns", f"{streak} ticks in a row started "
-                                                            "late")
-                            if rig.on_overrun == "stop":
-                                self._event(k, "overrun", f"tick started {late / 1e6:.3f} ms "
-                                                          "late; on_overrun = 'stop'")
-                                ended, reason = FAULT, "real time not held: a tick " \
-                                                       "started late and on_overrun = 'stop'"
-                                break
-                            if rig.on_overrun == "skip":
-                                missed = late // tick_ns
-                                slot += missed
-                                skipped += missed
-                        elif streak:
-                            if streak >= streak_trip:
-                                safety.clear_cause("overruns")
-                            streak = 0
-                        slot += 1
-                    else:
-                        began = 0
-                        room -= 1
-                        if room < 0:
-                            tape.wait_for_room()   # returns early if the recorder stops
-                            room = tape.free() - 1
-                    if k % poll_every == 0 or room < 0:  # slow checks, every 5 ms of plant time
-                        problem = tape.recorder_error()
-                        if problem != RECORDER_OK:
-                            ended, reason = FAULT, self._recorder_stopped(k, problem)
-                            break
-                        if commands is not None:
-                            for command in commands.take():
-                                self._apply_command(k, command)
-                    if faults.on and k >= faults.next_end:
-                        faults.expire(k)
-                    if scenario is not None and k >= scenario.next_tick:
-                        for command in scenario.due(k):
-                            self._apply_command(k, command)
-                    # 1. read link / built-in controller
-                    for i, value in ref_values:
-                        r[i] = value(t)
-                    if self.any_override:
-                        np.copyto(r, override, where=~np.isnan(override))
-                    if link is not None:
-                        fresh = link.receive(k, t, cmd)
-                        answered += fresh
-                        for ev in link.drain_events():
-                            self._record_event(ev)
-                    else:
-                        controller.compute(  # type: ignore[union-attr]
-                            t, faults.delivered if faults.link_out_on else sent, r, cmd)
-                        fresh = True
-                    if faults.link_in_on:
-                        fresh = faults.incoming(k, t, cmd, fresh)
-                    if not fresh and not hold_on_silence:
-                        cmd[:] = self.safe_u
-                    # 2. actuator chain, 3. safety: a non-finite command never reaches the
-                    #    plant (u keeps last tick's good value); a latched stop forces the
-                    #    safe state
-                    if not math.isfinite(cmd.dot(cmd)):  # NaN/inf anywhere (or |v| > 1e154)
-                        self._event(k, "non_finite_input",
-                                    f"command {cmd.tolist()}; last good input held")
-                    elif actuator is not None:
-                        actuator.apply(k, cmd, u)
-                    else:
-                        u[:] = cmd
-                    if faults.actuator_on:
-                        faults.actuator(k, u)
-                    forced = safety.forcing
-                    if forced:
-                        demand[:] = u
-                        safety.force(u)
-                    # 4. plant step: y_k and x_{k+1} from (x_k, u_k), both already in the
-                    #    record; x moves to x_{k+1} only after the record (commit below)
-                    if faults.plant_on:
-                        faults.plant(k)
-                    stepper.step(t)
-                    y_rec[:] = stepper.y
-                    if safety.checking:
-                        if forced:
-                            u[:] = demand          # input limits judge what was asked for
-                        if safety.check(k):
-                            # tripped in this tick: the same step again, with the safe inputs
-                            safety.force(u)
-                            stepper.step(t)
-                            y_rec[:] = stepper.y
-                        elif forced:
-                            safety.force(u)
-                    # 5. sensor chain, 6. write link
-                    if sensor is not None:
-                        sensor.apply(k, stepper.y, sent)
-                    else:
-                        sent[:] = stepper.y
-                    if faults.sensor_on:
-                        faults.sensor(k, t, sent)
-                    if faults.link_out_on:
-                        faults.outgoing(k, t, sent, link)
-                    elif link is not None:
-                        link.send(k, t, sent)
-                    # 7. record
-                    row[1] = t
-                    row[4] = 1.0 if fresh else 0.0
-                    if realtime:
-                        row[2] = late / 1e9
-                        work = clock.now_ns() - began
-                        work_time.add(work)
-                        row[3] = work / 1e9
-                        if tape.free() <= 0:
-                            self._event(k, "tape_overflow", "recorder fell a full ring behind")
-                            ended, reason = FAULT, "tape overflow: the recorder fell a full " \
-                                                   "ring behind"
-                            done = k
-                            break
-                    x_next = stepper.x_next
-                    finite = math.isfinite(x_next.dot(x_next))  # a dot is half a sum's cost
-                    if not finite:
-                        safety.cause(k, "non_finite", f"x = {stepper.x_next.tolist()}")
-                    tape.append(row)
-                    done = k + 1
-                    if not safety.freezing:
-                        stepper.commit()
-                    if scenario is not None and scenario.watching:
-                        scenario.after_record(k, row)
-                    if not finite:
-                        self._event(k, "non_finite_state", f"x = {stepper.x_next.tolist()}")
-                        ended, reason = FAULT, "model error: plant state became NaN or infinite"
-                        break
-                    if safety.stop_reason:
-                        ended, reason = TRIPPED, safety.stop_reason
-                        break
-        except Exception as exc:  # the one stop path for model, controller and link errors
-            self._event(done, "error", "".join(
-                traceback.format_exception_only(type(exc), exc)).strip())
-            ended, reason = FAULT, f"{type(exc).__name__}: {exc}"
+                health.update(link.health())
+                for ev in link.drain_events():
+                    self._record_event(ev)
+            self.safety.finish(done)
+            self.tape.end()
+            problem = self.tape.wait_drained()   # a record the recorder lost is incomplete
+            if problem != RECORDER_OK and ended != FAULT:
+                ended, reason = FAULT, self._recorder_stopped(done, problem)
+            facts = RunFacts(self.rig.n_ticks, done, link is not None,
+                             self.answered if link else done, int(health.get("link_lost", 0)),
+                             self.realtime, self.overruns, self.skipped,
+                             tuple(self.safety.trips))
+            outcome = settle(ended, reason, judge(self.rig.acceptance, facts,
+                                                  self.expected_trips))
+            for rule in outcome.rules if ended == COMPLETED else ():  # they decide it
+                if rule.passed is False:
+                    self._event(done, "rule_failed", f"{rule.rule}: {rule.measured} "
+                                                     f"(needs {rule.needed})")
+            ended, reason = outcome.ended, outcome.reason
+            if self._told is not None:
+                self._link_state(done, "fault" if ended == FAULT else "ended", ended)
         finally:
-            loop_end = clock.now_ns() if loop_start else 0
-            health: dict[str, float] = {k: v for k, v in faults.health().items() if v}
-            try:
-                if link is not None:
-                    health.update(link.health())
-                    for ev in link.drain_events():
-                        self._record_event(ev)
-                self.safety.finish(done)
-                tape.end()
-                problem = tape.wait_drained()   # a record the recorder lost is not complete
-                if problem != RECORDER_OK and ended != FAULT:
-                    ended, reason = FAULT, self._recorder_stopped(done, problem)
-                facts = RunFacts(n_ticks, done, link is not None, answered if link else done,
-                                 int(health.get("link_lost", 0)), self.realtime, overruns,
-                                 skipped, tuple(self.safety.trips))
-                outcome = settle(ended, reason, judge(rig.acceptance, facts,
-                                                      self.expected_trips))
-                for rule in outcome.rules if ended == COMPLETED else ():  # they decide it
-                    if rule.passed is False:
-                        self._event(done, "rule_failed", f"{rule.rule}: {rule.measured} "
-                                                         f"(needs {rule.needed})")
-                ended, reason = outcome.ended, outcome.reason
-                if self._told is not None:
-                    self._link_state(done, "fault" if ended == FAULT else "ended", ended)
-            finally:
-                if link is not None:
-                    link.close()
-            self._event(done, "run_end", f"{ended}: {reason}")
-            if self.event_tape is not None:
-                self.event_tape.end()
-        wall_s = (clock.now_ns() - wall_start) / 1e9
-        return RunOutcome(done, ended, reason, self.events, lateness, work_time, overruns,
-                          skipped, wall_s, report, health, outcome.rules, answered,
-                          max(0, loop_end - loop_start) / 1e9)
+            if link is not None:
+                link.close()
+        self._event(done, "run_end", f"{ended}: {reason}")
+        if self.event_tape is not None:
+            self.event_tape.end()
+        return ended, reason, outcome.rules, health
 
     def _recorder_stopped(self, k: int, problem: int) -> str:
         """Record why the recorder stopped; the reason the run ends with."""

@@ -16,6 +16,7 @@ judges.
 from __future__ import annotations
 
 import dataclasses
+import functools
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
@@ -381,8 +382,7 @@ class LinearStepper:
         n, m, p = A.shape[0], B.shape[1], C.shape[0]
         self.n_states, self.n_inputs, self.n_outputs = n, m, p
         self.model = LtiModel(A, B, dt, discrete, disturbances)
-        self._C = C
-        self._block = np.ascontiguousarray(np.block([[*self.model.discretise(A, B)], [C, D]]))
+        self._C, self._D = C, D
         self._disturbed = False                  # a copy of model.disturbed: read per tick
         self._Ed_d = self.model.Ed_d
         # ``xu`` lets the engine keep [x; u] inside its tick record, saving two copies
@@ -394,6 +394,14 @@ class LinearStepper:
         self.x_next = self._next[:n]
         self.x0 = np.array(x0, dtype=np.float64)
         self.reset()
+
+    @functools.cached_property
+    def _block(self) -> Matrix:
+        """[[Ad, Bd], [C, D]], discretised on first use: `plantrig check` of an LTI rig
+        reads the model's form without paying for scipy's matrix exponential."""
+        model = self.model
+        return np.ascontiguousarray(np.block([[*model.discretise(model.A, model.B)],
+                                              [self._C, self._D]]))
 
     def reset(self) -> None:
         self.x[:] = self.x0

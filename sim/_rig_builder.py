@@ -19,9 +19,10 @@ from typing import Any
 import numpy as np
 import tomli_w
 
+from plantrig.sim._controller_settings import ControllerSpec, controller_table
 from plantrig.sim._plant import DiscretePlant, LinearPlant, from_state_space_object
 from plantrig.sim._references import Ramp, Sine, Step, Table
-from plantrig.sim._rigfile import ControllerSpec, NamedReference, Rig, Signal, build_rig
+from plantrig.sim._rigfile import NamedReference, Rig, Signal, build_rig
 
 PYTHON_FILE = "<python>"
 PATH_KEYS = {"ode": "module", "fmu": "file"}   # plant keys naming a file beside the rig
@@ -123,14 +124,4 @@ def _reference(r: NamedReference | Mapping[str, Any]) -> dict[str, Any]:
 
 
 def _controller(spec: ControllerSpec | Mapping[str, Any]) -> dict[str, Any]:
-    if not isinstance(spec, ControllerSpec):
-        return dict(spec)
-    out: dict[str, Any] = {"kind": spec.kind}
-    for key, value in spec.settings.items():
-        if key == "loops":
-            out[key] = [{k: v for k, v in loop.items() if v is not None} for loop in value]
-        elif isinstance(value, np.ndarray):
-            out[key] = value.tolist()
-        elif value is not None:
-            out[key] = value
-    return out
+    return controller_table(spec) if isinstance(spec, ControllerSpec) else dict(spec)

@@ -12,8 +12,7 @@ from __future__ import annotations
 import dataclasses
 import importlib.util
 import math
-from collections.abc import Callable
-from dataclasses import dataclass, field, fields, is_dataclass
+from dataclasses import dataclass, fields, is_dataclass
 from pathlib import Path
 from typing import Any
 
@@ -28,7 +27,7 @@ from plantrig.sim._checker import (
     is_number,
     one_of,
 )
-from plantrig.sim._controllers import WINDUP
+from plantrig.sim._controller_settings import ControllerSpec, check_controller
 from plantrig.sim._dut import DutSpec, parse_dut
 from plantrig.sim._faults import DisturbanceSpec, parse_disturbances
 from plantrig.sim._interlocks import (
@@ -54,7 +53,6 @@ from plantrig.sim._references import TABLE_BETWEEN, Ramp, Reference, Sine, Step,
 from plantrig.sim._rig_document import RigDocument, read_rig_document
 
 PLANT_KINDS = ("lti", "transfer_function", "discrete_lti", "ode", "fmu")
-CONTROLLER_KINDS = ("pid", "state_feedback", "open_loop", "external")
 REFERENCE_KINDS = ("step", "ramp", "sine", "table", "constant")
 OVERRUN_POLICIES = ("skip", "catch_up", "stop")
 MODES = ("fast", "realtime")
@@ -77,12 +75,6 @@ class NamedReference:
     name: str
     unit: str
     waveform: Reference
-
-
-@dataclass(frozen=True)
-class ControllerSpec:
-    kind: str
-    settings: dict[str, Any] = field(default_factory=dict)
 
 
 PROVENANCE = ("path", "text", "parts", "overrides")   # where a rig came from, not what it is
@@ -226,7 +218,8 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     x0 = _initial_state(c, plant_t, plant)
 
     references = _references(c, doc)
-    controller = _controller(c, doc, inputs, outputs, references, plant)
+    controller = check_controller(c, c.table(doc, "controller", "", required=True),
+                                  "controller", inputs, outputs, references)
 
     link = _link(c, doc, path, name, mode, tick, controller, inputs, outputs, references,
                  plant)
@@ -600,116 +593,6 @@ def _sine(c: Checker, where: str, sine: Sine) -> Sine | None:
     return sine if ok else None
 
 
-PID_KEYS = {"measure", "drive", "reference", "kp", "ki", "kd", "derivative_lag", "windup",
-            "unwind_time", "drive_low", "drive_high"}
-RENAMED_WINDUP = {"back_calculation": "unwind", "clamp": "freeze", "none": "off"}
-RENAMED_PID_KEYS = {           # keys of earlier versions -> the key to write now
-    "derivative_filter": "'derivative_lag'", "tracking_time": "'unwind_time'",
-    "u_min": "'drive_low'", "u_max": "'drive_high'",
-    "anti_windup": "'windup' (back_calculation -> unwind, clamp -> freeze, none -> off)",
-}
-CONTROLLER_KEYS = {
-    "pid": {"loops"},
-    "state_feedback": {"K", "N", "references"},
-    "open_loop": {"drive"},
-    "external": set(),
-}
-
-
-def _controller(c: Checker, doc: dict[str, Any], inputs: list[Signal], outputs: list[Signal],
-                references: list[NamedReference], plant: Plant | None,
-                path: str = "controller") -> ControllerSpec:
-    """The [controller] table (or, with ``path``, a law given elsewhere)."""
-    t = c.table(doc, "controller", "", required=True)
-    kind = c.take(t, "kind", path, "str", check=one_of(CONTROLLER_KINDS))
-    if kind is None:
-        return ControllerSpec("external")
-    c.no_unknown(t, {"kind"} | CONTROLLER_KEYS[kind], path)
-    in_names = [s.name for s in inputs]
-    out_names = [s.name for s in outputs]
-    ref_names = [r.name for r in references]
-
-    def name_in(options: list[str], what: str) -> Callable[[Any], str | None]:
-        return one_of(tuple(options), what)
-
-    settings: dict[str, Any] = {}
-    if kind == "pid":
-        loops = c.take(t, "loops", path, "list")
-        settings["loops"] = []
-        for i, loop in enumerate(loops or []):
-            where = f"{path}.loops[{i}]"
-            if not isinstance(loop, dict):
-                c.add(where, "expected a table ([[controller.loops]]), found "
-                             f"{describe_value(loop)}")
-                continue
-            c.no_unknown(loop, PID_KEYS, where, renamed=RENAMED_PID_KEYS)
-            ls: dict[str, Any] = {
-                "measure": c.take(loop, "measure", where, "str",
-                                  check=name_in(out_names, "plant outputs")),
-                "drive": c.take(loop, "drive", where, "str",
-                                check=name_in(in_names, "plant inputs")),
-                "reference": c.take(loop, "reference", where, "str",
-                                    check=name_in(ref_names, "references")),
-            }
-            for key, default in (("kp", MISSING), ("ki", 0.0), ("kd", 0.0),
-                                 ("derivative_lag", 0.0), ("unwind_time", None),
-                                 ("drive_low", None), ("drive_high", None)):
-                ls[key] = c.take(loop, key, where, "number", default=default)
-            ls["windup"] = c.take(loop, "windup", where, "str", default="unwind",
-                                  check=_windup)
-            settings["loops"].append(ls)
-        drives = [ls["drive"] for ls in settings["loops"] if ls["drive"]]
-        for d in {d for d in drives if drives.count(d) > 1}:
-            c.add(f"{path}.loops", f"input {d!r} is driven by more than one loop")
-    elif kind == "state_feedback":
-        K = c.take(t, "K", path, "matrix")
-        N = c.take(t, "N", path, "matrix")
-        refs = c.take(t, "references", path, "list")
-        if refs is not None:
-            for j, r in enumerate(refs):
-                problem = name_in(ref_names, "references")(r) if isinstance(r, str) else \
-                    f"expected a reference name, found {describe_value(r)}"
-                if problem:
-                    c.add(f"{path}.references[{j}]", problem)
-        m, p = len(inputs), len(outputs)
-        if K is not None:
-            k = np.atleast_2d(np.array(K, dtype=np.float64))
-            if k.shape != (m, p):
-                c.add(f"{path}.K", f"has shape {k.shape}, expected ({m}, {p}) "
-                                      f"(inputs x outputs)")
-            settings["K"] = k
-        if N is not None and refs is not None:
-            nn = np.array(N, dtype=np.float64).reshape(m, -1) if np.size(N) == m * len(refs) \
-                else np.atleast_2d(np.array(N, dtype=np.float64))
-            if nn.shape != (m, len(refs)):
-                c.add(f"{path}.N", f"has shape {nn.shape}, expected ({m}, {len(refs)}) "
-                                      f"(inputs x references)")
-            settings["N"] = nn
-        settings["references"] = refs
-    elif kind == "open_loop":
-        drive = c.take(t, "drive", path, "table")
-        if drive is not None:
-            for inp, ref in drive.items():
-                if inp not in in_names:
-                    c.add(f"{path}.drive.{inp}",
-                          name_in(in_names, "plant inputs")(inp) or "unknown input")
-                elif not isinstance(ref, str) or ref not in ref_names:
-                    c.add(f"{path}.drive.{inp}",
-                          (name_in(ref_names, "references")(ref) or "unknown reference")
-                          if isinstance(ref, str) else f"expected a reference name, "
-                                                       f"found {describe_value(ref)}")
-            settings["drive"] = drive
-    return ControllerSpec(kind, settings)
-
-
-def _windup(value: str) -> str | None:
-    """One of WINDUP; a value of an earlier version names its replacement."""
-    if value in RENAMED_WINDUP:
-        return (f"expected one of {', '.join(WINDUP)}, found {value!r} (an old value); "
-                f"did you mean '{RENAMED_WINDUP[value]}'?")
-    return one_of(WINDUP)(value)
-
-
 def _law(c: Checker, table: Any, path: str, inputs: list[Signal], outputs: list[Signal],
          references: list[NamedReference], plant: Plant | None) -> ControllerSpec | None:
     """A built-in law given outside [controller] (the reference controller's law in
@@ -719,7 +602,7 @@ def _law(c: Checker, table: Any, path: str, inputs: list[Signal], outputs: list[
         c.add(path, f"expected a table, found {describe_value(table)}")
         return None
     before = len(c.issues)
-    spec = _controller(c, {"controller": table}, inputs, outputs, references, plant, path)
+    spec = check_controller(c, table, path, inputs, outputs, references)
     if spec.kind == "external" and len(c.issues) == before:
         c.add(f"{path}.kind", "expected a built-in law (pid, state_feedback, open_loop), "
                               "found 'external'")

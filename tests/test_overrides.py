@@ -46,7 +46,7 @@ def test_override_equals_an_edited_rig_file() -> None:
     doc["controller"]["loops"][0]["kp"] = 30.0
     doc["rig"]["duration"] = 0.4
     edited = build_rig(doc, CONVEYOR)
-    assert rig.controller.settings["loops"][0]["kp"] == 30
+    assert rig.controller.loops[0].kp == 30
     assert rig.n_ticks == 400
     a, b = simulate(rig), simulate(edited)
     assert np.array_equal(a.rows, b.rows)
@@ -61,7 +61,7 @@ def test_run_folder_records_effective_values(tmp_path: Path) -> None:
     assert code == 0
     folder = only_folder(tmp_path)
     copy = load_rig(folder / "rig.toml")
-    assert copy.controller.settings["loops"][0]["kp"] == 30
+    assert copy.controller.loops[0].kp == 30
     assert copy.duration == 0.3 and copy.seed == 5
     assert copy.references[0].waveform.value(0.5) == 0.6
     sources = json.loads((folder / "sources.json").read_text())

@@ -13,6 +13,7 @@ import pytest
 from plantrig.sim import (
     ControllerSpec,
     NamedReference,
+    PidLoopSpec,
     RigFileError,
     Step,
     load_rig,
@@ -26,9 +27,8 @@ SHIPPED_RIGS = sorted(p for p in CONFIGS.rglob("*.toml")
                       if "rig" in tomllib.loads(p.read_text(encoding="utf-8")))
 # a first-order fan speed loop of our own: J dw/dt = -b w + k u (J = 0.02, b = 0.1, k = 0.5)
 FAN = control.ss([[-5.0]], [[25.0]], [[1.0]], [[0.0]])
-PI = ControllerSpec("pid", {"loops": [{"measure": "speed", "drive": "voltage",
-                                       "reference": "speed_setpoint", "kp": 0.08,
-                                       "ki": 0.6}]})
+PI = ControllerSpec("pid", loops=(PidLoopSpec(measure="speed", drive="voltage",
+                                              reference="speed_setpoint", kp=0.08, ki=0.6),))
 SETPOINT = NamedReference("speed_setpoint", "rad/s", Step(at=0.1, from_=0.0, to=40.0))
 
 
@@ -72,8 +72,8 @@ def test_a_scipy_transfer_function_becomes_its_minimal_realisation() -> None:
 
 
 def test_python_mistakes_get_the_rig_file_messages() -> None:
-    bad = ControllerSpec("pid", {"loops": [{"measure": "speed", "drive": "voltag",
-                                            "reference": "speed_setpoint", "kp": 0.1}]})
+    bad = ControllerSpec("pid", loops=(PidLoopSpec(measure="speed", drive="voltag",
+                                                   reference="speed_setpoint", kp=0.1),))
     with pytest.raises(RigFileError) as info:
         fan(controller=bad, tick=-1.0, sections={"limits": [{"name": "hot", "signal": "spede",
                                                               "trip_high": 1.0}]})
@@ -85,9 +85,9 @@ def test_python_mistakes_get_the_rig_file_messages() -> None:
 
 
 def test_rigs_with_different_settings_are_not_equal() -> None:
-    loops = [{**PI.settings["loops"][0], "kp": 0.09}]
+    loops = (dataclasses.replace(PI.loops[0], kp=0.09),)
     assert fan() == fan()
-    assert fan() != fan(controller=ControllerSpec("pid", {"loops": loops}))
+    assert fan() != fan(controller=ControllerSpec("pid", loops=loops))
     assert fan() != fan(x0=[1.0])
 
 

@@ -211,9 +211,9 @@ def test_new_reference_and_pid_keys_load(tmp_path: Path) -> None:
     rig = load_rig(write(tmp_path, text))
     ramp = rig.references[0].waveform
     assert [ramp.value(t) for t in (0.0, 0.2, 1.2, 5.0)] == [1.0, 1.0, 0.5, 0.5]
-    loop = rig.controller.settings["loops"][0]
-    assert (loop["derivative_lag"], loop["windup"], loop["unwind_time"], loop["drive_low"],
-            loop["drive_high"]) == (0.02, "freeze", 0.3, -4.0, 6.0)
+    loop = rig.controller.loops[0]
+    assert (loop.derivative_lag, loop.windup, loop.unwind_time, loop.drive_low,
+            loop.drive_high) == (0.02, "freeze", 0.3, -4.0, 6.0)
     sine = load_rig(write(tmp_path, GOOD.replace(
         REFERENCE_BLOCK, 'kind = "sine"\nlow = 0.2\nhigh = 0.6\nhz = 2.0\nphase_deg = 90.0')))
     assert sine.references[0].waveform.value(0.0) == pytest.approx(0.6, abs=1e-12)
