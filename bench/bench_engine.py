@@ -5,7 +5,9 @@ markdown it prints. Every number sits beside a peer measured in the same run:
 
 - plant step per tick (2, 10, 50 states) against scipy.signal.dlsim's and python-control
   forced_response's cost per sample on the same discrete model;
-- the full fast-mode tick (reference, built-in PID, plant, tape record) at 10 states;
+- the full fast-mode tick (reference, built-in PID, plant, tape record) at 10 states,
+  and with `--engine-at REV` the tick loop of sim/_engine.py at git revision REV beside
+  today's, interleaved in the same run (before/after of a change to the loop);
 - real-time pacing at 1 kHz and 5 kHz: lateness and missed deadlines of the engine
   beside a bare sleep-and-spin loop (the floor) on the same machine.
 """
@@ -13,7 +15,10 @@ markdown it prints. Every number sits beside a peer measured in the same run:
 from __future__ import annotations
 
 import argparse
+import subprocess
+import sys
 import time
+import types
 from pathlib import Path
 
 import control
@@ -25,12 +30,14 @@ from plantrig.sim import (
     LinearPlant,
     MemoryTape,
     WallClock,
+    build_controller,
     build_rig,
     make_stepper,
     tick_columns,
 )
 
 TICK = 0.001
+ROOT = Path(__file__).resolve().parents[1]
 
 
 def random_plant(n: int, seed: int = 3) -> LinearPlant:
@@ -95,21 +102,41 @@ def pid_rig(n: int, duration: float, mode: str = "fast"):  # type: ignore[no-unt
     }, Path(f"bench{n}.toml"))
 
 
-def full_tick_table(samples: int) -> list[str]:
+def engine_at(rev: str) -> type:
+    """The Engine class of sim/_engine.py at git revision ``rev``, run against today's
+    modules; its controller is built as today (the settings' types changed, not the law)."""
+    source = subprocess.run(["git", "show", f"{rev}:sim/_engine.py"], cwd=ROOT, check=True,
+                            capture_output=True, text=True).stdout
+    name = f"plantrig.sim._engine_at_{rev}"
+    module = types.ModuleType(name)
+    sys.modules[name] = module      # dataclasses look their module up by name
+    exec(compile(source, f"{rev}:sim/_engine.py", "exec"), module.__dict__)
+    module.build_controller = build_controller  # type: ignore[attr-defined]
+    return module.Engine  # type: ignore[attr-defined, no-any-return]
+
+
+def full_tick_table(samples: int, rev: str | None) -> list[str]:
     rig = pid_rig(10, samples * TICK)
     columns = tick_columns(rig)[0]
-
-    def run() -> None:
-        Engine(rig, MemoryTape(columns, rig.n_ticks), realtime=False).run()
-
-    t_tick = best_of(run, 3) / samples * 1e6
+    engines = {"today": Engine, **({f"at {rev}": engine_at(rev)} if rev else {})}
+    best = dict.fromkeys(engines, float("inf"))
+    for _ in range(3):                     # interleaved, so drift on the VM hits both
+        for label, engine in engines.items():
+            tape = MemoryTape(columns, rig.n_ticks)
+            t0 = time.perf_counter()
+            engine(rig, tape, realtime=False).run()
+            best[label] = min(best[label], time.perf_counter() - t0)
     plant = random_plant(10)
     sysd = scipy.signal.cont2discrete((plant.A, plant.B, plant.C, plant.D), TICK)
     u = np.random.default_rng(1).normal(size=(samples, 1))
     t_dlsim = best_of(lambda: scipy.signal.dlsim(sysd, u), 3) / samples * 1e6
-    return ["| 10 states, PID, tape record | plantrig tick (us) | dlsim per sample (us) | "
-            "tick / dlsim |", "|---|---|---|---|",
-            f"| fast mode | {t_tick:.2f} | {t_dlsim:.2f} | {t_tick / t_dlsim:.2f}x |"]
+    lines = ["| 10 states, PID, tape record | plantrig tick (us) | dlsim per sample (us) | "
+             "tick / dlsim |", "|---|---|---|---|"]
+    for label, seconds in best.items():
+        t_tick = seconds / samples * 1e6
+        lines.append(f"| fast mode, engine {label} | {t_tick:.2f} | {t_dlsim:.2f} | "
+                     f"{t_tick / t_dlsim:.2f}x |")
+    return lines
 
 
 def bare_loop(tick_s: float, seconds: float) -> np.ndarray:
@@ -156,13 +183,19 @@ def main() -> None:
                         help="real-time pacing run length per rate (default 30)")
     parser.add_argument("--samples", type=int, default=20000,
                         help="ticks per throughput measurement (default 20000)")
+    parser.add_argument("--engine-at", metavar="REV",
+                        help="also time the tick loop of sim/_engine.py at this git revision")
+    parser.add_argument("--only-tick", action="store_true",
+                        help="only the full-tick table (no plant-step or pacing tables)")
     args = parser.parse_args()
-    print("### Plant step per tick\n")
-    print("\n".join(plant_step_table(args.samples)))
+    if not args.only_tick:
+        print("### Plant step per tick\n")
+        print("\n".join(plant_step_table(args.samples)))
     print("\n### Full fast-mode tick\n")
-    print("\n".join(full_tick_table(args.samples)))
-    print(f"\n### Real-time pacing ({args.seconds:g} s per rate)\n")
-    print("\n".join(pacing_table(args.seconds)))
+    print("\n".join(full_tick_table(args.samples, args.engine_at)))
+    if not args.only_tick:
+        print(f"\n### Real-time pacing ({args.seconds:g} s per rate)\n")
+        print("\n".join(pacing_table(args.seconds)))
 
 
 if __name__ == "__main__":

@@ -93,6 +93,9 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
             ready.set()
         while True:
             orphaned = orphaned or os.getppid() != parent
+            # read "ended" before the rows and events: a writer that appends its last
+            # event and then ends between our read and our check would lose that event
+            finished = reader.ended and event_tape.ended
             backlog = reader.written - reader.next_seq
             max_backlog = max(max_backlog, backlog)
             rows = reader.read_new()
@@ -114,8 +117,7 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
                 _sync(disk, journal, events)
                 last_sync = now
             if not rows.size and not new_events:
-                if orphaned or (reader.ended and reader.next_seq >= reader.written
-                                and event_tape.ended):
+                if orphaned or (finished and reader.next_seq >= reader.written):
                     break
                 time.sleep(IDLE_SLEEP_S)
         _sync(disk, journal, events)
