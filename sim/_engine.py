@@ -243,9 +243,9 @@ class Engine:
         # what the run counts, and the pacing's state
         self.lateness, self.work_time = DurationHistogram(), DurationHistogram()
         self.overruns = self.skipped = self.done = self.answered = 0
+        self.orders_due = 0                 # the next tick _take_orders has work at
         self.loop_start = 0
         self._start = self._slot = self._streak = self._began = self._late = 0
-        self._room = 0
 
     def request_stop(self, why: str = "stop requested") -> None:
         """Ask the loop to end at the next tick boundary (from a signal handler, say);
@@ -265,6 +265,7 @@ class Engine:
         self.safety.on_event(event)        # a link loss may trip an interlock
         if self.scenario is not None:
             self.scenario.on_event(event)  # trips and phases may arm scenario steps
+            self._scenario_moved()
         if event.kind in ("trip", "estop", "reset") and self._told is not None:
             latched = [s.name for s, on in zip(self.safety.specs, self.safety.latched,
                                                strict=True) if on]
@@ -356,33 +357,40 @@ class Engine:
             self.link.open()
             self._link_state(-1, "running")
             self.link.send(-1, -self.rig.tick, self.sent)
-        self._room = self.tape.free()
 
     def _ticks(self) -> None:
         """The tick loop: pacing, then the stages of one tick in their fixed order."""
         clock, tick = self.clock, self.rig.tick
         pace = self._wait_for_deadline if self.realtime else self._wait_for_tape_room
+        # the stages as local names: this loop runs up to tens of kHz
+        take_orders, controller_command = self._take_orders, self._controller_command
+        plant_input, plant_step = self._plant_input, self._plant_step
+        sense_and_send, record = self._sense_and_send, self._record
         self._start = clock.now_ns() + START_LEAD_NS
         self.loop_start = self._start if self.realtime else clock.now_ns()
         # wall-clock UTC of tick 0: its deadline in real time, the loop start if fast
         self.tick0_unix_ns = time.time_ns() + (START_LEAD_NS if self.realtime else 0)
+        paced_until = 0
         for k in range(self.rig.n_ticks):
             if self.stop_requested:
                 raise _RunEnds(STOPPED, self.stop_why)
             t = k * tick
-            pace(k)
-            self._take_orders(k)
-            fresh = self._controller_command(k, t)
-            forced = self._plant_input(k)
-            self._plant_step(k, t, forced)
-            self._sense_and_send(k, t)
-            self._record(k, t, fresh)
+            if k >= paced_until:
+                paced_until = pace(k)
+            if k >= self.orders_due:
+                take_orders(k)
+            fresh = controller_command(k, t)
+            forced = plant_input(k)
+            plant_step(k, t, forced)
+            sense_and_send(k, t)
+            record(k, t, fresh)
 
     # -- pacing: real time or as fast as the recorder keeps up ---------------------------
 
-    def _wait_for_deadline(self, k: int) -> None:
+    def _wait_for_deadline(self, k: int) -> int:
         """Real time: sleep to tick k's slot; count lateness, overruns and skipped slots.
-        A streak of late ticks is a safety cause; on_overrun = 'stop' ends the run."""
+        A streak of late ticks is a safety cause; on_overrun = 'stop' ends the run.
+        The next tick to pace: the next one."""
         clock, tick_ns = self.clock, self.tick_ns
         deadline = self._start + self._slot * tick_ns
         clock.sleep_until_ns(deadline)
@@ -409,20 +417,28 @@ class Engine:
                 self.safety.clear_cause("overruns")
             self._streak = 0
         self._slot += 1
+        return k + 1
 
-    def _wait_for_tape_room(self, k: int) -> None:
-        """Fast mode: never outrun the recorder; wait when the tape is full."""
-        self._room -= 1
-        if self._room < 0:
+    def _wait_for_tape_room(self, k: int) -> int:
+        """Fast mode: never outrun the recorder. The next tick to pace: the first that
+        would not fit in the room the tape has now (waited for when there is none)."""
+        room = self.tape.free()
+        if room <= 0:
             self.tape.wait_for_room()   # returns early if the recorder stops
-            self._room = self.tape.free() - 1
+            problem = self.tape.recorder_error()
+            if problem != RECORDER_OK:
+                raise _RunEnds(FAULT, self._recorder_stopped(k, problem))
+            room = self.tape.free()
+        return k + max(room, 1)
 
     # -- the stages of tick k --------------------------------------------------------------
 
     def _take_orders(self, k: int) -> None:
         """Operator commands (and the recorder's health) every few ms of plant time,
-        fault expiry, and the scenario steps due at tick k."""
-        if k % self.poll_every == 0 or self._room < 0:
+        fault expiry, and the scenario steps due at tick k; then the next tick any of
+        them is due (``orders_due``; a trip or a watched condition may bring a scenario
+        step forward, see _scenario_moved)."""
+        if k % self.poll_every == 0:
             problem = self.tape.recorder_error()
             if problem != RECORDER_OK:
                 raise _RunEnds(FAULT, self._recorder_stopped(k, problem))
@@ -436,6 +452,14 @@ class Engine:
         if scenario is not None and k >= scenario.next_tick:
             for command in scenario.due(k):
                 self._apply_command(k, command)
+        due = (k // self.poll_every + 1) * self.poll_every
+        if faults.on and faults.next_end < math.inf:
+            due = min(due, math.ceil(faults.next_end))
+        self.orders_due = min(due, scenario.next_tick) if scenario is not None else due
+
+    def _scenario_moved(self) -> None:
+        """A scenario step was armed mid-tick: take orders when it falls due."""
+        self.orders_due = min(self.orders_due, self.scenario.next_tick)  # type: ignore[union-attr]
 
     def _controller_command(self, k: int, t: float) -> bool:
         """1. The references r(t_k), then the command: the link's newest (after link
@@ -457,7 +481,7 @@ class Engine:
         if faults.link_in_on:
             fresh = faults.incoming(k, t, cmd, fresh)
         if not fresh and not self.hold_on_silence:
-            cmd[:] = self.safe_u
+            cmd[...] = self.safe_u
         return fresh
 
     def _plant_input(self, k: int) -> bool:
@@ -470,12 +494,12 @@ class Engine:
         elif self.actuator_chain is not None:
             self.actuator_chain.apply(k, cmd, u)
         else:
-            u[:] = cmd
+            u[...] = cmd
         if self.faults.actuator_on:
             self.faults.actuator(k, u)
         forced = self.safety.forcing
         if forced:
-            self.demand[:] = u
+            self.demand[...] = u
             self.safety.force(u)
         return forced
 
@@ -487,15 +511,15 @@ class Engine:
         if self.faults.plant_on:
             self.faults.plant(k)
         stepper.step(t)
-        self.y_rec[:] = stepper.y
+        self.y_rec[...] = stepper.y
         if safety.checking:
             u = stepper.u
             if forced:
-                u[:] = self.demand
+                u[...] = self.demand
             if safety.check(k):
                 safety.force(u)
                 stepper.step(t)
-                self.y_rec[:] = stepper.y
+                self.y_rec[...] = stepper.y
             elif forced:
                 safety.force(u)
 
@@ -505,7 +529,7 @@ class Engine:
         if self.sensor_chain is not None:
             self.sensor_chain.apply(k, self.stepper.y, sent)
         else:
-            sent[:] = self.stepper.y
+            sent[...] = self.stepper.y
         if faults.sensor_on:
             faults.sensor(k, t, sent)
         if faults.link_out_on:
@@ -537,6 +561,7 @@ class Engine:
             stepper.commit()
         if self.scenario is not None and self.scenario.watching:
             self.scenario.after_record(k, row)
+            self._scenario_moved()
         if not finite:
             self._event(k, "non_finite_state", f"x = {stepper.x_next.tolist()}")
             raise _RunEnds(FAULT, "model error: plant state became NaN or infinite")

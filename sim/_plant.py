@@ -420,14 +420,14 @@ class LinearStepper:
 
     def commit(self) -> None:
         """Move x to x_{k+1} (after the tick has been recorded)."""
-        self.x[:] = self.x_next
+        self.x[...] = self.x_next
 
     def output_and_advance(self, t: float) -> None:
         """step() then commit(), for loops that record nothing in between."""
         np.dot(self._block, self._xu, out=self._next)
         if self._disturbed:
             self.x_next += self._Ed_d
-        self.x[:] = self.x_next
+        self.x[...] = self.x_next
 
     def change_parameters(self, changes: Sequence[ParameterChange]) -> None:
         """Entries of A or B changed; the model is discretised again (exact ZOH)."""
@@ -519,12 +519,12 @@ class OdeStepper:
 
     def output_only(self, t: float) -> None:
         """Compute y from the present (x, u) without advancing."""
-        self.y[:] = self.plant.output(t, self.x, self.u, self.params)
+        self.y[...] = self.plant.output(t, self.x, self.u, self.params)
 
     def step(self, t: float) -> None:
         """Compute y_k and x_{k+1} from (x_k, u_k); x keeps x_k until commit()."""
         f, p, u, h = self.plant.dynamics, self.params, self.u, self.h_step
-        self.y[:] = self.plant.output(t, self.x, u, p)
+        self.y[...] = self.plant.output(t, self.x, u, p)
         x = self.x.copy()
         for i in range(self.substeps):
             ti = t + i * h
@@ -539,7 +539,7 @@ class OdeStepper:
                 x = self._ros2(ti, x, h)
             else:
                 x = x + h * f(ti, x, u, p)
-        self.x_next[:] = x
+        self.x_next[...] = x
 
     def _ros2(self, t: float, x: Vector, h: float) -> Vector:
         """One ROS2 substep: W k1 = f(x), W k2 = f(x + h k1) - 2 k1,
@@ -559,7 +559,7 @@ class OdeStepper:
 
     def commit(self) -> None:
         """Move x to x_{k+1} (after the tick has been recorded)."""
-        self.x[:] = self.x_next
+        self.x[...] = self.x_next
 
     def output_and_advance(self, t: float) -> None:
         """step() then commit(), for loops that record nothing in between."""
@@ -690,22 +690,22 @@ class HeldLinearStepper(LinearStepper):
         if self._phase == 0:
             super().output_only(t)
         else:
-            self.y[:] = self._y_held
+            self.y[...] = self._y_held
 
     def step(self, t: float) -> None:
         if self._phase == 0:
             np.dot(self._block, self._xu, out=self._next)
-            self._pending[:] = self.x_next
+            self._pending[...] = self.x_next
         else:
-            self.y[:] = self._y_held
-        self.x_next[:] = self._pending if self._phase == self.every - 1 else self.x
+            self.y[...] = self._y_held
+        self.x_next[...] = self._pending if self._phase == self.every - 1 else self.x
         if self._disturbed:
             self.x_next += self._Ed_d
 
     def commit(self) -> None:
         if self._phase == 0:
-            self._y_held[:] = self.y
-        self.x[:] = self.x_next
+            self._y_held[...] = self.y
+        self.x[...] = self.x_next
         self._phase = (self._phase + 1) % self.every
 
     def output_and_advance(self, t: float) -> None:
