@@ -52,7 +52,7 @@ def limit_use(record: RunRecord, lim: LimitSpec) -> LimitUse:
     if math.isfinite(lo) and lo != base:
         below = v < base
         use[below] = (base - v[below]) / (base - lo)
-    use[~np.isfinite(v)] = np.inf                 # NaN trips (sim/_limits.py)
+    use[~np.isfinite(v)] = np.inf                 # NaN trips (sim/safety/_limits.py)
     use = np.where(np.isnan(use), 0.0, use)
     warn = []
     for w, b in ((lim.warn_high, hi), (lim.warn_low, lo)):

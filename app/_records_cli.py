@@ -3,7 +3,7 @@
 Kept apart from cli.py so that file stays the short composition root; cli.py calls
 ``add_record_commands``. Exit codes are in each command's --help (EXIT_CODES below).
 
-report, export and sign work only on a folder fit for sign-off (sim/_signoff.py): the
+report, export and sign work only on a folder fit for sign-off (sim/records/_signoff.py): the
 run is over, its record finished, and it passes verify. report and export make a marked
 draft of any other folder with --draft. Reports and exports go to RUN_FOLDER/derived/
 (or outside the folder with --out), which the manifest never covers: making them never

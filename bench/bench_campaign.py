@@ -54,7 +54,7 @@ def main() -> None:
 
     from plantrig._campaign_case import build_case, run_case
     from plantrig.sim import simulate
-    from plantrig.sim._campaign_file import expand, load_campaign
+    from plantrig.sim.config._campaign_file import expand, load_campaign
 
     work = Path(tempfile.mkdtemp(prefix="bench-campaign-"))
     path = work / "bench.toml"

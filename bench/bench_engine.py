@@ -6,7 +6,7 @@ markdown it prints. Every number sits beside a peer measured in the same run:
 - plant step per tick (2, 10, 50 states) against scipy.signal.dlsim's and python-control
   forced_response's cost per sample on the same discrete model;
 - the full fast-mode tick (reference, built-in PID, plant, tape record) at 10 states,
-  and with `--engine-at REV` the tick loop of sim/_engine.py at git revision REV beside
+  and with `--engine-at REV` the engine module at git revision REV beside
   today's, interleaved in the same run (before/after of a change to the loop);
 - real-time pacing at 1 kHz and 5 kHz: lateness and missed deadlines of the engine
   beside a bare sleep-and-spin loop (the floor) on the same machine.
@@ -15,6 +15,7 @@ markdown it prints. Every number sits beside a peer measured in the same run:
 from __future__ import annotations
 
 import argparse
+import re
 import subprocess
 import sys
 import time
@@ -103,14 +104,21 @@ def pid_rig(n: int, duration: float, mode: str = "fast"):  # type: ignore[no-unt
 
 
 def engine_at(rev: str) -> type:
-    """The Engine class of sim/_engine.py at git revision ``rev``, run against today's
+    """The Engine class of the engine module at git revision ``rev``, run against today's
     modules; its controller is built as today (the settings' types changed, not the law)."""
-    source = subprocess.run(["git", "show", f"{rev}:sim/_engine.py"], cwd=ROOT, check=True,
+    path = next(p for p in ("sim/engine/_engine.py", "sim/_engine.py")   # before the split
+                if subprocess.run(["git", "cat-file", "-e", f"{rev}:{p}"], cwd=ROOT,
+                                  stderr=subprocess.DEVNULL).returncode == 0)
+    source = subprocess.run(["git", "show", f"{rev}:{path}"], cwd=ROOT, check=True,
                             capture_output=True, text=True).stdout
+    # a loop from before the concept folders imports plantrig.sim._x: point it at today's
+    homes = {p.stem: f"plantrig.sim.{p.parent.name}.{p.stem}"
+             for p in (ROOT / "sim").glob("*/_*.py")}
+    source = re.sub(r"plantrig\.sim\.(_\w+)", lambda m: homes.get(m[1], m[0]), source)
     name = f"plantrig.sim._engine_at_{rev}"
     module = types.ModuleType(name)
     sys.modules[name] = module      # dataclasses look their module up by name
-    exec(compile(source, f"{rev}:sim/_engine.py", "exec"), module.__dict__)
+    exec(compile(source, f"{rev}:{path}", "exec"), module.__dict__)
     module.build_controller = build_controller  # type: ignore[attr-defined]
     return module.Engine  # type: ignore[attr-defined, no-any-return]
 
@@ -184,7 +192,7 @@ def main() -> None:
     parser.add_argument("--samples", type=int, default=20000,
                         help="ticks per throughput measurement (default 20000)")
     parser.add_argument("--engine-at", metavar="REV",
-                        help="also time the tick loop of sim/_engine.py at this git revision")
+                        help="also time the engine module at this git revision")
     parser.add_argument("--only-tick", action="store_true",
                         help="only the full-tick table (no plant-step or pacing tables)")
     args = parser.parse_args()

@@ -21,8 +21,8 @@ from pathlib import Path
 import numpy as np
 
 from plantrig.sim import load_rig, run_to_folder, simulate
-from plantrig.sim._recorder import drain_tape, start_recorder
-from plantrig.sim._tape import W_WRITTEN, EventTape, Tape, tape_dir
+from plantrig.sim.records._recorder import drain_tape, start_recorder
+from plantrig.sim.records._tape import W_WRITTEN, EventTape, Tape, tape_dir
 
 COLUMNS = 40
 REPO = Path(__file__).resolve().parents[1]

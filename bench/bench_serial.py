@@ -40,8 +40,8 @@ from plantrig.io import (
     open_pty_pair,
 )
 from plantrig.sim import WallClock, load_rig, simulate
-from plantrig.sim._clock import SPIN_NS
-from plantrig.sim._realtime import realtime_process
+from plantrig.sim.engine._clock import SPIN_NS
+from plantrig.sim.engine._realtime import realtime_process
 
 RIG = Path(__file__).resolve().parents[1] / "configs" / "conveyor_hil.toml"
 TICK_NS = 1_000_000

@@ -4,7 +4,7 @@ A Snapshot is plain data (texts, fractions, time intervals) computed from a row 
 the event log and the rig; the view only copies it into widgets. Tests check the
 numbers here directly.
 
-Column conventions read here (prefix:name, the tick record of sim/_engine.py):
+Column conventions read here (prefix:name, the tick record of sim/engine/_engine.py):
   trip:<name>   1 while that interlock is latched ("trip:estop" for the operator E-stop)
   fault:<name>  non-zero while that fault is active (fault windows also come from events)
   limit:<name>  the limit's code: 0 ok, 1 outside a warn bound, 2 outside a trip bound

@@ -1,7 +1,7 @@
 """Build the link a rig's checked [link] settings describe.
 
 The rig model checks [link] with the rest of the rig file (plantrig.sim's LinkSettings,
-sim/_link_settings.py); this module only picks the link class for the kind and imports
+sim/config/_link_settings.py); this module only picks the link class for the kind and imports
 its transport (pyserial, aiomqtt, pymodbus) when a rig uses it.
 """
 

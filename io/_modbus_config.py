@@ -1,7 +1,7 @@
 """What the Modbus worker needs from a rig's checked [link] settings.
 
 The [link] keys of kind = "modbus" and the register map are checked with the rest of
-the rig file (sim/_modbus_settings.py; docs/modbus_link.md).
+the rig file (sim/config/_modbus_settings.py; docs/modbus_link.md).
 """
 
 from __future__ import annotations

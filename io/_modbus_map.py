@@ -1,7 +1,7 @@
 """The Modbus register map of a rig: where each signal lives and how it is encoded.
 
 Kept free of pymodbus so the worker process (plantrig.io._modbus_worker) loads it
-quickly; the rig file's keys are checked by sim/_modbus_settings.py. The rig file's
+quickly; the rig file's keys are checked by sim/config/_modbus_settings.py. The rig file's
 ``[link.registers]`` gives each signal a register address, a data type, a scale and an
 offset (docs/modbus_link.md)::
 

@@ -1,7 +1,7 @@
 """MqttSettings: what the MQTT link and its worker process need, as plain data.
 
 The [link] keys of kind = "mqtt" are checked with the rest of the rig file
-(sim/_mqtt_settings.py documents them); ``mqtt_settings`` turns the checked
+(sim/config/_mqtt_settings.py documents them); ``mqtt_settings`` turns the checked
 LinkSettings into MqttSettings, which cross to the worker process as a dict.
 """
 

@@ -16,9 +16,9 @@ from plantrig._lazy import lazy_names
 
 # the module (under plantrig.sim) each public name lives in
 _HOME: dict[str, str] = {
-    **dict.fromkeys(["build_chains"], "_chains"),
-    **dict.fromkeys(["Clock", "VirtualClock", "WallClock"], "_clock"),
-    **dict.fromkeys(["Command", "CommandInbox"], "_commands"),
+    **dict.fromkeys(["build_chains"], "engine._chains"),
+    **dict.fromkeys(["Clock", "VirtualClock", "WallClock"], "engine._clock"),
+    **dict.fromkeys(["Command", "CommandInbox"], "engine._commands"),
     **dict.fromkeys(
         [
             "ActuatorChain",
@@ -31,31 +31,33 @@ _HOME: dict[str, str] = {
             "counts_to_eng",
             "eng_to_counts",
         ],
-        "_conditioning",
+        "engine._conditioning",
     ),
-    **dict.fromkeys(["ControllerLink", "Event", "SignalChain"], "_contracts"),
-    **dict.fromkeys(["OpenLoop", "Pid", "PidLoops", "StateFeedback"], "_controllers"),
-    **dict.fromkeys(["ControllerSpec", "PidLoopSpec"], "_controller_settings"),
-    **dict.fromkeys(["Engine", "RunOutcome", "build_controller", "tick_columns"], "_engine"),
+    **dict.fromkeys(["ControllerLink", "Event", "SignalChain"], "engine._contracts"),
+    **dict.fromkeys(["OpenLoop", "Pid", "PidLoops", "StateFeedback"], "model._controllers"),
+    **dict.fromkeys(["ControllerSpec", "PidLoopSpec"], "config._controller_settings"),
+    **dict.fromkeys(["Engine", "RunOutcome", "build_controller", "tick_columns"], "engine._engine"),
     **dict.fromkeys(
         ["Checker", "RigFileError", "RigIssue", "describe_value", "did_you_mean", "one_of"],
-        "_checker",
+        "config._checker",
     ),
-    **dict.fromkeys(["LinkSettings"], "_link_settings"),
-    **dict.fromkeys(["REGISTER_TYPES"], "_modbus_settings"),
-    **dict.fromkeys(["DEFAULT_QOS", "TlsSettings"], "_mqtt_settings"),
-    **dict.fromkeys(["export_csv", "export_mat"], "_export"),
+    **dict.fromkeys(["LinkSettings"], "config._link_settings"),
+    **dict.fromkeys(["REGISTER_TYPES"], "config._modbus_settings"),
+    **dict.fromkeys(["DEFAULT_QOS", "TlsSettings"], "config._mqtt_settings"),
+    **dict.fromkeys(["export_csv", "export_mat"], "records._export"),
     **dict.fromkeys(
-        ["DisturbanceSpec", "FAULT_KINDS", "FaultKind", "FaultSpec", "parse_fault"], "_faults"
+        ["DisturbanceSpec", "FAULT_KINDS", "FaultKind", "FaultSpec", "parse_fault"],
+        "faults._faults",
     ),
-    **dict.fromkeys(["InterlockSpec", "SafetySettings"], "_interlocks"),
-    **dict.fromkeys(["LimitSpec"], "_limits"),
-    **dict.fromkeys(["generate_keypair", "sign_folder", "verify_folder"], "_manifest"),
+    **dict.fromkeys(["InterlockSpec", "SafetySettings"], "safety._interlocks"),
+    **dict.fromkeys(["LimitSpec"], "safety._limits"),
+    **dict.fromkeys(["generate_keypair", "sign_folder", "verify_folder"], "records._manifest"),
     **dict.fromkeys(
-        ["AcceptanceRules", "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "RuleResult"], "_outcome"
+        ["AcceptanceRules", "EXIT_CODES", "EXIT_CODE_HELP", "OUTCOMES", "RuleResult"],
+        "engine._outcome",
     ),
     **dict.fromkeys(
-        ["apply_overrides", "load_rig_with_overrides", "shortcut_assignments"], "_overrides"
+        ["apply_overrides", "load_rig_with_overrides", "shortcut_assignments"], "config._overrides"
     ),
     **dict.fromkeys(
         [
@@ -70,18 +72,18 @@ _HOME: dict[str, str] = {
             "make_stepper",
             "zoh",
         ],
-        "_plant",
+        "model._plant",
     ),
-    **dict.fromkeys(["RecordError"], "_preflight"),
-    **dict.fromkeys(["rig_from_python", "write_rig"], "_rig_builder"),
-    **dict.fromkeys(["RigDocument", "read_rig_document"], "_rig_document"),
-    **dict.fromkeys(["RunRecord", "read_run"], "_reader"),
-    **dict.fromkeys(["read_journal"], "_recorder"),
-    **dict.fromkeys(["recover_run"], "_records"),
-    **dict.fromkeys(["Ramp", "Sine", "Step", "Table"], "_references"),
+    **dict.fromkeys(["RecordError"], "records._preflight"),
+    **dict.fromkeys(["rig_from_python", "write_rig"], "config._rig_builder"),
+    **dict.fromkeys(["RigDocument", "read_rig_document"], "config._rig_document"),
+    **dict.fromkeys(["RunRecord", "read_run"], "records._reader"),
+    **dict.fromkeys(["read_journal"], "records._recorder"),
+    **dict.fromkeys(["recover_run"], "records._records"),
+    **dict.fromkeys(["Ramp", "Sine", "Step", "Table"], "model._references"),
     **dict.fromkeys(
         ["ModelNotLoaded", "load_rig_as_data", "model_module", "rig_from_record", "run_folder_of"],
-        "_rigdata",
+        "config._rigdata",
     ),
     **dict.fromkeys(
         [
@@ -91,19 +93,36 @@ _HOME: dict[str, str] = {
             "build_rig",
             "load_rig",
         ],
-        "_rigfile",
+        "config._rigfile",
     ),
-    **dict.fromkeys(["RunData", "run_to_folder", "simulate", "simulate_inputs"], "_run"),
+    **dict.fromkeys(["RunData", "run_to_folder", "simulate", "simulate_inputs"], "engine._run"),
     **dict.fromkeys(
-        ["Scenario", "ScenarioFileError", "build_scenario", "load_scenario"], "_scenario"
+        ["Scenario", "ScenarioFileError", "build_scenario", "load_scenario"], "scenario._scenario"
     ),
-    **dict.fromkeys(["SECRET_MARK"], "_secrets"),
-    **dict.fromkeys(["SIGNAL_LABELS", "SIGNAL_MEANINGS"], "_signal_labels"),
-    **dict.fromkeys(["ModelSummary", "summarize"], "_summary"),
-    **dict.fromkeys(["EventTape", "MemoryTape", "Tape", "TapeOverflow", "TapeReader"], "_tape"),
-    **dict.fromkeys(["Verdict", "evaluate", "verdict_lines", "write_verdicts"], "_verdicts"),
-    **dict.fromkeys(["silent_ticks_allowed"], "_watchdog"),
-    **dict.fromkeys(["RerunError", "plan_rerun"], "_rerun"),
+    **dict.fromkeys(["SECRET_MARK"], "records._secrets"),
+    **dict.fromkeys(["SIGNAL_LABELS", "SIGNAL_MEANINGS"], "records._signal_labels"),
+    **dict.fromkeys(["ModelSummary", "summarize"], "model._summary"),
+    **dict.fromkeys(
+        [
+            "EventTape",
+            "MemoryTape",
+            "Tape",
+            "TapeOverflow",
+            "TapeReader",
+        ],
+        "records._tape",
+    ),
+    **dict.fromkeys(
+        [
+            "Verdict",
+            "evaluate",
+            "verdict_lines",
+            "write_verdicts",
+        ],
+        "scenario._verdicts",
+    ),
+    **dict.fromkeys(["silent_ticks_allowed"], "engine._watchdog"),
+    **dict.fromkeys(["RerunError", "plan_rerun"], "records._rerun"),
     **dict.fromkeys(
         [
             "Campaign",
@@ -113,7 +132,7 @@ _HOME: dict[str, str] = {
             "load_campaign",
             "with_verdicts",
         ],
-        "_campaign_file",
+        "config._campaign_file",
     ),
     **dict.fromkeys(
         [
@@ -127,10 +146,18 @@ _HOME: dict[str, str] = {
             "sha256_file",
             "write_atomic",
         ],
-        "_manifest",
+        "records._manifest",
     ),
-    **dict.fromkeys(["DRAFT_MARK", "DRAFT_PREFIX", "Readiness", "check_folder"], "_signoff"),
-    **dict.fromkeys(["RUN_START"], "_records"),
+    **dict.fromkeys(
+        [
+            "DRAFT_MARK",
+            "DRAFT_PREFIX",
+            "Readiness",
+            "check_folder",
+        ],
+        "records._signoff",
+    ),
+    **dict.fromkeys(["RUN_START"], "records._records"),
     **dict.fromkeys(
         [
             "NotComparable",
@@ -141,11 +168,11 @@ _HOME: dict[str, str] = {
             "load_tolerances",
             "parse_tolerance_option",
         ],
-        "_compare",
+        "records._compare",
     ),
-    **dict.fromkeys(["machine_facts", "pacing_test"], "_readiness"),
-    **dict.fromkeys(["COMPLETED", "EXIT_VERDICT"], "_outcome"),
-    **dict.fromkeys(["Vector"], "_contracts"),
+    **dict.fromkeys(["machine_facts", "pacing_test"], "engine._readiness"),
+    **dict.fromkeys(["COMPLETED", "EXIT_VERDICT"], "engine._outcome"),
+    **dict.fromkeys(["Vector"], "engine._contracts"),
 }
 
 __all__ = sorted(_HOME)
@@ -155,7 +182,7 @@ __getattr__, __dir__ = lazy_names(__name__, _HOME, __all__)
 
 
 if TYPE_CHECKING:  # type checkers and editors see every name where it lives
-    from plantrig.sim._campaign_file import (
+    from plantrig.sim.config._campaign_file import (
         Campaign,
         CampaignFileError,
         Case,
@@ -163,8 +190,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         load_campaign,
         with_verdicts,
     )
-    from plantrig.sim._chains import build_chains
-    from plantrig.sim._checker import (
+    from plantrig.sim.config._checker import (
         Checker,
         RigFileError,
         RigIssue,
@@ -172,18 +198,35 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         did_you_mean,
         one_of,
     )
-    from plantrig.sim._clock import Clock, VirtualClock, WallClock
-    from plantrig.sim._commands import Command, CommandInbox
-    from plantrig.sim._compare import (
-        NotComparable,
-        Tolerance,
-        Tolerances,
-        compare_runs,
-        iter_lines,
-        load_tolerances,
-        parse_tolerance_option,
+    from plantrig.sim.config._controller_settings import ControllerSpec, PidLoopSpec
+    from plantrig.sim.config._link_settings import LinkSettings
+    from plantrig.sim.config._modbus_settings import REGISTER_TYPES
+    from plantrig.sim.config._mqtt_settings import DEFAULT_QOS, TlsSettings
+    from plantrig.sim.config._overrides import (
+        apply_overrides,
+        load_rig_with_overrides,
+        shortcut_assignments,
     )
-    from plantrig.sim._conditioning import (
+    from plantrig.sim.config._rig_builder import rig_from_python, write_rig
+    from plantrig.sim.config._rig_document import RigDocument, read_rig_document
+    from plantrig.sim.config._rigdata import (
+        ModelNotLoaded,
+        load_rig_as_data,
+        model_module,
+        rig_from_record,
+        run_folder_of,
+    )
+    from plantrig.sim.config._rigfile import (
+        NamedReference,
+        Rig,
+        Signal,
+        build_rig,
+        load_rig,
+    )
+    from plantrig.sim.engine._chains import build_chains
+    from plantrig.sim.engine._clock import Clock, VirtualClock, WallClock
+    from plantrig.sim.engine._commands import Command, CommandInbox
+    from plantrig.sim.engine._conditioning import (
         ActuatorChain,
         ActuatorChannel,
         ChainSpecError,
@@ -194,16 +237,53 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         counts_to_eng,
         eng_to_counts,
     )
-    from plantrig.sim._contracts import ControllerLink, Event, SignalChain, Vector
-    from plantrig.sim._controller_settings import ControllerSpec, PidLoopSpec
-    from plantrig.sim._controllers import OpenLoop, Pid, PidLoops, StateFeedback
-    from plantrig.sim._engine import Engine, RunOutcome, build_controller, tick_columns
-    from plantrig.sim._export import export_csv, export_mat
-    from plantrig.sim._faults import FAULT_KINDS, DisturbanceSpec, FaultKind, FaultSpec, parse_fault
-    from plantrig.sim._interlocks import InterlockSpec, SafetySettings
-    from plantrig.sim._limits import LimitSpec
-    from plantrig.sim._link_settings import LinkSettings
-    from plantrig.sim._manifest import (
+    from plantrig.sim.engine._contracts import ControllerLink, Event, SignalChain, Vector
+    from plantrig.sim.engine._engine import Engine, RunOutcome, build_controller, tick_columns
+    from plantrig.sim.engine._outcome import (
+        COMPLETED,
+        EXIT_CODE_HELP,
+        EXIT_CODES,
+        EXIT_VERDICT,
+        OUTCOMES,
+        AcceptanceRules,
+        RuleResult,
+    )
+    from plantrig.sim.engine._readiness import machine_facts, pacing_test
+    from plantrig.sim.engine._run import RunData, run_to_folder, simulate, simulate_inputs
+    from plantrig.sim.engine._watchdog import silent_ticks_allowed
+    from plantrig.sim.faults._faults import (
+        FAULT_KINDS,
+        DisturbanceSpec,
+        FaultKind,
+        FaultSpec,
+        parse_fault,
+    )
+    from plantrig.sim.model._controllers import OpenLoop, Pid, PidLoops, StateFeedback
+    from plantrig.sim.model._plant import (
+        DiscretePlant,
+        LinearPlant,
+        LinearStepper,
+        ModelError,
+        OdePlant,
+        OdeStepper,
+        Plant,
+        from_state_space_object,
+        make_stepper,
+        zoh,
+    )
+    from plantrig.sim.model._references import Ramp, Sine, Step, Table
+    from plantrig.sim.model._summary import ModelSummary, summarize
+    from plantrig.sim.records._compare import (
+        NotComparable,
+        Tolerance,
+        Tolerances,
+        compare_runs,
+        iter_lines,
+        load_tolerances,
+        parse_tolerance_option,
+    )
+    from plantrig.sim.records._export import export_csv, export_mat
+    from plantrig.sim.records._manifest import (
         DERIVED,
         MANIFEST,
         ManifestError,
@@ -217,63 +297,21 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         verify_folder,
         write_atomic,
     )
-    from plantrig.sim._modbus_settings import REGISTER_TYPES
-    from plantrig.sim._mqtt_settings import DEFAULT_QOS, TlsSettings
-    from plantrig.sim._outcome import (
-        COMPLETED,
-        EXIT_CODE_HELP,
-        EXIT_CODES,
-        EXIT_VERDICT,
-        OUTCOMES,
-        AcceptanceRules,
-        RuleResult,
+    from plantrig.sim.records._preflight import RecordError
+    from plantrig.sim.records._reader import RunRecord, read_run
+    from plantrig.sim.records._recorder import read_journal
+    from plantrig.sim.records._records import RUN_START, recover_run
+    from plantrig.sim.records._rerun import RerunError, plan_rerun
+    from plantrig.sim.records._secrets import SECRET_MARK
+    from plantrig.sim.records._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
+    from plantrig.sim.records._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
+    from plantrig.sim.records._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
+    from plantrig.sim.safety._interlocks import InterlockSpec, SafetySettings
+    from plantrig.sim.safety._limits import LimitSpec
+    from plantrig.sim.scenario._scenario import (
+        Scenario,
+        ScenarioFileError,
+        build_scenario,
+        load_scenario,
     )
-    from plantrig.sim._overrides import (
-        apply_overrides,
-        load_rig_with_overrides,
-        shortcut_assignments,
-    )
-    from plantrig.sim._plant import (
-        DiscretePlant,
-        LinearPlant,
-        LinearStepper,
-        ModelError,
-        OdePlant,
-        OdeStepper,
-        Plant,
-        from_state_space_object,
-        make_stepper,
-        zoh,
-    )
-    from plantrig.sim._preflight import RecordError
-    from plantrig.sim._reader import RunRecord, read_run
-    from plantrig.sim._readiness import machine_facts, pacing_test
-    from plantrig.sim._recorder import read_journal
-    from plantrig.sim._records import RUN_START, recover_run
-    from plantrig.sim._references import Ramp, Sine, Step, Table
-    from plantrig.sim._rerun import RerunError, plan_rerun
-    from plantrig.sim._rig_builder import rig_from_python, write_rig
-    from plantrig.sim._rig_document import RigDocument, read_rig_document
-    from plantrig.sim._rigdata import (
-        ModelNotLoaded,
-        load_rig_as_data,
-        model_module,
-        rig_from_record,
-        run_folder_of,
-    )
-    from plantrig.sim._rigfile import (
-        NamedReference,
-        Rig,
-        Signal,
-        build_rig,
-        load_rig,
-    )
-    from plantrig.sim._run import RunData, run_to_folder, simulate, simulate_inputs
-    from plantrig.sim._scenario import Scenario, ScenarioFileError, build_scenario, load_scenario
-    from plantrig.sim._secrets import SECRET_MARK
-    from plantrig.sim._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
-    from plantrig.sim._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
-    from plantrig.sim._summary import ModelSummary, summarize
-    from plantrig.sim._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
-    from plantrig.sim._verdicts import Verdict, evaluate, verdict_lines, write_verdicts
-    from plantrig.sim._watchdog import silent_ticks_allowed
+    from plantrig.sim.scenario._verdicts import Verdict, evaluate, verdict_lines, write_verdicts

@@ -27,7 +27,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from plantrig._campaign_out import NONDETERMINISTIC
-from plantrig.sim._manifest import sha256_file
+from plantrig.sim.records._manifest import sha256_file
 
 ROOT = Path(__file__).resolve().parents[1]
 REHEARSALS = ROOT / "configs" / "rehearsals"

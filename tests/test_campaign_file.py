@@ -18,7 +18,7 @@ from plantrig._campaign_case import run_case
 from plantrig._campaign_cli import add_parser
 from plantrig.cli import main
 from plantrig.sim import RigFileError, apply_overrides
-from plantrig.sim._campaign_file import Draw, expand, load_campaign
+from plantrig.sim.config._campaign_file import Draw, expand, load_campaign
 
 ROOT = Path(__file__).resolve().parents[1]
 REHEARSALS = ROOT / "configs" / "rehearsals"

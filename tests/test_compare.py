@@ -17,7 +17,7 @@ import pytest
 
 from plantrig.cli import main
 from plantrig.sim import read_run
-from plantrig.sim._compare import compare_runs
+from plantrig.sim.records._compare import compare_runs
 
 ROOT = Path(__file__).resolve().parents[1]
 CONVEYOR = ROOT / "configs" / "conveyor.toml"

@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from plantrig.sim import _conditioning as cond
-from plantrig.sim._conditioning import (
+from plantrig.sim.engine import _conditioning as cond
+from plantrig.sim.engine._conditioning import (
     ActuatorChain,
     ChainSpecError,
     SensorChain,
@@ -19,7 +19,7 @@ from plantrig.sim._conditioning import (
     counts_to_eng,
     eng_to_counts,
 )
-from plantrig.sim._contracts import SignalChain
+from plantrig.sim.engine._contracts import SignalChain
 
 
 def run(chain: SignalChain, inputs: np.ndarray) -> np.ndarray:

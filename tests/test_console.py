@@ -62,7 +62,7 @@ def test_a_long_fast_run_shows_its_progress(tmp_path: Path) -> None:
 def test_docs_and_code_cite_only_files_the_repository_holds() -> None:
     cited = re.compile(r"(?<![\w/.-])((?:[\w-]+/)*[\w-]+\.md)\b")
     sources = [*REPO.glob("*.md"), *REPO.glob("docs/*.md"), *REPO.glob("firmware/*.md"),
-               *REPO.glob("sim/*.py"), *REPO.glob("io/*.py"), *REPO.glob("gui/*.py"),
+               *REPO.glob("sim/**/*.py"), *REPO.glob("io/*.py"), *REPO.glob("gui/*.py"),
                *REPO.glob("app/*.py"), *REPO.glob("bench/*.py"), *REPO.glob("tests/*.py")]
     missing = []
     for path in sources:

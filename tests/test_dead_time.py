@@ -10,7 +10,7 @@ import pytest
 import scipy.signal
 
 from plantrig.sim import LinearPlant, RigFileError, load_rig, simulate_inputs, summarize
-from plantrig.sim._plant import make_stepper
+from plantrig.sim.model._plant import make_stepper
 
 
 @pytest.mark.parametrize("delay", [0.0, 0.003, 0.01, 0.137, 0.2, 1.0049])

@@ -1,7 +1,7 @@
 """Event details are kept whole: on the event tape, in events.jsonl and in run.h5.
 
 The event ring once held each detail in a fixed 200-byte field and cut the rest without
-a word. Details now live in a byte ring beside the event rows (sim/_tape.py, EventTape);
+a word. Details now live in a byte ring beside the event rows (sim/records/_tape.py, EventTape);
 only a detail longer than a quarter of that ring is cut, and then with a marker that
 says how long it was.
 """
@@ -17,7 +17,7 @@ import pytest
 from rig_text import rig_text
 
 from plantrig.sim import Command, EventTape, load_rig, run_to_folder
-from plantrig.sim._hdf5 import read_run_h5
+from plantrig.sim.records._hdf5 import read_run_h5
 
 CONFIGS = Path(__file__).parents[1] / "configs"
 # multi-byte UTF-8 (2, 3 and 4 bytes) so a cut or a wrap inside a character would show

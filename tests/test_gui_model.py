@@ -191,7 +191,7 @@ def test_new_column_groups_are_discovered_by_prefix():
 
 
 def test_a_lamp_is_quiet_until_latched_then_says_when_and_why():
-    # the engine's own event details (sim/_interlocks.py): "<name>: <cause>: <why>; <action>"
+    # the engine's own event details (sim/safety/_interlocks.py): "<name>: <cause>: <why>; <action>"
     trip = ("belt_overspeed: limit:belt_fast: x:belt_speed = 1.10022 m/s, above trip_high "
             "1.1; inputs to safe values")
     assert trip_cause(trip) == ("belt_overspeed", "limit:belt_fast: x:belt_speed = 1.10022 "
@@ -580,7 +580,7 @@ def test_the_form_result_is_the_runs_answer(command_queue):
     assert op.inject_fault("sensor_stuck", "belt_speed", None, 0.0)
     assert op.set_reference("speed_setpoint", 0.4)
     assert "waiting for the run's answer" in op.message
-    # events as the engine writes them (sim/_faults.py, sim/_engine.py)
+    # events as the engine writes them (sim/faults/_faults.py, sim/engine/_engine.py)
     op.hear([(10, 0.01, "fault_injected", "load_surge: disturbance on belt_load (value=25)"),
              (12, 0.012, "reference_set", "speed_setpoint = 0.4")])
     assert op.message.startswith("ACCEPTED at t = 0.012 s: set_reference")

@@ -8,7 +8,7 @@ import control
 import numpy as np
 import pytest
 
-from plantrig.sim._metrics import (
+from plantrig.sim.scenario._metrics import (
     BandCheck,
     StepMetrics,
     band_check,

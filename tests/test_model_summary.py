@@ -13,7 +13,7 @@ import scipy.integrate
 import scipy.linalg
 
 from plantrig.sim import DiscretePlant, LinearPlant, OdePlant, make_stepper, summarize
-from plantrig.sim._summary import STABILITY_FUNCTIONS, classify_stability
+from plantrig.sim.model._summary import STABILITY_FUNCTIONS, classify_stability
 
 REPO = Path(__file__).resolve().parents[1]
 

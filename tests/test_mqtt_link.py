@@ -255,7 +255,7 @@ def test_broker_restart_mid_run_keeps_the_tick(tmp_path: Path,
     assert events[gone].tick <= lost.tick < reconnected.tick <= restored.tick < rig.n_ticks
     assert h["reconnects"] >= 1 and h["disconnects"] >= 1 and h["dropped_offline"] > 0
     assert wire["fresh"][restored.tick] == 1
-    # the one watchdog rule (sim/_watchdog.py): lost at the first tick whose silence
+    # the one watchdog rule (sim/engine/_watchdog.py): lost at the first tick whose silence
     # exceeds the timeout, the same tick as on serial and in a rehearsal
     last_fresh = int(np.flatnonzero(wire["fresh"][:lost.tick] == 1)[-1])
     assert lost.tick - last_fresh == silent_ticks_allowed(

@@ -25,9 +25,9 @@ from rig_text import rig_text
 from test_records_crash import realtime_rig, same_as_fast_run, tmpfs
 
 from plantrig.sim import load_rig, run_to_folder
-from plantrig.sim._manifest import verify_folder
-from plantrig.sim._reader import read_run
-from plantrig.sim._tape import HEADER_WORDS, W_WRITTEN
+from plantrig.sim.records._manifest import verify_folder
+from plantrig.sim.records._reader import read_run
+from plantrig.sim.records._tape import HEADER_WORDS, W_WRITTEN
 
 REPO = Path(__file__).resolve().parents[1]
 HIL = REPO / "configs" / "conveyor_hil.toml"

@@ -21,7 +21,7 @@ def _subpackage(module: str) -> str:
 def test_cross_package_imports_use_public_names() -> None:
     private = []
     for folder, package in PACKAGES.items():
-        for path in sorted((REPO / folder).glob("*.py")):
+        for path in sorted((REPO / folder).rglob("*.py")):
             for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
                 if not (isinstance(node, ast.ImportFrom) and node.module
                         and node.module.startswith("plantrig")):
@@ -44,6 +44,7 @@ def test_every_lazy_sim_name_is_declared_for_type_checkers() -> None:
         if isinstance(node, ast.If) and getattr(node.test, "id", "") == "TYPE_CHECKING":
             for imp in node.body:
                 assert isinstance(imp, ast.ImportFrom) and imp.module
-                declared.update({a.name: imp.module.rsplit(".", 1)[1] for a in imp.names})
+                declared.update({a.name: imp.module.removeprefix("plantrig.sim.")
+                                 for a in imp.names})
     home = plantrig.sim._HOME
     assert declared == home

@@ -10,7 +10,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-from plantrig.sim._readiness import _cpu_list, machine_facts
+from plantrig.sim.engine._readiness import _cpu_list, machine_facts
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -22,9 +22,9 @@ from plantrig import __version__
 from plantrig._report import write_report
 from plantrig.cli import main
 from plantrig.sim import load_rig, run_to_folder, simulate
-from plantrig.sim._export import matlab_names
-from plantrig.sim._manifest import verify_folder, write_manifest
-from plantrig.sim._reader import RunRecord, read_run
+from plantrig.sim.records._export import matlab_names
+from plantrig.sim.records._manifest import verify_folder, write_manifest
+from plantrig.sim.records._reader import RunRecord, read_run
 
 REPO = Path(__file__).resolve().parents[1]
 CONVEYOR = REPO / "configs" / "conveyor.toml"

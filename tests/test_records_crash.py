@@ -23,12 +23,12 @@ import pytest
 from rig_text import rig_text
 
 from plantrig.cli import main
-from plantrig.sim import _run as run_module
 from plantrig.sim import load_rig, run_to_folder, simulate, tick_columns
-from plantrig.sim._manifest import verify_folder
-from plantrig.sim._reader import read_run
-from plantrig.sim._records import recover_run
-from plantrig.sim._tape import HEADER_WORDS, STATE_ENDED, W_STATE
+from plantrig.sim.engine import _run as run_module
+from plantrig.sim.records._manifest import verify_folder
+from plantrig.sim.records._reader import read_run
+from plantrig.sim.records._records import recover_run
+from plantrig.sim.records._tape import HEADER_WORDS, STATE_ENDED, W_STATE
 
 REPO = Path(__file__).resolve().parents[1]
 CONVEYOR = REPO / "configs" / "conveyor.toml"

@@ -30,7 +30,7 @@ from rig_text import rig_text
 
 from plantrig.cli import main
 from plantrig.sim import load_rig, run_to_folder
-from plantrig.sim._manifest import (
+from plantrig.sim.records._manifest import (
     DERIVED,
     ManifestError,
     canonical,
@@ -39,7 +39,7 @@ from plantrig.sim._manifest import (
     verify_folder,
     write_manifest,
 )
-from plantrig.sim._signoff import DRAFT_MARK
+from plantrig.sim.records._signoff import DRAFT_MARK
 
 REPO = Path(__file__).resolve().parents[1]
 CONVEYOR = REPO / "configs" / "conveyor.toml"

@@ -21,7 +21,7 @@ from rig_text import rig_text
 from plantrig.cli import build_parser, main
 from plantrig.io import build_link
 from plantrig.sim import RigFileError, build_rig, load_rig, read_run
-from plantrig.sim._run_info import run_info_of
+from plantrig.sim.records._run_info import run_info_of
 
 REPO = Path(__file__).resolve().parents[1]
 REHEARSALS = REPO / "configs" / "rehearsals"

@@ -32,8 +32,8 @@ from plantrig.sim import (
     run_folder_of,
     verify_folder,
 )
-from plantrig.sim._manifest import write_manifest
-from plantrig.sim._sources import point_module_at
+from plantrig.sim.records._manifest import write_manifest
+from plantrig.sim.records._sources import point_module_at
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"

@@ -198,7 +198,7 @@ def test_link_lost_from_a_link_fault_trips_the_watchdog_interlock(tmp_path: Path
     lost = next(e for e in outcome.events if e.kind == "link_lost")
     trip = next(e for e in outcome.events if e.kind == "trip")
     # the last command got through at tick -1 (before the run): at tick 5 the silence
-    # (6 ticks, 60 ms) first exceeds the 50 ms timeout (sim/_watchdog.py)
+    # (6 ticks, 60 ms) first exceeds the 50 ms timeout (sim/engine/_watchdog.py)
     assert lost.tick == 5 and trip.tick == lost.tick
     assert trip.detail.startswith("watchdog: link_lost: ")
     fresh = rows[:, cols.index("fresh")]

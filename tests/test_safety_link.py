@@ -51,7 +51,7 @@ def test_watchdog_interlock_trips_within_timeout_plus_one_tick() -> None:
     assert trip.detail.startswith("link_watchdog: link_lost: ")
     fresh = data["fresh"]
     last_fresh = int(np.flatnonzero(fresh[:trip.tick] == 1)[-1])
-    # the one watchdog rule (sim/_watchdog.py): lost at the first tick whose silence
+    # the one watchdog rule (sim/engine/_watchdog.py): lost at the first tick whose silence
     # exceeds the timeout, exactly as a rehearsed link fault (test_watchdog.py)
     assert trip.tick - last_fresh == timeout_ticks + 1
     assert trip.tick == lost.tick                       # in the tick the cause appears

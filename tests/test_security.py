@@ -43,7 +43,7 @@ from rig_text import rig_text
 from plantrig._hil import wait_ready
 from plantrig.io import LocalBroker
 from plantrig.sim import SECRET_MARK, load_rig, run_to_folder
-from plantrig.sim._secrets import redact_assignments, redact_rig_text
+from plantrig.sim.records._secrets import redact_assignments, redact_rig_text
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"

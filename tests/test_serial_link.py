@@ -160,7 +160,7 @@ def test_far_end_closed_mid_run(tmp_path: Path) -> None:
     rig = hil_rig(tmp_path)
     wire, health = run_over_pty(rig, action=lambda proc: proc.kill())
     events = wire.outcome.events
-    # every tick ran, but a lost link is a fault (sim/_outcome.py)
+    # every tick ran, but a lost link is a fault (sim/engine/_outcome.py)
     assert wire.outcome.ended == "fault" and "'link kept' not met" in wire.outcome.reason
     assert wire.rows.shape[0] == rig.n_ticks
     assert [e.kind for e in events].count("port_error") == 1

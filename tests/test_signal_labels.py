@@ -7,7 +7,7 @@ import re
 from pathlib import Path
 
 from plantrig.sim import SIGNAL_LABELS, SIGNAL_MEANINGS, load_rig, tick_columns
-from plantrig.sim._records import PREFIX_DESCRIPTIONS, column_info
+from plantrig.sim.records._records import PREFIX_DESCRIPTIONS, column_info
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -61,8 +61,8 @@ def test_docs_use_the_same_words() -> None:
 
 def test_the_glossary_lists_every_reference_and_pid_key_and_every_verb() -> None:
     from plantrig.cli import build_parser
-    from plantrig.sim._controller_settings import PID_KEYS
-    from plantrig.sim._rigfile import REFERENCE_KEYS, RIG_KEYS
+    from plantrig.sim.config._controller_settings import PID_KEYS
+    from plantrig.sim.config._rigfile import REFERENCE_KEYS, RIG_KEYS
 
     glossary = (REPO / "docs" / "glossary.md").read_text()
     keys = set(RIG_KEYS) | set(PID_KEYS) | {k for ks in REFERENCE_KEYS.values() for k in ks}

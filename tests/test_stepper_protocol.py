@@ -10,7 +10,7 @@ import pytest
 import scipy.signal
 
 from plantrig.sim import DiscretePlant, LinearPlant, OdePlant, make_stepper
-from plantrig.sim._plant import Stepper
+from plantrig.sim.model._plant import Stepper
 
 TICK = 0.01
 A = np.array([[0.0, 1.0], [-4.0, -0.8]])     # a lightly damped pair (sys221 with E)

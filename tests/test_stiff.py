@@ -8,7 +8,7 @@ import pytest
 import scipy.integrate
 
 from plantrig.sim import OdePlant, make_stepper, summarize
-from plantrig.sim._plant import ros2_stability
+from plantrig.sim.model._plant import ros2_stability
 
 
 def robertson(t, x, u, p):  # type: ignore[no-untyped-def]

@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from plantrig.sim._timing import COARSE_NS, FINE_LIMIT_NS, FINE_NS, DurationHistogram
+from plantrig.sim.engine._timing import COARSE_NS, FINE_LIMIT_NS, FINE_NS, DurationHistogram
 
 
 @pytest.mark.parametrize("scale_ns", [3_000, 400_000, 40_000_000])

@@ -1,5 +1,5 @@
 """One watchdog rule for the serial link, the MQTT link and rehearsed link faults:
-lost at the first tick whose silence exceeds the timeout (sim/_watchdog.py). The serial
+lost at the first tick whose silence exceeds the timeout (sim/engine/_watchdog.py). The serial
 link's real-time check is in test_safety_link.py; the MQTT link's in test_mqtt_link.py."""
 
 from __future__ import annotations

@@ -1,0 +1,118 @@
+"""Reading a run folder back: numpy arrays by column name, units, events, summary.
+
+One reader for every state a folder can be in: finished (``run.h5``, or ``ticks.npy``
+where h5py is not installed), or crashed and not yet recovered (``ticks.journal`` with
+``run_start.json`` or ``columns.json``; a torn last row is dropped).
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from plantrig.sim.records._records import RUN_START, read_events
+
+
+@dataclass
+class RunRecord:
+    """One run's record. ``rows`` is ticks x columns float64, in tick-record order."""
+
+    folder: Path
+    columns: list[str]
+    units: list[str]
+    rows: NDArray[np.float64]
+    events: list[dict[str, Any]]
+    summary: dict[str, Any]
+    info: list[dict[str, Any]] = field(default_factory=list)
+    source: str = ""
+
+    def __getitem__(self, name: str) -> NDArray[np.float64]:
+        try:
+            return self.rows[:, self.columns.index(name)]
+        except ValueError:
+            raise KeyError(f"no column {name!r}; columns: {', '.join(self.columns)}") from None
+
+    def __contains__(self, name: object) -> bool:
+        return name in self.columns
+
+    @property
+    def t(self) -> NDArray[np.float64]:
+        return self["t"]
+
+    def unit(self, name: str) -> str:
+        return self.units[self.columns.index(name)]
+
+    def names(self, prefix: str) -> list[str]:
+        """Columns with ``prefix`` ("y", "u", "limit", ...), in record order."""
+        return [c for c in self.columns if c.startswith(prefix + ":")]
+
+    def as_dict(self) -> dict[str, NDArray[np.float64]]:
+        return {name: self.rows[:, i] for i, name in enumerate(self.columns)}
+
+
+def read_run(folder: str | Path, columns: list[str] | None = None,
+             ticks: tuple[int, int] | None = None) -> RunRecord:
+    """Read a run folder, from the most complete copy of its tick data it holds.
+
+    ``columns`` reads only those columns and ``ticks`` = (first, stop) only those tick
+    records: a weekend-long run is opened a part at a time, never whole unless asked.
+    """
+    folder = Path(folder)
+    summary = _json(folder / "summary.json") or {}
+    start = _json(folder / RUN_START) or {}
+    h5 = folder / "run.h5"
+    if h5.exists() and _have_h5py():
+        from plantrig.sim.records._hdf5 import read_run_h5
+
+        d = read_run_h5(h5, columns, ticks)
+        return RunRecord(folder, d["columns"], d["units"], d["rows"], d["events"],
+                         summary or d["attrs"].get("summary", {}), d["info"], "run.h5")
+    info = start.get("columns") or []
+    if info:
+        every, units = [c["name"] for c in info], [c["unit"] for c in info]
+    elif (folder / "columns.json").exists():
+        meta = json.loads((folder / "columns.json").read_text())
+        every, units = meta["columns"], meta["units"]
+        info = [{"name": c, "unit": u} for c, u in zip(every, units, strict=True)]
+    else:
+        raise FileNotFoundError(f"{folder}: not a plantrig run folder (no run.h5, "
+                                f"{RUN_START} or columns.json)")
+    events = read_events(folder / "events.jsonl")
+    n = len(every)
+    if (folder / "ticks.npy").exists():
+        table = np.load(folder / "ticks.npy", mmap_mode="r").view(np.float64).reshape(-1, n)
+        source = "ticks.npy"
+    elif (folder / "ticks.journal").exists():
+        whole = (folder / "ticks.journal").stat().st_size // (n * 8)   # a torn row dropped
+        table = np.memmap(folder / "ticks.journal", dtype=np.float64, mode="r",
+                          shape=(whole, n)) if whole else np.zeros((0, n))
+        source = "ticks.journal"
+    else:
+        raise FileNotFoundError(f"{folder}: no tick data (run.h5, ticks.npy or ticks.journal)")
+    first, stop = ticks if ticks is not None else (0, table.shape[0])
+    names = every if columns is None else list(columns)
+    unknown = [c for c in names if c not in every]
+    if unknown:
+        raise KeyError(f"no column {unknown[0]!r}; columns: {', '.join(every)}")
+    picks = [every.index(c) for c in names]
+    rows = np.array(table[max(0, first):max(first, stop)][:, picks], dtype=np.float64)
+    del table
+    return RunRecord(folder, names, [units[i] for i in picks], rows, events, summary,
+                     [info[i] for i in picks], source)
+
+
+def _json(path: Path) -> Any:
+    return json.loads(path.read_text()) if path.exists() else None
+
+
+def _have_h5py() -> bool:
+    try:
+        import h5py  # noqa: F401
+    except ImportError:
+        return False
+    return True
