@@ -3,13 +3,22 @@ rate, held in between (checked against scipy.signal.dlsim at the model's own rat
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pytest
 import scipy.signal
 
-from plantrig.sim import DiscretePlant, RigFileError, load_rig, simulate, simulate_inputs, summarize
+from plantrig.sim import (
+    DiscretePlant,
+    RigFileError,
+    load_rig,
+    make_stepper,
+    simulate,
+    simulate_inputs,
+    summarize,
+)
 
 
 def test_held_model_matches_dlsim_at_its_own_rate() -> None:
@@ -81,3 +90,42 @@ def test_rig_file_multirate_runs_through_the_engine(tmp_path: Path) -> None:
     path.write_text(RIG.format(dt=0.025))
     with pytest.raises(RigFileError, match="or a whole multiple of it, found 0.025 s"):
         load_rig(path)
+
+
+@dataclass(frozen=True)
+class Load:
+    """A disturbance input entering the discrete model through ``column`` (as given)."""
+
+    column: tuple[float, ...]
+    param: str = ""
+
+
+def test_a_disturbance_enters_a_held_model_with_its_sample() -> None:
+    # d enters like u: read on the sample's tick (x_{s+1} = Ad x_s + Bd u_s + Ed d_s);
+    # reference: scipy.signal.dlsim of the model with [B E] at its own rate
+    sysd = scipy.signal.cont2discrete((np.array([[0.0, 1.0], [-40.0, -3.0]]),
+                                       np.array([[0.0], [40.0]]), np.array([[1.0, 0.0]]),
+                                       np.array([[0.5]])), 0.05)
+    ad, bd, c, d = sysd[:4]
+    plant = DiscretePlant.from_matrices(ad, bd, c, d, dt=0.05)
+    tick, every, n, step_at = 0.01, 5, 200, 37          # the load steps between samples
+    x0 = np.array([0.1, 0.0])
+    stepper = make_stepper(plant, tick, x0, disturbances=[Load((0.0, 0.3))])
+    u = np.cos(2 * np.arange(n) * tick)
+    xs, ys = np.zeros((n, 2)), np.zeros(n)
+    for k in range(n):
+        if k == step_at:
+            stepper.set_disturbance(0, 2.0)
+        stepper.u[0] = u[k]
+        stepper.step(k * tick)
+        xs[k], ys[k] = stepper.x, stepper.y[0]
+        stepper.commit()
+    loads = np.where(np.arange(n) >= step_at, 2.0, 0.0)[::every]
+    inputs = np.column_stack([u[::every], loads])
+    _, y_ref, x_ref = scipy.signal.dlsim(
+        (ad, np.column_stack([bd, [0.0, 0.3]]), c, np.column_stack([d, [0.0]]), 0.05),
+        inputs, x0=x0)
+    np.testing.assert_allclose(xs[::every], x_ref, rtol=1e-12, atol=1e-13)
+    np.testing.assert_allclose(ys[::every], y_ref[:, 0], rtol=1e-12, atol=1e-13)
+    for phase in range(1, every):                        # held ticks change nothing
+        np.testing.assert_array_equal(xs[phase::every], xs[::every])

@@ -668,7 +668,8 @@ class HeldLinearStepper(LinearStepper):
     On the tick of each model sample it reads u, gives y = C x + D u and computes the
     next model state; on the ticks in between the input is not read and state and
     output are held (zero-order hold), and the next state shows on the tick of the next
-    sample. A disturbance input adds Ed d to x_{k+1} on every tick, held ones included.
+    sample. A disturbance input enters with the sample as u does (x_{s+1} = Ad x_s +
+    Bd u_s + Ed d_s, d read on the sample's tick): held ticks change nothing.
     """
 
     def __init__(self, A: Matrix, B: Matrix, C: Matrix, D: Matrix, x0: Vector, every: int,
@@ -695,12 +696,12 @@ class HeldLinearStepper(LinearStepper):
     def step(self, t: float) -> None:
         if self._phase == 0:
             np.dot(self._block, self._xu, out=self._next)
+            if self._disturbed:
+                self.x_next += self._Ed_d
             self._pending[...] = self.x_next
         else:
             self.y[...] = self._y_held
         self.x_next[...] = self._pending if self._phase == self.every - 1 else self.x
-        if self._disturbed:
-            self.x_next += self._Ed_d
 
     def commit(self) -> None:
         if self._phase == 0:
