@@ -23,7 +23,14 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim import SIGNAL_LABELS, LimitSpec, RigFileError, RunRecord, load_rig_as_data
+from plantrig.sim import (
+    SIGNAL_LABELS,
+    LimitSpec,
+    RigFileError,
+    RunRecord,
+    decimate_minmax,
+    load_rig_as_data,
+)
 
 # the dashboard's palette (gui/_theme.py), as matplotlib colours
 INK = "#1a1c20"
@@ -214,23 +221,6 @@ def known_signals(record: RunRecord) -> list[str]:
     return [c for c in record.columns if c.partition(":")[0] in SIGNAL_LABELS]
 
 
-def envelope(t: NDArray[np.float64], v: NDArray[np.float64]) -> tuple[NDArray[np.float64],
-                                                                       NDArray[np.float64]]:
-    """At most PLOT_POINTS points, keeping each bucket's min and max (peaks stay)."""
-    if len(t) <= PLOT_POINTS:
-        return t, v
-    buckets = PLOT_POINTS // 2
-    edges = np.linspace(0, len(t), buckets + 1).astype(int)
-    tt, vv = [], []
-    for a, b in zip(edges[:-1], edges[1:], strict=True):
-        seg = v[a:b]
-        i, j = a + int(np.argmin(seg)), a + int(np.argmax(seg))
-        for k in sorted((i, j)):
-            tt.append(t[k])
-            vv.append(v[k])
-    return np.array(tt), np.array(vv)
-
-
 def limits_on(ctx: PlotContext, columns: list[str]) -> list[LimitSpec]:
     return [lim for lim in ctx.limits if lim.column in columns]
 
@@ -242,7 +232,7 @@ def draw_panel(ax: Any, ctx: PlotContext, panel: Panel) -> None:
     values: list[float] = []
     for column in panel.columns:
         colour, width, style = STYLE.get(column.partition(":")[0], (INK, 1.0, "-"))
-        tt, vv = envelope(t, r[column])
+        tt, vv = decimate_minmax(t, r[column], PLOT_POINTS // 2)   # every spike kept
         ax.plot(tt, vv, color=colour, lw=width, ls=style, label=label(column),
                 zorder=3 if column.startswith(("sent", "cmd", "ref")) else 2)
         finite = vv[np.isfinite(vv)]

@@ -62,8 +62,8 @@ def fps_child(decimate: bool, seconds: float, out: mp.Queue) -> None:  # type: i
     os.environ["LP_NUM_THREADS"] = "1"
     import dearpygui.dearpygui as dpg
 
-    from plantrig.gui._decimate import decimate_minmax
     from plantrig.gui._view import BUCKETS, HEIGHT, WIDTH
+    from plantrig.sim import decimate_minmax
 
     t = np.arange(N_POINTS) * 1e-3
     rng = np.random.default_rng(5)

@@ -15,7 +15,6 @@ from plantrig._lazy import lazy_names
 # the module (under plantrig.gui) each public name lives in
 _HOME: dict[str, str] = {
     **dict.fromkeys(["Dashboard", "run_dashboard"], "_dashboard"),
-    **dict.fromkeys(["decimate_minmax"], "_decimate"),
     **dict.fromkeys(["fault_catalogue"], "_faults"),
     **dict.fromkeys(["NO_DISPLAY", "LiveDashboard", "replay"], "_launch"),
     **dict.fromkeys(["Operator"], "_operator"),
@@ -35,7 +34,7 @@ _HOME: dict[str, str] = {
 
 __all__ = [
     "NO_DISPLAY", "Dashboard", "DashboardProcess", "LiveDashboard", "Operator", "Replay",
-    "RunFolderError", "RunRecord", "decimate_minmax", "display_available", "fault_catalogue",
+    "RunFolderError", "RunRecord", "display_available", "fault_catalogue",
     "load_run", "replay", "run_dashboard", "run_replay", "start_dashboard_process",
     "start_replay_process",
 ]
@@ -44,7 +43,6 @@ __getattr__, __dir__ = lazy_names(__name__, _HOME, __all__)
 
 if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.gui._dashboard import Dashboard, run_dashboard
-    from plantrig.gui._decimate import decimate_minmax
     from plantrig.gui._faults import fault_catalogue
     from plantrig.gui._launch import NO_DISPLAY, LiveDashboard, replay
     from plantrig.gui._operator import Operator

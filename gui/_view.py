@@ -27,7 +27,6 @@ import numpy as np
 
 from plantrig import CAUTION
 from plantrig.gui._columns import ColumnGroups
-from plantrig.gui._decimate import decimate_minmax
 from plantrig.gui._faults import FaultChoice, check_fault_form
 from plantrig.gui._model import (
     ALARM,
@@ -43,7 +42,7 @@ from plantrig.gui._operator import MOMENT_PRESETS, Operator
 from plantrig.gui._plots import PlotSpec
 from plantrig.gui._theme import ACCENT, INK, INK_SOFT, Themes
 from plantrig.gui._theme import ALARM as ALARM_RED
-from plantrig.sim import SIGNAL_LABELS
+from plantrig.sim import SIGNAL_LABELS, decimate_minmax
 
 T = "plantrig."                   # tag prefix
 WIDTH, HEIGHT = 1360, 880

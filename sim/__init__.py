@@ -44,6 +44,7 @@ _HOME: dict[str, str] = {
     **dict.fromkeys(["LinkSettings"], "config._link_settings"),
     **dict.fromkeys(["REGISTER_TYPES"], "config._modbus_settings"),
     **dict.fromkeys(["DEFAULT_QOS", "TlsSettings"], "config._mqtt_settings"),
+    **dict.fromkeys(["decimate_minmax", "minmax_bands"], "records._envelope"),
     **dict.fromkeys(["export_csv", "export_mat"], "records._export"),
     **dict.fromkeys(
         ["DisturbanceSpec", "FAULT_KINDS", "FaultKind", "FaultSpec", "parse_fault"],
@@ -282,6 +283,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         load_tolerances,
         parse_tolerance_option,
     )
+    from plantrig.sim.records._envelope import decimate_minmax, minmax_bands
     from plantrig.sim.records._export import export_csv, export_mat
     from plantrig.sim.records._manifest import (
         DERIVED,

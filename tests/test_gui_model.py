@@ -21,7 +21,6 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
 from plantrig.gui._columns import ColumnGroups
-from plantrig.gui._decimate import decimate_minmax
 from plantrig.gui._eventlog import EventLog, Latch, fault_edge, fault_name, trip_cause
 from plantrig.gui._faults import check_fault_form, fault_catalogue, fault_targets
 from plantrig.gui._model import (
@@ -47,6 +46,7 @@ from plantrig.sim import (
     FAULT_KINDS,
     Command,
     LimitSpec,
+    decimate_minmax,
     load_rig,
     load_rig_as_data,
     load_scenario,

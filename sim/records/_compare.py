@@ -33,6 +33,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim.config._checker import RigFileError, RigIssue, describe_value
+from plantrig.sim.records._envelope import minmax_bands
 from plantrig.sim.records._records import read_events
 
 SIGNAL_PREFIXES = ("ref", "cmd", "sent", "y", "x", "u", "d", "limit", "trip")
@@ -306,26 +307,9 @@ def _deviation(column: str, unit: str, a: NDArray[np.float64], b: NDArray[np.flo
 
 def _envelope(t: NDArray[np.float64], a: NDArray[np.float64], b: NDArray[np.float64],
               d: NDArray[np.float64]) -> Envelope:
-    n = len(t)
-    size = max(1, math.ceil(n / PLOT_POINTS))
-    cut = (n // size) * size
-
-    def lo_hi(v: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        head = v[:cut].reshape(-1, size)
-        lo, hi = np.nanmin(head, axis=1) if head.size else v[:0], \
-            np.nanmax(head, axis=1) if head.size else v[:0]
-        if cut < n:
-            lo = np.append(lo, np.nanmin(v[cut:]))
-            hi = np.append(hi, np.nanmax(v[cut:]))
-        return lo, hi
-
-    with np.errstate(all="ignore"):
-        import warnings
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)   # an all-NaN bucket
-            a_lo, a_hi = lo_hi(a)
-            b_lo, b_hi = lo_hi(b)
-            _, d_hi = lo_hi(np.where(np.isinf(d), np.nan, d))
+    size, a_lo, a_hi = minmax_bands(a, PLOT_POINTS)
+    _, b_lo, b_hi = minmax_bands(b, PLOT_POINTS)
+    _, _, d_hi = minmax_bands(np.where(np.isinf(d), np.nan, d), PLOT_POINTS)
     return Envelope(t[::size][:len(a_lo)].copy(), a_lo, a_hi, b_lo, b_hi, d_hi)
 
 

@@ -1,9 +1,10 @@
-"""Thinning a series for display without hiding its peaks.
+"""Thinning a long series for display without hiding its peaks (min-max decimation).
 
-docs/platform.md: 8 plots of 10k points render at ~20 fps under Mesa. A plot a thousand
-pixels wide cannot show more than two values per pixel column anyway, so each bucket
-of samples is replaced by its minimum and its maximum, in time order (min-max
-decimation, common practice for oscilloscope-style displays): every spike survives.
+A plot a thousand pixels wide cannot show more than two values per pixel column, so
+each bucket of samples is replaced by its minimum and its maximum: every spike survives
+(common practice for oscilloscope-style displays). docs/platform.md: 8 plots of 10k
+points render at ~20 fps under Mesa. One home for the report's and `plantrig plot`'s
+traces, the comparison's bands and the dashboard's plots.
 """
 
 from __future__ import annotations
@@ -47,3 +48,23 @@ def decimate_minmax(x: Vector, y: Vector, buckets: int) -> tuple[Vector, Vector]
             extra = np.sort(np.array([tail[np.nanargmin(ty)], tail[np.nanargmax(ty)]]))
         picks = np.concatenate([picks, extra])
     return x[picks], y[picks]
+
+
+def minmax_bands(v: Vector, buckets: int) -> tuple[int, Vector, Vector]:
+    """(bucket size, each bucket's minimum, each bucket's maximum) of ``v`` in at most
+    ``buckets`` buckets, for drawing a band; NaN samples are ignored, an all-NaN
+    bucket gives NaN. The last bucket may be short."""
+    n = len(v)
+    size = max(1, -(-n // max(1, buckets)))
+    full = n // size
+    head = v[:full * size].reshape(full, size)
+    lo = np.where(np.isnan(head), np.inf, head).min(axis=1) if full else v[:0]
+    hi = np.where(np.isnan(head), -np.inf, head).max(axis=1) if full else v[:0]
+    if full * size < n:
+        tail = v[full * size:]
+        lo = np.append(lo, np.min(np.where(np.isnan(tail), np.inf, tail)))
+        hi = np.append(hi, np.max(np.where(np.isnan(tail), -np.inf, tail)))
+    empty = np.isinf(lo) & np.isinf(hi) & (lo > hi)     # every sample of it was NaN
+    if empty.any():
+        lo[empty] = hi[empty] = np.nan
+    return size, lo, hi
