@@ -161,3 +161,26 @@ def test_rehearsal_events_side_by_side(tmp_path: Path,
     assert all(p.dt == 0 for p in phases if p.what in ("surge", "sensor_stuck"))
     assert c.outcomes["a"]["verdicts"] and set(c.outcomes["a"]["verdicts"]) == set(
         c.outcomes["b"]["verdicts"])
+
+
+def test_a_comparison_read_in_parts_equals_one_read_whole(
+        runs: dict[str, Path], monkeypatch: pytest.MonkeyPatch) -> None:
+    """Long runs are compared a part at a time; parts of a few plot buckets give the same
+    figures and bands as one part (the tick and the resampled alignment)."""
+    import plantrig.sim.records._compare as module
+
+    for a, b in ((runs["a"], runs["gain"]), (runs["a"], runs["slow"])):
+        whole = compare_runs(a, b)
+        monkeypatch.setattr(module, "PART_TICKS", 7)      # a few buckets a part
+        parts = compare_runs(a, b)
+        monkeypatch.undo()
+        assert [s.signal for s in parts.signals] == [s.signal for s in whole.signals]
+        for p, w in zip(parts.signals, whole.signals, strict=True):
+            assert (p.max_abs, p.t_max_abs, p.first_beyond_tick, p.ticks_beyond,
+                    p.bit_identical, p.scale) == (w.max_abs, w.t_max_abs,
+                                                  w.first_beyond_tick, w.ticks_beyond,
+                                                  w.bit_identical, w.scale)
+            assert p.rms == pytest.approx(w.rms, rel=1e-12)
+            for field in ("t", "a_lo", "a_hi", "b_lo", "b_hi", "d_hi"):
+                np.testing.assert_array_equal(getattr(parts.envelopes[p.signal], field),
+                                              getattr(whole.envelopes[w.signal], field))

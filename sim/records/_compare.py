@@ -42,6 +42,7 @@ EVENT_KINDS = ("trip", "estop", "reset", "fault_injected", "fault_cleared", "lin
                "link_restored", "phase", "scenario_step", "operator_stop", "error",
                "non_finite_state", "non_finite_input", "rule_failed", "run_end")
 PLOT_POINTS = 2000      # envelope buckets kept per signal for plots
+PART_TICKS = 1 << 19    # ticks of one column read at a time (4 MiB a side)
 
 
 class NotComparable(ValueError):
@@ -172,21 +173,30 @@ class RunColumns:
         if not self.h5.is_file() and not (self.folder / "ticks.npy").is_file():
             raise NotComparable(f"{self.folder}: no tick data (run.h5 or ticks.npy)")
         self.events = read_events(self.folder / "events.jsonl")
+        self._file: Any = None          # run.h5, open while the comparison reads it
+
+    def close(self) -> None:
+        if self._file is not None:
+            self._file.close()
+            self._file = None
 
     def unit(self, column: str) -> str:
         return self.units[self.columns.index(column)]
 
-    def read(self, column: str) -> NDArray[np.float64]:
+    def read(self, column: str, start: int = 0, stop: int | None = None
+             ) -> NDArray[np.float64]:
+        """Ticks ``start`` to ``stop`` of one column (only those are read)."""
         if self.h5.is_file():
-            import h5py
-
             from plantrig.sim.records._hdf5 import column_place
+            if self._file is None:
+                import h5py
+                self._file = h5py.File(self.h5, "r")
             group, name = column_place(column)
-            with h5py.File(self.h5, "r") as f:
-                return np.asarray(f["ticks"][group][name][()], dtype=np.float64)
+            return np.asarray(self._file["ticks"][group][name][start:stop], dtype=np.float64)
         rows = np.load(self.folder / "ticks.npy", mmap_mode="r")
-        return np.array(rows[column] if rows.dtype.names else
-                        rows.reshape(-1, len(self.columns))[:, self.columns.index(column)])
+        column_rows = rows[column] if rows.dtype.names else \
+            rows.reshape(-1, len(self.columns))[:, self.columns.index(column)]
+        return np.array(column_rows[start:stop])
 
 
 def signal_columns(columns: list[str]) -> list[str]:
@@ -252,65 +262,106 @@ def compare_runs(folder_a: str | Path, folder_b: str | Path,
     columns, notes = compatibility(a, b)
     alignment, ia, ib, n, grid_notes = _grid(a, b)
     notes = grid_notes + notes
-    t = np.arange(n) * (a.tick if ia is None or a.tick >= b.tick else b.tick)
+    t_step = a.tick if ia is None or a.tick >= b.tick else b.tick
     out: list[SignalDeviation] = []
     plots: dict[str, Envelope] = {}
-    for column in columns:
-        va, vb = a.read(column), b.read(column)
-        va = va[:n] if ia is None else va[ia]
-        vb = vb[:n] if ib is None else vb[ib]
-        dev, env = _deviation(column, a.unit(column), va, vb, np.asarray(t, np.float64),
-                              tol.of(column), envelopes)
-        out.append(dev)
-        if env is not None:
-            plots[column] = env
-        del va, vb
+    try:
+        for column in columns:
+            parts = _AlignedParts(a, b, column, ia, ib, n)
+            dev, env = _deviation(column, a.unit(column), parts, t_step, tol.of(column),
+                                  envelopes)
+            out.append(dev)
+            if env is not None:
+                plots[column] = env
+    finally:
+        a.close()
+        b.close()
     return Comparison(Path(folder_a), Path(folder_b), alignment, n, notes, out,
                       pair_events(a.events, b.events, tol.event_time),
                       _outcomes(a.summary, b.summary), plots)
 
 
-def _deviation(column: str, unit: str, a: NDArray[np.float64], b: NDArray[np.float64],
-               t: NDArray[np.float64], tol: Tolerance,
-               envelope: bool) -> tuple[SignalDeviation, Envelope | None]:
-    nan_a, nan_b = np.isnan(a), np.isnan(b)
-    d = np.abs(a - b)
-    both = nan_a & nan_b
-    if both.any():
-        d[both] = 0.0
-    one = nan_a ^ nan_b
-    if one.any():
-        d[one] = np.inf
-    finite_a = np.abs(a[~nan_a]) if nan_a.any() else np.abs(a)
-    scale = float(finite_a.max()) if finite_a.size else 0.0
-    if scale == 0.0:
-        finite_b = np.abs(b[~nan_b])
-        scale = float(finite_b.max()) if finite_b.size else 0.0
-    scale = scale or 1.0
-    identical = not d.any()          # equal, NaN where the other has NaN (as array_equal)
-    if d.size:
-        k = int(np.argmax(d))
-        max_abs, t_max = float(d[k]), float(t[k])
-        rms = float(np.sqrt(np.mean(np.square(d)))) if not one.any() else math.inf
-    else:
-        max_abs, t_max, rms = 0.0, None, 0.0
+class _AlignedParts:
+    """One column of A and of B on the common grid, a part at a time: memory stays the
+    same whatever the runs' length (a part is whole plot buckets, so bands add up)."""
+
+    def __init__(self, a: RunColumns, b: RunColumns, column: str,
+                 ia: NDArray[np.int64] | None, ib: NDArray[np.int64] | None, n: int) -> None:
+        self.a, self.b, self.column, self.ia, self.ib, self.n = a, b, column, ia, ib, n
+        self.bucket = max(1, math.ceil(n / PLOT_POINTS))
+        self.part = max(1, PART_TICKS // self.bucket) * self.bucket
+
+    def _side(self, run: RunColumns, index: NDArray[np.int64] | None, start: int,
+              stop: int) -> NDArray[np.float64]:
+        if index is None:
+            return run.read(self.column, start, stop)
+        wanted = index[start:stop]                 # increasing: one contiguous read
+        first = int(wanted[0]) if len(wanted) else 0
+        last = int(wanted[-1]) + 1 if len(wanted) else 0
+        return run.read(self.column, first, last)[wanted - first]
+
+    def __iter__(self) -> Iterator[tuple[int, NDArray[np.float64], NDArray[np.float64]]]:
+        for start in range(0, self.n, self.part):
+            stop = min(self.n, start + self.part)
+            yield (start, self._side(self.a, self.ia, start, stop),
+                   self._side(self.b, self.ib, start, stop))
+
+    def scale(self) -> float:
+        """The largest finite |a| (of |b| when A is all zero), for relative figures."""
+        for side, run, index in ((0, self.a, self.ia), (1, self.b, self.ib)):
+            top = 0.0
+            for start in range(0, self.n, self.part):
+                v = self._side(run, index, start, min(self.n, start + self.part))
+                v = np.abs(v[~np.isnan(v)])
+                top = max(top, float(v.max()) if v.size else 0.0)
+            if top or side:
+                return top or 1.0
+        return 1.0
+
+
+def _deviation(column: str, unit: str, parts: _AlignedParts, t_step: float,
+               tol: Tolerance, envelope: bool) -> tuple[SignalDeviation, Envelope | None]:
+    """The deviation figures of one column, from its parts in order."""
+    scale = parts.scale()
     limit = tol.abs + tol.rel * scale
-    beyond = d > limit
-    count = int(np.count_nonzero(beyond))
-    first = int(np.argmax(beyond)) if count else None
-    env = _envelope(t, a, b, d) if envelope and d.size else None
+    identical, one_sided = True, False
+    max_abs, k_max, sum_sq, count = 0.0, None, 0.0, 0
+    first: int | None = None
+    bands: list[tuple[NDArray[np.float64], ...]] = []
+    for start, a, b in parts:
+        nan_a, nan_b = np.isnan(a), np.isnan(b)
+        d = np.abs(a - b)
+        d[nan_a & nan_b] = 0.0
+        one = nan_a ^ nan_b
+        if one.any():
+            d[one] = np.inf
+            one_sided = True
+        identical = identical and not d.any()   # equal, NaN where the other has NaN
+        k = int(np.argmax(d))
+        if k_max is None or d[k] > max_abs:
+            max_abs, k_max = float(d[k]), start + k
+        if not one_sided:
+            sum_sq += float(np.dot(d, d))
+        beyond = d > limit
+        hits = int(np.count_nonzero(beyond))
+        if hits and first is None:
+            first = start + int(np.argmax(beyond))
+        count += hits
+        if envelope:
+            bands.append((*minmax_bands(a, parts.bucket), *minmax_bands(b, parts.bucket),
+                          minmax_bands(np.where(np.isinf(d), np.nan, d), parts.bucket)[1]))
+    n = parts.n
+    rms = math.inf if one_sided else (math.sqrt(sum_sq / n) if n else 0.0)
+    env = None
+    if envelope and bands:
+        a_lo, a_hi, b_lo, b_hi, d_hi = (np.concatenate(c) for c in zip(*bands, strict=True))
+        starts = np.arange(len(a_lo)) * parts.bucket          # each bucket's first tick
+        env = Envelope(np.multiply(starts, t_step, dtype=np.float64), a_lo, a_hi, b_lo,
+                       b_hi, d_hi)
     return SignalDeviation(
-        column, unit, max_abs, t_max, max_abs / scale, rms, scale, tol.abs, tol.rel,
-        float(t[first]) if first is not None else None, first, count, count == 0,
-        identical), env
-
-
-def _envelope(t: NDArray[np.float64], a: NDArray[np.float64], b: NDArray[np.float64],
-              d: NDArray[np.float64]) -> Envelope:
-    size, a_lo, a_hi = minmax_bands(a, PLOT_POINTS)
-    _, b_lo, b_hi = minmax_bands(b, PLOT_POINTS)
-    _, _, d_hi = minmax_bands(np.where(np.isinf(d), np.nan, d), PLOT_POINTS)
-    return Envelope(t[::size][:len(a_lo)].copy(), a_lo, a_hi, b_lo, b_hi, d_hi)
+        column, unit, max_abs, None if k_max is None else k_max * t_step, max_abs / scale,
+        rms, scale, tol.abs, tol.rel, None if first is None else first * t_step, first,
+        count, count == 0, identical), env
 
 
 def _event_key(ev: dict[str, Any]) -> tuple[str, str]:

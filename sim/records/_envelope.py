@@ -50,12 +50,11 @@ def decimate_minmax(x: Vector, y: Vector, buckets: int) -> tuple[Vector, Vector]
     return x[picks], y[picks]
 
 
-def minmax_bands(v: Vector, buckets: int) -> tuple[int, Vector, Vector]:
-    """(bucket size, each bucket's minimum, each bucket's maximum) of ``v`` in at most
-    ``buckets`` buckets, for drawing a band; NaN samples are ignored, an all-NaN
-    bucket gives NaN. The last bucket may be short."""
+def minmax_bands(v: Vector, size: int) -> tuple[Vector, Vector]:
+    """Each ``size``-sample bucket's minimum and maximum of ``v``, for drawing a band;
+    NaN samples are ignored, an all-NaN bucket gives NaN. The last bucket may be short.
+    A long series can be banded a part at a time when each part is whole buckets."""
     n = len(v)
-    size = max(1, -(-n // max(1, buckets)))
     full = n // size
     head = v[:full * size].reshape(full, size)
     lo = np.where(np.isnan(head), np.inf, head).min(axis=1) if full else v[:0]
@@ -67,4 +66,4 @@ def minmax_bands(v: Vector, buckets: int) -> tuple[int, Vector, Vector]:
     empty = np.isinf(lo) & np.isinf(hi) & (lo > hi)     # every sample of it was NaN
     if empty.any():
         lo[empty] = hi[empty] = np.nan
-    return size, lo, hi
+    return lo, hi
