@@ -9,7 +9,8 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-REHEARSED = {"frames_dropped": "frames dropped", "frames_corrupted": "frames corrupted"}
+REHEARSED = {"frames_dropped": "frames dropped", "frames_corrupted": "frames corrupted",
+             "rehearsed_losses": "link losses (link_lost events)"}
 
 
 def human_duration(seconds: float) -> str:

@@ -12,59 +12,75 @@ is measured against its warn bounds instead, and says so. A rate limit's use is
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim import LimitSpec, RunRecord
+from plantrig.sim import LimitSpec, RunRecord, column_parts, decimate_minmax
 
 
 @dataclass
 class LimitUse:
-    use: NDArray[np.float64]          # per tick
-    rate_use: NDArray[np.float64] | None
+    t: NDArray[np.float64]            # plant time of the plotted points
+    use: NDArray[np.float64]          # use at those times (a min/max envelope when long)
+    rate_use: NDArray[np.float64] | None   # |dv/dt| / rate_trip at rate_t
+    rate_t: NDArray[np.float64]
     base: float
     warn_fractions: list[float]
-    peak: float
+    peak: float                       # of every tick, not of the plotted points
     peak_time: float
     peak_value: float
     bands_text: str
 
 
+PLOT_BUCKETS = 2000      # per part: a part's use is drawn as its buckets' min and max
+
+
 def limit_use(record: RunRecord, lim: LimitSpec) -> LimitUse:
-    v = record[lim.column]
-    t = record.t
+    """The limit's use over every tick of the run, read a part at a time from the
+    folder: the peak is exact, the plotted series keeps each bucket's min and max."""
+    tick = float((record.summary.get("rig") or {}).get("tick_s") or _step(record.t))
+    parts = column_parts(record.folder, lim.column)
+    first = next(parts, np.zeros(0))
     lo, hi, against = lim.trip_low, lim.trip_high, "trip"
     if not (math.isfinite(lo) or math.isfinite(hi)):
         lo, hi, against = lim.warn_low, lim.warn_high, "warn (no trip bound)"
+    v0 = float(first[0]) if len(first) else 0.0
     if math.isfinite(lo) and math.isfinite(hi):
         base = (lo + hi) / 2
     else:
-        v0 = float(v[0]) if len(v) else 0.0
         inside = math.isfinite(v0) and (v0 > lo if math.isfinite(lo) else v0 < hi)
         base = v0 if inside else 0.0
-    use = np.full(len(v), np.nan)
-    if math.isfinite(hi) and hi != base:
-        above = v >= base
-        use[above] = (v[above] - base) / (hi - base)
-    if math.isfinite(lo) and lo != base:
-        below = v < base
-        use[below] = (base - v[below]) / (base - lo)
-    use[~np.isfinite(v)] = np.inf                 # NaN trips (sim/safety/_limits.py)
-    use = np.where(np.isnan(use), 0.0, use)
+    has_rate = math.isfinite(lim.rate_trip)
+    peak, peak_at, peak_value = -math.inf, 0, math.nan
+    t_plot, use_plot, rate_t, rate_plot = [], [], [], []
+    start, before = 0, v0
+    for v in itertools.chain([first], parts):
+        if not len(v):
+            continue
+        use = _use(v, base, lo, hi)
+        i = int(np.argmax(use))
+        if use[i] > peak:
+            peak, peak_at, peak_value = float(use[i]), start + i, float(v[i])
+        t = np.multiply(start + np.arange(len(v)), tick, dtype=np.float64)
+        shown_t, shown = decimate_minmax(t, use, PLOT_BUCKETS)
+        t_plot.append(shown_t)
+        use_plot.append(shown)
+        if has_rate:
+            rate = np.abs(np.diff(v, prepend=before)) / max(tick, 1e-12) / lim.rate_trip
+            shown_t, shown = decimate_minmax(t, rate, PLOT_BUCKETS)
+            rate_t.append(shown_t)
+            rate_plot.append(shown)
+        start, before = start + len(v), float(v[-1])
     warn = []
     for w, b in ((lim.warn_high, hi), (lim.warn_low, lo)):
         if math.isfinite(w) and math.isfinite(b) and w != b and b != base:
             warn.append(abs(w - base) / abs(b - base))
-    rate_use = None
-    if math.isfinite(lim.rate_trip) and len(v) > 1:
-        rate = np.abs(np.diff(v, prepend=v[0])) / max(float(t[1] - t[0]), 1e-12)
-        rate_use = rate / lim.rate_trip
-        if math.isfinite(lim.rate_warn) and lim.rate_warn < lim.rate_trip:
-            warn.append(lim.rate_warn / lim.rate_trip)
-    i = int(np.argmax(use)) if len(use) else 0
+    if has_rate and math.isfinite(lim.rate_warn) and lim.rate_warn < lim.rate_trip:
+        warn.append(lim.rate_warn / lim.rate_trip)
     bands = [f"{name} {value:g} {lim.unit}".rstrip() for name, value in (
         ("trip below", lim.trip_low), ("trip above", lim.trip_high),
         ("warn below", lim.warn_low), ("warn above", lim.warn_high),
@@ -73,9 +89,32 @@ def limit_use(record: RunRecord, lim: LimitSpec) -> LimitUse:
     both = math.isfinite(lo) and math.isfinite(hi)
     base_text = (f"0 = the middle of the {against} band ({base:g} {lim.unit})" if both else
                  f"0 = {base:g} {lim.unit}".rstrip() + (" (the value at tick 0)"
-                                                       if len(v) and base == float(v[0])
-                                                       else ""))
-    return LimitUse(use, rate_use, base, warn, float(use[i]) if len(use) else 0.0,
-                    float(t[i]) if len(t) else 0.0, float(v[i]) if len(v) else math.nan,
+                                                       if start and base == v0 else ""))
+    return LimitUse(_joined(t_plot), _joined(use_plot),
+                    _joined(rate_plot) if has_rate and start else None, _joined(rate_t),
+                    base, warn, peak if start else 0.0,
+                    peak_at * tick if start else 0.0, peak_value,
                     f"{', '.join(bands)}; use {base_text}, 1 = the {against.split()[0]} "
                     "bound")
+
+
+def _use(v: NDArray[np.float64], base: float, lo: float, hi: float) -> NDArray[np.float64]:
+    """Use of each value: toward the bound on its side of the base; NaN counts as
+    beyond (a NaN trips, sim/safety/_limits.py)."""
+    use = np.full(len(v), np.nan)
+    if math.isfinite(hi) and hi != base:
+        above = v >= base
+        use[above] = (v[above] - base) / (hi - base)
+    if math.isfinite(lo) and lo != base:
+        below = v < base
+        use[below] = (base - v[below]) / (base - lo)
+    use[~np.isfinite(v)] = np.inf
+    return np.where(np.isnan(use), 0.0, use)
+
+
+def _joined(pieces: list[NDArray[np.float64]]) -> NDArray[np.float64]:
+    return np.concatenate(pieces) if pieces else np.zeros(0)
+
+
+def _step(t: NDArray[np.float64]) -> float:
+    return float(t[1] - t[0]) if len(t) > 1 else 1.0

@@ -12,7 +12,7 @@ import sys
 from pathlib import Path
 
 from plantrig._plots import context, known_signals, panels_for, plot_signals
-from plantrig.sim import DERIVED, read_run
+from plantrig.sim import DERIVED, read_for_display
 
 EXIT_OK, EXIT_USAGE = 0, 2
 EXIT_CODES = """exit codes:
@@ -25,7 +25,7 @@ SUFFIXES = (".png", ".svg")
 def cmd_plot(args: argparse.Namespace) -> int:
     folder = Path(args.folder)
     try:
-        record = read_run(folder)
+        record = read_for_display(folder)   # memory that does not grow with the run
     except (OSError, ValueError, KeyError) as exc:
         print(f"error: {folder}: not a readable run folder ({exc})", file=sys.stderr)
         return EXIT_USAGE

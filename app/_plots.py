@@ -156,6 +156,10 @@ def spans(t: NDArray[np.float64], active: NDArray[np.bool_]) -> list[tuple[float
 
 
 def _step(record: RunRecord) -> float:
+    """The tick (from the summary: a record thinned for display has wider steps)."""
+    tick = (record.summary.get("rig") or {}).get("tick_s")
+    if tick:
+        return float(tick)
     t = record.t
     return float(t[1] - t[0]) if len(t) > 1 else 0.0
 

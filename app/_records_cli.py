@@ -31,6 +31,7 @@ from plantrig.sim import (
     WrongPassphrase,
     check_folder,
     generate_keypair,
+    read_for_display,
     read_run,
     recover_run,
     sign_folder,
@@ -243,7 +244,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     if out is None:
         return EXIT_USAGE
     try:
-        record = read_run(folder)
+        record = read_for_display(folder)   # memory that does not grow with the run
         paths = write_report(record, out, operator=args.operator, witness=args.witness,
                              readiness=readiness, draft=args.draft, reviewer=args.reviewer)
     except (OSError, ValueError) as exc:

@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from plantrig import CAUTION, __version__
 from plantrig._limit_use import limit_use
@@ -52,7 +53,14 @@ from plantrig._report_text import (
     run_facts,
     sections,
 )
-from plantrig.sim import DRAFT_MARK, DRAFT_PREFIX, Readiness, RunRecord, check_folder
+from plantrig.sim import (
+    DRAFT_MARK,
+    DRAFT_PREFIX,
+    Readiness,
+    RunRecord,
+    check_folder,
+    column_parts,
+)
 
 PAGE = (8.27, 11.69)         # A4 portrait, inches
 PANELS_PER_PAGE = 4
@@ -239,13 +247,12 @@ def _limit_page(ctx: PlotContext, limits: list[Any]) -> Any:
                  "(1 = trip bound)", fontsize=11, x=0.07, y=0.955, ha="left")
     for ax in axes[len(limits):]:
         ax.set_visible(False)
-    t = record.t
     for ax, lim in zip(axes, limits, strict=False):
         use = limit_use(record, lim)
-        ax.plot(t, np.minimum(use.use, 10.0), color=PLANT_BLUE, lw=1.4,
+        ax.plot(use.t, np.minimum(use.use, 10.0), color=PLANT_BLUE, lw=1.4,
                 label=f"{label(lim.column)} (use)")
         if use.rate_use is not None:
-            ax.plot(t, np.minimum(use.rate_use, 10.0), color=INK_SOFT, lw=0.8,
+            ax.plot(use.rate_t, np.minimum(use.rate_use, 10.0), color=INK_SOFT, lw=0.8,
                     label="rate of change (use)")
         ax.axhline(1.0, color=ALARM, lw=1.1, label="trip bound")
         for w in sorted(set(round(w, 9) for w in use.warn_fractions)):
@@ -294,19 +301,41 @@ def _timeline(ctx: PlotContext) -> Any:
     return fig
 
 
+def _histogram(record: RunRecord, column: str, bins: int = 80
+               ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """(counts, bin edges in us) of one timing column over every tick, read a part at a
+    time in two passes (never the whole run); empty when every value is 0."""
+    top = 0.0
+    for part in column_parts(record.folder, column):
+        top = max(top, float(np.nanmax(part)) * 1e6 if part.size else 0.0)
+    if not top > 0.0:
+        return np.zeros(0), np.zeros(0)
+    edges = np.linspace(0.0, top, bins + 1)
+    counts = np.zeros(bins)
+    for part in column_parts(record.folder, column):
+        counts += np.histogram(part * 1e6, bins=edges)[0]
+    return counts, edges
+
+
 def _timing_page(record: RunRecord) -> Any:
+    """Histograms of every tick's lateness and work time, with the p50 and p99 the
+    summary holds (the engine's own timing histogram, as the console says them)."""
     import matplotlib.pyplot as plt
 
     fig, (a, b) = plt.subplots(2, 1, figsize=PAGE)
-    late = record["lateness"] * 1e6 if "lateness" in record else np.zeros(0)
-    work = record["exec_time"] * 1e6 if "exec_time" in record else np.zeros(0)
-    for ax, values, what in ((a, late, "lateness"), (b, work, "work time")):
-        if values.size and values.any():
-            ax.hist(values, bins=80, color=PLANT_BLUE)
+    timing = record.summary.get("timing") or {}
+    for ax, column, key, what in ((a, "lateness", "lateness", "lateness"),
+                                  (b, "exec_time", "exec", "work time")):
+        counts, edges = _histogram(record, column) if column in record else \
+            (np.zeros(0), np.zeros(0))
+        if counts.size:
+            ax.stairs(counts, edges, fill=True, color=PLANT_BLUE)
             ax.set_yscale("log")
             for q, style in ((50, ":"), (99, "--")):
-                p = float(np.percentile(values, q))
-                ax.axvline(p, color=ALARM, ls=style, lw=1, label=f"p{q} {p:.1f} us")
+                value = timing.get(f"{key}_p{q}_s")
+                if value is not None:
+                    ax.axvline(value * 1e6, color=ALARM, ls=style, lw=1,
+                               label=f"p{q} {value * 1e6:.1f} us")
             ax.legend(fontsize=8)
             ax.set_xlabel(f"{what} per tick [us]")
             ax.set_ylabel("ticks")

@@ -21,7 +21,7 @@ import numpy as np
 
 from plantrig import __version__
 from plantrig._plots import PlotContext, label
-from plantrig.sim import DRAFT_MARK, Readiness, RunRecord
+from plantrig.sim import DRAFT_MARK, Readiness, RunRecord, column_parts
 
 Rows = list[tuple[str, str]]
 Section = tuple[str, Rows]
@@ -101,7 +101,7 @@ def identity_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
                                                 "name")
     scenario_text = _toml_field(record.folder / "scenario.toml", "scenario", "description")
     tick0 = s.get("tick0_utc")
-    ticks_run = s.get("ticks_run", s.get("ticks_recorded", len(record.rows)))
+    ticks_run = s.get("ticks_run", s.get("ticks_recorded", record.ticks_total))
     rows = [
         ("rig", f"{rig.get('name', '?')}" + (f" — {description}" if description else "")),
         ("scenario", (f"{scenario}" + (f" — {scenario_text}" if scenario_text else ""))
@@ -117,7 +117,7 @@ def identity_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
          if "ended" in s else "not recorded: the run has no summary (not over, or it died)"),
         ("exit code", str(s.get("exit_code", "?"))),
         ("ticks", f"{ticks_run} of {s.get('ticks_planned', '?')} planned ran, "
-                  f"{s.get('ticks_recorded', len(record.rows))} recorded; tick "
+                  f"{s.get('ticks_recorded', record.ticks_total)} recorded; tick "
                   f"{_seconds(rig.get('tick_s'))}"),
         ("device under test", dut_text(s.get("dut"))),
         ("link used", link_text(s.get("link_used"), s)),
@@ -340,8 +340,9 @@ def overruns_of(record: RunRecord, s: dict[str, Any]) -> tuple[int | None, str]:
         return int(timing["overruns"]), ""
     tick = (s.get("rig") or {}).get("tick_s")
     if "lateness" in record and tick:
-        return int(np.count_nonzero(record["lateness"] >= float(tick))), \
-            " (counted from the recorded lateness of each tick)"
+        late = sum(int(np.count_nonzero(part >= float(tick)))
+                   for part in column_parts(record.folder, "lateness"))
+        return late, " (counted from the recorded lateness of each tick)"
     return None, ""
 
 
@@ -350,7 +351,9 @@ def timing_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
     if not rows:
         rows.append(("link", "none (built-in controller)"))
     elif "fresh" in record and len(record.rows):
-        rows.append(("fresh commands", f"{record['fresh'].mean() * 100:.2f} % of ticks"))
+        fresh = sum(float(part.sum()) for part in column_parts(record.folder, "fresh"))
+        total = record.ticks_total if record.ticks_total >= 0 else len(record.rows)
+        rows.append(("fresh commands", f"{fresh / max(1, total) * 100:.2f} % of ticks"))
     timing = s.get("timing", {})
     if s.get("mode") != "realtime":
         rows.append(("timing", "fast mode: ticks were not paced to the wall clock, so "

@@ -29,7 +29,7 @@ from plantrig.gui._model import DashboardModel
 from plantrig.gui._operator import Operator
 from plantrig.gui._plots import plot_specs
 from plantrig.gui._runinfo import outcome_lines, progress_lines, scenario_plan, watchdog_of
-from plantrig.gui._store import RowStore
+from plantrig.gui._store import RecordStore
 from plantrig.gui._view import DashboardView
 from plantrig.sim import Rig, RigFileError, load_rig_as_data, read_run, rig_from_record
 
@@ -50,7 +50,7 @@ class RunRecord:
     rig: Rig
     columns: list[str]
     units: list[str]
-    rows: NDArray[np.float64]
+    n_ticks: int                # tick records in the folder; RecordStore reads them
     events: list[EventRow]
     summary: dict[str, object]
     rig_note: str = ""          # set when rig.toml could not be read and the record's own
@@ -65,18 +65,29 @@ def load_run(folder: str | Path) -> RunRecord:
     if not (folder / "rig.toml").is_file():
         raise RunFolderError(folder, "no rig.toml: is this a plantrig run folder?")
     try:
-        record = read_run(folder)
+        record = read_run(folder, ticks=(0, 0))      # names, units, events: no rows yet
     except (OSError, ValueError, KeyError) as exc:
         raise RunFolderError(folder, f"tick data unreadable: {exc}") from None
     if "t" not in record.columns:
         raise RunFolderError(folder, "the tick data has no 't' column")
-    columns, units, rows = record.columns, record.units, record.rows
+    columns, units = record.columns, record.units
     events: list[EventRow] = [(int(e["tick"]), float(e["time"]), str(e["kind"]),
                                str(e.get("detail", ""))) for e in record.events]
     summary_path = folder / "summary.json"
     summary = _json(folder, summary_path) if summary_path.is_file() else {}
     rig, note = _rig(folder)
-    return RunRecord(folder, rig, columns, units, rows, events, summary, note)
+    return RunRecord(folder, rig, columns, units, record.ticks_total, events, summary, note)
+
+
+def _overrun_ticks(record: RunRecord) -> NDArray[np.int64]:
+    """The ticks that started a whole tick late or more, from the lateness column read a
+    part at a time."""
+    late: list[NDArray[np.int64]] = []
+    for first in range(0, record.n_ticks, RecordStore.PART_ROWS):
+        part = read_run(record.folder, columns=["lateness"],
+                        ticks=(first, first + RecordStore.PART_ROWS)).rows[:, 0]
+        late.append(first + np.flatnonzero(part >= record.rig.tick))
+    return np.concatenate(late) if late else np.empty(0, dtype=np.int64)
 
 
 def _rig(folder: Path) -> tuple[Rig, str]:
@@ -117,14 +128,12 @@ class Replay:
         prepare_renderer()
         self.record = rec = load_run(folder)
         groups = ColumnGroups(rec.columns, rec.units, rec.rig)
-        self.store = RowStore(rec.rows, groups.index("t"))
+        self.store = RecordStore(rec.folder, rec.n_ticks, rec.rig.tick, groups.index("t"))
         rig = rec.rig
         self.model = DashboardModel(groups, rig.tick, has_link=rig.controller.kind == "external",
                                     limits=getattr(rig, "limits", ()),
                                     watchdog_s=watchdog_of(rig))
-        late = rec.rows[:, groups.index("lateness")] if "lateness" in groups else \
-            np.zeros(len(rec.rows))
-        self.overruns_upto = np.cumsum(late >= rec.rig.tick)
+        self.overrun_ticks = _overrun_ticks(rec) if "lateness" in groups else np.empty(0)
         span_total = max(self.store.t_last - self.store.t_first, rec.rig.tick)
         self.run_id = rec.folder.name
         self.view = DashboardView(
@@ -156,8 +165,8 @@ class Replay:
         view = self.view
         if view.cursor_moved:
             self.log = EventLog.upto(self.record.events, view.cursor)
-            i = self.store.position(view.cursor)
-            self.model.overruns = int(self.overruns_upto[i - 1]) if i > 0 else 0
+            i = self.store.position(view.cursor)     # the late ticks before the cursor
+            self.model.overruns = int(np.searchsorted(self.overrun_ticks, i))
             view.cursor_moved = False
         snap = self.model.snapshot(self.store, view.cursor, view.span, log=self.log,
                                    replay_of=self.run_id)

@@ -44,7 +44,7 @@ _HOME: dict[str, str] = {
     **dict.fromkeys(["LinkSettings"], "config._link_settings"),
     **dict.fromkeys(["REGISTER_TYPES"], "config._modbus_settings"),
     **dict.fromkeys(["DEFAULT_QOS", "TlsSettings"], "config._mqtt_settings"),
-    **dict.fromkeys(["decimate_minmax", "minmax_bands"], "records._envelope"),
+    **dict.fromkeys(["decimate_minmax", "minmax_bands", "thin_rows"], "records._envelope"),
     **dict.fromkeys(["export_csv", "export_mat"], "records._export"),
     **dict.fromkeys(
         ["DisturbanceSpec", "FAULT_KINDS", "FaultKind", "FaultSpec", "parse_fault"],
@@ -78,7 +78,10 @@ _HOME: dict[str, str] = {
     **dict.fromkeys(["RecordError"], "records._preflight"),
     **dict.fromkeys(["rig_from_python", "write_rig"], "config._rig_builder"),
     **dict.fromkeys(["RigDocument", "read_rig_document"], "config._rig_document"),
-    **dict.fromkeys(["RunRecord", "read_run"], "records._reader"),
+    **dict.fromkeys(
+        ["DISPLAY_ROWS", "RunRecord", "column_parts", "read_for_display", "read_run"],
+        "records._reader",
+    ),
     **dict.fromkeys(["read_journal"], "records._recorder"),
     **dict.fromkeys(["recover_run"], "records._records"),
     **dict.fromkeys(["Ramp", "Sine", "Step", "Table"], "model._references"),
@@ -283,7 +286,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         load_tolerances,
         parse_tolerance_option,
     )
-    from plantrig.sim.records._envelope import decimate_minmax, minmax_bands
+    from plantrig.sim.records._envelope import decimate_minmax, minmax_bands, thin_rows
     from plantrig.sim.records._export import export_csv, export_mat
     from plantrig.sim.records._manifest import (
         DERIVED,
@@ -300,7 +303,13 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         write_atomic,
     )
     from plantrig.sim.records._preflight import RecordError
-    from plantrig.sim.records._reader import RunRecord, read_run
+    from plantrig.sim.records._reader import (
+        DISPLAY_ROWS,
+        RunRecord,
+        column_parts,
+        read_for_display,
+        read_run,
+    )
     from plantrig.sim.records._recorder import read_journal
     from plantrig.sim.records._records import RUN_START, recover_run
     from plantrig.sim.records._rerun import RerunError, plan_rerun

@@ -670,3 +670,28 @@ def test_the_live_window_finds_its_run_folder_only_when_run_start_names_the_tape
     assert live_folder(tape, tmp_path) == folder
     assert live_folder(tape, None) is None
     assert live_folder(Path("/dev/shm/odd.tape"), tmp_path) is None
+
+
+def test_a_recorded_run_is_read_a_window_at_a_time(tmp_path: Path) -> None:
+    """Replay never holds the whole run: a short window comes back as recorded, a long
+    one thinned to each bucket's min and max per column (the spike and the extremes
+    survive), and the row at an instant is the recorded row."""
+    from plantrig.gui._store import RecordStore
+    from plantrig.sim import load_rig, read_run, run_to_folder
+
+    rig = load_rig(Path(__file__).resolve().parents[1] / "configs" / "conveyor.toml")
+    folder, _, _ = run_to_folder(rig, tmp_path)
+    whole = read_run(folder)
+    t_index = whole.columns.index("t")
+    store = RecordStore(folder, whole.ticks_total, rig.tick, t_index, max_rows=200)
+    assert len(store) == len(whole.rows) and store.t_last == whole.t[-1]
+    short = store.window(0.15, 0.1)                    # ticks 51..150: 100 rows
+    np.testing.assert_array_equal(short, whole.rows[51:151])
+    np.testing.assert_array_equal(store.at(1.2345), whole.rows[1234])
+    thin = store.window(store.t_last, store.t_last + 1.0)   # every row: thinned
+    assert len(thin) <= 200 + 2 and np.all(np.diff(thin[:, t_index]) >= 0)
+    for i, name in enumerate(whole.columns):
+        if name != "t":
+            assert np.nanmax(thin[:, i]) == np.nanmax(whole.rows[:, i])
+            assert np.nanmin(thin[:, i]) == np.nanmin(whole.rows[:, i])
+    assert thin[0, t_index] == 0.0 and thin[-1, t_index] == whole.t[-1]

@@ -272,3 +272,25 @@ def test_help_of_plot_and_run_documents_the_new_options() -> None:
     run_help = sub.choices["run"].format_help()
     assert "--dut NAME" in run_help and "--firmware VERSION" in run_help
     assert "--reviewer" in sub.choices["report"].format_help()
+
+
+def test_a_long_record_is_reported_from_a_thinned_copy_with_its_peaks(
+        belt_run: Path, belt_report: dict, tmp_path: Path,
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """A record longer than DISPLAY_ROWS is plotted from a min/max-thinned copy read a
+    part at a time (memory that does not grow with the run); the limit-use peaks, the
+    pages and the numbers stay those of the whole record."""
+    import plantrig.sim.records._reader as reader
+
+    record = reader.read_for_display(belt_run, max_rows=400)
+    assert len(record.rows) <= 402 and record.ticks_total == len(read_run(belt_run).rows)
+    monkeypatch.setattr(reader, "DISPLAY_ROWS", 400)
+    assert main(["report", str(belt_run), "--out", str(tmp_path), "--operator", "R. Okafor",
+                 "--reviewer", "M. Lindqvist"]) == 0
+    text = subprocess.run(["pdftotext", "-layout", str(tmp_path / "report.pdf"), "-"],
+                          check=True, capture_output=True, text=True, timeout=120).stdout
+    pages = text.split("\f")[:-1]
+    assert len(pages) == len(belt_report["pages"])
+    whole = "\n".join(belt_report["pages"])
+    peaks = re.findall(r"peak \d+\.\d+ at [\d.e+-]+ s", whole)
+    assert peaks and all(p in text for p in peaks)

@@ -4,6 +4,8 @@ The American Statistician 50 (1996), definition 1)."""
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 
@@ -45,3 +47,31 @@ def test_counting_many_at_once_equals_one_by_one() -> None:
     many.add_many(values[1234:])
     assert (one.fine, one.coarse, one.beyond, one.count, one.max_ns) == \
         (many.fine, many.coarse, many.beyond, many.count, many.max_ns)
+
+
+def test_the_spin_window_follows_the_measured_wake_up_jitter() -> None:
+    from plantrig.sim.engine._clock import SPIN_MAX_NS, SPIN_MIN_NS, SPIN_NS, spin_window_ns
+
+    quiet = [3_000] * 990 + [30_000] * 10          # p99 is the 991st of 1000: 30 us
+    assert spin_window_ns(quiet) == 45_000          # 1.5 x p99
+    assert spin_window_ns([1_000] * 100) == SPIN_MIN_NS
+    assert spin_window_ns([5_000_000] * 100) == SPIN_MAX_NS
+    assert spin_window_ns([]) == SPIN_NS
+
+
+def test_a_real_time_run_measures_and_records_its_spin_window() -> None:
+    from plantrig.sim import Engine, MemoryTape, build_rig, tick_columns
+
+    rig = build_rig({
+        "rig": {"name": "spin", "tick": 0.001, "duration": 0.05, "mode": "realtime"},
+        "plant": {"kind": "lti", "A": [[-1.0]], "B": [[1.0]], "C": [[1.0]],
+                  "states": [{"name": "x"}], "inputs": [{"name": "u"}],
+                  "outputs": [{"name": "y"}]},
+        "references": [{"name": "r", "kind": "constant", "value": 0.5}],
+        "controller": {"kind": "open_loop", "drive": {"u": "r"}},
+    }, Path("spin.toml"))
+    engine = Engine(rig, MemoryTape(tick_columns(rig)[0], rig.n_ticks))
+    outcome = engine.run()
+    spin = outcome.timing(rig.tick)["spin_window_s"]
+    assert isinstance(spin, float) and 20e-6 <= spin <= 1e-3
+    assert engine.clock.spin_ns == round(spin * 1e9)   # type: ignore[attr-defined]

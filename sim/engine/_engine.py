@@ -38,7 +38,7 @@ from numpy.typing import NDArray
 
 from plantrig.sim.config._rigfile import Rig
 from plantrig.sim.engine._chains import build_chains
-from plantrig.sim.engine._clock import SPIN_NS, Clock, WallClock
+from plantrig.sim.engine._clock import Clock, WallClock
 from plantrig.sim.engine._commands import COMMAND_POLL_S, Command, CommandInbox
 from plantrig.sim.engine._contracts import ControllerLink, Event, SignalChain
 from plantrig.sim.engine._outcome import (
@@ -161,6 +161,7 @@ class RunOutcome:
             "timing_resolution_s": FINE_NS / 1e9,
             "overruns": self.overruns, "skipped_slots": self.skipped_slots,
             "scheduler": self.realtime.scheduler if self.realtime else None,
+            "spin_window_s": self.realtime.spin_ns / 1e9 if self.realtime else None,
             "cpu": self.realtime.cpu if self.realtime else None,
         }
 
@@ -193,6 +194,7 @@ class Engine:
         self.tape = tape
         self.realtime = rig.mode == "realtime" if realtime is None else realtime
         self.clock = clock or WallClock()
+        self._own_clock = clock is None     # its spin window is measured at the start
         self.link = link
         self.controller = build_controller(rig)
         if self.controller is None and link is None:
@@ -324,6 +326,8 @@ class Engine:
         try:
             self._prime()
             with _maybe_realtime(self.realtime, self.tick_ns) as report:
+                if report is not None and self._own_clock:
+                    self.clock.spin_ns = report.spin_ns   # type: ignore[attr-defined]
                 self._ticks()
         except _RunEnds as end:
             ended, reason = end.ended, end.reason
@@ -589,7 +593,7 @@ class Engine:
             facts = RunFacts(self.rig.n_ticks, done, link is not None,
                              self.answered if link else done, int(health.get("link_lost", 0)),
                              self.realtime, self.overruns, self.skipped,
-                             tuple(self.safety.trips))
+                             tuple(self.safety.trips), int(health.get("rehearsed_losses", 0)))
             outcome = settle(ended, reason, judge(self.rig.acceptance, facts,
                                                   self.expected_trips))
             for rule in outcome.rules if ended == COMPLETED else ():  # they decide it
@@ -629,4 +633,4 @@ class _NoRealtime:
 
 def _maybe_realtime(enabled: bool,
                     tick_ns: int) -> AbstractContextManager[RealtimeReport | None]:
-    return realtime_process(tick_ns, SPIN_NS) if enabled else _NoRealtime()
+    return realtime_process(tick_ns) if enabled else _NoRealtime()

@@ -22,7 +22,7 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from plantrig.sim.engine._clock import SPIN_NS, WallClock
+from plantrig.sim.engine._clock import WallClock
 from plantrig.sim.engine._realtime import realtime_process
 from plantrig.sim.engine._timing import DurationHistogram
 
@@ -185,13 +185,14 @@ def _cpu_list(text: str) -> set[int]:
 
 
 def pacing_test(tick_s: float, work_s: float, seconds: float = 2.0,
-                spin_ns: int = SPIN_NS) -> PacingResult:
-    """Pace a loop at ``tick_s`` doing ``work_s`` of busy work a tick, as a run would."""
+                spin_ns: int | None = None) -> PacingResult:
+    """Pace a loop at ``tick_s`` doing ``work_s`` of busy work a tick, as a run would
+    (the spin window measured as a run measures it, unless given)."""
     tick_ns, work_ns = int(round(tick_s * 1e9)), int(round(work_s * 1e9))
-    clock = WallClock(spin_ns)
     n = max(1, int(seconds / tick_s))
     result = PacingResult(tick_s, work_s, n, 0)
     with realtime_process(tick_ns, spin_ns) as report:
+        clock = WallClock(report.spin_ns)
         result.scheduler, result.cpu = report.scheduler, report.cpu
         start = clock.now_ns() + 5_000_000
         for k in range(n):

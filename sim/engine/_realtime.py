@@ -4,7 +4,9 @@ docs/platform.md: a full garbage collection stalled the loop ~99 ms, so collect,
 and disable the collector for the run; a busy thread delays wake-ups by one GIL switch
 interval, so lower it; SCHED_FIFO and a pinned core help where permitted, but a thread
 spinning close to 100 % under SCHED_FIFO gets throttled (50 ms stalls), so FIFO is used
-only when the spin window is under half the tick. Pages are locked (mlockall) so a page
+only when the spin window is under half the tick. The spin window is measured here (the
+wake-up jitter of short sleeps, after the timer slack is cut and the core chosen) unless
+one is given. Pages are locked (mlockall) so a page
 fault cannot stall a tick, and the timer slack is cut to 1 ns so the sleeping part of
 each wait wakes when asked (docs/performance.md, "Preparing a bench machine").
 """
@@ -20,6 +22,8 @@ import sys
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 
+from plantrig.sim.engine._clock import measure_spin_window_ns
+
 FIFO_PRIORITY = 10
 SWITCH_INTERVAL_S = 1e-4
 PR_SET_TIMERSLACK, PR_GET_TIMERSLACK = 29, 30
@@ -32,12 +36,14 @@ class RealtimeReport:
     cpu: int | None = None
     scheduler: str = "SCHED_OTHER"
     memory_locked: bool = False
+    spin_ns: int = 0               # the spin window the run used (measured or given)
     notes: list[str] = field(default_factory=list)
 
 
 @contextlib.contextmanager
-def realtime_process(tick_ns: int, spin_ns: int) -> Iterator[RealtimeReport]:
-    """Apply what the OS allows for the duration of a real-time run; say what it was."""
+def realtime_process(tick_ns: int, spin_ns: int | None = None) -> Iterator[RealtimeReport]:
+    """Apply what the OS allows for the duration of a real-time run; say what it was.
+    ``spin_ns`` None: measure the spin window on this machine (measure_spin_window_ns)."""
     report = RealtimeReport()
     old_switch = sys.getswitchinterval()
     old_affinity = os.sched_getaffinity(0) if hasattr(os, "sched_getaffinity") else None
@@ -60,7 +66,10 @@ def realtime_process(tick_ns: int, spin_ns: int) -> Iterator[RealtimeReport]:
                 report.cpu = cpu
             except OSError as exc:
                 report.notes.append(f"affinity not set: {exc.strerror}")
-        if old_policy is not None and spin_ns * 2 < tick_ns:
+        if libc is not None:
+            libc.prctl(PR_SET_TIMERSLACK, 1, 0, 0, 0)
+        report.spin_ns = measure_spin_window_ns() if spin_ns is None else spin_ns
+        if old_policy is not None and report.spin_ns * 2 < tick_ns:
             try:
                 os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(FIFO_PRIORITY))
                 report.scheduler = f"SCHED_FIFO {FIFO_PRIORITY}"
@@ -70,7 +79,6 @@ def realtime_process(tick_ns: int, spin_ns: int) -> Iterator[RealtimeReport]:
         elif old_policy is not None:
             report.notes.append("tick too short to spin under SCHED_FIFO; SCHED_OTHER")
         if libc is not None:
-            libc.prctl(PR_SET_TIMERSLACK, 1, 0, 0, 0)
             report.memory_locked = libc.mlockall(MCL_CURRENT | MCL_FUTURE) == 0
             if not report.memory_locked:
                 report.notes.append(f"memory not locked ({os.strerror(ctypes.get_errno())})")

@@ -396,7 +396,7 @@ class Faults:
         self.watchdog_ticks = silent_ticks_allowed(timeout, rig.tick)
         self._last_fresh = self._silent_from = 0
         self.lost = False
-        self.counts = {"frames_dropped": 0, "frames_corrupted": 0}
+        self.counts = {"frames_dropped": 0, "frames_corrupted": 0, "rehearsed_losses": 0}
         # disturbances: the stepper adds them to the plant; the record shows their values
         self.dist = list(rig.disturbances)
         self._d_cols = [columns.index(f"d:{d.name}") for d in self.dist]
@@ -627,6 +627,7 @@ class Faults:
             if not self.lost and k - self._last_fresh > self.watchdog_ticks:
                 self.lost = True
                 self._silent_from = self._last_fresh
+                self.counts["rehearsed_losses"] += 1
                 self.emit(k, "link_lost", f"rehearsed link fault: no command for "
                                           f"{(k - self._last_fresh) * self.tick:g} s "
                                           f"(watchdog timeout {self.watchdog_ticks} ticks)",

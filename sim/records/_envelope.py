@@ -9,6 +9,8 @@ traces, the comparison's bands and the dashboard's plots.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -67,3 +69,30 @@ def minmax_bands(v: Vector, size: int) -> tuple[Vector, Vector]:
     if empty.any():
         lo[empty] = hi[empty] = np.nan
     return lo, hi
+
+
+def thin_rows(read: Callable[[int, int], Vector], first: int, stop: int, max_rows: int,
+              t_index: int, part_rows: int = 1 << 17) -> Vector:
+    """Tick rows ``first`` to ``stop`` (``read(a, b)`` gives rows a to b), thinned to at
+    most about ``max_rows``: each bucket of rows becomes two, its per-column minimum and
+    maximum (NaN ignored), with the bucket's first and last plant time in column
+    ``t_index``, so time still runs forward. Read ``part_rows`` at a time at most."""
+    if stop - first <= max_rows:
+        return read(first, stop)
+    size = -(-(stop - first) // max(1, max_rows // 2))     # rows per bucket
+    part = max(1, part_rows // size) * size
+    blocks = []
+    for start in range(first, stop, part):
+        rows = read(start, min(stop, start + part))
+        full = len(rows) // size
+        buckets = [rows[:full * size].reshape(full, size, -1)] if full else []
+        if full * size < len(rows):
+            buckets.append(rows[full * size:][np.newaxis])
+        for bucket in buckets:
+            low, high = np.fmin.reduce(bucket, axis=1), np.fmax.reduce(bucket, axis=1)
+            low[:, t_index] = bucket[:, 0, t_index]
+            high[:, t_index] = bucket[:, -1, t_index]
+            pair = np.empty((2 * len(low), low.shape[1]))
+            pair[0::2], pair[1::2] = low, high
+            blocks.append(pair)
+    return np.concatenate(blocks)

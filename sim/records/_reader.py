@@ -8,6 +8,7 @@ where h5py is not installed), or crashed and not yet recovered (``ticks.journal`
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -30,6 +31,7 @@ class RunRecord:
     summary: dict[str, Any]
     info: list[dict[str, Any]] = field(default_factory=list)
     source: str = ""
+    ticks_total: int = -1     # tick records the folder holds (rows may be a slice of them)
 
     def __getitem__(self, name: str) -> NDArray[np.float64]:
         try:
@@ -71,7 +73,8 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
 
         d = read_run_h5(h5, columns, ticks)
         return RunRecord(folder, d["columns"], d["units"], d["rows"], d["events"],
-                         summary or d["attrs"].get("summary", {}), d["info"], "run.h5")
+                         summary or d["attrs"].get("summary", {}), d["info"], "run.h5",
+                         d["length"])
     info = start.get("columns") or []
     if info:
         every, units = [c["name"] for c in info], [c["unit"] for c in info]
@@ -101,9 +104,10 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
         raise KeyError(f"no column {unknown[0]!r}; columns: {', '.join(every)}")
     picks = [every.index(c) for c in names]
     rows = np.array(table[max(0, first):max(first, stop)][:, picks], dtype=np.float64)
+    total = table.shape[0]
     del table
     return RunRecord(folder, names, [units[i] for i in picks], rows, events, summary,
-                     [info[i] for i in picks], source)
+                     [info[i] for i in picks], source, total)
 
 
 def _json(path: Path) -> Any:
@@ -116,3 +120,34 @@ def _have_h5py() -> bool:
     except ImportError:
         return False
     return True
+
+
+DISPLAY_ROWS = 20_000     # a record longer than this is thinned for plots and pages
+
+
+def read_for_display(folder: str | Path, max_rows: int | None = None) -> RunRecord:
+    """The run as plots and report pages need it, in memory that does not grow with the
+    run: a record of up to ``max_rows`` (DISPLAY_ROWS) ticks as recorded; a longer one
+    read a part at a time and thinned to each bucket's per-column min and max
+    (sim/records/_envelope.py: every spike, limit code and trip stays). ``ticks_total``
+    keeps the true count; per-tick statistics come from column_parts, never from a
+    thinned record."""
+    from plantrig.sim.records._envelope import thin_rows
+
+    max_rows = DISPLAY_ROWS if max_rows is None else max_rows
+    head = read_run(folder, ticks=(0, 0))
+    if head.ticks_total <= max_rows:
+        return read_run(folder)
+    rows = thin_rows(lambda a, b: read_run(folder, ticks=(a, b)).rows, 0, head.ticks_total,
+                     max_rows, head.columns.index("t"))
+    return RunRecord(head.folder, head.columns, head.units, rows, head.events, head.summary,
+                     head.info, f"{head.source}, thinned to {len(rows)} rows for display",
+                     head.ticks_total)
+
+
+def column_parts(folder: str | Path, column: str,
+                 part_rows: int = 1 << 18) -> Iterator[NDArray[np.float64]]:
+    """One column of a run folder, every tick, a part at a time."""
+    total = read_run(folder, ticks=(0, 0)).ticks_total
+    for first in range(0, total, part_rows):
+        yield read_run(folder, columns=[column], ticks=(first, first + part_rows)).rows[:, 0]
