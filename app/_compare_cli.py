@@ -156,7 +156,7 @@ def _plots(result: Any, where: Path) -> dict[str, str]:
             if (lo != hi).any():
                 top.fill_between(env.t, lo, hi, color=colour, alpha=0.25, lw=0)
         top.set_ylabel(f"{column}" + (f" [{s.unit}]" if s.unit else ""))
-        top.legend(loc="best", fontsize=8)
+        top.legend(loc="upper right", fontsize=8)   # "best" searches every point
         top.set_title(f"{column}: max |A - B| {s.max_abs:.4g} at "
                       f"{s.t_max_abs if s.t_max_abs is not None else 0:g} s, "
                       f"{'within' if s.within else 'BEYOND'} tolerance", fontsize=9)
@@ -166,7 +166,7 @@ def _plots(result: Any, where: Path) -> dict[str, str]:
             bottom.axhline(limit, color="k", ls=":", lw=0.8)
         bottom.set_ylabel("|A - B|")
         bottom.set_xlabel("plant time [s]")
-        fig.tight_layout()
+        fig.subplots_adjust(left=0.11, right=0.98, top=0.92, bottom=0.12, hspace=0.12)
         name = column.replace(":", "_").replace("/", "_") + ".png"
         fig.savefig(where / name, dpi=90)
         plt.close(fig)

@@ -43,6 +43,7 @@ EVENT_KINDS = ("trip", "estop", "reset", "fault_injected", "fault_cleared", "lin
                "non_finite_state", "non_finite_input", "rule_failed", "run_end")
 PLOT_POINTS = 2000      # envelope buckets kept per signal for plots
 PART_TICKS = 1 << 19    # ticks of one column read at a time (4 MiB a side)
+KEEP_BYTES = 64 << 20   # A's side of a column kept between the two passes if it fits
 
 
 class NotComparable(ValueError):
@@ -290,6 +291,7 @@ class _AlignedParts:
         self.a, self.b, self.column, self.ia, self.ib, self.n = a, b, column, ia, ib, n
         self.bucket = max(1, math.ceil(n / PLOT_POINTS))
         self.part = max(1, PART_TICKS // self.bucket) * self.bucket
+        self._kept: list[NDArray[np.float64]] | None = None
 
     def _side(self, run: RunColumns, index: NDArray[np.int64] | None, start: int,
               stop: int) -> NDArray[np.float64]:
@@ -301,21 +303,33 @@ class _AlignedParts:
         return run.read(self.column, first, last)[wanted - first]
 
     def __iter__(self) -> Iterator[tuple[int, NDArray[np.float64], NDArray[np.float64]]]:
-        for start in range(0, self.n, self.part):
+        kept = self._kept
+        for i, start in enumerate(range(0, self.n, self.part)):
             stop = min(self.n, start + self.part)
-            yield (start, self._side(self.a, self.ia, start, stop),
-                   self._side(self.b, self.ib, start, stop))
+            a = kept[i] if kept is not None else self._side(self.a, self.ia, start, stop)
+            yield start, a, self._side(self.b, self.ib, start, stop)
 
     def scale(self) -> float:
-        """The largest finite |a| (of |b| when A is all zero), for relative figures."""
+        """The largest |a| that is not NaN (of |b| when A is all zero), for relative
+        figures. A's parts are kept for the second pass when they fit in KEEP_BYTES."""
+        kept: list[NDArray[np.float64]] | None = []
         for side, run, index in ((0, self.a, self.ia), (1, self.b, self.ib)):
-            top = 0.0
+            top, held = 0.0, 0
             for start in range(0, self.n, self.part):
                 v = self._side(run, index, start, min(self.n, start + self.part))
-                v = np.abs(v[~np.isnan(v)])
-                top = max(top, float(v.max()) if v.size else 0.0)
-            if top or side:
-                return top or 1.0
+                if side == 0 and kept is not None:
+                    held += v.nbytes
+                    if held <= KEEP_BYTES:
+                        kept.append(v)
+                    else:
+                        kept = None
+                largest = float(np.fmax.reduce(np.abs(v))) if v.size else 0.0  # NaN skipped
+                if largest > top:
+                    top = largest
+            if side == 0:
+                self._kept = kept
+            if top:
+                return top
         return 1.0
 
 
@@ -329,13 +343,14 @@ def _deviation(column: str, unit: str, parts: _AlignedParts, t_step: float,
     first: int | None = None
     bands: list[tuple[NDArray[np.float64], ...]] = []
     for start, a, b in parts:
-        nan_a, nan_b = np.isnan(a), np.isnan(b)
         d = np.abs(a - b)
-        d[nan_a & nan_b] = 0.0
-        one = nan_a ^ nan_b
-        if one.any():
-            d[one] = np.inf
-            one_sided = True
+        if np.isnan(d).any():       # NaN in A or B: equal when both, infinitely apart if one
+            nan_a, nan_b = np.isnan(a), np.isnan(b)
+            d[nan_a & nan_b] = 0.0
+            one = nan_a ^ nan_b
+            if one.any():
+                d[one] = np.inf
+                one_sided = True
         identical = identical and not d.any()   # equal, NaN where the other has NaN
         k = int(np.argmax(d))
         if k_max is None or d[k] > max_abs:

@@ -59,15 +59,11 @@ def minmax_bands(v: Vector, size: int) -> tuple[Vector, Vector]:
     n = len(v)
     full = n // size
     head = v[:full * size].reshape(full, size)
-    lo = np.where(np.isnan(head), np.inf, head).min(axis=1) if full else v[:0]
-    hi = np.where(np.isnan(head), -np.inf, head).max(axis=1) if full else v[:0]
+    lo, hi = np.fmin.reduce(head, axis=1), np.fmax.reduce(head, axis=1)  # NaN skipped
     if full * size < n:
         tail = v[full * size:]
-        lo = np.append(lo, np.min(np.where(np.isnan(tail), np.inf, tail)))
-        hi = np.append(hi, np.max(np.where(np.isnan(tail), -np.inf, tail)))
-    empty = np.isinf(lo) & np.isinf(hi) & (lo > hi)     # every sample of it was NaN
-    if empty.any():
-        lo[empty] = hi[empty] = np.nan
+        lo = np.append(lo, np.fmin.reduce(tail))
+        hi = np.append(hi, np.fmax.reduce(tail))
     return lo, hi
 
 
