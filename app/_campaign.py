@@ -17,6 +17,7 @@ from __future__ import annotations
 import contextlib
 import json
 import logging
+import math
 import os
 import sys
 import time
@@ -25,11 +26,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from plantrig._campaign_case import ERROR, FAILED, run_case
+from plantrig._campaign_case import ERROR, FAILED, run_batch
 from plantrig._campaign_out import read_journal
 from plantrig.sim import Case
 
 SHOWN_FAILURES = 20
+BATCHES_PER_THREAD = 4   # enough tasks that a slow batch does not leave a worker idle
+MAX_BATCH = 32
 CLOSE_TIMEOUT_S = 20
 # numeric libraries in a worker stay single-threaded: one case per core
 SINGLE_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
@@ -111,40 +114,40 @@ def run_cases(cases: list[Case], journal: Path, *, cluster: str | None, workers:
     threads = _threads(client)
     t1 = time.perf_counter()
     try:
-        futures = [client.submit(run_case, case, key=f"plantrig-case-{case.case_id}-{token}",
-                                 pure=False, priority=-case.index) for case in todo]
-        session.started_cases = len(futures)
-        by_key = {f.key: case for f, case in zip(futures, todo, strict=True)}
+        # cases go in batches, a few per worker thread: a Dask task costs the scheduler
+        # and this process milliseconds, as much as a short case on a 2-core machine
+        size = max(1, min(MAX_BATCH,
+                          math.ceil(len(todo) / (max(threads, 1) * BATCHES_PER_THREAD))))
+        batches = [todo[i:i + size] for i in range(0, len(todo), size)]
+        futures = [client.submit(run_batch, batch,
+                                 key=f"plantrig-cases-{batch[0].case_id}-{len(batch)}-{token}",
+                                 pure=False, priority=-batch[0].index) for batch in batches]
+        session.started_cases = len(todo)
+        by_key = {f.key: batch for f, batch in zip(futures, batches, strict=True)}
         with open(journal, "a", encoding="utf-8") as out:
             for future in as_completed(futures):
-                case = by_key[future.key]
+                batch = by_key[future.key]
                 if future.status != "finished":   # the scheduler gave up (workers died)
-                    session.lost.append(case.case_id)
-                    bar.write(f"LOST   case {case.case_id} ({case.rig}/{case.scenario} "
-                              f"{case.variation}): {future.exception()!r}; run --resume")
+                    session.lost.extend(case.case_id for case in batch)
+                    bar.write(f"LOST   cases {', '.join(c.case_id for c in batch)}: "
+                              f"{future.exception()!r}; run --resume")
                     continue
-                row = future.result()
-                out.write(json.dumps(row) + "\n")
+                for row in future.result():
+                    out.write(json.dumps(row) + "\n")
+                    session.finished_cases += 1
+                    session.case_ticks += int(row["ticks"])
+                    if row["status"] in counts:
+                        counts[row["status"]] += 1
+                        if shown < SHOWN_FAILURES:
+                            shown += 1
+                            bar.write(_failure_line(row))
+                    bar.update(1)
                 out.flush()
                 os.fsync(out.fileno())
-                session.finished_cases += 1
-                session.case_ticks += int(row["ticks"])
-                if row["status"] in counts:
-                    counts[row["status"]] += 1
-                    if shown < SHOWN_FAILURES:
-                        shown += 1
-                        what = row["error"] or "; ".join(
-                            [f"ended {row['outcome']}: {row['reason']}"]
-                            * (row["outcome"] != "completed")
-                            + [f"FAIL {v['name']}" for v in row["verdicts"] if not v["passed"]])
-                        bar.write(f"{row['status'].upper():<6} case {row['case_id']} "
-                                  f"({row['rig']}/{row['scenario'] or '-'} "
-                                  f"{row['variation']}): {what}")
-                running = min(len(futures) - session.finished_cases - len(session.lost),
+                running = min(len(todo) - session.finished_cases - len(session.lost),
                               threads)
                 bar.set_postfix_str(f"failed {counts[FAILED]}, errors {counts[ERROR]}, "
                                     f"running {running}")
-                bar.update(1)
     except KeyboardInterrupt:
         session.interrupted = True
     finally:
@@ -158,6 +161,15 @@ def run_cases(cases: list[Case], journal: Path, *, cluster: str | None, workers:
             if local is not None:
                 local.close(timeout=CLOSE_TIMEOUT_S)
     return session
+
+
+def _failure_line(row: dict[str, Any]) -> str:
+    """One line for a failed or erroring case, as the progress display shows it."""
+    what = row["error"] or "; ".join(
+        [f"ended {row['outcome']}: {row['reason']}"] * (row["outcome"] != "completed")
+        + [f"FAIL {v['name']}" for v in row["verdicts"] if not v["passed"]])
+    return (f"{row['status'].upper():<6} case {row['case_id']} "
+            f"({row['rig']}/{row['scenario'] or '-'} {row['variation']}): {what}")
 
 
 def _threads(client: Any) -> int:

@@ -3,7 +3,7 @@
 without a recorder process. Only a compact result row leaves the worker; the tick rows
 are dropped once the verdicts are judged, so a worker's memory stays flat.
 
-Dask sends ``run_case`` to its workers by reference: it must stay a module-level
+Dask sends ``run_batch`` to its workers by reference: it must stay a module-level
 function of an importable module.
 """
 
@@ -74,6 +74,11 @@ def build_case(case: Case, scenario_copy: Path | None = None
                                                  case.verdicts), Path(case.rig_file), rig)
     actuator_chain, sensor_chain = build_chains(rig)
     return rig, scenario, actuator_chain, sensor_chain
+
+
+def run_batch(cases: list[Case]) -> list[dict[str, Any]]:
+    """The result rows of a few cases, run one after another on one worker."""
+    return [run_case(case) for case in cases]
 
 
 def run_case(case: Case) -> dict[str, Any]:

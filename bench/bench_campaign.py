@@ -126,8 +126,8 @@ def main() -> None:
     print(f"\ncluster start {session['cluster_start_s']:.2f} s; "
           f"case wall median {statistics.median(walls) * 1e3:.1f} ms, engine alone "
           f"{statistics.median(engine) * 1e3:.1f} ms: overhead per case beyond its ticks "
-          f"{overhead_ms:.1f} ms (rig with overrides, scenario, chains, verdicts); Dask "
-          f"per task {task_ms:.1f} ms")
+          f"{overhead_ms:.1f} ms (rig with overrides, scenario, chains, verdicts); Dask and "
+          f"journal cost per case {task_ms:.1f} ms (cases go in batches)")
     for worker, rss in per_worker.items():
         print(f"worker {worker}: {len(rss)} cases, RSS {rss[0]:.1f} MB at its first case, "
               f"{rss[-1]:.1f} MB at its last")
