@@ -8,6 +8,13 @@ by a fixed number of bytes a tick.
 
     .venv/bin/python bench/bench_long_run.py                    # 0.2M, 2M, 20M ticks
     .venv/bin/python bench/bench_long_run.py --ticks 200000 2000000
+    .venv/bin/python bench/bench_long_run.py --readers     # and report, compare, replay
+
+With --readers, each run folder is then read back the three ways a long run is opened,
+each in its own process (peak RSS from getrusage): `plantrig report`, `plantrig compare`
+of the folder with itself (plots and HTML included), and replay's data path (the
+dashboard's RecordStore over the whole run: a zoomed-out window and one instant; the
+window itself needs a display and is not opened).
 """
 
 from __future__ import annotations
@@ -54,20 +61,71 @@ def one_run(ticks: int, out: Path) -> dict[str, float]:
             "wall_s": wall}
 
 
+READER = """
+import json, resource, sys
+from pathlib import Path
+kind, folder = sys.argv[1], Path(sys.argv[2])
+if kind == "replay":
+    from plantrig.gui._store import RecordStore
+    from plantrig.sim import read_run
+    head = read_run(folder, ticks=(0, 0))
+    tick = head.summary["rig"]["tick_s"]
+    store = RecordStore(folder, head.ticks_total, tick, head.columns.index("t"))
+    store.window(store.t_last, store.t_last + tick)
+    store.at(store.t_last / 2)
+    code = 0
+else:
+    from plantrig.cli import main
+    args = (["report", str(folder)] if kind == "report" else
+            ["compare", str(folder), str(folder), "--out", str(folder.parent / "cmp")])
+    code = main(args)
+print(json.dumps({"code": code,
+                  "peak_kib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}))
+"""
+
+
+def reader_peaks(folder: Path) -> dict[str, tuple[float, float]]:
+    """(peak RSS MB, wall s) of report, compare and replay's data path on ``folder``."""
+    out = {}
+    for kind in ("report", "compare", "replay"):
+        start = time.perf_counter()
+        proc = subprocess.run([sys.executable, "-c", READER, kind, str(folder)],
+                              capture_output=True, text=True, check=False)
+        wall = time.perf_counter() - start
+        if proc.returncode != 0:
+            sys.exit(f"{kind} of {folder} failed ({proc.returncode}):\n{proc.stderr}")
+        usage = json.loads(proc.stdout.strip().splitlines()[-1])
+        out[kind] = (usage["peak_kib"] / 1024, wall)
+    return out
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--ticks", type=int, nargs="+",
                         default=[200_000, 2_000_000, 20_000_000])
+    parser.add_argument("--readers", action="store_true",
+                        help="also read each folder back: report, compare, replay's data path")
     args = parser.parse_args()
+    readers = []
     print("| ticks | rig peak RSS (MB) | recorder peak RSS (MB) | bytes on disk / tick | "
           "run.h5 compression | loop ticks/s | wall (s) |")
     print("|---|---|---|---|---|---|---|")
     for ticks in args.ticks:
         with tempfile.TemporaryDirectory() as tmp:
             r = one_run(ticks, Path(tmp))
+            if args.readers:
+                folder = next(p for p in Path(tmp).iterdir() if p.is_dir())
+                readers.append((r["ticks"], reader_peaks(folder)))
         print(f"| {r['ticks']} | {r['rig_mb']:.0f} | {r['recorder_mb']:.0f} | "
               f"{r['bytes_per_tick']:.1f} | {r['compression']:.2f}x | "
               f"{r['loop_ticks_per_s']:.0f} | {r['wall_s']:.1f} |", flush=True)
+    if readers:
+        print("\n| ticks | report: peak RSS MB, wall s | compare with itself: MB, s | "
+              "replay data path: MB, s |")
+        print("|---|---|---|---|")
+        for ticks, peaks in readers:
+            print(f"| {ticks} | " + " | ".join(f"{mb:.0f} MB, {s:.1f} s" for mb, s in (
+                peaks["report"], peaks["compare"], peaks["replay"])) + " |")
 
 
 if __name__ == "__main__":
