@@ -20,19 +20,22 @@ SPIN_MAX_NS = 1_000_000
 NAP_NS = 200_000             # each calibration sleep
 
 
-def spin_window_ns(oversleeps_ns: Sequence[int]) -> int:
+def spin_window_ns(oversleeps_ns: Sequence[int], tick_ns: int | None = None) -> int:
     """The spin window for measured wake-up delays (how late each sleep returned): 1.5
     times their 99th percentile, a margin over the regular worst case (common practice
-    for hybrid sleep-spin waits), within 20 us .. 1 ms. Rarer, longer stalls are not
+    for hybrid sleep-spin waits), within 20 us .. 1 ms and never more than a quarter of
+    the tick (a loop that spins most of its tick starves the recorder and the link on a
+    small machine, and is throttled under SCHED_FIFO). Rarer, longer stalls are not
     worth spinning for: they show as lateness and overruns in the record."""
     if not oversleeps_ns:
         return SPIN_NS
     ordered = sorted(oversleeps_ns)
     p99 = ordered[min(len(ordered) - 1, int(0.99 * len(ordered)))]
-    return int(min(SPIN_MAX_NS, max(SPIN_MIN_NS, 1.5 * p99)))
+    ceiling = SPIN_MAX_NS if tick_ns is None else min(SPIN_MAX_NS, tick_ns // 4)
+    return int(min(ceiling, max(min(SPIN_MIN_NS, ceiling), 1.5 * p99)))
 
 
-def measure_spin_window_ns(samples: int = 200) -> int:
+def measure_spin_window_ns(tick_ns: int | None = None, samples: int = 200) -> int:
     """Sleep ``samples`` short naps (about 50 ms in all) and size the spin window from
     how late they woke (spin_window_ns)."""
     late = []
@@ -40,7 +43,7 @@ def measure_spin_window_ns(samples: int = 200) -> int:
         began = time.perf_counter_ns()
         time.sleep(NAP_NS / 1e9)
         late.append(time.perf_counter_ns() - began - NAP_NS)
-    return spin_window_ns(late)
+    return spin_window_ns(late, tick_ns)
 
 
 class Clock(Protocol):

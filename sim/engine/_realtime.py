@@ -68,7 +68,7 @@ def realtime_process(tick_ns: int, spin_ns: int | None = None) -> Iterator[Realt
                 report.notes.append(f"affinity not set: {exc.strerror}")
         if libc is not None:
             libc.prctl(PR_SET_TIMERSLACK, 1, 0, 0, 0)
-        report.spin_ns = measure_spin_window_ns() if spin_ns is None else spin_ns
+        report.spin_ns = measure_spin_window_ns(tick_ns) if spin_ns is None else spin_ns
         if old_policy is not None and report.spin_ns * 2 < tick_ns:
             try:
                 os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(FIFO_PRIORITY))
