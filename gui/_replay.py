@@ -85,7 +85,7 @@ def _overrun_ticks(record: RunRecord) -> NDArray[np.int64]:
     late: list[NDArray[np.int64]] = []
     for first in range(0, record.n_ticks, RecordStore.PART_ROWS):
         part = read_run(record.folder, columns=["lateness"],
-                        ticks=(first, first + RecordStore.PART_ROWS)).rows[:, 0]
+                        ticks=(first, first + RecordStore.PART_ROWS), ticks_only=True).rows[:, 0]
         late.append(first + np.flatnonzero(part >= record.rig.tick))
     return np.concatenate(late) if late else np.empty(0, dtype=np.int64)
 

@@ -121,7 +121,7 @@ class RecordStore(RowStore):
 
     def read(self, first: int, stop: int) -> Rows:
         """Rows ``first`` to ``stop`` as recorded."""
-        return read_run(self.folder, ticks=(first, stop)).rows
+        return read_run(self.folder, ticks=(first, stop), ticks_only=True).rows
 
     def window(self, t_end: float, span: float) -> Rows:
         lo, hi = self.position(t_end - span), self.position(t_end)

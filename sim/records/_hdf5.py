@@ -127,7 +127,8 @@ def write_run_h5(path: Path, blocks: Iterable[NDArray[np.float64]],
 
 
 def read_run_h5(path: Path, columns: list[str] | None = None,
-                ticks: tuple[int, int] | None = None) -> dict[str, Any]:
+                ticks: tuple[int, int] | None = None, *,
+                ticks_only: bool = False) -> dict[str, Any]:
     """``run.h5``: columns, units, info, rows (ticks x columns), events, sources and attrs
     (JSON attrs decoded).
 
@@ -164,6 +165,10 @@ def read_run_h5(path: Path, columns: list[str] | None = None,
             info.append({"name": name, "unit": str(ds.attrs["unit"]),
                          "description": str(ds.attrs["description"]),
                          "min": _bound(ds.attrs["min"]), "max": _bound(ds.attrs["max"])})
+        if ticks_only:           # a part of a long run: no events, sources or attrs again
+            return {"columns": wanted, "units": [c["unit"] for c in info], "info": info,
+                    "rows": rows, "events": [], "sources": {}, "attrs": {},
+                    "length": length}
         table = f["events"][()]
         events = [{"tick": int(e["tick"]), "time": float(e["time"]),
                    "kind": _text(e["kind"]), "detail": _text(e["detail"])} for e in table]

@@ -58,11 +58,12 @@ class RunRecord:
 
 
 def read_run(folder: str | Path, columns: list[str] | None = None,
-             ticks: tuple[int, int] | None = None) -> RunRecord:
+             ticks: tuple[int, int] | None = None, *, ticks_only: bool = False) -> RunRecord:
     """Read a run folder, from the most complete copy of its tick data it holds.
 
     ``columns`` reads only those columns and ``ticks`` = (first, stop) only those tick
     records: a weekend-long run is opened a part at a time, never whole unless asked.
+    ``ticks_only`` skips the events and the summary (reading a part again and again).
     """
     folder = Path(folder)
     summary = _json(folder / "summary.json") or {}
@@ -71,7 +72,7 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
     if h5.exists() and _have_h5py():
         from plantrig.sim.records._hdf5 import read_run_h5
 
-        d = read_run_h5(h5, columns, ticks)
+        d = read_run_h5(h5, columns, ticks, ticks_only=ticks_only)
         return RunRecord(folder, d["columns"], d["units"], d["rows"], d["events"],
                          summary or d["attrs"].get("summary", {}), d["info"], "run.h5",
                          d["length"])
@@ -85,7 +86,7 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
     else:
         raise FileNotFoundError(f"{folder}: not a plantrig run folder (no run.h5, "
                                 f"{RUN_START} or columns.json)")
-    events = read_events(folder / "events.jsonl")
+    events = [] if ticks_only else read_events(folder / "events.jsonl")
     n = len(every)
     if (folder / "ticks.npy").exists():
         table = np.load(folder / "ticks.npy", mmap_mode="r").view(np.float64).reshape(-1, n)
@@ -138,7 +139,8 @@ def read_for_display(folder: str | Path, max_rows: int | None = None) -> RunReco
     head = read_run(folder, ticks=(0, 0))
     if head.ticks_total <= max_rows:
         return read_run(folder)
-    rows = thin_rows(lambda a, b: read_run(folder, ticks=(a, b)).rows, 0, head.ticks_total,
+    rows = thin_rows(lambda a, b: read_run(folder, ticks=(a, b), ticks_only=True).rows,
+                     0, head.ticks_total,
                      max_rows, head.columns.index("t"))
     return RunRecord(head.folder, head.columns, head.units, rows, head.events, head.summary,
                      head.info, f"{head.source}, thinned to {len(rows)} rows for display",
@@ -150,4 +152,5 @@ def column_parts(folder: str | Path, column: str,
     """One column of a run folder, every tick, a part at a time."""
     total = read_run(folder, ticks=(0, 0)).ticks_total
     for first in range(0, total, part_rows):
-        yield read_run(folder, columns=[column], ticks=(first, first + part_rows)).rows[:, 0]
+        yield read_run(folder, columns=[column], ticks=(first, first + part_rows),
+                       ticks_only=True).rows[:, 0]
