@@ -80,6 +80,10 @@ class FdPort:
             data = os.read(self.fd, self.READ_SIZE)
         except BlockingIOError:
             return b""
+        except OSError as exc:    # the kernel's EIO says the same as POLLHUP below
+            if exc.errno == errno.EIO:
+                raise OSError(errno.EIO, "the far end hung up") from None
+            raise
         if not data and self.hung_up():
             raise OSError(errno.EIO, "the far end hung up")
         return data

@@ -14,8 +14,7 @@ import time
 from collections.abc import Sequence
 from typing import Protocol
 
-SPIN_NS = 200_000            # the window when nothing was measured
-SPIN_MIN_NS = 20_000
+SPIN_NS = 200_000            # the window when nothing was measured, and its floor
 SPIN_MAX_NS = 1_000_000
 NAP_NS = 200_000             # each calibration sleep
 
@@ -23,16 +22,15 @@ NAP_NS = 200_000             # each calibration sleep
 def spin_window_ns(oversleeps_ns: Sequence[int], tick_ns: int | None = None) -> int:
     """The spin window for measured wake-up delays (how late each sleep returned): 1.5
     times their 99th percentile, a margin over the regular worst case (common practice
-    for hybrid sleep-spin waits), within 20 us .. 1 ms and never more than a quarter of
-    the tick (a loop that spins most of its tick starves the recorder and the link on a
-    small machine, and is throttled under SCHED_FIFO). Rarer, longer stalls are not
-    worth spinning for: they show as lateness and overruns in the record."""
-    if not oversleeps_ns:
-        return SPIN_NS
-    ordered = sorted(oversleeps_ns)
+    for hybrid sleep-spin waits), at least 200 us (a short calibration on a quiet moment
+    underestimates what a loaded machine does later), at most 1 ms, and never more
+    than a quarter of the tick: a loop that spins most of its tick starves the recorder
+    and the link on a small machine, and is throttled under SCHED_FIFO. Rarer, longer
+    stalls are not worth spinning for: they show as lateness and overruns."""
+    ordered = sorted(oversleeps_ns) or [0]
     p99 = ordered[min(len(ordered) - 1, int(0.99 * len(ordered)))]
     ceiling = SPIN_MAX_NS if tick_ns is None else min(SPIN_MAX_NS, tick_ns // 4)
-    return int(min(ceiling, max(min(SPIN_MIN_NS, ceiling), 1.5 * p99)))
+    return int(min(ceiling, max(SPIN_NS, 1.5 * p99)))
 
 
 def measure_spin_window_ns(tick_ns: int | None = None, samples: int = 200) -> int:
