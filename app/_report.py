@@ -331,12 +331,14 @@ def _timing_page(record: RunRecord) -> Any:
         if counts.size:
             ax.stairs(counts, edges, fill=True, color=PLANT_BLUE)
             ax.set_yscale("log")
-            for q, style in ((50, ":"), (99, "--")):
-                value = timing.get(f"{key}_p{q}_s")
+            marks = [(q, style, timing.get(f"{key}_p{q}_s"))
+                     for q, style in ((50, ":"), (99, "--"))]
+            for q, style, value in marks:
                 if value is not None:
                     ax.axvline(value * 1e6, color=ALARM, ls=style, lw=1,
                                label=f"p{q} {value * 1e6:.1f} us")
-            ax.legend(fontsize=8)
+            if any(value is not None for _, _, value in marks):
+                ax.legend(fontsize=8)
             ax.set_xlabel(f"{what} per tick [us]")
             ax.set_ylabel("ticks")
         else:
