@@ -28,6 +28,7 @@ import os
 import socket
 import struct
 import sys
+import termios
 from typing import Any
 
 from pymodbus.constants import ExcCodes
@@ -382,8 +383,11 @@ class Worker:
         try:
             self.server = self._server()
             await self.server.serve_forever(background=True)
-        except (OSError, ValueError) as exc:
-            self._to_loop(b"E" + f"link_not_connected\tModbus server: {exc}".encode())
+        except (OSError, ValueError, termios.error) as exc:
+            why = (f"the serial port refused the line settings (baud, parity, stop bits: "
+                   f"{exc}); a pseudo-terminal takes no parity" if isinstance(exc, termios.error)
+                   else str(exc))
+            self._to_loop(b"E" + f"link_not_connected\tModbus server: {why}".encode())
             self._to_loop(b"H" + json.dumps(self.health()).encode())
             loop.remove_reader(self.sock.fileno())
             return

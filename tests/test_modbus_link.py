@@ -249,3 +249,45 @@ def test_demo_modbus_runs_without_hardware(tmp_path: Path) -> None:
     assert "running/0" in states and states[-1] in (f"ended/{proc.returncode}",
                                                     f"fault/{proc.returncode}"), text
     assert proc.returncode in (0, 1), text   # 1: a loaded machine missed real time
+
+
+def test_rtu_over_a_pty_with_a_pymodbus_serial_client(tmp_path: Path) -> None:
+    """The same map served as Modbus RTU on a serial line: the rig's server (its own
+    worker process) on one pty, a pymodbus serial client on another, joined by the
+    null-modem relay (tests/pty_relay.py); reads, a good write, a refused one."""
+    from pymodbus.client import ModbusSerialClient
+    from test_pty_hangup import null_modem
+
+    shipped = rig_text(DEMO)
+    tcp = 'transport = "tcp"\nhost = "127.0.0.1"\nport = 1502\n'
+    assert tcp in shipped
+    path = tmp_path / "rig.toml"
+    # parity none: Linux ptys refuse parity settings (tcsetattr EINVAL); a real line
+    # would keep the serial line specification's even parity
+    path.write_text(shipped.replace(tcp, 'transport = "rtu"\nserial_port = "/dev/null"\n'
+                                         'baud = 115200\nparity = "none"\n'))
+    rig = load_rig(path)
+    with null_modem() as (a, b, _relay):
+        link = build_link(rig, port=a.slave_path)
+        link.open()
+        client = ModbusSerialClient(b.slave_path, baudrate=115200, parity="N", stopbits=1,
+                                    bytesize=8, timeout=1, retries=1)
+        try:
+            assert client.connect()
+            link.state(-1, "running", "")
+            link.send(41, 0.041, np.array([0.5, 1.25]))
+            time.sleep(0.3)
+            r = client.read_input_registers(0, count=7, device_id=1)
+            assert not r.isError(), r
+            assert r.registers == [0, 41, 1, 0, 0x3F00, 0x0000, 125]   # as over TCP
+            w = client.write_registers(0, [0, 41, *f32_words(10.0)], device_id=1)
+            assert not w.isError(), w
+            used, _, h = pump(link, 150, start=42)
+            assert used == [[10.0]] and h["commands_in"] == 1
+            refused = client.write_registers(0, [0, 200, *f32_words(1e6)], device_id=1)
+            assert refused.isError()                   # beyond the voltage range: refused
+            used, _, h = pump(link, 50, start=192)
+            assert used == [] and h["commands_in"] == 1
+        finally:
+            client.close()
+            link.close()
