@@ -73,8 +73,9 @@ def poll_cycles(client: ModbusTcpClient, cycles: int) -> np.ndarray:
     for i in range(cycles):
         began = time.perf_counter()
         r = client.read_input_registers(0, count=7, device_id=1)
+        stamp = r.registers[:2] if not r.isError() else [0, 0]   # the tick it answers
         hi, lo = struct.unpack(">HH", struct.pack(">f", 1.0 + (i % 7) * 0.1))
-        w = client.write_registers(0, [0, i & 0xFFFF, hi, lo], device_id=1)
+        w = client.write_registers(0, [*stamp, hi, lo], device_id=1)
         out[i] = time.perf_counter() - began
         if r.isError() or w.isError():
             sys.exit(f"poll {i} failed: {r} {w}")
