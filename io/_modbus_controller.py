@@ -22,6 +22,7 @@ from plantrig.io._modbus_map import (
     split_words,
 )
 from plantrig.io._refcontroller import ReferenceController
+from plantrig.io._rig_state import STATE_CODES
 
 Run = tuple[int, int]   # (first address, count)
 
@@ -78,8 +79,8 @@ class ModbusPoller:
         base = self.regs.status_address
         tick = join_words(words[base], words[base + 1], self.order)
         self.controller.on_rig_status((float(words[base + 2]), float(words[base + 3])))
-        if tick == self.last_tick:
-            return False
+        if tick == self.last_tick or words[base + 2] == STATE_CODES["idle"]:
+            return False    # nothing new, or no values yet (the zeros read as tick 0)
         self.last_tick = tick
         values = [decode_value(s, [words[s.address + j] for j in range(s.width)], self.order)
                   for s in self.regs.sensors if s.table == "input"]

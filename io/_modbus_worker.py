@@ -260,6 +260,7 @@ class Worker:
                                    setup["out_of_range"] == "clamp", setup["unit_id"],
                                    self._command, self._refused)
         self.server: Any = None
+        self.held_state: tuple[int, int] | None = None   # until the first sensor values
 
     def inc(self, key: str, by: float = 1.0) -> None:
         self.n[key] = self.n.get(key, 0.0) + by
@@ -339,9 +340,17 @@ class Worker:
                 self.inc("frames_out")
                 if clipped:
                     self.inc("sensor_clipped", clipped)
+                if self.held_state is not None:
+                    self.image.put_state(*self.held_state)
+                    self.held_state = None
             elif code == b"T" and len(rec) == STATE_STRUCT.size:
                 _, state, detail = STATE_STRUCT.unpack(rec)
-                self.image.put_state(state, detail)
+                if not self.n.get("frames_out"):
+                    # no sensor values yet: the registers still hold zeros, which a
+                    # controller would read as tick 0; say "running" with the first values
+                    self.held_state = (state, detail)
+                else:
+                    self.image.put_state(state, detail)
                 self.inc("status_out")
             elif code == b"Q":
                 # after the end state, keep answering a moment so a polling controller
