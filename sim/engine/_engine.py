@@ -324,10 +324,12 @@ class Engine:
         ended, reason = COMPLETED, "duration reached"
         report: RealtimeReport | None = None
         try:
-            self._prime()
+            if self.link is not None:   # first: a link's worker process must not inherit
+                self.link.open()        # the loop's real-time core and scheduling
             with _maybe_realtime(self.realtime, self.tick_ns) as report:
                 if report is not None and self._own_clock:
                     self.clock.spin_ns = report.spin_ns   # type: ignore[attr-defined]
+                self._prime()           # after the real-time set-up: right before tick 0
                 self._ticks()
         except _RunEnds as end:
             ended, reason = end.ended, end.reason
@@ -347,9 +349,11 @@ class Engine:
     # -- before tick 0 and the loop ------------------------------------------------------
 
     def _prime(self) -> None:
-        """What the controller sees before tick 0: the output at x0 with the safe input;
-        the link opened and sent those values, so its answer is there at tick 0 as the
-        built-in controller's is (docs/protocol.md, tick stamps)."""
+        """What the controller sees before tick 0: the output at x0 with the safe input,
+        sent with the rig's "running" state, so its answer is there at tick 0 as the
+        built-in controller's is (docs/protocol.md, tick stamps). Sent after the
+        real-time set-up (which can take a second or more to lock a large process's
+        memory), so the controller never waits through it between the two."""
         self.cmd[:] = self.safe_u
         self.stepper.u[:] = self.safe_u
         self.stepper.output_only(0.0)
@@ -358,7 +362,6 @@ class Engine:
         else:
             self.sent[:] = self.stepper.y
         if self.link is not None:
-            self.link.open()
             self._link_state(-1, "running")
             self.link.send(-1, -self.rig.tick, self.sent)
 
