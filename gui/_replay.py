@@ -31,7 +31,14 @@ from plantrig.gui._plots import plot_specs
 from plantrig.gui._runinfo import outcome_lines, progress_lines, scenario_plan, watchdog_of
 from plantrig.gui._store import RecordStore
 from plantrig.gui._view import DashboardView
-from plantrig.sim import Rig, RigFileError, load_rig_as_data, read_run, rig_from_record
+from plantrig.sim import (
+    Rig,
+    RigFileError,
+    column_parts,
+    load_rig_as_data,
+    read_run,
+    rig_from_record,
+)
 
 DEFAULT_SCREENSHOT_FRAME = 30
 
@@ -82,11 +89,10 @@ def load_run(folder: str | Path) -> RunRecord:
 def _overrun_ticks(record: RunRecord) -> NDArray[np.int64]:
     """The ticks that started a whole tick late or more, from the lateness column read a
     part at a time."""
-    late: list[NDArray[np.int64]] = []
-    for first in range(0, record.n_ticks, RecordStore.PART_ROWS):
-        part = read_run(record.folder, columns=["lateness"],
-                        ticks=(first, first + RecordStore.PART_ROWS), ticks_only=True).rows[:, 0]
+    late, first = [], 0
+    for part in column_parts(record.folder, "lateness"):
         late.append(first + np.flatnonzero(part >= record.rig.tick))
+        first += len(part)
     return np.concatenate(late) if late else np.empty(0, dtype=np.int64)
 
 

@@ -126,11 +126,9 @@ class RecordStore(RowStore):
     def window(self, t_end: float, span: float) -> Rows:
         lo, hi = self.position(t_end - span), self.position(t_end)
         if self._cached is None or self._cached[0] != (lo, hi):
-            self._cached = ((lo, hi), self._thinned(lo, hi))
+            rows = thin_rows(self.read, lo, hi, self.max_rows, self.t_index, self.PART_ROWS)
+            self._cached = ((lo, hi), rows)
         return self._cached[1]
-
-    def _thinned(self, lo: int, hi: int) -> Rows:
-        return thin_rows(self.read, lo, hi, self.max_rows, self.t_index, self.PART_ROWS)
 
     def at(self, t: float) -> Rows | None:
         i = self.position(t)

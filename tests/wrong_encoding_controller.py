@@ -20,7 +20,6 @@ import asyncio
 import os
 import select
 import sys
-import time
 
 from plantrig.io import (
     Encoding,
@@ -70,25 +69,21 @@ def serve_pty(fd: int, answers: Answers) -> None:
     splitter = FrameSplitter()
     print("wrong-encoding: ready", flush=True)
     heard = False
-    give_up = time.monotonic() + 30.0
     while True:
         # a loaded machine may take seconds to start the rig: wait long for the first
         # frame, then end after 2 s of silence (the rig has stopped)
         ready, _, _ = select.select([fd], [], [], 2.0 if heard else 30.0)
         if not ready:
             return
+        heard = True
         try:
             data = os.read(fd, 4096)
         except BlockingIOError:
             continue
         except OSError:
-            if not heard and time.monotonic() < give_up:   # EIO while the rig opens its end
-                time.sleep(0.01)
-                continue
             return                      # the rig closed its end
         if not data:
             return
-        heard = True
         out = [wire for piece in splitter.feed(data) for wire in answers.to(piece)]
         try:
             os.write(fd, b"".join(out))

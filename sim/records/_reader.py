@@ -150,7 +150,7 @@ def read_for_display(folder: str | Path, max_rows: int | None = None) -> RunReco
 def column_parts(folder: str | Path, column: str,
                  part_rows: int = 1 << 18) -> Iterator[NDArray[np.float64]]:
     """One column of a run folder, every tick, a part at a time."""
-    total = read_run(folder, ticks=(0, 0)).ticks_total
+    total = read_run(folder, ticks=(0, 0), ticks_only=True).ticks_total
     for first in range(0, total, part_rows):
         yield read_run(folder, columns=[column], ticks=(first, first + part_rows),
                        ticks_only=True).rows[:, 0]
