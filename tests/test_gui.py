@@ -897,9 +897,10 @@ def dead_window_case(tmp_path: Path) -> None:
             pytest.fail("no replay window appeared")
         time.sleep(0.2)
     print(f"window shown: {title}")
-    for child in mp.active_children():
-        if child.name == "plantrig-replay":
-            child.terminate()
+    # SIGTERM by pid: mp.active_children() would also reap the child from this thread,
+    # racing after_run's own join (which then saw no exit code and said nothing)
+    for pid in spawned_children(os.getpid()):
+        os.kill(pid, signal.SIGTERM)
     done.join(GUARD_S)
     assert not done.is_alive()
 
