@@ -17,7 +17,7 @@ Reference (all keys but ``kind`` optional)::
     watchdog_timeout = 0.1      # s without a valid command before link_lost
     out_of_range = "reject"     # a command beyond an input's min/max: "reject" or "clamp"
     events_per_kind = 20        # itemised events per kind before counting only
-    heartbeat_period = 0.1      # s: the controller's heartbeat when it has nothing to send
+    heartbeat_period = 0.1      # s: either end's heartbeat when it has nothing to send
     status_period = 1.0         # s: the controller's status frames (binary only)
     lockstep = false            # fast runs only: each tick waits (up to watchdog_timeout)
                                 # for the answer to the previous tick's sensor frame
