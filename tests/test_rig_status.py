@@ -1,9 +1,11 @@
 """The rig tells the controller its state (docs/protocol.md 1.2): STATUS frames on serial,
-the status document on MQTT; heartbeats when it has nothing else to send; a controller
-that sends only heartbeats is lost (only commands feed the rig's watchdog)."""
+the status document on MQTT, the run-state registers on Modbus, each again after a
+reconnect; heartbeats when it has nothing else to send; a controller that sends only
+heartbeats is lost (only commands feed the rig's watchdog)."""
 
 from __future__ import annotations
 
+import asyncio
 import os
 import re
 import subprocess
@@ -11,8 +13,10 @@ import time
 from pathlib import Path
 
 import numpy as np
+from pymodbus.client import ModbusTcpClient
 from rig_text import rig_text
-from test_mqtt_link import mqtt_rig, retained
+from test_modbus_link import DEMO, free_port
+from test_mqtt_link import _first_message, drain_until, mqtt_rig, retained
 
 from plantrig._hil import controller_command, wait_ready
 from plantrig.io import (
@@ -143,3 +147,87 @@ def test_mqtt_status_document_carries_the_run_state(tmp_path: Path,
     # the last word after close: offline, and how the run ended (exit code 1, a fault)
     assert doc["state"] == "offline" and doc["run_state"] == "fault"
     assert doc["run_state_code"] == 3 and doc["detail_code"] == 1
+
+
+def test_serial_status_again_when_the_port_comes_back(tmp_path: Path) -> None:
+    rig = guarded_rig(tmp_path)
+    pair = open_pty_pair()
+    os.set_blocking(pair.slave_fd, False)
+    again = -1
+    try:
+        link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
+        link.open()
+        link.state(-1, "running", "")  # type: ignore[attr-defined]
+        link.state(3, "tripped", "estop")  # type: ignore[attr-defined]
+        before = read_frames(pair.slave_fd, FrameSplitter())
+        pair.close_slave()            # the far end hangs up: EIO at the next read
+        out = np.zeros(1)
+        link.receive(4, 4 * rig.tick, out)
+        assert link.health()["port_errors"] >= 1
+        again = os.open(pair.slave_path, os.O_RDWR | os.O_NOCTTY | os.O_NONBLOCK)
+        for k in range(5, 5 + 2 * round(0.5 / rig.tick)):   # the port is retried every 0.5 s
+            link.receive(k, k * rig.tick, out)
+        after = read_frames(again, FrameSplitter())
+        h = link.health()
+        link.close()
+    finally:
+        if again >= 0:
+            os.close(again)
+        pair.close_master()
+    assert [f.values[:2] for f in before] == [(1.0, 0.0), (2.0, 1.0)]
+    # the first frame on the reopened port is the newest state: tripped by the E-stop
+    assert after[0].kind == Kind.STATUS and after[0].values[:2] == (2.0, 1.0)
+    assert h["status_out"] == 3 and h["link_lost"] == 1
+
+
+def test_mqtt_run_state_survives_a_broker_restart_and_heartbeats_go_on(
+        tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+    rig = mqtt_rig(tmp_path, mosquitto_broker)
+    host, port = mosquitto_broker
+    link = build_link(rig)
+    link.open()
+    try:
+        link.state(12, "tripped", "estop")  # type: ignore[attr-defined]
+        # no sensor values are ever sent: the heartbeat topic still speaks
+        beat, _ = asyncio.run(_first_message(str(host), int(port),
+                                             "plantrig/conveyor/heartbeat"))
+        mosquitto_broker.restart()   # forgets every retained message
+        drain_until(link, "link_reconnected")  # type: ignore[arg-type]
+        doc = retained(mosquitto_broker, "plantrig/conveyor/status")
+    finally:
+        link.close()
+    assert set(beat) == {"seq", "tick", "uptime"}
+    assert doc["connects"] == 2 and doc["run_state"] == "tripped"
+    assert doc["run_state_code"] == 2 and doc["detail_code"] == 1 and doc["state_tick"] == 12
+
+
+def test_modbus_run_state_registers_follow_every_change() -> None:
+    rig = load_rig(DEMO)
+    port = free_port()
+    link = build_link(rig, port=f"127.0.0.1:{port}")
+    link.open()
+    client = ModbusTcpClient("127.0.0.1", port=port, timeout=2, retries=0)
+    seen = []
+    try:
+        assert client.connect()
+        link.state(-1, "running", "")  # type: ignore[attr-defined]
+        link.send(0, 0.0, np.zeros(len(rig.outputs)))
+        for k, state, detail in [(1, None, ""), (7, "tripped", "estop"),
+                                 (9, "running", ""), (20, "ended", "completed")]:
+            if state:
+                link.state(k, state, detail)  # type: ignore[attr-defined]
+            link.send(k, k * rig.tick, np.zeros(len(rig.outputs)))
+            want = link.rig_state.code  # type: ignore[attr-defined]
+            end = time.monotonic() + 3
+            while True:   # the server process takes the record in its own time
+                r = client.read_input_registers(2, count=2, device_id=1)
+                assert not r.isError()
+                if r.registers[0] == want or time.monotonic() > end:
+                    break
+                time.sleep(0.01)
+            seen.append(tuple(r.registers))
+    finally:
+        client.close()
+        link.close()
+    # [state, detail] (docs/modbus_link.md): 1 = the E-stop; after the end, exit code 0
+    assert seen == [(1, 0), (2, 1), (1, 0), (4, 0)]
