@@ -32,7 +32,6 @@ from plantrig.sim import (
     check_folder,
     generate_keypair,
     read_for_display,
-    read_run,
     recover_run,
     sign_folder,
     verify_folder,
@@ -278,9 +277,8 @@ def cmd_export(args: argparse.Namespace) -> int:
         status = ("verified record, manifest.json SHA-256 "
                   f"{readiness.verification.manifest_sha256}")
     try:
-        record = read_run(folder)
-        paths = (export_csv(record, out, draft=args.draft) if args.csv else []) + (
-            export_mat(record, out, status, draft=args.draft) if args.mat else [])
+        paths = (export_csv(folder, out, draft=args.draft) if args.csv else []) + (
+            export_mat(folder, out, status, draft=args.draft) if args.mat else [])
     except (OSError, ValueError) as exc:
         print(f"error: {folder}: cannot export ({exc})", file=sys.stderr)
         return EXIT_USAGE

@@ -10,8 +10,9 @@ by a fixed number of bytes a tick.
     .venv/bin/python bench/bench_long_run.py --ticks 200000 2000000
     .venv/bin/python bench/bench_long_run.py --readers     # and report, compare, replay
 
-With --readers, each run folder is then read back the three ways a long run is opened,
-each in its own process (peak RSS from getrusage): `plantrig report`, `plantrig compare`
+With --readers, each run folder is then read back the ways a long run is opened, each
+in its own process (peak RSS from getrusage): `plantrig report`, `plantrig export --csv
+--mat`, `plantrig compare`
 of the folder with itself (plots and HTML included), and replay's data path (the
 dashboard's RecordStore over the whole run: a zoomed-out window and one instant; the
 window itself needs a display and is not opened).
@@ -76,8 +77,10 @@ if kind == "replay":
     code = 0
 else:
     from plantrig.cli import main
-    args = (["report", str(folder)] if kind == "report" else
-            ["compare", str(folder), str(folder), "--out", str(folder.parent / "cmp")])
+    args = {"report": ["report", str(folder)],
+            "export": ["export", str(folder), "--csv", "--mat"],
+            "compare": ["compare", str(folder), str(folder), "--out",
+                        str(folder.parent / "cmp")]}[kind]
     code = main(args)
 print(json.dumps({"code": code,
                   "peak_kib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}))
@@ -85,9 +88,10 @@ print(json.dumps({"code": code,
 
 
 def reader_peaks(folder: Path) -> dict[str, tuple[float, float]]:
-    """(peak RSS MB, wall s) of report, compare and replay's data path on ``folder``."""
+    """(peak RSS MB, wall s) of report, export, compare and replay's data path on
+    ``folder``."""
     out = {}
-    for kind in ("report", "compare", "replay"):
+    for kind in ("report", "export", "compare", "replay"):
         start = time.perf_counter()
         proc = subprocess.run([sys.executable, "-c", READER, kind, str(folder)],
                               capture_output=True, text=True, check=False)
@@ -104,7 +108,8 @@ def main() -> None:
     parser.add_argument("--ticks", type=int, nargs="+",
                         default=[200_000, 2_000_000, 20_000_000])
     parser.add_argument("--readers", action="store_true",
-                        help="also read each folder back: report, compare, replay's data path")
+                        help="also read each folder back: report, export, compare, "
+                             "replay's data path")
     args = parser.parse_args()
     readers = []
     print("| ticks | rig peak RSS (MB) | recorder peak RSS (MB) | bytes on disk / tick | "
@@ -120,12 +125,13 @@ def main() -> None:
               f"{r['bytes_per_tick']:.1f} | {r['compression']:.2f}x | "
               f"{r['loop_ticks_per_s']:.0f} | {r['wall_s']:.1f} |", flush=True)
     if readers:
-        print("\n| ticks | report: peak RSS MB, wall s | compare with itself: MB, s | "
-              "replay data path: MB, s |")
-        print("|---|---|---|---|")
+        print("\n| ticks | report: peak RSS MB, wall s | export CSV and MAT: MB, s | "
+              "compare with itself: MB, s | replay data path: MB, s |")
+        print("|---|---|---|---|---|")
         for ticks, peaks in readers:
             print(f"| {ticks} | " + " | ".join(f"{mb:.0f} MB, {s:.1f} s" for mb, s in (
-                peaks["report"], peaks["compare"], peaks["replay"])) + " |")
+                peaks["report"], peaks["export"], peaks["compare"], peaks["replay"]))
+                  + " |")
 
 
 if __name__ == "__main__":
