@@ -256,13 +256,16 @@ def decode_frame(buf: bytes | bytearray, *, scale: float = 1.0,
 class FrameSplitter:
     """Cuts a byte stream into frames at each delimiter, whatever the chunking.
 
-    Yields the bytes between delimiters (without the delimiter); empty runs are skipped.
-    A run longer than MAX_LENGTH is dropped whole and counted in ``oversize``, and the
-    buffer never holds more than MAX_LENGTH bytes, so a noisy line cannot grow memory.
+    Yields the bytes between delimiters (without the delimiter); empty runs are skipped
+    unless KEEP_EMPTY (text lines: an empty line is a message, and the decoder says
+    ``truncated``). A run longer than MAX_LENGTH is dropped whole and counted in
+    ``oversize``, and the buffer never holds more than MAX_LENGTH bytes, so a noisy line
+    cannot grow memory.
     """
 
     DELIMITER: ClassVar[bytes] = FRAME_DELIMITER
     MAX_LENGTH: ClassVar[int] = MAX_ENCODED_SIZE
+    KEEP_EMPTY: ClassVar[bool] = False
 
     def __init__(self) -> None:
         self._buf = bytearray()
@@ -288,19 +291,20 @@ class FrameSplitter:
         cap, buf = self.MAX_LENGTH, self._buf
         frames: list[bytes] = []
         if parts:
-            if self._skipping:
+            if self._skipping:   # the tail of an oversize run: not a run of its own
                 self.dropped_bytes += len(parts[0])
-                parts[0] = b""
+                del parts[0]
                 self._skipping = False
             elif buf:
                 buf += parts[0]
                 parts[0] = bytes(buf)
                 buf.clear()
+            keep_empty = self.KEEP_EMPTY
             for piece in parts:
                 if len(piece) > cap:
                     self.oversize += 1
                     self.dropped_bytes += len(piece)
-                elif piece:
+                elif piece or keep_empty:
                     frames.append(piece)
         if self._skipping:
             self.dropped_bytes += len(rest)

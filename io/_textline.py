@@ -130,7 +130,9 @@ def decode_line(
 
 
 class LineSplitter(FrameSplitter):
-    """FrameSplitter for text lines: cut at '\\n', lines over MAX_LINE_LENGTH dropped."""
+    """FrameSplitter for text lines: cut at '\\n', lines over MAX_LINE_LENGTH dropped,
+    empty lines kept (decode_line refuses them as ``truncated``, docs/protocol.md 4.1)."""
 
     DELIMITER: ClassVar[bytes] = LINE_TERMINATOR
     MAX_LENGTH: ClassVar[int] = MAX_LINE_LENGTH
+    KEEP_EMPTY: ClassVar[bool] = True

@@ -10,7 +10,9 @@ round-trips a float64, so a text link must equal the fast run exactly.
 
 from __future__ import annotations
 
+import json
 import os
+import select
 import signal
 import subprocess
 import sys
@@ -31,6 +33,7 @@ from plantrig.io import (
 from plantrig.sim import Rig, RunData, load_rig, simulate
 
 CONFIGS = Path(__file__).parents[1] / "configs"
+VECTORS = json.loads((CONFIGS.parent / "docs" / "protocol_vectors.json").read_text())
 HIL = rig_text(CONFIGS / "conveyor_hil.toml")
 INJECTOR = Path(__file__).with_name("pty_injector.py")
 # Float32 keeps 24 significant bits: unit roundoff 2**-24 (IEEE 754 binary32; Higham,
@@ -315,3 +318,43 @@ def test_controller_write_waits_for_room_then_gives_up():
     finally:
         pair.close_slave()
         pair.close_master()
+
+
+def vector_bytes(vec: dict) -> bytes:
+    return bytes.fromhex(vec["line_hex"]) if "line_hex" in vec else vec["line"].encode("ascii")
+
+
+def test_text_vectors_through_the_rig_s_own_path(tmp_path: Path) -> None:
+    """Every text vector of docs/protocol_vectors.json written to a text link over a pty:
+    a bad line raises exactly its own bad_<reason> counter (splitter and decoder as the
+    rig runs them, oversize lines included), a good one none."""
+    for required in (False, True):
+        rig = hil_rig(tmp_path, text=True, extra=f"checksum = {str(required).lower()}")
+        pair = open_pty_pair()
+        link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
+        try:
+            link.open()
+            out = np.zeros(1)
+            vectors = [(v, v["reason"]) for v in VECTORS["bad_text_lines"]
+                       if v.get("require_checksum", False) == required]
+            if not required:
+                vectors += [(v, None) for v in VECTORS["text_lines"]]
+            for k, (vec, reason) in enumerate(vectors):
+                before = link.health()
+                os.write(pair.slave_fd, vector_bytes(vec))
+                deadline = time.monotonic() + 5.0
+                while True:   # the pty delivers in its own time, perhaps in pieces
+                    link.receive(k, k * rig.tick, out)
+                    after = link.health()
+                    if (after["frames_in"] + after["bad_oversize"]
+                            > before["frames_in"] + before["bad_oversize"]):
+                        break
+                    assert time.monotonic() < deadline, vec["name"]
+                    select.select([pair.master_fd], [], [], 0.05)
+                bad = {name: after[name] - before[name] for name in after
+                       if name.startswith("bad_") and after[name] != before[name]}
+                assert bad == ({f"bad_{reason}": 1.0} if reason else {}), vec["name"]
+        finally:
+            link.close()
+            pair.close_slave()
+            pair.close_master()

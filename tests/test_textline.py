@@ -121,7 +121,7 @@ def test_round_trip_exact(seq: int, tick: int, values: list[float], checksum: bo
 def test_line_splitter_bounds_lines() -> None:
     s = LineSplitter()
     assert s.feed(b"1,2,3\r\n4,") == [b"1,2,3\r"]
-    assert s.feed(b"5\n\n") == [b"4,5"]
+    assert s.feed(b"5\n\n") == [b"4,5", b""]   # an empty line is a message: truncated
     s.feed(b"9" * (MAX_LINE_LENGTH + 1))
     assert s.oversize == 1 and s.pending == 0
     assert s.feed(b"9\n7,8\n") == [b"7,8"]
