@@ -251,16 +251,20 @@ def draw_panel(ax: Any, ctx: PlotContext, panel: Panel) -> None:
                                                                           lim.trip_low)):
                 continue
             ax.axhline(value, color=colour, lw=1.0, ls=style, zorder=1)
+            # each label on the side of its line away from the band's inside, so a warn
+            # line close to its trip line never writes over the trip's label
+            outward = (what == "trip") == (value in (lim.trip_high, lim.warn_high))
             ax.annotate(f"{lim.name} {what} {value:g}", (1.0, value),
                         xycoords=("axes fraction", "data"),
-                        xytext=(-3, 2 if what == "trip" else -2), textcoords="offset points",
-                        ha="right", va="bottom" if what == "trip" else "top", fontsize=6.5,
+                        xytext=(-3, 2 if outward else -2), textcoords="offset points",
+                        ha="right", va="bottom" if outward else "top", fontsize=6.5,
                         color=colour)
             values.append(value)
     if values:
         lo, hi = min(values), max(values)
-        pad = 0.08 * ((hi - lo) or max(abs(hi), 1.0))
-        ax.set_ylim(lo - pad, hi + pad)
+        span = (hi - lo) or max(abs(hi), 1.0)
+        # headroom on top for the trip names and the latched bar above the highest line
+        ax.set_ylim(lo - 0.1 * span, hi + 0.16 * span)
     shade_windows(ax, ctx)
     mark_trips(ax, ctx)
     unit = r.unit(panel.columns[-1]) if panel.columns else ""
@@ -268,11 +272,17 @@ def draw_panel(ax: Any, ctx: PlotContext, panel: Panel) -> None:
     ax.set_title(panel.title, fontsize=8.5, loc="left")
     ax.grid(True, lw=0.4, color=GRID)
     ax.tick_params(labelsize=7)
+    legend_beside(ax)
+
+
+def legend_beside(ax: Any) -> None:
+    """The panel's legend to the right of its axes, one entry per label: inside, it hid
+    the start of the traces (a reference step, a rise) under its box."""
     handles, labels = ax.get_legend_handles_labels()
     if handles:
         unique = dict(zip(labels, handles, strict=True))
         ax.legend(unique.values(), unique.keys(), fontsize=6.5, loc="upper left",
-                  framealpha=0.85)
+                  bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0, framealpha=0.85)
 
 
 def shade_windows(ax: Any, ctx: PlotContext) -> None:

@@ -41,6 +41,7 @@ from plantrig._plots import (
     context,
     draw_panel,
     label,
+    legend_beside,
     mark_trips,
     shade_windows,
     standard_panels,
@@ -261,22 +262,29 @@ def _limit_page(ctx: PlotContext, limits: list[Any]) -> Any:
         mark_trips(ax, ctx)
         top = max(1.15, min(float(np.max(use.use)) if len(use.use) else 1.0, 10.0) * 1.08)
         ax.set_ylim(min(0.0, float(np.min(use.use)) if len(use.use) else 0.0), top)
-        ax.annotate(f"peak {use.peak:.3f} at {use.peak_time:.4g} s", (use.peak_time,
-                    min(use.peak, 10.0)), xytext=(4, -10), textcoords="offset points",
-                    fontsize=7, color=INK)
+        _note_peak(ax, use.peak, use.peak_time, top)
         ax.set_title("\n".join(_wrap(f"{lim.name}: {use.bands_text}", 6.6, 7.5)),
                      fontsize=7.5, loc="left")
         ax.set_ylabel("fraction of trip band", fontsize=7.5)
         ax.grid(True, lw=0.4, color=GRID)
         ax.tick_params(labelsize=7)
-        handles, labels_ = ax.get_legend_handles_labels()
-        unique = dict(zip(labels_, handles, strict=True))
-        ax.legend(unique.values(), unique.keys(), fontsize=6.5, loc="upper left",
-                  framealpha=0.85)
+        legend_beside(ax)
     axes[len(limits) - 1].set_xlabel("plant time [s]", fontsize=8)
     axes[len(limits) - 1].xaxis.set_tick_params(labelbottom=True)
     fig.tight_layout(rect=(0.02, 0.04, 0.98, 0.94))
     return fig
+
+
+def _note_peak(ax: Any, peak: float, when: float, top: float) -> None:
+    """"peak P at T s" beside the peak, on the side that keeps it inside the axes (a
+    peak at the run's end or near 0 wrote it past the frame)."""
+    lo, hi = ax.get_xlim()
+    right = when > (lo + hi) / 2
+    low = min(peak, 10.0) < 0.5 * top
+    ax.annotate(f"peak {peak:.3f} at {when:.4g} s", (when, min(peak, 10.0)),
+                xytext=(-4 if right else 4, 4 if low else -4), textcoords="offset points",
+                ha="right" if right else "left", va="bottom" if low else "top",
+                fontsize=7, color=INK)
 
 
 def _timeline(ctx: PlotContext) -> Any:

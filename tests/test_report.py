@@ -167,7 +167,7 @@ def test_signal_pages_overlay_reference_and_shade_faults(belt_run: Path,
     image = belt_report["images"][signals[0]]
     # the first panel (belt speed): plant blue, controller orange and reference ink traces,
     # and the amber fault window of the stuck sensor (1.2 .. 1.958 s)
-    frame = np.flatnonzero((image < 0.3).all(axis=2).sum(axis=1) > 0.5 * image.shape[1])
+    frame = np.flatnonzero((image < 0.3).all(axis=2).sum(axis=1) > 0.4 * image.shape[1])
     panel = image[frame[0] + 2:frame[1] - 1]
     blue = (panel[..., 2] - panel[..., 0] > 0.3)
     orange = (panel[..., 0] - panel[..., 2] > 0.5) & (panel[..., 1] > 0.3)
@@ -206,6 +206,21 @@ def test_tank_rehearsal_report_reads_the_ode_rig_as_data(tmp_path: Path) -> None
     k = int(np.argmax(use))
     assert f"peak {use[k]:.3f} at {record.t[k]:.4g} s" in text
     assert "device under test" in text and "not named" in text
+    # level_high peaks at the run's last tick: its note stays inside the panel
+    import matplotlib.pyplot as plt
+
+    from plantrig._plots import context
+    from plantrig._report import _limit_page
+    ctx = context(record)
+    fig = _limit_page(ctx, ctx.limits)
+    try:
+        notes = [(axes, b) for axes, _legend, texts in _boxes(fig) for text, b in texts
+                 if text.startswith("peak ")]
+        assert len(notes) == len(ctx.limits) == 3
+        for axes, b in notes:
+            assert axes.x0 <= b.x0 and b.x1 <= axes.x1 and axes.y0 <= b.y0 <= b.y1 <= axes.y1
+    finally:
+        plt.close(fig)
 
 
 def test_dut_table_is_checked_like_every_rig_key(tmp_path: Path) -> None:
@@ -294,3 +309,39 @@ def test_a_long_record_is_reported_from_a_thinned_copy_with_its_peaks(
     whole = "\n".join(belt_report["pages"])
     peaks = re.findall(r"peak \d+\.\d+ at [\d.e+-]+ s", whole)
     assert peaks and all(p in text for p in peaks)
+
+
+def _boxes(fig: object) -> list:
+    """(axes box, legend box, texts' boxes) of each axes of a drawn figure, in pixels."""
+    fig.canvas.draw()                                   # type: ignore[attr-defined]
+    renderer = fig.canvas.get_renderer()                # type: ignore[attr-defined]
+    return [(ax.get_window_extent(renderer),
+             ax.get_legend().get_window_extent(renderer) if ax.get_legend() else None,
+             [(t.get_text(), t.get_window_extent(renderer)) for t in ax.texts])
+            for ax in fig.axes if ax.get_visible()]     # type: ignore[attr-defined]
+
+
+def test_legends_and_labels_leave_the_traces_and_each_other_clear(belt_run: Path) -> None:
+    """The legend sits beside each panel (inside, it hid the reference step and the rise
+    under its box); a limit's warn and trip labels never write over each other (the
+    motor current's -17 and -19 did); the figure is the one report and plot draw."""
+    import matplotlib.pyplot as plt
+
+    from plantrig._plots import context, plot_signals, standard_panels
+
+    ctx = context(read_run(belt_run))
+    fig = plot_signals(ctx, standard_panels(ctx))
+    try:
+        boxes = _boxes(fig)
+        labelled = 0
+        for axes, legend, texts in boxes:
+            assert legend is not None and legend.x0 >= axes.x1      # beside, not over
+            limit_labels = [b for text, b in texts if " warn " in text or " trip " in text]
+            labelled += len(limit_labels) > 1
+            for i, a in enumerate(limit_labels):
+                assert axes.y0 <= a.y0 and a.y1 <= axes.y1           # inside its panel
+                for b in limit_labels[i + 1:]:
+                    assert not a.overlaps(b)
+        assert labelled == 2            # motor_current (four lines) and x:belt_speed (two)
+    finally:
+        plt.close(fig)
