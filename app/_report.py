@@ -180,15 +180,19 @@ def _text_pages(record: RunRecord, facts: dict[str, Any], content: list[Section]
     fill, ink = (PASS_FILL, INK) if ok else (FAIL_FILL, ALARM)
     from matplotlib.patches import Rectangle
 
+    # every line of the result (a long trip reason wraps, never cut), in a box that
+    # holds them all; bold glyphs are wider than _wrap's average, so wrap narrower
+    lines = _wrap(result_line(facts), (RIGHT - LEFT - 0.3) * 0.93, 11)
+    height = 0.1 + 0.22 * len(lines)
     flow.pages[-1].add_artist(Rectangle(
-        (LEFT / PAGE[0], 1 - (flow.y + 0.42) / PAGE[1]), (RIGHT - LEFT) / PAGE[0],
-        0.42 / PAGE[1], transform=flow.pages[-1].transFigure, facecolor=fill,
+        (LEFT / PAGE[0], 1 - (flow.y + height) / PAGE[1]), (RIGHT - LEFT) / PAGE[0],
+        height / PAGE[1], transform=flow.pages[-1].transFigure, facecolor=fill,
         edgecolor=ink, lw=1.4))
-    for line in _wrap(result_line(facts), RIGHT - LEFT - 0.3, 11)[:2]:
-        flow.y += 0.06
+    flow.y += 0.06
+    for line in lines:
         flow.text(LEFT + 0.12, line, fontsize=11, weight="bold", color=ink)
-        flow.y += 0.16
-    flow.y = max(flow.y, flow.y) + 0.2
+        flow.y += 0.22
+    flow.y += 0.24
     for title, rows in content:
         flow.heading(title)
         mono = title.startswith("Manifest")

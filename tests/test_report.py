@@ -345,3 +345,48 @@ def test_legends_and_labels_leave_the_traces_and_each_other_clear(belt_run: Path
         assert labelled == 2            # motor_current (four lines) and x:belt_speed (two)
     finally:
         plt.close(fig)
+
+
+@pytest.fixture(scope="module")
+def trip_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The guarded conveyor asked for 1.3 m/s at 1.6 s: belt_overspeed trips, unexpected
+    (exit code 4), with a long reason in the result line."""
+    out = tmp_path_factory.mktemp("trip") / "runs"
+    assert main(["run", str(REHEARSALS / "conveyor_guarded.toml"), "--fast", "--out",
+                 str(out), "--set", "references[0].points=[[0.0, 0.0], [0.2, 0.8], "
+                 "[1.6, 1.3]]"]) == 4
+    (folder,) = [p for p in out.iterdir() if (p / "run_start.json").is_file()]
+    return folder
+
+
+def test_the_result_box_holds_every_line_of_a_long_result(trip_run: Path) -> None:
+    """A tripped run's result wraps onto as many lines as it needs, all inside the box
+    (it was cut at two lines, and its first line ran past the box's right edge)."""
+    import matplotlib.pyplot as plt
+    from matplotlib.patches import Rectangle
+
+    from plantrig._plots import context
+    from plantrig._report import _text_pages
+    from plantrig._report_text import result_line, run_facts, sections
+    from plantrig.sim import check_folder
+
+    record = read_run(trip_run)
+    facts = run_facts(record)
+    content = sections(record, context(record), check_folder(trip_run), False, {})
+    pages = _text_pages(record, facts, content)
+    try:
+        first = pages[0]
+        first.canvas.draw()
+        renderer = first.canvas.get_renderer()
+        (box,) = [a.get_window_extent(renderer) for a in first.artists
+                  if isinstance(a, Rectangle)]
+        lines = [t for t in first.texts if t.get_fontsize() == 11]
+        assert len(lines) >= 2
+        assert " ".join(t.get_text() for t in lines) == result_line(facts)
+        assert "TRIPPED" in result_line(facts) and "exit code 4" in result_line(facts)
+        for line in lines:
+            b = line.get_window_extent(renderer)
+            assert box.x0 < b.x0 and b.x1 < box.x1 and box.y0 < b.y0 and b.y1 < box.y1
+    finally:
+        for page in pages:
+            plt.close(page)
