@@ -192,7 +192,9 @@ def verdict_rows(folder: Path, s: dict[str, Any]) -> Rows:
             parts.append(str(item["criterion"]).replace("_", " "))
         if "measured" in item:
             parts.append(f"measured {fmt(item['measured'])}{unit}")
-        if "limit" in item:
+        if item.get("needs"):        # the bound as the console says it ("x <= 1.15 m/s")
+            parts.append(f"needs {item['needs']}")
+        elif "limit" in item:
             parts.append(f"limit {fmt(item['limit'])}{unit}")
         if item.get("detail"):
             parts.append(str(item["detail"]))

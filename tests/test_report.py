@@ -94,6 +94,11 @@ def test_page_one_puts_the_result_identity_acceptance_and_verdicts_first(
     assert len(verdicts) == 8
     for verdict in verdicts:
         assert verdict["name"] in names, verdict["name"]      # wrapped, never cut
+    # each verdict's bound as the console says it: the band's is its 1.15 m/s bound, not
+    # the 0 m/s it may be outside by
+    flat = " ".join(first.split())
+    assert "needs x:belt_speed <= 1.15 m/s" in flat and "limit 0 m/s" not in flat
+    assert all(f"needs {v['needs']}" in flat for v in verdicts)
     long = "overspeed trip after the sensor sticks"             # 38 characters
     assert long in names and "8 of 8 criteria passed" in first
     assert "name R. Okafor" in first and "name M. Lindqvist" in first
