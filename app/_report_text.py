@@ -38,6 +38,7 @@ RECORDER_WORDS = {"rows": "ticks written", "lost": "ticks lost",
                   "max_backlog_rows": "largest backlog (ticks)",
                   "rows_not_written": "ticks not written"}
 NOT_GIVEN = "____________________"
+NO_EXIT_CODE = "none (the rig process ended without one)"
 
 
 def start_of(folder: Path) -> dict[str, Any]:
@@ -69,7 +70,20 @@ def result_line(s: dict[str, Any]) -> str:
         return "RESULT: UNKNOWN — the run has no summary (not over, or it died)"
     word = "PASS" if passed(s) else "NOT ACCEPTED"
     return (f"RESULT: {word} — {OUTCOME_WORDS.get(s['ended'], s['ended'])} "
-            f"({s.get('reason', '')}), exit code {s.get('exit_code', '?')}")
+            f"({s.get('reason', '')}), {exit_text(s)}")
+
+
+def exit_text(s: dict[str, Any]) -> str:
+    """The run's exit code; a run whose rig process died (rebuilt by recover) has none."""
+    return f"exit code {s['exit_code']}" if "exit_code" in s else f"exit code {NO_EXIT_CODE}"
+
+
+def not_judged(s: dict[str, Any]) -> str:
+    """Why a run has no acceptance or verdict results."""
+    if "recovery" in s or s.get("ended") == "interrupted":
+        return "not judged: the run did not end (its rig process died; plantrig recover " \
+               "rebuilt the record)"
+    return "not judged (no results in the summary)"
 
 
 def sections(record: RunRecord, ctx: PlotContext, readiness: Readiness, draft: bool,
@@ -115,7 +129,7 @@ def identity_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
                       str(s.get("mode")), str(s.get("mode", "?")))),
         ("outcome", f"{OUTCOME_WORDS.get(s['ended'], s['ended'])}: {s.get('reason', '')}"
          if "ended" in s else "not recorded: the run has no summary (not over, or it died)"),
-        ("exit code", str(s.get("exit_code", "?"))),
+        ("exit code", str(s["exit_code"]) if "exit_code" in s else NO_EXIT_CODE),
         ("ticks", f"{ticks_run} of {s.get('ticks_planned', '?')} planned ran, "
                   f"{s.get('ticks_recorded', record.ticks_total)} recorded; tick "
                   f"{_seconds(rig.get('tick_s'))}"),
@@ -157,7 +171,7 @@ def acceptance_rows(s: dict[str, Any]) -> Rows:
     """The run's acceptance rules as judged after it (summary "acceptance")."""
     rules = s.get("acceptance")
     if not isinstance(rules, list) or not rules:
-        return [("acceptance", "not judged (no acceptance results in the summary)")]
+        return [("acceptance", not_judged(s))]
     mark = {True: "held", False: "FAILED", None: "n/a"}
     return [(str(r.get("rule", "?")), f"{mark.get(r.get('passed'), '?')}: "
              f"{r.get('measured', '')} (needs {r.get('needed', '')})")
@@ -174,6 +188,10 @@ def verdict_rows(folder: Path, s: dict[str, Any]) -> Rows:
         except ValueError as exc:
             return [("verdicts", f"verdicts.json does not parse ({exc})")]
     if not items:
+        planned = _toml_list(folder / "scenario.toml", "verdicts")
+        if planned:      # a scenario with verdicts, never judged: say so, never "none"
+            return [("verdicts", f"{not_judged(s)}; the scenario's {len(planned)} "
+                                 "verdict(s) were not evaluated")]
         return [("verdicts", "no acceptance criteria in this run (no scenario verdicts)")]
     items = items if isinstance(items, list) else [items]
     judged = [i for i in items if isinstance(i, dict) and "passed" in i]
@@ -404,6 +422,15 @@ def _json(path: Path) -> dict[str, Any]:
     except (OSError, ValueError):
         return {}
     return doc if isinstance(doc, dict) else {}
+
+
+def _toml_list(path: Path, key: str) -> list[Any]:
+    """The top-level list ``key`` of a TOML file, or [] (missing, unreadable)."""
+    try:
+        value = tomllib.loads(path.read_text()).get(key, [])
+    except (OSError, tomllib.TOMLDecodeError):
+        return []
+    return value if isinstance(value, list) else []
 
 
 def _toml_field(path: Path, table: str, key: str) -> str:

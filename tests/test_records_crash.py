@@ -127,6 +127,17 @@ def test_sigkilled_rig_is_recovered_with_its_loss_measured(tmp_path: Path) -> No
     print(f"\nrig only: produced {report['produced_rows']} ticks in {alive_s:.2f} s of "
           f"recording, lost {report['lost_ms']:.1f} ms")
     assert main(["recover", str(folder)]) == 2            # nothing left to recover
+    # its report says what the dead run never had: no exit code, nothing judged; the
+    # overruns are counted from the recorded lateness
+    assert main(["report", str(folder)]) == 0
+    text = " ".join(subprocess.run(["pdftotext", "-layout", str(folder / "derived" /
+                                                               "report.pdf"), "-"],
+                                   check=True, capture_output=True, text=True,
+                                   timeout=120).stdout.split())
+    assert "INTERRUPTED" in text and "exit code none (the rig process ended without one)" \
+        in text and "exit code ?" not in text
+    assert "acceptance not judged: the run did not end" in text
+    assert "overruns 0 (counted from the recorded lateness of each tick)" in text
 
 
 def test_rig_and_recorder_killed_together_lose_at_most_200_ms(tmp_path: Path) -> None:

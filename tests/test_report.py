@@ -395,3 +395,17 @@ def test_the_result_box_holds_every_line_of_a_long_result(trip_run: Path) -> Non
     finally:
         for page in pages:
             plt.close(page)
+
+
+def test_a_scenario_never_judged_is_not_reported_as_having_no_verdicts(
+        belt_run: Path, tmp_path: Path) -> None:
+    """A run whose rig died has its scenario's verdicts unjudged (recover rebuilds ticks,
+    not verdicts): the report says so instead of 'no acceptance criteria'."""
+    from plantrig._report_text import verdict_rows
+
+    (tmp_path / "scenario.toml").write_bytes((belt_run / "scenario.toml").read_bytes())
+    rows = verdict_rows(tmp_path, {"ended": "interrupted", "recovery": {}})
+    assert rows == [("verdicts", "not judged: the run did not end (its rig process died; "
+                                 "plantrig recover rebuilt the record); the scenario's 7 "
+                                 "verdict(s) were not evaluated")]
+    assert len(json.loads((belt_run / "verdicts.json").read_text())) == 8   # 7 + expect
