@@ -16,6 +16,7 @@ pane).
 from __future__ import annotations
 
 import json
+import textwrap
 import time
 from collections import deque
 from collections.abc import Callable
@@ -57,6 +58,9 @@ ESTOP_KEY_NAME = "Esc"
 
 BANNER_CHARS_PER_LINE = 170      # caution text per banner line (15 px condensed font,
 BANNER_LINE_PX = 18              # about 7 px a character on the screenshots)
+# verdict and outcome lines are wrapped here, at spaces only: the window's own wrap also
+# breaks after a full stop, which split "limit 0.4" into "0." and "4"
+RUN_LINE_CHARS = (LEFT_W - 30) // 7     # about 6.5 px a character, measured
 
 
 def banner_height() -> int:
@@ -481,7 +485,8 @@ class DashboardView:
             item = f"{T}run.{i}"
             if i < len(lines):
                 text, passed = lines[i]
-                dpg.set_value(item, text)
+                dpg.set_value(item, "\n".join(textwrap.wrap(
+                    text, RUN_LINE_CHARS, break_long_words=False, break_on_hyphens=False)))
                 dpg.configure_item(item, show=True, color=colours[passed])
             else:
                 dpg.configure_item(item, show=False)

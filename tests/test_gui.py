@@ -583,7 +583,9 @@ def test_live_dashboard_shows_scenario_progress_then_the_verdicts(xvfb, tmp_path
 
 
 def shown_run_lines() -> list[str]:
-    return [dpg.get_value(f"{T}run.{n}") for n in range(RUN_LINES)
+    """The outcome, verdict and scenario lines as shown, each joined back into one line
+    (the view wraps them at spaces)."""
+    return [dpg.get_value(f"{T}run.{n}").replace("\n", " ") for n in range(RUN_LINES)
             if dpg.get_item_configuration(f"{T}run.{n}")["show"]]
 
 
@@ -694,8 +696,7 @@ def replay_case(tmp_path: Path) -> None:
         assert not near(crop(img, regions["status"]), ALARM, 12).any()
         assert "plantrig REPLAY of" in dpg.get_viewport_title()
         # the recorded outcome and every verdict, whole; the scenario's progress so far
-        lines = [dpg.get_value(f"{T}run.{n}") for n in range(RUN_LINES)
-                 if dpg.get_item_configuration(f"{T}run.{n}")["show"]]
+        lines = shown_run_lines()
         assert lines[0] == f"outcome: {summary['ended']}, exit code {summary['exit_code']}: " \
                            f"{summary['reason']}"
         for verdict in summary["verdicts"]:
