@@ -55,7 +55,8 @@ def print_outcome(folder: Path, summary: dict[str, Any]) -> None:
     rehearsed = {k: v for k, v in health.items() if k in REHEARSED and v}
     link = {k: v for k, v in health.items() if k not in REHEARSED}
     if link:
-        print(link_lines(link, summary["rig"]["tick_s"]))
+        kind = (summary.get("link_used") or {}).get("kind", "serial")
+        print(link_lines(link, summary["rig"]["tick_s"], kind))
     if rehearsed:
         print("rehearsed link faults: " + ", ".join(f"{v:.0f} {REHEARSED[k]}"
                                                     for k, v in rehearsed.items()))
@@ -68,10 +69,41 @@ def print_outcome(folder: Path, summary: dict[str, Any]) -> None:
         print(f"record: not finished; free space, then: plantrig recover {folder}")
 
 
-def link_lines(health: dict[str, Any], tick: float) -> str:
-    """The link's health in the words of its own kind (serial frames or MQTT messages)."""
-    if "connects" in health:
-        from plantrig._mqtt_cli import link_report as mqtt_report
-        return mqtt_report(health)
-    from plantrig._hil import link_report as serial_report
-    return serial_report(health, tick)
+def link_lines(h: dict[str, Any], tick: float, kind: str = "serial") -> str:
+    """The link's health in the same words for every kind of link: the counter names of
+    docs/protocol.md section 5 (a frame is a serial frame, an MQTT message or a Modbus
+    request), then what only this kind counts."""
+    def n(key: str) -> str:
+        return f"{h.get(key, 0):.0f}"
+
+    bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
+    lines = [
+        f"link: frames out {n('frames_out')}, frames in {n('frames_in')}, commands in "
+        f"{n('commands_in')} (used {n('commands_used')}, superseded {n('superseded')}), "
+        f"heartbeats out {n('heartbeats_out')} in {n('heartbeats_in')}, status out "
+        f"{n('status_out')} in {n('status_in')}",
+        f"link: bad or rejected {bad:.0f}, duplicates {n('duplicates')}, out of order "
+        f"{n('out_of_order')}, dropped out {n('dropped_out')}, late answers {n('late')}, "
+        f"ticks without a fresh command {n('missed_ticks')}, link lost {n('link_lost')}",
+    ]
+    if "latency_ticks_p50" in h:
+        line = (f"link: answer used {n('latency_ticks_p50')} tick(s) after its sensor values "
+                f"p50, {n('latency_ticks_max')} max")
+        if "latency_ms_p50" in h:
+            where = ("through the broker" if kind == "mqtt" else
+                     f"write to read, seen at tick starts, tick {tick * 1e3:g} ms")
+            line += (f"; round trip {h['latency_ms_p50']:.3f} ms p50, "
+                     f"{h['latency_ms_p99']:.3f} ms p99, {h['latency_ms_max']:.3f} ms max "
+                     f"({where})")
+        lines.append(line)
+    if kind == "mqtt":
+        lines.append(f"link: connects {n('connects')}, reconnects {n('reconnects')}, dropped "
+                     f"while the broker was away {n('dropped_offline')}")
+    elif kind == "modbus":
+        codes = sorted(k for k in h if k.startswith("exceptions_"))
+        lines.append(f"link: connects {n('connects')}, exception responses "
+                     + (", ".join(f"{k[-2:]} x{h[k]:.0f}" for k in codes) or "none"))
+    else:
+        lines.append(f"link: port errors {n('port_errors')}, bytes in {n('bytes_in')} out "
+                     f"{n('bytes_out')}")
+    return "\n".join(lines)

@@ -205,28 +205,6 @@ def cmd_demo(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     return demo_result(proc, folder, outcome, summary)
 
 
-def link_report(h: dict[str, float], tick: float) -> str:
-    """The link health in a few readable lines."""
-    bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
-    lines = [
-        f"link: frames out {h.get('frames_out', 0):.0f}, commands in "
-        f"{h.get('commands_in', 0):.0f}, heartbeats {h.get('heartbeats_in', 0):.0f}, "
-        f"status {h.get('status_in', 0):.0f}",
-        f"link: bad or rejected {bad:.0f}, duplicates {h.get('duplicates', 0):.0f}, "
-        f"out of order {h.get('out_of_order', 0):.0f}, dropped out "
-        f"{h.get('dropped_out', 0):.0f}, late answers {h.get('late', 0):.0f}, ticks without "
-        f"a fresh command {h.get('missed_ticks', 0):.0f}, link lost "
-        f"{h.get('link_lost', 0):.0f}",
-    ]
-    if "latency_ticks_p50" in h:
-        lines.append(
-            f"link: latency {h['latency_ticks_p50']:.0f} tick(s) p50, "
-            f"{h['latency_ticks_max']:.0f} max; write-to-read {h['latency_ms_p50']:.3f} ms "
-            f"p50, {h['latency_ms_p99']:.3f} ms p99, {h['latency_ms_max']:.3f} ms max "
-            f"(seen at tick starts, tick {tick * 1e3:g} ms)")
-    return "\n".join(lines)
-
-
 def add_parsers(sub: Any, load: Callable[[str], Any]) -> None:
     """Add `controller` and `demo` to the CLI's subcommands."""
     p = sub.add_parser("controller",

@@ -91,11 +91,4 @@ def cmd_demo_modbus(args: argparse.Namespace, load: Callable[[str], Any]) -> int
         folder, outcome, summary = run_to_folder(rig, out, realtime=True, link=link)
     finally:
         reap(proc, 10.0)   # the controller ends when the rig's server closes
-    h = summary["link"]
-    bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
-    return demo_result(proc, folder, outcome, summary, extra=(
-        f"link: requests in {h.get('frames_in', 0):.0f}, commands in "
-        f"{h.get('commands_in', 0):.0f} (used {h.get('commands_used', 0):.0f}), refused "
-        f"{bad:.0f}, late {h.get('late', 0):.0f}, link lost {h.get('link_lost', 0):.0f}; "
-        f"answer used {h.get('latency_ticks_p50', 0):.0f} tick(s) after its sensor "
-        f"values p50, {h.get('latency_ticks_max', 0):.0f} max"))
+    return demo_result(proc, folder, outcome, summary)

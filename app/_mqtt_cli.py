@@ -57,29 +57,6 @@ def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
     return EXIT_OK
 
 
-def link_report(h: dict[str, float]) -> str:
-    """The MQTT link health in a few readable lines."""
-    bad = sum(v for k, v in h.items() if k.startswith(("bad_", "rejected_")))
-    lines = [
-        f"link: sensor messages out {h.get('frames_out', 0):.0f}, commands in "
-        f"{h.get('commands_in', 0):.0f} (used {h.get('commands_used', 0):.0f}), heartbeats "
-        f"out {h.get('heartbeats_out', 0):.0f}, connects {h.get('connects', 0):.0f}, "
-        f"reconnects {h.get('reconnects', 0):.0f}",
-        f"link: bad or rejected {bad:.0f}, duplicates {h.get('duplicates', 0):.0f}, out of "
-        f"order {h.get('out_of_order', 0):.0f}, dropped out "
-        f"{h.get('dropped_out', 0) + h.get('dropped_offline', 0):.0f}, late answers "
-        f"{h.get('late', 0):.0f}, ticks without a fresh command "
-        f"{h.get('missed_ticks', 0):.0f}, link lost {h.get('link_lost', 0):.0f}",
-    ]
-    if "latency_ms_p50" in h:
-        lines.append(
-            f"link: round trip through the broker {h['latency_ms_p50']:.3f} ms p50, "
-            f"{h['latency_ms_p99']:.3f} ms p99, {h['latency_ms_max']:.3f} ms max; answer "
-            f"used {h.get('latency_ticks_p50', 0):.0f} tick(s) after its sensor message p50, "
-            f"{h.get('latency_ticks_max', 0):.0f} max")
-    return "\n".join(lines)
-
-
 def cmd_demo_mqtt(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Rig and reference controller through a local mosquitto, in real time."""
     from plantrig._hil import demo_result, reap, wait_ready

@@ -79,7 +79,7 @@ class MqttLink:
         self._gone = False
         self._fresh = False
         self.rig_state = RigState(interlocks)
-        self.counts = dict.fromkeys(("receives", "commands_used", "superseded",
+        self.counts = dict.fromkeys(("commands_used", "superseded",
                                      "dropped_to_worker", "missed_ticks", "late", "link_lost",
                                      "link_restored"), 0)
         self.age_hist = np.zeros(LATENCY_BINS, dtype=np.int64)
@@ -124,7 +124,6 @@ class MqttLink:
                                       " s; the run starts and the link keeps trying"))
 
     def receive(self, tick: int, t: float, out: Vector) -> bool:
-        self.counts["receives"] += 1
         self._drain(tick, t)
         if self.lockstep and not self.lost and self.last_echo_tick < tick - 1:
             self._wait_for_answer(tick, t)
@@ -214,9 +213,10 @@ class MqttLink:
             self._health_raw = None
         merged = {k: float(v) for k, v in self._worker_health.items()}
         merged.update({k: float(v) for k, v in self.counts.items()})
-        # one name for every link (docs/protocol.md 5): values that never left the rig
-        merged["dropped_out"] = merged.get("dropped_out", 0.0) + merged["dropped_to_worker"]
-        merged["watchdog_lost"] = 1.0 if self.lost else 0.0
+        # one name for every link (docs/protocol.md 5): values that never left the rig,
+        # whether the send queue overflowed, the broker was away or the worker was behind
+        merged["dropped_out"] = (merged.get("dropped_out", 0.0) + merged["dropped_to_worker"]
+                                 + merged.get("dropped_offline", 0.0))
         total = int(self.age_hist.sum())
         if total:
             cum = np.cumsum(self.age_hist)

@@ -33,7 +33,7 @@ TICK_MODULUS = 1 << 32
 REASONS = frozenset({
     "json",          # not UTF-8 JSON, or not a JSON object
     "schema",        # a field missing or of the wrong type
-    "channels",      # not one value per channel
+    "count",         # not one value per channel (rejected_count, as on the serial link)
     "non_finite",    # NaN or infinity among the values
     "range",         # a value outside the signal's min..max
     "oversize",      # longer than max_payload
@@ -126,7 +126,8 @@ class Codec:
         else:
             seq, tick, values = _decode_json(payload)
         if len(values) != channels:
-            raise PayloadError("channels", f"{len(values)} values, expected {channels}")
+            raise PayloadError("count", f"{len(values)} values, expected {channels}",
+                               rejected=True)
         return seq, tick, values
 
     def _decode_binary(self, kind: Kind, payload: bytes) -> tuple[int, int, tuple[float, ...]]:

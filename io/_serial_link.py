@@ -175,8 +175,8 @@ class SerialLink:
         self.rtt_count = 0
         self.oversize_seen = 0
         self.n: dict[str, int] = dict.fromkeys(
-            ["frames_in", "commands_in", "commands_used", "heartbeats_in", "status_in",
-             "frames_out", "status_out", "heartbeats_out", "bytes_in", "bytes_out",
+            ["frames_in", "commands_in", "commands_used", "superseded", "heartbeats_in",
+             "status_in", "frames_out", "status_out", "heartbeats_out", "bytes_in", "bytes_out",
              "dropped_out", "encode_errors", "sensor_clipped",
              "clamped", "late", "missed_ticks", "link_lost", "link_restored", "port_errors"]
             + [f"bad_{r}" for r in sorted(REASONS)]
@@ -435,6 +435,8 @@ class SerialLink:
             self._event("clamped_command", f"clamped to the input range: {list(values)}")
         else:
             self.cmd = values
+        if self.fresh:
+            n["superseded"] += 1   # a newer valid command came before the tick took it
         self.fresh = True
         self.last_echo = tick
         n["commands_in"] += 1

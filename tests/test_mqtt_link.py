@@ -405,7 +405,7 @@ def test_bad_json_commands_are_counted_evented_and_never_used(
         (b"{not json", False),                                   # bad_json
         (b"[1, 2, 3]", False),                                   # bad_json (not an object)
         (b'{"seq": 1, "values": [1.0]}', False),                 # bad_schema (no tick)
-        (command(1, -1, [1.0, 2.0]), False),                     # bad_channels
+        (command(1, -1, [1.0, 2.0]), False),                     # rejected_count
         (b'{"seq": 1, "tick": -1, "values": [NaN]}', False),     # bad_non_finite
         (b'{"seq": 1, "tick": -1, "values": [1e999]}', False),   # bad_non_finite (inf)
         (command(1, -1, [1.0]) + b" " * 300, False),             # bad_oversize
@@ -421,14 +421,14 @@ def test_bad_json_commands_are_counted_evented_and_never_used(
     finally:
         link.close()
     assert [u.tolist() for u in used] == [[3.0]]  # only the one valid command
-    for key in ("bad_schema", "bad_channels", "bad_oversize", "rejected_range",
+    for key in ("bad_schema", "rejected_count", "bad_oversize", "rejected_range",
                 "rejected_echo", "rejected_retained", "duplicates", "out_of_order",
                 "empty_messages"):
         assert h[key] == 1, f"{key} = {h.get(key)}"
     assert h["bad_json"] == 2 and h["bad_non_finite"] == 2 and h["commands_in"] == 1
     assert "bad_empty" not in h and "bad_schema" in h  # an empty message is no bad frame
     k = kinds(events)
-    assert k.count("bad_frame") == 7 and k.count("rejected_command") == 3
+    assert k.count("bad_frame") == 6 and k.count("rejected_command") == 4
     assert k.count("duplicate_frame") == 1 and k.count("out_of_order_frame") == 1
     details = " ".join(e.detail for e in events)
     assert "voltage = 100.0, allowed -24.0..24.0" in details and "echoes tick 7" in details

@@ -26,8 +26,10 @@ from rig_text import rig_text
 
 from plantrig.io import (
     FdPort,
+    Kind,
     SerialLink,
     build_link,
+    encode_frame,
     open_pty_pair,
 )
 from plantrig.sim import Rig, RunData, load_rig, simulate
@@ -358,3 +360,34 @@ def test_text_vectors_through_the_rig_s_own_path(tmp_path: Path) -> None:
             link.close()
             pair.close_slave()
             pair.close_master()
+
+
+def test_a_sensor_frame_is_rejected_kind_and_a_newer_command_supersedes(
+        tmp_path: Path) -> None:
+    """The names of docs/protocol.md 5 that MQTT and Modbus share: a SENSOR frame from
+    the controller is rejected_kind (as on MQTT), and of two valid commands arriving
+    within one tick the older is superseded (as on MQTT and Modbus)."""
+    rig = hil_rig(tmp_path)
+    pair = open_pty_pair()
+    link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
+    out = np.zeros(1)
+    try:
+        link.open()
+        link.send(0, 0.0, np.zeros(len(rig.outputs)))
+        os.write(pair.slave_fd, encode_frame(Kind.SENSOR, 1, 0, [1.0, 2.0])
+                 + encode_frame(Kind.COMMAND, 2, 0, [1.5])
+                 + encode_frame(Kind.COMMAND, 3, 0, [2.5]))
+        deadline = time.monotonic() + 5.0
+        while link.health()["frames_in"] < 3:   # the pty delivers in its own time
+            assert time.monotonic() < deadline
+            select.select([pair.master_fd], [], [], 0.05)
+            link.receive(1, rig.tick, out)
+        events = link.drain_events()
+        h = link.health()
+    finally:
+        link.close()
+        pair.close_slave()
+        pair.close_master()
+    assert h["rejected_kind"] == 1 and h["commands_in"] == 2 and h["superseded"] == 1
+    assert h["commands_used"] == 1 and out.tolist() == [2.5]
+    assert [e.kind for e in events] == ["rejected_command"]

@@ -21,7 +21,8 @@ SIGNAL_LABELS = {
 
 SIGNAL_MEANINGS = {
     "ref": "the value the loop is asked to reach",
-    "cmd": "the command as received from the controller, before the actuator chain",
+    "cmd": "the command as the link let it through (clamped to the input's range in "
+           "clamp mode), before the actuator chain",
     "u": "what the plant got: the command after the actuator chain and safety",
     "y": "what the plant really puts out, before the sensor chain",
     "sent": "the sensor value the controller receives: the plant output after the "
