@@ -241,8 +241,14 @@ def software_rows(record: RunRecord, s: dict[str, Any], readiness: Readiness) ->
     for role, name in (("rig", "rig.toml"), ("scenario", "scenario.toml"), ("model", None)):
         entry = next(((n, e) for n, e in sources.items() if isinstance(e, dict)
                       and e.get("role") == role), None)
-        if entry is not None:
-            rows.append((f"{role} {entry[0]} SHA-256", str(entry[1].get("sha256"))))
+        if entry is not None:     # the file as written, which may differ from its copy
+            written = Path(str(entry[1].get("original") or entry[0])).name
+            copy = entry[1].get("copy_sha256")
+            what = "model module" if role == "model" else f"{role} file"
+            rows.append((f"{what} SHA-256", f"{entry[1].get('sha256')} ({written} as "
+                         "written" + (f"; the folder's {entry[0]} is the copy the run used"
+                                      if copy and copy != entry[1].get("sha256") else "")
+                         + ")"))
         elif name and (record.folder / name).is_file():
             digest = hashlib.sha256((record.folder / name).read_bytes()).hexdigest()
             rows.append((f"{role} {name} SHA-256", digest))

@@ -119,6 +119,13 @@ def test_software_and_hashes_match_the_folder(belt_run: Path, belt_report: dict)
     assert commit in text
     sources = json.loads((belt_run / "sources.json").read_text())["files"]
     assert sources["rig.toml"]["sha256"] in text and sources["scenario.toml"]["sha256"] in text
+    # the rig's hash is the file as written, labelled so: the folder's rig.toml (the
+    # copy with the run's values, in the manifest) has another
+    flat = " ".join(text.split())
+    assert (f"rig file SHA-256 {sources['rig.toml']['sha256']} (conveyor_guarded.toml as "
+            "written; the folder's rig.toml is the copy the run used)") in flat
+    assert sources["rig.toml"]["copy_sha256"] != sources["rig.toml"]["sha256"]
+    assert "rig rig.toml SHA-256" not in flat
     import hashlib
     manifest = hashlib.sha256((belt_run / "manifest.json").read_bytes()).hexdigest()
     assert manifest in text
