@@ -72,7 +72,7 @@ PASS_FILL, FAIL_FILL = "#e4e9e2", "#f6dcdc"
 LEFT, KEY_W, VALUE_X, RIGHT = 0.6, 2.15, 2.9, 7.75
 TOP, BOTTOM = 0.75, 11.0
 BODY_PT, HEAD_PT = 7.5, 10.5
-LINE_IN = BODY_PT * 1.45 / 72
+LINE_IN = BODY_PT * 1.4 / 72
 
 
 def write_report(record: RunRecord, out_dir: Path, operator: str = "", witness: str = "",
@@ -131,9 +131,9 @@ class _Flow:
 
     def heading(self, title: str) -> None:
         self.need(LINE_IN * 3.2)
-        self.y += LINE_IN * 0.8
+        self.y += LINE_IN * 0.6
         self.text(LEFT, title, fontsize=HEAD_PT, weight="bold", color=INK)
-        self.y += LINE_IN * 1.35
+        self.y += LINE_IN * 1.25
         self.pages[-1].add_artist(_rule(self.y - LINE_IN * 0.3))
 
     def row(self, key: str, value: str, mono: bool = False) -> None:
@@ -147,7 +147,7 @@ class _Flow:
                 self.text(VALUE_X, values[i], fontsize=BODY_PT, color=INK,
                           family="monospace" if mono else "sans-serif")
             self.y += LINE_IN
-        self.y += LINE_IN * 0.25
+        self.y += LINE_IN * 0.1
 
 
 def _rule(y_in: float) -> Any:
@@ -192,7 +192,7 @@ def _text_pages(record: RunRecord, facts: dict[str, Any], content: list[Section]
     for line in lines:
         flow.text(LEFT + 0.12, line, fontsize=11, weight="bold", color=ink)
         flow.y += 0.22
-    flow.y += 0.24
+    flow.y += 0.14
     for title, rows in content:
         flow.heading(title)
         mono = title.startswith("Manifest")

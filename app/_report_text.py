@@ -246,7 +246,7 @@ def software_rows(record: RunRecord, s: dict[str, Any], readiness: Readiness) ->
             copy = entry[1].get("copy_sha256")
             what = "model module" if role == "model" else f"{role} file"
             rows.append((f"{what} SHA-256", f"{entry[1].get('sha256')} ({written} as "
-                         "written" + (f"; the folder's {entry[0]} is the copy the run used"
+                         "written" + (f"; {entry[0]} is its copy as run"
                                       if copy and copy != entry[1].get("sha256") else "")
                          + ")"))
         elif name and (record.folder / name).is_file():

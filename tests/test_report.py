@@ -123,12 +123,16 @@ def test_software_and_hashes_match_the_folder(belt_run: Path, belt_report: dict)
     # copy with the run's values, in the manifest) has another
     flat = " ".join(text.split())
     assert (f"rig file SHA-256 {sources['rig.toml']['sha256']} (conveyor_guarded.toml as "
-            "written; the folder's rig.toml is the copy the run used)") in flat
+            "written; rig.toml is its copy as run)") in flat
     assert sources["rig.toml"]["copy_sha256"] != sources["rig.toml"]["sha256"]
     assert "rig rig.toml SHA-256" not in flat
     import hashlib
     manifest = hashlib.sha256((belt_run / "manifest.json").read_bytes()).hexdigest()
     assert manifest in text
+    # all of it on page 1, after the signatures, for a scenario of 8 verdicts
+    first = belt_report["pages"][0]
+    assert first.index("Signatures") < first.index("Software and hashes") < first.index(
+        commit) < first.index(sources["scenario.toml"]["sha256"]) < first.index(manifest)
 
 
 def test_every_page_is_numbered_with_the_run_id(belt_run: Path, belt_report: dict) -> None:
