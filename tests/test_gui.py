@@ -549,8 +549,7 @@ def guarded_live_case(tmp_path: Path) -> None:
         summary = json.loads((folder / "summary.json").read_text())
         assert label("status").startswith(f"ENDED: {summary['ended']}, exit code "
                                           f"{summary['exit_code']}")
-        lines = [dpg.get_value(f"{T}run.{n}") for n in range(RUN_LINES)
-                 if dpg.get_item_configuration(f"{T}run.{n}")["show"]]
+        lines = shown_run_lines()
         assert f"outcome: {summary['ended']}, exit code {summary['exit_code']}: " \
                f"{summary['reason']}" in lines
         assert not dash.view.on_set_reference()
