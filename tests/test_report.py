@@ -420,3 +420,25 @@ def test_a_scenario_never_judged_is_not_reported_as_having_no_verdicts(
                                  "plantrig recover rebuilt the record); the scenario's 7 "
                                  "verdict(s) were not evaluated")]
     assert len(json.loads((belt_run / "verdicts.json").read_text())) == 8   # 7 + expect
+
+
+@pytest.fixture(scope="module")
+def bench_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The bench rig (controller on a serial link) rehearsed fast: the reference
+    controller's law over a real pty in lockstep, with the link's real counters."""
+    out = tmp_path_factory.mktemp("bench") / "runs"
+    assert main(["run", str(REPO / "configs" / "conveyor_hil.toml"), "--fast", "--out",
+                 str(out)]) == 0
+    (folder,) = [p for p in out.iterdir() if (p / "run_start.json").is_file()]
+    return folder
+
+
+def test_a_controller_on_a_link_has_its_reference_over_the_value_it_drives(
+        bench_run: Path) -> None:
+    """The rig's controller is external; its [link.controller] law pairs the setpoint
+    with the belt speed, so the reference is drawn over it, not on a panel of its own."""
+    from plantrig._plots import context, standard_panels
+
+    panels = standard_panels(context(read_run(bench_run)))
+    assert panels[0].columns == ["ref:speed_setpoint", "y:belt_speed", "sent:belt_speed"]
+    assert sum("ref:speed_setpoint" in p.columns for p in panels) == 1
