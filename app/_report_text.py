@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 
 from plantrig import __version__
+from plantrig._console import REHEARSED, human_duration, link_lines
 from plantrig._plots import PlotContext, label
 from plantrig.sim import DRAFT_MARK, Readiness, RunRecord, column_parts
 
@@ -38,6 +39,20 @@ RECORDER_WORDS = {"rows": "ticks written", "lost": "ticks lost",
                   "max_backlog_rows": "largest backlog (ticks)",
                   "rows_not_written": "ticks not written"}
 NOT_GIVEN = "____________________"
+REFUSAL_WORDS = {"bad": "malformed:", "rejected": "not usable:"}
+# link counters the console's lines leave out (docs/protocol.md section 5)
+MORE_LINK_WORDS = {"lost_in": "gaps in the controller's count",
+                   "resyncs": "count restarts", "clamped": "commands clamped",
+                   "encode_errors": "sensor values the codec refused",
+                   "sensor_clipped": "sensor values clipped", "link_restored": "link restored",
+                   "disconnects": "disconnects", "connect_failures": "failed connects",
+                   "auth_failures": "refused credentials",
+                   "dropped_in": "commands the receive queue let go",
+                   "dropped_to_worker": "records lost on the way to the link's worker",
+                   "dropped_to_loop": "records lost on the way to the loop",
+                   "bad_loop_records": "unreadable worker records",
+                   "empty_messages": "empty messages",
+                   "controller_state": "controller's last state"}
 NO_EXIT_CODE = "none (the rig process ended without one)"
 
 
@@ -164,6 +179,11 @@ def link_text(link: Any, s: dict[str, Any]) -> str:
         return (f"MQTT broker {link.get('broker')}" + (" with TLS" if link.get("tls") else "")
                 + f", topics {link.get('topics')}, {link.get('payload')} payload"
                 + (f", client {link['client_id']}" if link.get("client_id") else ""))
+    if link.get("kind") == "modbus":
+        words = {"big": "high word first", "little": "low word first"}
+        return (f"Modbus {'TCP' if link.get('transport') == 'tcp' else 'RTU'} server at "
+                f"{link.get('address')}, unit {link.get('unit_id')}; 32-bit values "
+                f"{words.get(str(link.get('word_order')), link.get('word_order'))}")
     return ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in link.items())
 
 
@@ -372,10 +392,35 @@ def overruns_of(record: RunRecord, s: dict[str, Any]) -> tuple[int | None, str]:
     return None, ""
 
 
+def link_rows(s: dict[str, Any]) -> Rows:
+    """The link's health in the console's words (app/_console.py), then what a reviewer
+    may also want: each refusal by its reason, and the counters the console leaves out."""
+    health = s.get("link") or {}
+    rows: Rows = []
+    counts = {k: v for k, v in health.items() if k not in REHEARSED}
+    if counts:
+        kind = (s.get("link_used") or {}).get("kind", "serial")
+        tick = float((s.get("rig") or {}).get("tick_s") or 0.0)
+        rows += [("link", line.removeprefix("link: "))
+                 for line in link_lines(counts, tick, kind).splitlines()]
+        refused = [f"{REFUSAL_WORDS[k.partition('_')[0]]} {k.partition('_')[2].replace('_', ' ')}"
+                   f" {v:.0f}" for k, v in sorted(counts.items())
+                   if k.startswith(("bad_", "rejected_")) and v]
+        rows.append(("refused, by reason", ", ".join(refused) or "none"))
+        more = [f"{words} {counts[k]:.0f}" for k, words in MORE_LINK_WORDS.items()
+                if k in counts]
+        if more:
+            rows.append(("link, more counts", ", ".join(more)))
+    rehearsed = [f"{v:.0f} {REHEARSED[k]}" for k, v in health.items() if k in REHEARSED and v]
+    if rehearsed:
+        rows.append(("rehearsed link faults", ", ".join(rehearsed)))
+    return rows
+
+
 def timing_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
-    rows = [(key.replace("_", " "), fmt(v)) for key, v in sorted((s.get("link") or {}).items())]
-    if not rows:
-        rows.append(("link", "none (built-in controller)"))
+    rows = link_rows(s)
+    if not any(key == "link" for key, _ in rows):
+        rows.insert(0, ("link", "none (built-in controller)"))
     elif "fresh" in record and len(record.rows):
         fresh = sum(float(part.sum()) for part in column_parts(record.folder, "fresh"))
         total = record.ticks_total if record.ticks_total >= 0 else len(record.rows)
@@ -384,7 +429,7 @@ def timing_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
     if s.get("mode") != "realtime":
         rows.append(("timing", "fast mode: ticks were not paced to the wall clock, so "
                                "lateness and overruns do not apply; wall time "
-                               f"{fmt(timing.get('wall_s'))} s"))
+                               f"{human_duration(float(timing.get('wall_s') or 0.0))}"))
         return rows
     res = timing.get("timing_resolution_s")
     res_text = f" (to {res * 1e6:g} us)" if res else ""
@@ -402,7 +447,7 @@ def timing_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
     if timing.get("cpu") is not None:
         rows.append(("cpu", str(timing["cpu"])))
     if timing.get("wall_s") is not None:
-        rows.append(("wall time", f"{fmt(timing['wall_s'])} s"))
+        rows.append(("wall time", human_duration(float(timing["wall_s"]))))
     return rows
 
 

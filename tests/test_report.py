@@ -442,3 +442,28 @@ def test_a_controller_on_a_link_has_its_reference_over_the_value_it_drives(
     panels = standard_panels(context(read_run(bench_run)))
     assert panels[0].columns == ["ref:speed_setpoint", "y:belt_speed", "sent:belt_speed"]
     assert sum("ref:speed_setpoint" in p.columns for p in panels) == 1
+
+
+def test_the_link_section_says_the_counters_in_words(bench_run: Path) -> None:
+    """The link's health as the console says it, each refusal by reason, the rest in
+    words: no summary key (bad_non_finite, latency_ms_p50, controller_state) on the page."""
+    from plantrig._console import link_lines
+
+    assert main(["report", str(bench_run)]) == 0
+    text = subprocess.run(["pdftotext", "-layout", str(bench_run / "derived" / "report.pdf"),
+                           "-"], check=True, capture_output=True, text=True,
+                          timeout=120).stdout
+    section = text[text.index("Link and timing"):text.index("Caution")]
+    flat = " ".join(section.split())
+    summary = json.loads((bench_run / "summary.json").read_text())
+    health = summary["link"]
+    assert len(health) > 30 and health["frames_out"] > 0
+    for key in (k for k in health if "_" in k):
+        assert key not in section, key
+    for line in link_lines(health, summary["rig"]["tick_s"], "serial").splitlines():
+        assert " ".join(line.removeprefix("link: ").split()) in flat
+    assert "refused, by reason none" in flat
+    assert f"controller's last state {health['controller_state']:.0f}" in flat
+    used = summary["link_used"]
+    assert used["port"] != "/dev/ttyUSB0"          # the pty the run used, not the file's
+    assert f"serial port {used['port']} at {used['baud']} baud" in " ".join(text.split())
