@@ -12,10 +12,12 @@ MQTT link does (one datagram per record, non-blocking, a full buffer drops the n
 
     loop -> worker   b"S" + <q {p}d>     sensor values of a tick: tick, values
                      b"T" + <hh>         the rig's run state and detail codes
+                     b"h"                send the health counters now (the run's end)
                      b"Q"                close: stop serving, exit
     worker -> loop   b"C" + <q {m}d>     a command: echoed tick (-1: not written), values
                      b"E" + kind TAB detail   an event for the run record
                      b"H" + JSON         health counters (every 0.1 s and at the end)
+                     b"h" + JSON         the same, answering b"h"
 """
 
 from __future__ import annotations
@@ -352,6 +354,8 @@ class Worker:
                 else:
                     self.image.put_state(state, detail)
                 self.inc("status_out")
+            elif code == b"h":
+                self._to_loop(b"h" + json.dumps(self.health()).encode())
             elif code == b"Q":
                 # after the end state, keep answering a moment so a polling controller
                 # reads how the run ended (the rig's run state registers)

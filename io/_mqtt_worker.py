@@ -11,10 +11,12 @@ Records, first byte the type::
     loop -> worker   b"S" + <q d {p}d>  sensor values: tick, t, values
                      b"T" + JSON        the rig's run state (docs/protocol.md 1.2): kept
                                         in every status document, published at once
+                     b"h"               send the health counters now (the run's end)
                      b"Q"               close: publish 'offline', disconnect, exit
     worker -> loop   b"C" + <q q {m}d>  a valid command: seq, echoed tick, values
                      b"E" + kind TAB detail (UTF-8)   an event for the run record
                      b"H" + JSON        health counters (every 0.1 s and at the end)
+                     b"h" + JSON        the same, answering b"h"
 
 Connections follow aiomqtt 2.x practice (docs/platform.md): no automatic reconnect, so a
 fresh Client for every attempt with exponential backoff; TCP_NODELAY on the socket; the
@@ -252,6 +254,8 @@ class Worker:
                     self.inc("bad_loop_records")
                     continue
                 self.status_ready.set()
+            elif rec[:1] == b"h":
+                self._to_loop(b"h" + json.dumps(self.health()).encode())
             elif rec[:1] == b"Q":
                 self._stop(CLOSED)
             else:

@@ -6,8 +6,10 @@ delay every wake-up by about one GIL switch interval (docs/platform.md). The wor
 the loop meet through a non-blocking SOCK_SEQPACKET socket pair, one record a message:
 
     loop -> worker   b"S" sensor values   b"T" the rig's run state   b"Q" close
+                     b"h" send the health counters now
     worker -> loop   b"C" a checked command   b"E" kind TAB detail (an event)
-                     b"H" the worker's health counters as JSON
+                     b"H" the worker's health counters as JSON, every 0.1 s
+                     b"h" the same, answering b"h"
 
 This class is everything the loop does with those records, the same for both links:
 it keeps the newest command, runs the watchdog on plant ticks (no command for
@@ -34,6 +36,7 @@ from plantrig.sim import Event, Vector, silent_ticks_allowed
 
 SOCKET_BUFFER = 1 << 16
 LATENCY_BINS = 64
+HEALTH_WAIT_S = 0.5   # the longest health() waits for the worker's answer to b"h"
 
 
 class WorkerLink:
@@ -66,6 +69,8 @@ class WorkerLink:
         self._events: list[Event] = []
         self._worker_health: dict[str, float] = {}
         self._health_raw: bytes | None = None
+        self._health_answered = False
+        self._tick_now, self._t_now = -1, 0.0   # the newest tick receive() saw
         self.last_valid_tick: int | None = None
         self.last_echo_tick = -2  # none yet (-1 is the answer to the values before tick 0)
         self.lost = False
@@ -125,6 +130,7 @@ class WorkerLink:
 
     # ---- ControllerLink -------------------------------------------------------------
     def receive(self, tick: int, t: float, out: Vector) -> bool:
+        self._tick_now, self._t_now = tick, t
         self._drain(tick, t)
         if self.lockstep and not self.lost and self.last_echo_tick < tick - 1:
             self._wait_for_answer(tick, t)
@@ -181,9 +187,15 @@ class WorkerLink:
         return events
 
     def health(self) -> dict[str, float]:
-        """The worker's counters (at most 0.1 s old) and the loop's own, under the names
-        of docs/protocol.md section 5; latency_ticks_*: ticks from a sensor record to
-        the tick its answer was used."""
+        """The worker's counters and the loop's own, under the names of docs/protocol.md
+        section 5; latency_ticks_*: ticks from a sensor record to the tick its answer
+        was used.
+
+        Called once, at the run's end: the worker is asked for its counters (up to
+        HEALTH_WAIT_S), so they count every command the loop has taken; its periodic
+        ones can be 0.1 s old, which read as more commands used than accepted.
+        """
+        self._ask_health()
         if self._health_raw is not None:
             try:
                 self._worker_health = json.loads(self._health_raw)
@@ -232,6 +244,24 @@ class WorkerLink:
         self._worker = None
 
     # ---- helpers --------------------------------------------------------------------
+    def _ask_health(self) -> None:
+        """Send b"h" and read records until the worker's answer (or HEALTH_WAIT_S)."""
+        sock = self._sock
+        if sock is None or self._gone:
+            return
+        self._health_answered = False
+        try:
+            sock.send(b"h")
+        except OSError:
+            return
+        deadline = time.monotonic() + HEALTH_WAIT_S
+        while not self._health_answered and not self._gone:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            select.select([sock], [], [], left)
+            self._drain(self._tick_now, self._t_now)
+
     def _silence(self, tick: int) -> dict[str, Any]:
         last = self.last_valid_tick if self.last_valid_tick is not None else tick
         seconds = (tick - last) * self.tick
@@ -289,6 +319,7 @@ class WorkerLink:
                 ev = Event(tick, t, kind, detail)
                 self._events.append(ev)
                 new.append(ev)
-            elif code == 0x48:  # b"H"
+            elif code == 0x48 or code == 0x68:  # b"H", or b"h" answering ours
                 self._health_raw = bytes(buf[1:n])
+                self._health_answered = self._health_answered or code == 0x68
         return new

@@ -113,6 +113,22 @@ def test_refused_requests_get_exceptions_and_never_reach_the_plant(served) -> No
     assert kinds.count("bad_frame") == 7 and kinds.count("rejected_command") == 1
 
 
+def test_health_at_the_end_counts_every_command_taken(served) -> None:  # type: ignore[no-untyped-def]
+    """The worker's periodic counters can be 0.1 s old; the health the run records is
+    asked for at the end, so it never shows more commands used than accepted."""
+    rig, link, client, _ = served
+    link.send(1, 0.001, np.array([0.0, 0.0]))
+    out = np.zeros(1)
+    for k in range(2, 12):
+        assert not client.write_registers(2, f32_words(float(k)), device_id=1).isError()
+        end = time.monotonic() + 5
+        while not link.receive(k, k * 0.001, out):   # the write is answered: it is on its way
+            assert time.monotonic() < end
+            time.sleep(0.001)
+    h = link.health()
+    assert h["commands_in"] == h["commands_used"] == 10 and out.tolist() == [11.0]
+
+
 def test_watchdog_counts_accepted_writes_only(served) -> None:  # type: ignore[no-untyped-def]
     rig, link, client, _ = served
     link.send(1, 0.001, np.array([0.0, 0.0]))
