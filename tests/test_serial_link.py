@@ -391,3 +391,23 @@ def test_a_sensor_frame_is_rejected_kind_and_a_newer_command_supersedes(
     assert h["rejected_kind"] == 1 and h["commands_in"] == 2 and h["superseded"] == 1
     assert h["commands_used"] == 1 and out.tolist() == [2.5]
     assert [e.kind for e in events] == ["rejected_command"]
+
+
+def test_bytes_sent_before_the_rig_opens_are_discarded(tmp_path: Path) -> None:
+    """docs/protocol.md 5: what the controller wrote before the link opened answers
+    nothing the rig sent; it is dropped unread, neither used nor counted as bad."""
+    rig = hil_rig(tmp_path)
+    pair = open_pty_pair()
+    link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
+    out = np.zeros(1)
+    try:
+        os.write(pair.slave_fd, encode_frame(Kind.COMMAND, 1, 0, [1.5]) + b"\x13\x37garbage")
+        select.select([pair.master_fd], [], [], 5.0)   # the bytes wait at the rig's end
+        link.open()
+        taken = [link.receive(k, k * rig.tick, out) for k in range(5)]
+        h = link.health()
+    finally:
+        link.close()
+        pair.close_slave()
+        pair.close_master()
+    assert taken == [False] * 5 and h["bytes_in"] == 0 and h["frames_in"] == 0
