@@ -69,8 +69,8 @@ def run_facts(record: RunRecord) -> dict[str, Any]:
     """The summary, with what only run_start.json holds filled in."""
     start = start_of(record.folder)
     s = dict(record.summary or start)
-    for key in ("dut", "link_used", "environment"):
-        if key not in s and key in start:
+    for key in ("dut", "link_used", "environment", "tick0_utc"):
+        if not s.get(key) and start.get(key):
             s[key] = start[key]
     return s
 

@@ -16,6 +16,7 @@ import sys
 import threading
 import time
 from collections.abc import Iterator
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
@@ -137,6 +138,12 @@ def test_sigkilled_rig_is_recovered_with_its_loss_measured(tmp_path: Path) -> No
     assert "INTERRUPTED" in text and "exit code none (the rig process ended without one)" \
         in text and "exit code ?" not in text
     assert "acceptance not judged: the run did not end" in text
+    # tick 0's UTC time, noted in run_start.json as the loop started, survives the kill
+    start = json.loads((folder / "run_start.json").read_text())
+    assert datetime.fromisoformat(start["tick0_utc"]) > datetime.fromisoformat(
+        start["started_utc"])
+    assert json.loads((folder / "summary.json").read_text())["tick0_utc"] == start["tick0_utc"]
+    assert f"tick 0 started (UTC) {start['tick0_utc']}" in text
     assert "overruns 0 (counted from the recorded lateness of each tick)" in text
 
 

@@ -85,6 +85,8 @@ def test_page_one_puts_the_result_identity_acceptance_and_verdicts_first(
     started = _dt.datetime.fromisoformat(json.loads(
         (belt_run / "run_start.json").read_text())["started_utc"])
     assert _dt.datetime.fromisoformat(tick0) >= started
+    # noted in run_start.json as the loop started too (what a recovered run keeps)
+    assert json.loads((belt_run / "run_start.json").read_text())["tick0_utc"] == tick0
     assert "belt drive controller, bench unit B, firmware 2.4.1" in first
     # every acceptance rule and every verdict of the run, by its whole name
     for rule in summary["acceptance"]:

@@ -29,6 +29,7 @@ from __future__ import annotations
 import math
 import time
 import traceback
+from collections.abc import Callable
 from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
 from typing import Protocol
@@ -187,8 +188,10 @@ class Engine:
                  sensor_chain: SignalChain | None = None,
                  commands: CommandInbox | None = None,
                  event_tape: EventTape | None = None,
-                 scenario: Scenario | None = None) -> None:
+                 scenario: Scenario | None = None,
+                 on_tick0: Callable[[int], None] | None = None) -> None:
         self.rig = rig
+        self.on_tick0 = on_tick0    # told tick 0's UTC time (ns) as the loop starts
         self.commands = commands
         self.event_tape = event_tape
         self.tape = tape
@@ -377,6 +380,8 @@ class Engine:
         self.loop_start = self._start if self.realtime else clock.now_ns()
         # wall-clock UTC of tick 0: its deadline in real time, the loop start if fast
         self.tick0_unix_ns = time.time_ns() + (START_LEAD_NS if self.realtime else 0)
+        if self.on_tick0 is not None:       # in the lead before tick 0's deadline
+            self.on_tick0(self.tick0_unix_ns)
         paced_until = 0
         for k in range(self.rig.n_ticks):
             if self.stop_requested:

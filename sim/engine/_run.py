@@ -26,7 +26,12 @@ from plantrig.sim.records._manifest import write_atomic
 from plantrig.sim.records._preflight import RecordError, preflight
 from plantrig.sim.records._recorder import start_recorder
 from plantrig.sim.records._records import count_ticks, finish_record, salvage_rows, start_record
-from plantrig.sim.records._run_info import add_to_run_start, run_info_of, utc_of
+from plantrig.sim.records._run_info import (
+    add_to_run_start,
+    note_tick0,
+    run_info_of,
+    utc_of,
+)
 from plantrig.sim.records._sources import copy_sources
 from plantrig.sim.records._tape import EventTape, MemoryTape, Tape, tape_dir
 from plantrig.sim.scenario._scenario import Scenario
@@ -180,7 +185,8 @@ def _run_and_record(rig: Rig, folder: Path, stopper: SignalStop, *, realtime: bo
         engine = Engine(rig, tape, realtime=realtime, link=link,
                         actuator_chain=actuator_chain, sensor_chain=sensor_chain,
                         commands=CommandInbox(commands) if commands is not None else None,
-                        event_tape=event_tape, scenario=scenario)
+                        event_tape=event_tape, scenario=scenario,
+                        on_tick0=lambda unix_ns: note_tick0(folder, unix_ns))
         stopper.attach(engine.request_stop)
         outcome = engine.run()
     finally:

@@ -408,9 +408,9 @@ def recover_run(folder: Path) -> dict[str, Any]:
         "recovered_by": {"name": "plantrig", "version": __version__},
         "rig": {**start["rig"], "sha256": hashlib.sha256(rig_file.read_bytes()).hexdigest()
                 if rig_file.exists() else None},
-        "started_utc": start["started_utc"], "mode": start["mode"],
-        "ended": INTERRUPTED, "reason": "the rig process died before the run ended "
-                                        "(rebuilt by plantrig recover)",
+        "started_utc": start["started_utc"], "tick0_utc": start.get("tick0_utc"),
+        "mode": start["mode"], "ended": INTERRUPTED,
+        "reason": "the rig process died before the run ended (rebuilt by plantrig recover)",
         "ticks_planned": start["ticks_planned"], "ticks_recorded": recovered,
         "timing": timing,
         "recorder": json.loads(recorder_status.read_text()) if recorder_status.exists() else {},

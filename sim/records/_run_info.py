@@ -13,6 +13,7 @@ from __future__ import annotations
 import datetime as _dt
 import importlib.metadata
 import json
+import os
 import platform
 import socket
 import subprocess
@@ -46,6 +47,19 @@ def add_to_run_start(folder: Path, info: dict[str, Any]) -> None:
     start = json.loads(path.read_text())
     start.update(info)
     write_atomic(path, (json.dumps(start, indent=2) + "\n").encode())
+
+
+def note_tick0(folder: Path, unix_ns: int) -> None:
+    """Add tick 0's UTC time to run_start.json as the loop starts, so a run whose rig is
+    killed (rebuilt by plantrig recover) still says when tick 0 began. Replaced by
+    rename but not synced: it runs in the lead before tick 0's deadline, and the page
+    cache outlives a killed process."""
+    path = Path(folder) / RUN_START
+    start = json.loads(path.read_text())
+    start["tick0_utc"] = utc_of(unix_ns)
+    tmp = path.with_name(f".{path.name}.tmp")
+    tmp.write_text(json.dumps(start, indent=2) + "\n")
+    os.replace(tmp, path)
 
 
 def utc_of(unix_ns: int | None) -> str | None:
