@@ -8,7 +8,7 @@ markdown it prints. Every number sits beside a peer measured in the same run:
 - the full fast-mode tick (reference, built-in PID, plant, tape record) at 10 states,
   and with `--engine-at REV` the engine module at git revision REV beside
   today's, interleaved in the same run (before/after of a change to the loop);
-- real-time pacing at 1 kHz and 5 kHz: lateness and missed deadlines of the engine
+- real-time pacing at 1, 5 and 10 kHz (--rates): lateness and missed deadlines of the engine
   beside a bare sleep-and-spin loop (the floor) on the same machine.
 """
 
@@ -161,10 +161,10 @@ def bare_loop(tick_s: float, seconds: float) -> np.ndarray:
     return late
 
 
-def pacing_table(seconds: float) -> list[str]:
+def pacing_table(seconds: float, rates: list[int]) -> list[str]:
     lines = ["| rate | loop | ticks | missed deadlines (late > 1 tick) | lateness p50 (us) | "
              "p99 (us) | max (us) |", "|---|---|---|---|---|---|---|"]
-    for rate in (1000, 5000):
+    for rate in rates:
         tick_s = 1.0 / rate
         floor = bare_loop(tick_s, seconds)
         rig = pid_rig(10, seconds, mode="realtime")
@@ -193,6 +193,8 @@ def main() -> None:
                         help="ticks per throughput measurement (default 20000)")
     parser.add_argument("--engine-at", metavar="REV",
                         help="also time the engine module at this git revision")
+    parser.add_argument("--rates", type=int, nargs="+", default=[1000, 5000, 10000],
+                        help="real-time pacing rates in Hz (default 1000 5000 10000)")
     parser.add_argument("--only-tick", action="store_true",
                         help="only the full-tick table (no plant-step or pacing tables)")
     args = parser.parse_args()
@@ -203,7 +205,7 @@ def main() -> None:
     print("\n".join(full_tick_table(args.samples, args.engine_at)))
     if not args.only_tick:
         print(f"\n### Real-time pacing ({args.seconds:g} s per rate)\n")
-        print("\n".join(pacing_table(args.seconds)))
+        print("\n".join(pacing_table(args.seconds, args.rates)))
 
 
 if __name__ == "__main__":

@@ -1,4 +1,4 @@
-"""Soak: a long real-time run at 1 kHz against the serial reference controller over a
+"""Soak: a long real-time run (1 kHz unless --rate) against the serial reference controller over a
 pty, with the recorder, as a bench engineer leaves a rig running.
 
 The rig process (loop and link), its recorder and the controller are three processes;
@@ -10,6 +10,7 @@ ticks planned/run/recorded, and each process's RSS at the first sample (after
 
     .venv/bin/python bench/bench_soak.py              # 1 hour
     .venv/bin/python bench/bench_soak.py --quick      # 5 minutes
+    .venv/bin/python bench/bench_soak.py --rate 4000 --seconds 60   # a 4 kHz hold
 
 A prepared core decides the outcome (docs/platform.md: SCHED_FIFO permitted and not
 throttled, memory lockable, an otherwise idle core); `plantrig check RIG --bench` says
@@ -34,7 +35,8 @@ from pathlib import Path
 from plantrig._hil import reference_controller_on_pty
 from plantrig.io import build_link
 from plantrig.sim import load_rig_with_overrides, run_to_folder
-rig = load_rig_with_overrides(sys.argv[1], duration=float(sys.argv[2]))
+rig = load_rig_with_overrides(sys.argv[1], [f"rig.tick={1 / float(sys.argv[4])!r}"],
+                              duration=float(sys.argv[2]))
 with reference_controller_on_pty(rig) as (port, proc, ready):
     print(f"controller {proc.pid}", flush=True)
     folder, outcome, summary = run_to_folder(rig, Path(sys.argv[3]), realtime=True,
@@ -66,6 +68,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seconds", type=float, default=3600.0)
     parser.add_argument("--quick", action="store_true", help="5 minutes")
+    parser.add_argument("--rate", type=float, default=1000.0, help="tick rate (Hz)")
     parser.add_argument("--every", type=float, default=5.0, help="memory sample period (s)")
     parser.add_argument("--settle", type=float, default=10.0,
                         help="first memory sample after this long (s)")
@@ -73,7 +76,8 @@ def main() -> None:
     seconds = 300.0 if args.quick else args.seconds
     out = Path(tempfile.mkdtemp(prefix="bench-soak-"))
     rig_proc = subprocess.Popen([sys.executable, "-c", LAUNCHER, str(RIG), f"{seconds:g}",
-                                 str(out)], stdout=subprocess.PIPE, text=True)
+                                 str(out), f"{args.rate:g}"], stdout=subprocess.PIPE,
+                                text=True)
     assert rig_proc.stdout is not None
     line = rig_proc.stdout.readline()
     if not line.startswith("controller "):
@@ -93,7 +97,8 @@ def main() -> None:
     folder = Path(next(x for x in rest.splitlines() if x.startswith("folder ")).split(" ", 1)[1])
     summary = json.loads((folder / "summary.json").read_text())
     t = summary["timing"]
-    print(f"## Soak: {seconds:g} s at 1 kHz, serial reference controller over a pty\n")
+    print(f"## Soak: {seconds:g} s at {args.rate:g} Hz, serial reference controller over a "
+          "pty\n")
     print(f"outcome {summary['ended']} (exit {summary['exit_code']}); ticks planned "
           f"{summary['ticks_planned']}, run {summary['ticks_run']}, recorded "
           f"{summary['ticks_recorded']}; late ticks {t['overruns']}, skipped slots "
