@@ -2,7 +2,8 @@
 
 Written once, at the end of a run or on recovery, never during it (docs/platform.md: an
 HDF5 file being written when the process dies may be unreadable; the journal is what
-survives a crash). Default libver, for the same reason and so older readers open it.
+survives a crash). The HDF5 1.10 file format (LIBVER below), readable by any HDF5 or
+h5py from 2016 on.
 
 Layout::
 
