@@ -10,12 +10,15 @@ round-trips a float64, so a text link must equal the fast run exactly.
 
 from __future__ import annotations
 
+import fcntl
 import json
 import os
 import select
 import signal
+import struct
 import subprocess
 import sys
+import termios
 import threading
 import time
 from pathlib import Path
@@ -362,6 +365,11 @@ def test_text_vectors_through_the_rig_s_own_path(tmp_path: Path) -> None:
             pair.close_master()
 
 
+def waiting(fd: int) -> int:
+    """Bytes the kernel holds for a read of ``fd`` (FIONREAD)."""
+    return int(struct.unpack("i", fcntl.ioctl(fd, termios.FIONREAD, b"\0\0\0\0"))[0])
+
+
 def test_a_sensor_frame_is_rejected_kind_and_a_newer_command_supersedes(
         tmp_path: Path) -> None:
     """The names of docs/protocol.md 5 that MQTT and Modbus share: a SENSOR frame from
@@ -374,14 +382,14 @@ def test_a_sensor_frame_is_rejected_kind_and_a_newer_command_supersedes(
     try:
         link.open()
         link.send(0, 0.0, np.zeros(len(rig.outputs)))
-        os.write(pair.slave_fd, encode_frame(Kind.SENSOR, 1, 0, [1.0, 2.0])
-                 + encode_frame(Kind.COMMAND, 2, 0, [1.5])
-                 + encode_frame(Kind.COMMAND, 3, 0, [2.5]))
+        data = (encode_frame(Kind.SENSOR, 1, 0, [1.0, 2.0])
+                + encode_frame(Kind.COMMAND, 2, 0, [1.5]) + encode_frame(Kind.COMMAND, 3, 0, [2.5]))
+        os.write(pair.slave_fd, data)
         deadline = time.monotonic() + 5.0
-        while link.health()["frames_in"] < 3:   # the pty delivers in its own time
+        while waiting(pair.master_fd) < len(data):   # the pty delivers in its own time
             assert time.monotonic() < deadline
-            select.select([pair.master_fd], [], [], 0.05)
-            link.receive(1, rig.tick, out)
+            time.sleep(0.005)
+        link.receive(1, rig.tick, out)            # one tick reads all three frames
         events = link.drain_events()
         h = link.health()
     finally:
@@ -401,8 +409,12 @@ def test_bytes_sent_before_the_rig_opens_are_discarded(tmp_path: Path) -> None:
     link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
     out = np.zeros(1)
     try:
-        os.write(pair.slave_fd, encode_frame(Kind.COMMAND, 1, 0, [1.5]) + b"\x13\x37garbage")
-        select.select([pair.master_fd], [], [], 5.0)   # the bytes wait at the rig's end
+        data = encode_frame(Kind.COMMAND, 1, 0, [1.5]) + b"\x13\x37garbage"
+        os.write(pair.slave_fd, data)
+        deadline = time.monotonic() + 5.0
+        while waiting(pair.master_fd) < len(data):   # all of it waits at the rig's end
+            assert time.monotonic() < deadline
+            time.sleep(0.005)
         link.open()
         taken = [link.receive(k, k * rig.tick, out) for k in range(5)]
         h = link.health()
