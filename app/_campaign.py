@@ -76,7 +76,9 @@ def run_cases(cases: list[Case], journal: Path, *, cluster: str | None, workers:
         return session
     from dask.distributed import Client, as_completed
 
-    for name in SINGLE_THREAD_ENV:    # inherited by the spawned local workers
+    # for workers spawned (a restarted one, or off Linux); forked ones share this
+    # process's BLAS, threaded only for matrices far larger than a plant's
+    for name in SINGLE_THREAD_ENV:
         os.environ.setdefault(name, "1")
     t0 = time.perf_counter()
     local = None
@@ -168,9 +170,9 @@ def _local_cluster(workers: int) -> Any:
     On Linux the workers are forked from this process, which has already imported
     Dask, numpy and the engine: a spawned worker starts a fresh interpreter and imports
     them again (0.9 s to start two, 0.2 s more at their first case, 0.26 s to close, on
-    the 2-core bench machine; forked: 0.17, 0.03 and 0.02 s). The one thread besides
-    this one at the fork is Dask's event loop, whose locks the child does not use. A
-    worker the nanny restarts later is spawned (the setting holds only while starting).
+    the 2-core bench machine; forked: 0.17, 0.03 and 0.02 s). Dask forks from its
+    event-loop thread while this one waits for it. A worker the nanny restarts later is
+    spawned (the setting holds only while the cluster starts).
     """
     import dask
     from dask.distributed import LocalCluster
