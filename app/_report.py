@@ -29,6 +29,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig import CAUTION, __version__
+from plantrig._console import human_duration
 from plantrig._limit_use import limit_use
 from plantrig._plots import (
     ALARM,
@@ -300,7 +301,7 @@ def _timeline(ctx: PlotContext) -> Any:
     for i, kind in enumerate(kinds):
         times = [ev["time"] for ev in record.events if ev["kind"] == kind]
         ax.scatter(times, [i] * len(times), marker="|", s=300,
-                   color=ALARM if kind in ("trip", "estop", "error") else INK)
+                   color=ALARM if kind in ("trip", "estop", "error", "rule_failed") else INK)
     ax.set_yticks(range(len(kinds)), [event_word(k) for k in kinds], fontsize=8)
     ax.set_ylim(-0.7, len(kinds) - 0.3)
     shade_windows(ax, ctx)
@@ -341,17 +342,19 @@ def _timing_page(record: RunRecord) -> Any:
         counts, edges = _histogram(record, column) if column in record else \
             (np.zeros(0), np.zeros(0))
         if counts.size:
-            ax.stairs(counts, edges, fill=True, color=PLANT_BLUE)
+            # microseconds, or milliseconds once a stall stretches the axis past 5 ms
+            unit, per_us = ("ms", 1e-3) if edges[-1] > 5000.0 else ("us", 1.0)
+            ax.stairs(counts, edges * per_us, fill=True, color=PLANT_BLUE)
             ax.set_yscale("log")
             marks = [(q, style, timing.get(f"{key}_p{q}_s"))
                      for q, style in ((50, ":"), (99, "--"))]
             for q, style, value in marks:
                 if value is not None:
-                    ax.axvline(value * 1e6, color=ALARM, ls=style, lw=1,
-                               label=f"p{q} {value * 1e6:.1f} us")
+                    ax.axvline(value * 1e6 * per_us, color=ALARM, ls=style, lw=1,
+                               label=f"p{q} {human_duration(value)}")
             if any(value is not None for _, _, value in marks):
                 ax.legend(fontsize=8)
-            ax.set_xlabel(f"{what} per tick [us]")
+            ax.set_xlabel(f"{what} per tick [{unit}]")
             ax.set_ylabel("ticks")
         else:
             ax.text(0.5, 0.5, f"no {what} recorded", ha="center", va="center",

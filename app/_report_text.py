@@ -436,8 +436,8 @@ def timing_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
     for key, what in (("lateness", "lateness"), ("exec", "work time")):
         values = [timing.get(f"{key}_{q}_s") for q in ("p50", "p99", "max")]
         if all(v is not None for v in values):
-            rows.append((what, "p50 {:.1f} us, p99 {:.1f} us, max {:.1f} us".format(
-                *(v * 1e6 for v in values)) + res_text))
+            rows.append((what, "p50 {}, p99 {}, max {}".format(
+                *(human_duration(float(v)) for v in values)) + res_text))
     overruns, how = overruns_of(record, s)
     rows.append(("overruns", f"{overruns}{how}" if overruns is not None else "not recorded"))
     if timing.get("skipped_slots") is not None:

@@ -240,6 +240,15 @@ def test_report_pdf_has_its_plots_and_html_is_self_contained(tmp_path: Path) -> 
     assert all(trace_pixels(p[int(0.08 * len(p)):], 2)[0] > 200 for p in signal_pages)
     assert max(trace_pixels(pages[0], 5)) < 50           # page 1 is text
     assert "Timing" in texts[-1] or "Tick lateness" in texts[-1]
+    # timing in the console's human units (a 204 ms stall read "max 203720.5 us"), the
+    # histogram's axis in ms once a stall stretches it past 5 ms
+    from plantrig._console import human_duration
+    timing_s = json.loads((folder / "summary.json").read_text())["timing"]
+    flat = " ".join(" ".join(texts).split())
+    assert "lateness p50 {}, p99 {}, max {}".format(*(human_duration(timing_s[
+        f"lateness_{q}_s"]) for q in ("p50", "p99", "max"))) in flat
+    unit = "ms" if timing_s["lateness_max_s"] * 1e6 > 5000 else "us"
+    assert f"lateness per tick [{unit}]" in texts[-1]
     timing = pages[-1]      # lateness and work-time histograms in the upper 65 %
     upper, lower, rest = trace_pixels(timing[:int(0.65 * len(timing))], 2) + [
         sum(trace_pixels(timing[int(0.7 * len(timing)):int(0.97 * len(timing))], 1))]
