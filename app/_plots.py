@@ -303,12 +303,18 @@ def shade_windows(ax: Any, ctx: PlotContext) -> None:
 def mark_trips(ax: Any, ctx: PlotContext) -> None:
     """A red line where each trip happened, and the latched time as a bar on top."""
     r = ctx.record
+    lo, hi = ax.get_xlim()
     for trip in ctx.trips:
         ax.axvline(trip.time, color=ALARM, lw=1.3, zorder=4)
+        # under the latched bar (on it, red on red was hard to read), on the side of the
+        # line toward the middle (a late trip's name ran into the limit labels)
+        right = trip.time > (lo + hi) / 2
         ax.annotate(f"trip {trip.name}", (trip.time, 1.0),
-                    xycoords=("data", "axes fraction"), xytext=(2, -2),
-                    textcoords="offset points", ha="left", va="top", fontsize=6.5,
-                    color=ALARM, weight="bold")
+                    xycoords=("data", "axes fraction"), xytext=(-2 if right else 2, -7),
+                    textcoords="offset points", ha="right" if right else "left", va="top",
+                    fontsize=6.5, color=ALARM, weight="bold", zorder=5,
+                    bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none",
+                          "alpha": 0.8})
     for column in r.names("trip"):
         for a, b in spans(r.t, r[column] != 0):
             ax.axvspan(a, b, ymin=0.965, ymax=1.0, color=ALARM, alpha=0.55, lw=0, zorder=4,

@@ -227,9 +227,18 @@ def test_tank_rehearsal_report_reads_the_ode_rig_as_data(tmp_path: Path) -> None
     # level_high peaks at the run's last tick: its note stays inside the panel
     import matplotlib.pyplot as plt
 
-    from plantrig._plots import context
+    from plantrig._plots import context, plot_signals, standard_panels
     from plantrig._report import _limit_page
     ctx = context(record)
+    # the trip comes late (116.5 s of 150): its name, left of its line, clears the limit
+    # labels at the right edge
+    assert ctx.trips and ctx.trips[0].time > 100
+    fig = plot_signals(ctx, standard_panels(ctx))
+    try:
+        for axes, _legend, texts in _boxes(fig):
+            assert_apart(axes, texts)
+    finally:
+        plt.close(fig)
     fig = _limit_page(ctx, ctx.limits)
     try:
         notes = [(axes, b) for axes, _legend, texts in _boxes(fig) for text, b in texts
@@ -339,6 +348,16 @@ def _boxes(fig: object) -> list:
             for ax in fig.axes if ax.get_visible()]     # type: ignore[attr-defined]
 
 
+def assert_apart(axes: object, texts: list) -> None:
+    """No two labels of a panel overlap; a trip's name sits under the latched bar (the
+    top 3.5 % of the axes), not on it."""
+    for i, (text, a) in enumerate(texts):
+        if text.startswith("trip "):
+            assert a.y1 < axes.y1 - 0.035 * axes.height, text    # type: ignore[attr-defined]
+        for other, b in texts[i + 1:]:
+            assert not a.overlaps(b), (text, other)
+
+
 def test_legends_and_labels_leave_the_traces_and_each_other_clear(belt_run: Path) -> None:
     """The legend sits beside each panel (inside, it hid the reference step and the rise
     under its box); a limit's warn and trip labels never write over each other (the
@@ -356,10 +375,9 @@ def test_legends_and_labels_leave_the_traces_and_each_other_clear(belt_run: Path
             assert legend is not None and legend.x0 >= axes.x1      # beside, not over
             limit_labels = [b for text, b in texts if " warn " in text or " trip " in text]
             labelled += len(limit_labels) > 1
-            for i, a in enumerate(limit_labels):
+            for a in limit_labels:
                 assert axes.y0 <= a.y0 and a.y1 <= axes.y1           # inside its panel
-                for b in limit_labels[i + 1:]:
-                    assert not a.overlaps(b)
+            assert_apart(axes, texts)
         assert labelled == 2            # motor_current (four lines) and x:belt_speed (two)
     finally:
         plt.close(fig)
