@@ -300,7 +300,9 @@ def _timeline(ctx: PlotContext) -> Any:
     fig, ax = plt.subplots(figsize=PAGE)
     for i, kind in enumerate(kinds):
         times = [ev["time"] for ev in record.events if ev["kind"] == kind]
-        ax.scatter(times, [i] * len(times), marker="|", s=300,
+        # above the grid: a mark on a grid line (an event at 1.0 s, the run's end) was
+        # drawn under it and all but vanished at print resolution
+        ax.scatter(times, [i] * len(times), marker="|", s=300, zorder=3,
                    color=ALARM if kind in ("trip", "estop", "error", "rule_failed") else INK)
     ax.set_yticks(range(len(kinds)), [event_word(k) for k in kinds], fontsize=8)
     ax.set_ylim(-0.7, len(kinds) - 0.3)

@@ -487,3 +487,22 @@ def test_the_link_section_says_the_counters_in_words(bench_run: Path) -> None:
     used = summary["link_used"]
     assert used["port"] != "/dev/ttyUSB0"          # the pty the run used, not the file's
     assert f"serial port {used['port']} at {used['baud']} baud" in " ".join(text.split())
+
+
+def test_timeline_marks_are_drawn_over_the_grid(belt_run: Path) -> None:
+    """An event on a grid line (the run's end at 4.0 s) is drawn above the grid line:
+    under it, the mark all but vanished at 60 dpi."""
+    import matplotlib.pyplot as plt
+
+    from plantrig._plots import context
+    from plantrig._report import _timeline
+
+    fig = _timeline(context(read_run(belt_run)))
+    try:
+        ax = fig.axes[0]
+        grid = max(line.get_zorder() for line in ax.xaxis.get_gridlines())
+        assert ax.collections and all(c.get_zorder() > grid for c in ax.collections)
+        ends = [c for c in ax.collections if 4.0 in c.get_offsets()[:, 0]]
+        assert ends                                  # the run's end, on the 4.0 grid line
+    finally:
+        plt.close(fig)
