@@ -232,9 +232,9 @@ def verdict_rows(folder: Path, s: dict[str, Any]) -> Rows:
             parts.append(f"measured {fmt(item['measured'])}{unit}")
         if item.get("needs"):        # the bound as the console says it ("x <= 1.15 m/s")
             parts.append(f"needs {item['needs']}")
-        elif "limit" in item:
-            parts.append(f"limit {fmt(item['limit'])}{unit}")
-        if item.get("detail"):
+        elif "limit" in item and item.get("criterion") != "expect":   # an expectation's
+            parts.append(f"limit {fmt(item['limit'])}{unit}")           # test is its detail
+        if item.get("detail") and item["detail"] != item.get("needs"):
             parts.append(str(item["detail"]))
         rows.append((str(item.get("name", f"#{i + 1}")), "; ".join(parts)))
     return rows
