@@ -53,13 +53,17 @@ def note_tick0(folder: Path, unix_ns: int) -> None:
     """Add tick 0's UTC time to run_start.json as the loop starts, so a run whose rig is
     killed (rebuilt by plantrig recover) still says when tick 0 began. Replaced by
     rename but not synced: it runs in the lead before tick 0's deadline, and the page
-    cache outlives a killed process."""
+    cache outlives a killed process. A note that cannot be written (a full disk) is left
+    out: the summary still says it, and the run is not stopped for it."""
     path = Path(folder) / RUN_START
-    start = json.loads(path.read_text())
-    start["tick0_utc"] = utc_of(unix_ns)
     tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(json.dumps(start, indent=2) + "\n")
-    os.replace(tmp, path)
+    try:
+        start = json.loads(path.read_text())
+        start["tick0_utc"] = utc_of(unix_ns)
+        tmp.write_text(json.dumps(start, indent=2) + "\n")
+        os.replace(tmp, path)
+    except OSError:
+        tmp.unlink(missing_ok=True)
 
 
 def utc_of(unix_ns: int | None) -> str | None:
