@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 REHEARSED = {"frames_dropped": "frames dropped", "frames_corrupted": "frames corrupted",
-             "rehearsed_losses": "link losses (link_lost events)"}
+             "rehearsed_losses": "link losses (each a link-lost event)"}
 
 
 def human_duration(seconds: float) -> str:

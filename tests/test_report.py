@@ -509,3 +509,20 @@ def test_timeline_marks_are_drawn_over_the_grid(belt_run: Path) -> None:
         assert ends                                  # the run's end, on the 4.0 grid line
     finally:
         plt.close(fig)
+
+
+def test_rehearsed_link_faults_are_said_in_words(tmp_path: Path) -> None:
+    """A rehearsed link loss (built-in controller, no link) reads as the console says it,
+    without the event's field name."""
+    folder = run_cli(tmp_path, REHEARSALS / "conveyor_guarded.toml",
+                     REHEARSALS / "link_lost.toml")
+    from plantrig._report_text import timing_rows
+
+    record = read_run(folder)
+    rows = dict(timing_rows(record, record.summary))
+    health = record.summary["link"]
+    assert rows["link"] == "none (built-in controller)"
+    assert rows["rehearsed link faults"] == (
+        f"{health['frames_dropped']:.0f} frames dropped, {health['rehearsed_losses']:.0f} "
+        "link losses (each a link-lost event)")
+    assert "_" not in rows["rehearsed link faults"]
