@@ -369,7 +369,8 @@ def model_rows(s: dict[str, Any]) -> Rows:
 
 
 def event_rows(record: RunRecord) -> Rows:
-    return [(f"{ev['time']:.4f} s (tick {ev['tick']})",
+    return [(f"{ev['time']:.4f} s (tick {ev['tick']})" if ev["tick"] >= 0 else
+             "before tick 0",           # the link's set-up, recorded as tick -1
              f"{event_word(ev['kind'])}: {ev.get('detail', '')}") for ev in record.events] \
         or [("events", "none")]
 

@@ -526,3 +526,17 @@ def test_rehearsed_link_faults_are_said_in_words(tmp_path: Path) -> None:
         f"{health['frames_dropped']:.0f} frames dropped, {health['rehearsed_losses']:.0f} "
         "link losses (each a link-lost event)")
     assert "_" not in rows["rehearsed link faults"]
+
+
+def test_an_event_before_tick_0_says_so(belt_run: Path) -> None:
+    """A link's set-up event is recorded at tick -1 (an MQTT connect, a Modbus server
+    listening): the report says "before tick 0", not "tick -1"."""
+    from plantrig._report_text import event_rows
+
+    record = read_run(belt_run)
+    record.events.insert(0, {"tick": -1, "time": 0.0, "kind": "link_connected",
+                             "detail": "127.0.0.1:47235 as plantrig-conveyor-14001"})
+    rows = event_rows(record)
+    assert rows[0] == ("before tick 0",
+                       "link connected: 127.0.0.1:47235 as plantrig-conveyor-14001")
+    assert rows[1][0] == "0.8000 s (tick 800)" and not any("tick -1" in k for k, _ in rows)
