@@ -27,10 +27,25 @@ def human_duration(seconds: float) -> str:
     return f"{seconds / 60:.3g} min"
 
 
+def dut_text(dut: Any) -> str:
+    """The device under test as recorded with the run (console and report)."""
+    if not isinstance(dut, dict) or not any(dut.values()):
+        return ("not named (plantrig run --dut NAME --firmware VERSION, or the rig file's "
+                "[dut] table)")
+    parts = [dut.get("name") or "unnamed device"]
+    if dut.get("firmware"):
+        parts.append(f"firmware {dut['firmware']}")
+    if dut.get("serial"):
+        parts.append(f"serial {dut['serial']}")
+    return ", ".join(parts)
+
+
 def print_outcome(folder: Path, summary: dict[str, Any]) -> None:
     """The run's outcome, acceptance, timing, link, events and record, on stdout."""
     timing = summary["timing"]
     print(f"run folder: {folder}")
+    if summary.get("dut"):
+        print(f"device under test: {dut_text(summary['dut'])}")
     print(f"outcome: {summary['ended'].upper()} ({summary['reason']})")
     print(f"ticks: {summary.get('ticks_run', summary['ticks_recorded'])} of "
           f"{summary['ticks_planned']} planned ran, {summary['ticks_recorded']} recorded")

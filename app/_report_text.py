@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from plantrig import __version__
-from plantrig._console import REHEARSED, human_duration, link_lines
+from plantrig._console import REHEARSED, dut_text, human_duration, link_lines
 from plantrig._plots import PlotContext, label
 from plantrig.sim import DRAFT_MARK, Readiness, RunRecord, column_parts
 
@@ -152,18 +152,6 @@ def identity_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
         ("link used", link_text(s.get("link_used"), s)),
     ]
     return rows
-
-
-def dut_text(dut: Any) -> str:
-    if not isinstance(dut, dict) or not any(dut.values()):
-        return ("not named (plantrig run --dut NAME --firmware VERSION, or the rig file's "
-                "[dut] table)")
-    parts = [dut.get("name") or "unnamed device"]
-    if dut.get("firmware"):
-        parts.append(f"firmware {dut['firmware']}")
-    if dut.get("serial"):
-        parts.append(f"serial {dut['serial']}")
-    return ", ".join(parts)
 
 
 def link_text(link: Any, s: dict[str, Any]) -> str:

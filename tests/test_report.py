@@ -540,3 +540,14 @@ def test_an_event_before_tick_0_says_so(belt_run: Path) -> None:
     assert rows[0] == ("before tick 0",
                        "link connected: 127.0.0.1:47235 as plantrig-conveyor-14001")
     assert rows[1][0] == "0.8000 s (tick 800)" and not any("tick -1" in k for k, _ in rows)
+
+
+def test_the_console_says_the_device_under_test(tmp_path: Path,
+                                                capsys: pytest.CaptureFixture[str]) -> None:
+    """The device under test given at run time is in the console's summary of the run,
+    in the report's words, right under the run folder."""
+    assert main(["run", str(REHEARSALS / "conveyor_guarded.toml"), "--fast", "--out",
+                 str(tmp_path), "--dut", "drive B", "--firmware", "2.4.1"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].startswith("run folder: ")
+    assert lines[1] == "device under test: drive B, firmware 2.4.1"
