@@ -216,8 +216,10 @@ def verdict_rows(folder: Path, s: dict[str, Any]) -> Rows:
         parts = [("PASS" if item["passed"] else "FAIL") if "passed" in item else "not judged"]
         if item.get("criterion"):
             parts.append(str(item["criterion"]).replace("_", " "))
-        if "measured" in item:
+        if item.get("measured") is not None:
             parts.append(f"measured {fmt(item['measured'])}{unit}")
+        elif "measured" in item:          # a step whose trigger never came, say
+            parts.append("not measured")
         if item.get("needs"):        # the bound as the console says it ("x <= 1.15 m/s")
             parts.append(f"needs {item['needs']}")
         elif "limit" in item and item.get("criterion") != "expect":   # an expectation's

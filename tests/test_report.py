@@ -551,3 +551,18 @@ def test_the_console_says_the_device_under_test(tmp_path: Path,
     lines = capsys.readouterr().out.splitlines()
     assert lines[0].startswith("run folder: ")
     assert lines[1] == "device under test: drive B, firmware 2.4.1"
+
+
+def test_a_verdict_never_measured_says_so(tmp_path: Path) -> None:
+    """A run stopped before an expectation's trigger came has that verdict unmeasured
+    (null in verdicts.json, as a Ctrl-C'd belt rehearsal wrote it): 'not measured', never
+    'measured none'."""
+    from plantrig._report_text import verdict_rows
+
+    (tmp_path / "verdicts.json").write_text(json.dumps([{
+        "name": "released", "criterion": "expect", "measured": None, "limit": 0.0,
+        "unit": "", "passed": False, "needs": "",
+        "detail": "trip:belt_overspeed == 0: never checked (its trigger did not come)"}]))
+    rows = verdict_rows(tmp_path, {})
+    assert rows[1] == ("released", "FAIL; expect; not measured; trip:belt_overspeed == 0: "
+                                   "never checked (its trigger did not come)")
