@@ -34,8 +34,6 @@ SHOWN_FAILURES = 20
 BATCHES_PER_THREAD = 4   # enough tasks that a slow batch does not leave a worker idle
 MAX_BATCH = 32
 CLOSE_TIMEOUT_S = 20
-# numeric libraries in a worker stay single-threaded: one case per core
-SINGLE_THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 @dataclass
@@ -76,10 +74,6 @@ def run_cases(cases: list[Case], journal: Path, *, cluster: str | None, workers:
         return session
     from dask.distributed import Client, as_completed
 
-    # for workers spawned (a restarted one, or off Linux); forked ones share this
-    # process's BLAS, threaded only for matrices far larger than a plant's
-    for name in SINGLE_THREAD_ENV:
-        os.environ.setdefault(name, "1")
     t0 = time.perf_counter()
     local = None
     try:

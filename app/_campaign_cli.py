@@ -19,6 +19,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+import plantrig._blas_threads  # noqa: F401  (first: before numpy loads)
 from plantrig import CAUTION
 from plantrig._campaign_out import (
     CAMPAIGN_EXIT_HELP,
