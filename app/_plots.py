@@ -104,11 +104,7 @@ def context(record: RunRecord) -> PlotContext:
         try:
             rig = load_rig_as_data(rig_path)
             ctx.limits = list(rig.limits)
-            # a controller on a link: the law its rig file gives the reference
-            # controller ([link.controller]) says which reference drives which output
-            law = rig.link.controller if rig.controller.kind == "external" and \
-                rig.link is not None and rig.link.controller is not None else rig.controller
-            ctx.loops.update(law.loop_pairs())
+            ctx.loops.update(rig.loop_pairs())
         except RigFileError as exc:
             ctx.rig_note = (f"rig.toml cannot be read by this version ({exc.issues[0]}): "
                             "no limit lines or loops")

@@ -74,7 +74,7 @@ def limit_lines(column: str, limits: Sequence[Any]) -> tuple[tuple[LimitLine, ..
 
 def plot_specs(groups: ColumnGroups, rig: Rig) -> list[PlotSpec]:
     limits = tuple(getattr(rig, "limits", ()))
-    pairs = _loop_pairs(rig)
+    pairs = rig.loop_pairs()
     unplaced = [c.name for c in groups.group("ref") if c.name not in pairs.values()]
     specs: list[PlotSpec] = []
 
@@ -109,7 +109,3 @@ def plot_specs(groups: ColumnGroups, rig: Rig) -> list[PlotSpec]:
         add(key, f"{c.name} [{c.unit}] {SIGNAL_LABELS['x']}", (key,), c.low, c.high)
     return specs
 
-
-def _loop_pairs(rig: Rig) -> dict[str, str]:
-    """Output name -> reference name, from the built-in controller's loops."""
-    return rig.controller.loop_pairs()

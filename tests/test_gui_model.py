@@ -264,6 +264,10 @@ def test_plots_pair_each_reference_with_the_output_its_loop_measures():
         belt = specs[0]
         out = rig.outputs[0]
         assert (belt.low, belt.high) == (out.min, out.max)
+    # a controller on a link: the loop its rig file gives the reference controller
+    bench = load_rig(CONFIGS / "conveyor_hil.toml")
+    assert bench.controller.kind == "external"
+    assert bench.loop_pairs() == {"belt_speed": "speed_setpoint"}
 
 
 # -- faults catalogue -------------------------------------------------------------------

@@ -123,6 +123,14 @@ class Rig:
     def n_ticks(self) -> int:
         return int(round(self.duration / self.tick))
 
+    def loop_pairs(self) -> dict[str, str]:
+        """Output name -> the reference its loop follows, for plots: the built-in
+        controller's loops, or for a controller on a link the law its rig file gives the
+        reference controller ([link.controller])."""
+        law = self.link.controller if self.controller.kind == "external" and \
+            self.link is not None and self.link.controller is not None else self.controller
+        return law.loop_pairs()
+
     def __eq__(self, other: object) -> bool:
         if not isinstance(other, Rig):
             return NotImplemented
