@@ -117,15 +117,13 @@ def reap(proc: subprocess.Popen[str], wait_s: float = 5.0) -> None:
 
 
 def demo_result(proc: subprocess.Popen[str], folder: Path, outcome: Any,
-                summary: dict[str, Any], extra: str = "") -> int:
-    """The end of every demo: what the controller said, the run's outcome, any extra
-    lines, and one verdict line; returns the run's exit code."""
+                summary: dict[str, Any]) -> int:
+    """The end of every demo: what the controller said, the run's outcome and one
+    verdict line; returns the run's exit code."""
     assert proc.stdout is not None
     for line in proc.stdout.read().splitlines():
         print(line)
     print_outcome(folder, summary)
-    if extra:
-        print(extra)
     code = int(summary["exit_code"])
     print("demo: ok" if code == EXIT_OK else
           f"demo: not completed ({outcome.ended}: {outcome.reason}); exit code {code}")

@@ -117,14 +117,21 @@ def _all_files(folder: Path) -> list[str]:
             if path.is_file()]
 
 
-def write_atomic(path: Path, data: bytes) -> None:
-    """Write a temporary file beside ``path``, sync it, then rename it over ``path``."""
+def write_atomic(path: Path, data: bytes, sync: bool = True) -> None:
+    """Write a temporary file beside ``path``, sync it (unless ``sync`` is False), then
+    rename it over ``path``. A write that fails leaves ``path`` as it was and no
+    temporary file."""
     tmp = path.with_name(f".{path.name}.tmp")
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            if sync:
+                os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
 
 
 def canonical(doc: dict[str, Any]) -> bytes:

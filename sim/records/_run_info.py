@@ -13,7 +13,6 @@ from __future__ import annotations
 import datetime as _dt
 import importlib.metadata
 import json
-import os
 import platform
 import socket
 import subprocess
@@ -39,14 +38,14 @@ def run_info_of(run_info: dict[str, Any] | None, link: Any, dut: DutSpec) -> dic
     return info
 
 
-def add_to_run_start(folder: Path, info: dict[str, Any]) -> None:
+def add_to_run_start(folder: Path, info: dict[str, Any], sync: bool = True) -> None:
     """Add ``info`` to the folder's run_start.json (atomically, before the first tick)."""
     if not info:
         return
     path = Path(folder) / RUN_START
     start = json.loads(path.read_text())
     start.update(info)
-    write_atomic(path, (json.dumps(start, indent=2) + "\n").encode())
+    write_atomic(path, (json.dumps(start, indent=2) + "\n").encode(), sync=sync)
 
 
 def note_tick0(folder: Path, unix_ns: int) -> None:
@@ -55,15 +54,10 @@ def note_tick0(folder: Path, unix_ns: int) -> None:
     rename but not synced: it runs in the lead before tick 0's deadline, and the page
     cache outlives a killed process. A note that cannot be written (a full disk) is left
     out: the summary still says it, and the run is not stopped for it."""
-    path = Path(folder) / RUN_START
-    tmp = path.with_name(f".{path.name}.tmp")
     try:
-        start = json.loads(path.read_text())
-        start["tick0_utc"] = utc_of(unix_ns)
-        tmp.write_text(json.dumps(start, indent=2) + "\n")
-        os.replace(tmp, path)
+        add_to_run_start(folder, {"tick0_utc": utc_of(unix_ns)}, sync=False)
     except OSError:
-        tmp.unlink(missing_ok=True)
+        pass
 
 
 def utc_of(unix_ns: int | None) -> str | None:
