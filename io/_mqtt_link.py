@@ -4,9 +4,10 @@ Every method the loop calls is non-blocking: values go to the worker (plantrig.i
 _mqtt_worker, its own process by default) through a non-blocking socket and commands
 come back the same way, already checked. The loop's side of that, the watchdog on plant
 ticks included (no valid command for ``watchdog_timeout`` gives one ``link_lost``
-event, the next valid command one ``link_restored``), is plantrig.io._worker_link's,
-shared with the Modbus link; this module starts the MQTT worker and lays out its
-records.
+event, the next valid command one ``link_restored``; in lockstep an answer that misses
+its tick's wait is a missed tick, never a loss by itself, as on every link), is
+plantrig.io._worker_link's, shared with the Modbus link; this module starts the MQTT
+worker and lays out its records.
 
 Why a process and not a thread: docs/platform.md measured that a busy Python thread in
 the loop's process delays every wake-up by about one GIL switch interval; the worker
@@ -111,10 +112,6 @@ class MqttLink(WorkerLink):
         _, _seq, echo, *values = self._command.unpack_from(buf)
         self._newest[:] = values
         self.last_echo_tick = echo
-
-    def _lockstep_gave_up(self, tick: int, t: float) -> None:
-        self._lose(tick, t, f"watchdog: lockstep waited {self.watchdog_timeout:g} s for "
-                            f"the answer to tick {tick - 1}")
 
 
 def build_mqtt_link(rig: Rig, link: Any, endpoint: Any = None) -> MqttLink:

@@ -14,7 +14,8 @@ the loop meet through a non-blocking SOCK_SEQPACKET socket pair, one record a me
 This class is everything the loop does with those records, the same for both links:
 it keeps the newest command, runs the watchdog on plant ticks (no command for
 ``watchdog_timeout`` gives one ``link_lost``, the next command one ``link_restored``),
-waits for the answer in lockstep runs, keeps the latency histogram, merges the health
+waits for the answer in lockstep runs (a wait that runs out is a missed tick, not a
+loss), keeps the latency histogram, merges the health
 and closes the worker. A subclass starts its worker and says how its records are laid
 out (``_pack_sensor``, ``_state_record``, ``_take_command``) and how its events read.
 """
@@ -92,9 +93,6 @@ class WorkerLink:
     def _take_command(self, buf: bytearray, tick: int) -> None:
         """Unpack a b"C" record into ``self._newest`` and ``self.last_echo_tick``."""
         raise NotImplementedError
-
-    def _lockstep_gave_up(self, tick: int, t: float) -> None:
-        """No answer within watchdog_timeout in lockstep: by default the tick goes on."""
 
     # ---- starting the worker --------------------------------------------------------
     def _socket_pair(self) -> tuple[socket.socket, socket.socket]:
@@ -274,13 +272,17 @@ class WorkerLink:
 
     def _wait_for_answer(self, tick: int, t: float) -> None:
         """Lockstep (fast runs only): wait up to watchdog_timeout for the answer to the
-        sensor values of tick - 1, so an external controller runs as a built-in one."""
+        sensor values of tick - 1, so an external controller runs as a built-in one.
+
+        An answer that misses the wait is no loss by itself (docs/protocol.md section 5):
+        the tick goes on without it, a missed tick with the last command held, and the
+        answer counts as late when it comes; only the watchdog on plant ticks in
+        receive() declares the link lost, as on the serial link."""
         assert self._sock is not None
         deadline = time.monotonic() + self.watchdog_timeout
         while self.last_echo_tick < tick - 1 and not self._gone:
             left = deadline - time.monotonic()
             if left <= 0:
-                self._lockstep_gave_up(tick, t)
                 return
             select.select([self._sock], [], [], left)
             self._drain(tick, t)

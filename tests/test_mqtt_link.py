@@ -40,6 +40,7 @@ from plantrig.io import (
     cobs_decode,
     crc16,
     encode_frame,
+    mqtt_settings,
 )
 from plantrig.io._mqtt_payload import Codec, PayloadError
 from plantrig.sim import Event, Rig, RunData, load_rig, silent_ticks_allowed, simulate
@@ -127,6 +128,64 @@ def test_lockstep_binary_loop_equals_float32_fast_builtin(tmp_path: Path,
     assert_columns_equal(wire, rounded, STATE_COLUMNS)
     # float32 keeps 24 bits (IEEE 754 binary32): the rounded run stays close to the plain one
     assert np.max(np.abs(wire["y:belt_speed"] - plain["y:belt_speed"])) < 2e-5
+
+
+def taken(link: MqttLink, n: int) -> None:
+    """Wait until the loop's side holds ``n`` valid commands (health() reads them in)."""
+    end = time.monotonic() + 5.0
+    while link.health().get("commands_in", 0) < n:
+        assert time.monotonic() < end, f"the worker passed {link.health()} commands"
+        time.sleep(0.01)
+
+
+def test_a_lockstep_timeout_holds_the_command_and_only_the_watchdog_loses_the_link(
+        tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+    """docs/protocol.md section 5, the lockstep rule, as on the serial and Modbus links:
+    an answer that misses its tick's wait is a missed tick (the command held) and, when
+    it comes, a late one; link_lost comes from the watchdog on plant ticks alone. The
+    test plays the controller, answering exactly when it chooses."""
+    rig = mqtt_rig(tmp_path, mosquitto_broker, mode="fast", watchdog=0.15,
+                   extra="lockstep = true")
+    assert rig.link is not None
+    # 50 ms ticks: a 0.15 s timeout allows 3 silent ticks (each waits up to 0.15 s)
+    link = MqttLink(mqtt_settings(rig.link), inputs=rig.inputs, outputs=rig.outputs,
+                    tick=0.05, rig_name=rig.name)
+    assert link.watchdog_ticks == silent_ticks_allowed(0.15, 0.05) == 3
+    topic, out, y = "plantrig/conveyor/commands", np.zeros(1), np.zeros(2)
+
+    def answer(seq: int, tick: int, value: float) -> None:
+        asyncio.run(_publish(mosquitto_broker.host, mosquitto_broker.port, topic,
+                             [(command(seq, tick, [value]), False)]))
+        taken(link, seq)
+
+    link.open()
+    try:
+        link.send(-1, -0.05, y)
+        answer(1, -1, 1.0)
+        assert link.receive(0, 0.0, out) and out.tolist() == [1.0]
+        link.send(0, 0.0, y)
+        # tick 0's answer does not come within the wait: tick 1 goes on without it
+        assert not link.receive(1, 0.05, out) and out.tolist() == [1.0]
+        assert "link_lost" not in kinds(link.drain_events()) and not link.lost
+        answer(2, 0, 2.0)                 # the late answer, used at tick 2
+        link.send(1, 0.05, y)
+        assert link.receive(2, 0.1, out) and out.tolist() == [2.0]
+        assert link.counts["late"] == 1 and link.counts["link_lost"] == 0
+        # silence from here: lost at the first tick whose silence exceeds 3 ticks
+        lost_at = []
+        for k in range(3, 8):
+            link.send(k - 1, (k - 1) * 0.05, y)
+            assert not link.receive(k, k * 0.05, out)
+            lost_at += [e.tick for e in link.drain_events() if e.kind == "link_lost"]
+        assert lost_at == [2 + 3 + 1]
+        answer(3, 6, 3.0)
+        assert link.receive(8, 0.4, out)  # no wait once lost; the answer restores the link
+        assert "link_restored" in kinds(link.drain_events())
+        h = link.health()
+    finally:
+        link.close()
+    assert h["missed_ticks"] == 6 and h["late"] == 2      # ticks 1, 3..7; answers 0 and 6
+    assert h["link_lost"] == 1 and h["link_restored"] == 1
 
 
 class Observed:
