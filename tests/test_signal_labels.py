@@ -71,3 +71,21 @@ def test_the_glossary_lists_every_reference_and_pid_key_and_every_verb() -> None
     assert not [v for v in sub.choices if f"`{v}`" not in glossary]  # type: ignore[union-attr]
     for old in ("anti_windup", "tracking_time", "interpolation", "u_min", "u_max"):
         assert old not in glossary
+
+
+def test_the_glossary_link_row_lists_every_key_the_rig_checker_accepts() -> None:
+    """Every [link] key of every kind (serial, MQTT, Modbus) and of its sub-tables."""
+    from plantrig.sim.config._link_settings import COMMON_KEYS, LINK_KINDS
+    from plantrig.sim.config._modbus_settings import REGISTER_KEYS
+    from plantrig.sim.config._mqtt_settings import DEFAULT_QOS, TLS_KEYS
+
+    glossary = (REPO / "docs" / "glossary.md").read_text()
+    row = re.search(r"^\| `\[link\]` \|.*$", glossary, re.M)
+    assert row
+    tables = {"controller", "qos", "tls", "registers"}   # written as [link.<name>]
+    keys = set(COMMON_KEYS) | set(LINK_KINDS) | {k for ks, _ in LINK_KINDS.values() for k in ks}
+    keys |= set(REGISTER_KEYS) | set(DEFAULT_QOS) | set(TLS_KEYS)
+    named = {k for k in keys - tables if f"`{k}`" in row.group(0)}
+    assert sorted(keys - tables - named) == []
+    named_tables = {t for t in tables if f"`[link.{t}]`" in glossary}
+    assert named_tables == tables
