@@ -43,7 +43,13 @@ def link_settings(rig: Any) -> Any:
 
 def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
     """Serve the rig's link with the reference controller until the far end closes."""
-    from plantrig.io import TRANSPORTS, ReferenceController, prefer_realtime, run_controller
+    from plantrig.io import (
+        TRANSPORTS,
+        ReferenceController,
+        end_lines,
+        prefer_realtime,
+        run_controller,
+    )
     from plantrig.sim import RigFileError
 
     show_caution()
@@ -80,12 +86,7 @@ def cmd_controller(args: argparse.Namespace, load: Callable[[str], Any]) -> int:
         reason = run_controller(controller, transport, stop=lambda: bool(stopping))
     finally:
         transport.close()
-    c = controller.counts
-    print(f"controller: {reason}; answered {c.rx_ok}, bad {c.rx_bad}, duplicates "
-          f"{c.duplicates}, out of order {c.out_of_order}, dropped {c.tx_dropped}, "
-          f"heartbeats {c.heartbeats}, status {c.status}", flush=True)
-    print(f"controller: rig states {' '.join(c.rig_states) or 'none'}; rig heartbeats "
-          f"{c.rig_heartbeats}", flush=True)
+    print("\n".join(end_lines(settings.kind, reason, controller.counts)), flush=True)
     return EXIT_OK
 
 

@@ -24,7 +24,7 @@ READY_TIMEOUT_S = 20.0
 def run_modbus_controller_cli(args: argparse.Namespace, rig: Any, settings: Any,
                               controller: Any, ready_word: str) -> int:
     """`plantrig controller` for a modbus [link]: poll until the rig goes away."""
-    from plantrig.io import modbus_setup, prefer_realtime, run_modbus_controller
+    from plantrig.io import end_lines, modbus_setup, prefer_realtime, run_modbus_controller
 
     try:
         setup = modbus_setup(rig, settings, args.port)
@@ -46,9 +46,7 @@ def run_modbus_controller_cli(args: argparse.Namespace, rig: Any, settings: Any,
 
     reason = run_modbus_controller(controller, setup, stop=lambda: bool(stopping),
                                    on_connected=ready)
-    c = controller.counts
-    print(f"controller: {reason}; answered {c.rx_ok}", flush=True)
-    print(f"controller: rig states {' '.join(c.rig_states) or 'none'}", flush=True)
+    print("\n".join(end_lines(settings.kind, reason, controller.counts)), flush=True)
     return EXIT_OK if reason != "no connection to the rig" else EXIT_FAULT
 
 

@@ -32,7 +32,7 @@ def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
 
     ``--port`` overrides the broker: a port number or host:port.
     """
-    from plantrig.io import mqtt_settings, prefer_realtime, serve_reference
+    from plantrig.io import end_lines, mqtt_settings, prefer_realtime, serve_reference
 
     try:
         mqtt = mqtt_settings(settings, args.port)
@@ -49,11 +49,9 @@ def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
         print(f"{ready_word} on mqtt {where} ({mqtt.payload}, "
               f"{controller.law.__class__.__name__}, {scheduler})", flush=True)
 
-    reason, c = serve_reference(controller, mqtt, len(rig.outputs),
-                                stop=lambda: bool(stopping), on_ready=ready)
-    print(f"controller: {reason}; answered {c['answered']}, bad {c['bad']}, duplicates "
-          f"{c['duplicates']}, out of order {c['out_of_order']}, connects {c['connects']}",
-          flush=True)
+    reason = serve_reference(controller, mqtt, len(rig.outputs), stop=lambda: bool(stopping),
+                             on_ready=ready)
+    print("\n".join(end_lines(settings.kind, reason, controller.counts)), flush=True)
     return EXIT_OK
 
 

@@ -48,6 +48,7 @@ _HOME: dict[str, str] = {
             "ReferenceController",
             "SerialTransport",
             "Transport",
+            "end_lines",
             "prefer_realtime",
             "run_controller",
         ],
@@ -101,6 +102,7 @@ __all__ = [
     "Transport",
     "WireFormat",
     "build_link",
+    "end_lines",
     "open_pty_pair",
     "open_serial_port",
     "prefer_realtime",
@@ -152,6 +154,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         ReferenceController,
         SerialTransport,
         Transport,
+        end_lines,
         prefer_realtime,
         run_controller,
     )

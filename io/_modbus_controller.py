@@ -140,5 +140,6 @@ def run_modbus_controller(controller: ReferenceController, setup: dict[str, Any]
                 return f"the rig stopped answering ({type(exc).__name__})"
     finally:
         client.close()
+        controller.counts.refused += poller.errors
     return "stopped"
 

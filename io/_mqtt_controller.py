@@ -3,7 +3,8 @@
 It subscribes to ``<prefix>/<rig_id>/sensors``, checks each message as untrusted (the
 same decoder as the rig's end), hands the values to a compute function (the reference
 controller's ``command_for``) and publishes the answer on ``.../commands`` with the
-sensor tick echoed. Its own retained status is on ``.../controller/status`` ('online' on
+sensor tick echoed. It notes the rig's run state from the rig's status documents on
+``.../status``. Its own retained status is on ``.../controller/status`` ('online' on
 every connect, a retained last will 'offline'). Like the rig's end it uses a fresh
 aiomqtt Client for every connection attempt, with exponential backoff, so it rides
 through a broker restart; it ends when the rig announces a clean close (a live, not
@@ -26,15 +27,20 @@ from plantrig.io._frames import Kind, SeqTracker
 from plantrig.io._mqtt_config import MqttSettings
 from plantrig.io._mqtt_payload import Codec, PayloadError
 from plantrig.io._mqtt_worker import CLOSED, TCP_NODELAY, tls_context
+from plantrig.io._refcontroller import ControllerCounts
 
 Compute = Callable[[int, tuple[float, ...]], Sequence[float] | None]
+RigStatus = Callable[[tuple[float, ...]], None]
 STOP_POLL_S = 0.1
 
 
 class Law(Protocol):
     """What serve_reference needs of plantrig.io.ReferenceController."""
 
+    counts: ControllerCounts
+
     def command_for(self, stamp: int, values: tuple[float, ...]) -> Sequence[float]: ...
+    def on_rig_status(self, values: tuple[float, ...]) -> None: ...
 
 
 class MqttControllerPeer:
@@ -42,11 +48,13 @@ class MqttControllerPeer:
 
     def __init__(self, settings: MqttSettings, n_outputs: int, compute: Compute, *,
                  client_id: str | None = None,
-                 on_ready: Callable[[str], None] | None = None) -> None:
+                 on_ready: Callable[[str], None] | None = None,
+                 on_rig_status: RigStatus | None = None) -> None:
         self.s = settings
         self.n_outputs = n_outputs
         self.compute = compute
         self.on_ready = on_ready
+        self.on_rig_status = on_rig_status
         self.client_id = client_id or f"{settings.client_id}-controller"
         self.codec = Codec(settings.payload, settings.encoding, settings.scale,
                            settings.max_payload)
@@ -72,14 +80,19 @@ class MqttControllerPeer:
                               will=will, tls_context=tls_context(s),
                               socket_options=(TCP_NODELAY,))
 
-    def _rig_closed(self, message: aiomqtt.Message) -> bool:
-        if message.retain:
-            return False
+    def _rig_status(self, message: aiomqtt.Message) -> bool:
+        """Note the run state of a rig status document; True if it says the rig closed
+        the link (live, not retained: a retained one is old news)."""
         try:
             doc = json.loads(message.payload)  # type: ignore[arg-type]
         except (TypeError, ValueError):
             return False
-        return isinstance(doc, dict) and doc.get("state") == "offline" and (
+        if not isinstance(doc, dict):
+            return False
+        code, detail = doc.get("run_state_code"), doc.get("detail_code", 0)
+        if self.on_rig_status is not None and isinstance(code, int) and isinstance(detail, int):
+            self.on_rig_status((float(code), float(detail)))
+        return not message.retain and doc.get("state") == "offline" and (
             doc.get("reason") == CLOSED)
 
     async def _serve(self, client: aiomqtt.Client) -> None:
@@ -96,7 +109,7 @@ class MqttControllerPeer:
             self.on_ready(f"{s.host}:{s.port} {sensors}")
         async for message in client.messages:
             if message.topic.value == status:
-                if self._rig_closed(message):
+                if self._rig_status(message):
                     self.ended = "the rig closed the link"
                     return
                 continue
@@ -170,8 +183,16 @@ class MqttControllerPeer:
 
 def serve_reference(controller: Law, settings: MqttSettings, n_outputs: int, *,
                     stop: Callable[[], bool], on_ready: Callable[[str], None] | None = None,
-                    ) -> tuple[str, dict[str, int]]:
-    """Run a plantrig.io ReferenceController over MQTT; why it ended and its counts."""
-    peer = MqttControllerPeer(settings, n_outputs, controller.command_for, on_ready=on_ready)
+                    ) -> str:
+    """Run a plantrig.io ReferenceController over MQTT; why it ended. Its counts
+    (controller.counts) take the peer's: answered is the law's own count."""
+    peer = MqttControllerPeer(settings, n_outputs, controller.command_for, on_ready=on_ready,
+                              on_rig_status=controller.on_rig_status)
     reason = asyncio.run(peer.run(stop))
-    return reason, peer.counts
+    c, mine = controller.counts, peer.counts
+    c.rx_bad += mine["bad"]
+    c.duplicates += mine["duplicates"]
+    c.out_of_order += mine["out_of_order"]
+    c.tx_dropped += mine["publish_errors"]
+    c.connects += mine["connects"]
+    return reason

@@ -143,8 +143,39 @@ class ControllerCounts:
     heartbeats: int = 0
     status: int = 0
     rig_heartbeats: int = 0
-    # the rig's STATUS frames (docs/protocol.md 1.2) as "state/detail", in order, changes only
+    connects: int = 0       # connections made (MQTT: to the broker)
+    refused: int = 0        # requests the rig answered with an error (Modbus)
+    # the rig's run state (a STATUS frame, the MQTT status document, the Modbus status
+    # registers; docs/protocol.md 1.2) as "state/detail", in order, changes only
     rig_states: list[str] = dataclasses.field(default_factory=list)
+
+
+# the counts the closing lines name for each kind of link, in this order; a kind of link
+# says only what it can count (Modbus has no sequence numbers, serial no connections)
+COUNT_WORDS = {"rx_ok": "answered", "rx_bad": "bad", "duplicates": "duplicates",
+               "out_of_order": "out of order", "tx_dropped": "dropped",
+               "tx_errors": "not encoded", "heartbeats": "heartbeats", "status": "status",
+               "rig_heartbeats": "rig heartbeats", "connects": "connects",
+               "refused": "refused by the rig"}
+LINK_COUNTS = {
+    "serial": ("rx_ok", "rx_bad", "duplicates", "out_of_order", "tx_dropped", "tx_errors",
+               "heartbeats", "status", "rig_heartbeats"),
+    "mqtt": ("rx_ok", "rx_bad", "duplicates", "out_of_order", "tx_dropped", "connects"),
+    "modbus": ("rx_ok", "refused"),
+}
+
+
+def end_lines(kind: str, reason: str, counts: ControllerCounts) -> list[str]:
+    """The reference controller's closing console lines, one form for every kind of
+    link: why it ended and its counts (LINK_COUNTS[kind], always led by 'answered'),
+    then the rig states it read, e.g.
+
+        controller: the rig closed the link; answered 1501, bad 0, ..., connects 1
+        controller: rig states running/0 ended/0
+    """
+    said = ", ".join(f"{COUNT_WORDS[name]} {getattr(counts, name)}" for name in LINK_COUNTS[kind])
+    return [f"controller: {reason}; {said}",
+            f"controller: rig states {' '.join(counts.rig_states) or 'none'}"]
 
 
 RIG_STATE_NAMES = {0: "idle", 1: "running", 2: "tripped", 3: "fault", 4: "ended"}

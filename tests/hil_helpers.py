@@ -6,6 +6,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import os
+import re
 import signal
 import subprocess
 from collections.abc import Iterator
@@ -65,3 +66,15 @@ def rig_issues(path: Path) -> list[RigIssue]:
     except RigFileError as exc:
         return exc.issues
     return []
+
+
+# the reference controller's closing lines, one form for every link (io end_lines)
+CLOSING = re.compile(r"^controller: (?P<reason>[^;\n]+); answered (?P<answered>\d+)"
+                     r"(?:, [a-z ]+ \d+)*\ncontroller: rig states (?P<states>.+)$", re.M)
+
+
+def controller_closing(text: str) -> re.Match[str]:
+    """The reference controller's closing lines in a console ``text``."""
+    found = CLOSING.search(text)
+    assert found, text
+    return found

@@ -9,7 +9,13 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+from hil_helpers import CLOSING
+
 from plantrig import CAUTION
+from plantrig.io import end_lines
+from plantrig.io._refcontroller import COUNT_WORDS, LINK_COUNTS, ControllerCounts
+from plantrig.sim.config._link_settings import LINK_KINDS
 
 REPO = Path(__file__).resolve().parents[1]
 CONVEYOR = REPO / "configs" / "conveyor.toml"
@@ -111,3 +117,17 @@ def test_the_demo_shows_the_caution_once_for_both_of_its_processes(tmp_path: Pat
     both = proc.stdout + proc.stderr
     assert both.count("not a safety function") == 1, both
     assert "controller: ready" in proc.stdout      # the controller process did run
+
+
+@pytest.mark.parametrize("kind", sorted(LINK_KINDS))
+def test_the_controllers_closing_lines_have_one_form_for_every_link(kind: str) -> None:
+    """Why it ended and 'answered N' first, then the link's own counts in the same
+    words, then the rig states: the same two lines whatever the link."""
+    counts = ControllerCounts(rx_ok=1501, rig_states=["running/0", "ended/0"])
+    lines = end_lines(kind, "the rig closed the link", counts)
+    found = CLOSING.fullmatch("\n".join(lines))
+    assert found and found["reason"] == "the rig closed the link"
+    assert found["answered"] == "1501" and found["states"] == "running/0 ended/0"
+    said = [part.rsplit(" ", 1)[0] for part in lines[0].split("; ", 1)[1].split(", ")]
+    assert said == [COUNT_WORDS[name] for name in LINK_COUNTS[kind]]
+    assert end_lines(kind, "stopped", ControllerCounts())[1] == "controller: rig states none"

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from hil_helpers import rig_issues
+from hil_helpers import controller_closing, rig_issues
 from pymodbus.client import ModbusTcpClient
 from pymodbus.framer.rtu import FramerRTU
 from rig_text import rig_text
@@ -258,10 +258,10 @@ def test_demo_modbus_runs_without_hardware(tmp_path: Path) -> None:
                            str(tmp_path)], capture_output=True, text=True, timeout=180)
     text = proc.stdout
     assert "controller: ready on modbus tcp 127.0.0.1:" in text, text + proc.stderr
-    answered = int(text.split("answered ")[1].split()[0])
-    assert answered > 1500, text           # 3000 ticks: most answered over the loopback
+    closing = controller_closing(text)
+    assert int(closing["answered"]) > 1500, text   # 3000 ticks: most answered over the loopback
     # the controller read the rig's state registers, the end state among them
-    states = text.split("rig states ")[1].split("\n")[0].split()
+    states = closing["states"].split()
     assert "running/0" in states and states[-1] in (f"ended/{proc.returncode}",
                                                     f"fault/{proc.returncode}"), text
     assert proc.returncode in (0, 1), text   # 1: a loaded machine missed real time

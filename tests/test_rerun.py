@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hil_helpers import controller_closing
 
 from plantrig.cli import main
 from plantrig.sim import read_run
@@ -133,6 +134,9 @@ def demo(tmp_path: Path, *args: str) -> Path:
     assert summary["mode"] == "realtime"
     assert summary["ticks_recorded"] == summary["ticks_planned"]
     assert summary["link"]["frames_in"] > 0        # the controller did answer
+    # its closing lines, in the one form: it heard the rig run and end (MQTT too)
+    states = controller_closing(proc.stdout)["states"].split()
+    assert "running/0" in states and states[-1].startswith(("ended/", "fault/")), states
     return original
 
 

@@ -7,12 +7,12 @@ from __future__ import annotations
 
 import asyncio
 import os
-import re
 import subprocess
 import time
 from pathlib import Path
 
 import numpy as np
+from hil_helpers import controller_closing
 from pymodbus.client import ModbusTcpClient
 from rig_text import rig_text
 from test_modbus_link import DEMO, free_port
@@ -63,13 +63,12 @@ def test_controller_hears_running_tripped_running_ended(tmp_path: Path) -> None:
     finally:
         pair.close_master()      # the controller ends when the rig's end closes
         text, _ = proc.communicate(timeout=20)
-    states = re.search(r"rig states (.*?);", text)
-    assert states, text
+    states = controller_closing(text)
     code = int(summary["exit_code"])
     # a loaded machine may miss the real-time rule: the run is then a fault, and says so
     last = "fault" if outcome.ended == "fault" else "ended"
     # 1 = the E-stop (the first interlock number, docs/protocol.md 1.2); then the exit code
-    assert states.group(1).split() == ["running/0", "tripped/1", "running/0",
+    assert states["states"].split() == ["running/0", "tripped/1", "running/0",
                                        f"{last}/{code}"], (text, outcome.reason)
     h = summary["link"]
     # the health is read before the end status goes out: three of the four are in it
