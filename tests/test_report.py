@@ -566,3 +566,37 @@ def test_a_verdict_never_measured_says_so(tmp_path: Path) -> None:
     rows = verdict_rows(tmp_path, {})
     assert rows[1] == ("released", "FAIL; expect; not measured; trip:belt_overspeed == 0: "
                                    "never checked (its trigger did not come)")
+
+
+def test_an_old_mqtt_folders_link_counters_read_under_todays_names(
+        belt_run: Path, tmp_path: Path) -> None:
+    """A run folder whose summary.json holds MQTT link health as recorded before the
+    renames of docs/protocol.md section 5 ("Older run folders"): the reader gives today's
+    names, so the report says the refusals and the drops as for a new folder."""
+    import shutil
+
+    from plantrig._report_text import link_rows
+    from plantrig.sim.records._reader import current_link_names
+
+    folder = tmp_path / "old"
+    shutil.copytree(belt_run, folder)
+    summary = json.loads((folder / "summary.json").read_text())
+    summary["link_used"] = {"kind": "mqtt", "broker": "127.0.0.1:1883"}
+    summary["link"] = {  # the names the MQTT link wrote before 2 December 2026, 18:22
+        "sends": 1500.0, "receives": 1500.0, "commands_used": 1490.0, "superseded": 0.0,
+        "dropped_to_worker": 0.0, "missed_ticks": 10.0, "late": 3.0, "link_lost": 0.0,
+        "link_restored": 0.0, "frames_in": 1497.0, "commands_in": 1492.0, "bad_json": 1.0,
+        "bad_channels": 2.0, "rejected_tick": 1.0, "dropped_out": 4.0,
+        "dropped_offline": 6.0, "connects": 1.0, "watchdog_lost": 0.0}
+    (folder / "summary.json").write_text(json.dumps(summary))
+    health = read_run(folder).summary["link"]
+    assert health["rejected_count"] == 2 and health["rejected_echo"] == 1
+    assert not {"bad_channels", "rejected_tick", "sends", "receives", "watchdog_lost"} & set(health)
+    assert health["dropped_out"] == 4 + 6        # today it counts the offline drops too
+    rows = link_rows(read_run(folder).summary)
+    assert ("refused, by reason", "malformed: json 1, not usable: count 2, not usable: echo 1"
+            ) in rows
+    assert any(key == "link" and "dropped out 10," in text for key, text in rows)
+    # a record with today's names is read as written (serial's bad_channels: > 32 values)
+    new = {"link": {"bad_channels": 1.0, "dropped_out": 2.0, "dropped_offline": 0.0}}
+    assert current_link_names(new) == new

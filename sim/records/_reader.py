@@ -2,7 +2,9 @@
 
 One reader for every state a folder can be in: finished (``run.h5``, or ``ticks.npy``
 where h5py is not installed), or crashed and not yet recovered (``ticks.journal`` with
-``run_start.json`` or ``columns.json``; a torn last row is dropped).
+``run_start.json`` or ``columns.json``; a torn last row is dropped). A folder written
+before a link health counter was renamed is read under today's names (docs/protocol.md
+section 5, "Older run folders"), so every reader sees one vocabulary.
 """
 
 from __future__ import annotations
@@ -17,6 +19,36 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim.records._records import RUN_START, read_events
+
+# MQTT link health as recorded before the counters took their names of docs/protocol.md
+# section 5 (2 and 3 December 2026). Such a record is known by watchdog_lost, which the
+# MQTT link wrote into every health until then and never since.
+OLD_MQTT_MARK = "watchdog_lost"
+OLD_MQTT_NAMES: dict[str, str] = {
+    "bad_channels": "rejected_count",   # not one value per input
+    "rejected_tick": "rejected_echo",   # an echo of a tick never sent
+}
+OLD_MQTT_DROPPED = ("sends", "receives", "watchdog_lost")   # the link's own, no meaning now
+
+
+def current_link_names(summary: dict[str, Any]) -> dict[str, Any]:
+    """``summary`` with its link health (``summary["link"]``) under today's names.
+
+    An old MQTT record's counters are renamed, its private ones left out, and its
+    ``dropped_out`` given today's meaning: it then left out the values dropped while the
+    broker was away (``dropped_offline``), which it now includes. Any other record is
+    returned as it is.
+    """
+    health = summary.get("link")
+    if not isinstance(health, dict) or OLD_MQTT_MARK not in health:
+        return summary
+    now: dict[str, Any] = {}
+    for key, value in health.items():
+        if key not in OLD_MQTT_DROPPED:
+            new = OLD_MQTT_NAMES.get(str(key), str(key))
+            now[new] = now.get(new, 0.0) + value
+    now["dropped_out"] = now.get("dropped_out", 0.0) + now.get("dropped_offline", 0.0)
+    return {**summary, "link": now}
 
 
 @dataclass
@@ -66,7 +98,7 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
     ``ticks_only`` skips the events and the summary (reading a part again and again).
     """
     folder = Path(folder)
-    summary = _json(folder / "summary.json") or {}
+    summary = current_link_names(_json(folder / "summary.json") or {})
     start = _json(folder / RUN_START) or {}
     h5 = folder / "run.h5"
     if h5.exists() and _have_h5py():
@@ -74,8 +106,8 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
 
         d = read_run_h5(h5, columns, ticks, ticks_only=ticks_only)
         return RunRecord(folder, d["columns"], d["units"], d["rows"], d["events"],
-                         summary or d["attrs"].get("summary", {}), d["info"], "run.h5",
-                         d["length"])
+                         summary or current_link_names(d["attrs"].get("summary", {})),
+                         d["info"], "run.h5", d["length"])
     info = start.get("columns") or []
     if info:
         every, units = [c["name"] for c in info], [c["unit"] for c in info]
