@@ -192,10 +192,10 @@ def test_new_column_groups_are_discovered_by_prefix():
 
 def test_a_lamp_is_quiet_until_latched_then_says_when_and_why():
     # the engine's own event details (sim/safety/_interlocks.py): "<name>: <cause>: <why>; <action>"
-    trip = ("belt_overspeed: limit:belt_fast: x:belt_speed = 1.10022 m/s, above trip_high "
-            "1.1; inputs to safe values")
-    assert trip_cause(trip) == ("belt_overspeed", "limit:belt_fast: x:belt_speed = 1.10022 "
-                                                  "m/s, above trip_high 1.1")
+    trip = ("belt_overspeed: limit belt_fast: x:belt_speed = 1.10022 m/s, above its trip "
+            "limit 1.1 m/s (trip_high); inputs to safe values")
+    assert trip_cause(trip) == ("belt_overspeed", "limit belt_fast: x:belt_speed = 1.10022 "
+                                                  "m/s, above its trip limit 1.1 m/s (trip_high)")
     events = [(100, 0.1, "estop", "operator E-stop: inputs forced to safe values"),
               (1458, 1.458, "trip", trip),
               (1500, 1.5, "reset", "estop: E-stop released by operator"),
@@ -210,8 +210,8 @@ def test_a_lamp_is_quiet_until_latched_then_says_when_and_why():
     lamp = Lamp("belt_overspeed", True, latch.t, latch.cause)
     lines = lamp.text.split("\n")
     assert lines[0] == "belt_overspeed: TRIPPED at t = 1.458 s, latched"
-    assert " ".join(lines[1:]) == "cause: limit:belt_fast: x:belt_speed = 1.10022 m/s, " \
-                                  "above trip_high 1.1"
+    assert " ".join(lines[1:]) == "cause: limit belt_fast: x:belt_speed = 1.10022 m/s, " \
+                                  "above its trip limit 1.1 m/s (trip_high)"
     assert all(len(line) <= LAMP_LINE_CHARS for line in lines[1:])
     assert Lamp("belt_overspeed", False, latch.t, latch.cause).text == "belt_overspeed: normal"
 
@@ -487,15 +487,16 @@ def test_the_status_line_says_the_real_state():
     running = model.snapshot(store, 1.0, 1.0)
     assert running.status == Status("RUNNING | plant time 1.000 s", "quiet")
     # the interlock has cut the drive (its trip column), the events say since when and why
-    trip = ("belt_overspeed: limit:belt_fast: x:belt_speed = 1.10022 m/s, above trip_high "
-            "1.1; inputs to safe values")
+    trip = ("belt_overspeed: limit belt_fast: x:belt_speed = 1.10022 m/s, above its trip "
+            "limit 1.1 m/s (trip_high); inputs to safe values")
     rows[1458:, groups.index("trip:belt_overspeed")] = 1.0
     model.log.add([(1458, 1.458, "trip", trip)])
     tripped = model.snapshot(store, 1.9, 1.0)
     assert tripped.status.level == "alarm"
     assert tripped.status.text == (
-        "TRIPPED by belt_overspeed since t = 1.458 s (limit:belt_fast: x:belt_speed = "
-        "1.10022 m/s, above trip_high 1.1): inputs held at their safe values | plant time "
+        "TRIPPED by belt_overspeed since t = 1.458 s (limit belt_fast: x:belt_speed = "
+        "1.10022 m/s, above its trip limit 1.1 m/s (trip_high)): inputs held at their safe "
+        "values | plant time "
         "1.900 s")
     assert tripped.trips == [(1.458, "belt_overspeed")]
     rows[1600:, groups.index("trip:estop")] = 1.0
@@ -639,10 +640,12 @@ def test_scenario_progress_and_verdicts_read_from_the_folder_files(tmp_path):
     assert plan.phases == ("surge", "sensor_stuck")
     assert plan.verdicts == tuple(v.name for v in scenario.verdicts)
     log = EventLog()
-    log.add([(800, 0.8, "scenario_step", "steps[0]: at 0.8 s"), (800, 0.8, "phase", "surge")])
+    log.add([(800, 0.8, "scenario_step", f"{plan.steps[0]}: at 0.8 s"),
+             (800, 0.8, "phase", "surge")])
     lines = progress_lines(plan, log)
     assert lines[0] == f"scenario belt_sensor_stuck: 1 of {len(plan.steps)} steps fired"
-    assert lines[1] == "  done  steps[0] at 0.800 s" and lines[2] == "  --    steps[1]"
+    assert lines[1] == "  done  step 1 (steps[0]) at 0.800 s"    # unnamed: counted, with its key
+    assert lines[2] == "  --    step 2 (steps[1])"
     assert "phases reached: surge (0.800 s)" in lines
     assert "phases to come: sensor_stuck" in lines
     summary = {"ended": "tripped", "exit_code": 1, "reason": "interlock belt_overspeed",

@@ -89,7 +89,11 @@ def test_trip_in_the_tick_an_input_limit_is_crossed(tmp_path: Path) -> None:
     assert data["limit:u_high"][warn - 1] == 0 and data["limit:u_high"][warn] == 1
     trip_event = next(e for e in data.outcome.events if e.kind == "trip")
     assert trip_event.tick == k and trip_event.time == pytest.approx(k * DT)
-    assert trip_event.detail.startswith("guard: limit:u_high: u:u = ")
+    assert trip_event.detail.startswith("guard: limit u_high: u:u = ")
+    # in words, the bound's key in brackets to find it in the rig file
+    assert "above its trip limit 0.5 (trip_high); inputs to safe values" in trip_event.detail
+    warned = next(e for e in data.outcome.events if e.kind == "limit_warn")
+    assert warned.detail.endswith("above its warning limit 0.3 (warn_high)")
 
 
 def test_trip_in_the_tick_an_output_limit_is_crossed_and_the_step_is_repeated(
@@ -119,7 +123,7 @@ def test_state_limit_and_rate_limit(tmp_path: Path) -> None:
     data = simulate(rig)
     k = int(np.flatnonzero(data.t >= 1.0 - 1e-12)[0])
     assert data["trip:slew"][k - 1] == 0 and data["trip:slew"][k] == 1
-    assert "changing faster than rate_trip 50" in next(
+    assert "changing faster than its trip rate 50 /s (rate_trip)" in next(
         e.detail for e in data.outcome.events if e.kind == "trip")
     # forced to -0.25 the lag heads for -0.25 and crosses x = -0.1 (its own interlock)
     x = data["x:x"]
@@ -146,7 +150,7 @@ def test_latched_until_reset_and_reset_refused_while_the_cause_persists(
     assert np.all(trip[first:200] == 1)           # latched long after the cause cleared
     assert cleared < 200
     refused = [d for k, t, d in events if k == "reset_refused"]
-    assert refused[0].startswith("guard: cause still present: limit:u_high (u:u = ")
+    assert refused[0].startswith("guard: cause still present: limit u_high: u:u = ")
     assert refused[1] == "nothing is latched"
     resets = [(t, d) for k, t, d in events if k == "reset"]
     assert resets == [(200, "guard: reset by operator")]
@@ -200,7 +204,7 @@ def test_link_lost_from_a_link_fault_trips_the_watchdog_interlock(tmp_path: Path
     # the last command got through at tick -1 (before the run): at tick 5 the silence
     # (6 ticks, 60 ms) first exceeds the 50 ms timeout (sim/engine/_watchdog.py)
     assert lost.tick == 5 and trip.tick == lost.tick
-    assert trip.detail.startswith("watchdog: link_lost: ")
+    assert trip.detail.startswith("watchdog: link lost (link_lost): ")
     fresh = rows[:, cols.index("fresh")]
     assert not fresh[:50].any() and fresh[50:].all()
     assert any(e.kind == "link_restored" and e.tick == 50 for e in outcome.events)

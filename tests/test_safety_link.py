@@ -48,7 +48,7 @@ def test_watchdog_interlock_trips_within_timeout_plus_one_tick() -> None:
     events = data.outcome.events
     lost = [e for e in events if e.kind == "link_lost"][-1]
     trip = next(e for e in events if e.kind == "trip" and e.tick >= lost.tick)
-    assert trip.detail.startswith("link_watchdog: link_lost: ")
+    assert trip.detail.startswith("link_watchdog: link lost (link_lost): ")
     fresh = data["fresh"]
     last_fresh = int(np.flatnonzero(fresh[:trip.tick] == 1)[-1])
     # the one watchdog rule (sim/engine/_watchdog.py): lost at the first tick whose silence

@@ -85,7 +85,7 @@ def test_steps_fire_at_their_ticks(tmp_path: Path) -> None:
     assert data["ref:r"][10] == 0.0 and np.all(data["ref:r"][11:] == 1.2)
     # the reset came while y was still above the trip bound: refused, saying why
     refused = next(e for e in data.outcome.events if e.kind == "reset_refused")
-    assert refused.tick == fired["tripped"] and "cause still present: limit:high" in \
+    assert refused.tick == fired["tripped"] and "cause still present: limit high" in \
         refused.detail
     verdicts = evaluate(sc, data.columns, data.units, data.rows, data.outcome.events, DT)
     (seen,) = [v for v in verdicts if v.criterion == "expect"]

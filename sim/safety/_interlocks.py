@@ -45,6 +45,17 @@ PLAIN_CAUSES = ("link_lost", "overruns", "non_finite")
 INTERLOCK_KEYS = {"name", "on", "action", "inputs", "description"}
 SAFETY_KEYS = {"watchdog_timeout", "overrun_streak"}
 LINK_EVENTS = ("link_lost", "link_restored")
+# how event texts name a cause; its key for `on` in brackets, to find it in the rig file
+CAUSE_WORDS = {"link_lost": "link lost (link_lost)",
+               "overruns": "late ticks in a row (overruns)",
+               "non_finite": "plant state not finite (non_finite)"}
+
+
+def cause_words(cause: str) -> str:
+    """A cause as event texts say it: "limit belt_fast", "link lost (link_lost)"."""
+    if cause.startswith("limit:"):
+        return f"limit {cause.removeprefix('limit:')}"
+    return CAUSE_WORDS.get(cause, cause)
 WARN_EVENTS = 20   # itemised limit_warn events per limit; the rest are counted
 
 
@@ -265,7 +276,7 @@ class Safety:
                 self.active.pop(ESTOP, None)   # releasing the E-stop clears its cause
             present = [c for c in spec.on if c in self.active]
             if present:
-                why = "; ".join(f"{c} ({self.active[c]})" for c in present)
+                why = "; ".join(f"{cause_words(c)}: {self.active[c]}" for c in present)
                 self.emit(k, "reset_refused", f"{spec.name}: cause still present: {why}")
                 continue
             self.latched[i] = False
@@ -284,9 +295,9 @@ class Safety:
             return
         action = {"safe_inputs": "inputs to safe values", "freeze": "inputs to safe values, "
                   "plant frozen", "stop": "inputs to safe values, run stops"}[spec.action]
-        self.emit(k, "trip", f"{spec.name}: {cause}: {why}; {action}")
+        self.emit(k, "trip", f"{spec.name}: {cause_words(cause)}: {why}; {action}")
         if spec.action == "stop" and not self.stop_reason:
-            self.stop_reason = f"interlock {spec.name!r} tripped ({cause})"
+            self.stop_reason = f"interlock {spec.name!r} tripped ({cause_words(cause)})"
 
     def _update(self) -> None:
         self.mask[:] = False

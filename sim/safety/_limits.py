@@ -56,21 +56,26 @@ class LimitSpec:
         return any(math.isfinite(v) for v in (self.trip_low, self.trip_high, self.rate_trip))
 
     def explain(self, value: float, rate: float) -> str:
-        """Why ``value`` (changing at ``rate`` per second) is outside this limit."""
+        """Why ``value`` (changing at ``rate`` per second) is outside this limit, in words,
+        with the rig-file key of the bound in brackets: "y:level = 2.1 m, above its trip
+        limit 2 m (trip_high)"."""
         if math.isnan(value):
             return f"{self.column} is NaN"
-        for bound, text, outside in (
-                (self.trip_high, "above trip_high", value > self.trip_high),
-                (self.trip_low, "below trip_low", value < self.trip_low),
-                (self.rate_trip, "changing faster than rate_trip", abs(rate) > self.rate_trip),
-                (self.warn_high, "above warn_high", value > self.warn_high),
-                (self.warn_low, "below warn_low", value < self.warn_low),
-                (self.rate_warn, "changing faster than rate_warn", abs(rate) > self.rate_warn)):
+        for bound, text, key, outside in (
+                (self.trip_high, "above its trip limit", "trip_high", value > self.trip_high),
+                (self.trip_low, "below its trip limit", "trip_low", value < self.trip_low),
+                (self.rate_trip, "changing faster than its trip rate", "rate_trip",
+                 abs(rate) > self.rate_trip),
+                (self.warn_high, "above its warning limit", "warn_high",
+                 value > self.warn_high),
+                (self.warn_low, "below its warning limit", "warn_low", value < self.warn_low),
+                (self.rate_warn, "changing faster than its warning rate", "rate_warn",
+                 abs(rate) > self.rate_warn)):
             if outside:
-                shown = f"{rate:.6g} {self.unit}/s" if "rate" in text else \
-                    f"{value:.6g} {self.unit}".rstrip()
-                return f"{self.column} = {shown}, {text} {bound:g}"
-        return f"{self.column} = {value:.6g} inside its bands"
+                unit = f"{self.unit}/s" if key.startswith("rate") else self.unit
+                shown = f"{rate if key.startswith('rate') else value:.6g} {unit}".rstrip()
+                return f"{self.column} = {shown}, {text} {f'{bound:g} {unit}'.rstrip()} ({key})"
+        return f"{self.column} = {value:.6g} inside its limits"
 
 
 def resolve_signal(name: str, groups: dict[str, list[Signal]]) -> tuple[str | None, str]:

@@ -179,8 +179,7 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
     if not isinstance(entries, list) or not all(isinstance(e, dict) for e in entries):
         c.add("steps", f"expected an array of tables ([[steps]]), found {describe_value(entries)}")
         entries = []
-    steps = [_step(c, e, f"steps[{i}]", rig, columns, interlocks)
-             for i, e in enumerate(entries)]
+    steps = [_step(c, e, i, rig, columns, interlocks) for i, e in enumerate(entries)]
     faults = {cmd.args["name"] for s in steps if s for cmd in s.commands
               if cmd.kind == "inject_fault"}
     phases = {str(cmd.args["name"]) for s in steps if s for cmd in s.commands
@@ -193,11 +192,15 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
                     tuple(s for s in steps if s is not None), tuple(verdicts), tuple(allow))
 
 
-def _step(c: Checker, e: dict[str, Any], where: str, rig: Rig, columns: list[str],
+def _step(c: Checker, e: dict[str, Any], i: int, rig: Rig, columns: list[str],
           interlocks: list[str]) -> Step | None:
-    """One [[steps]] table: its trigger, then its actions in a fixed order."""
+    """One [[steps]] table (the i-th): its trigger, then its actions in a fixed order.
+    Without a name its events call it "step 3 (steps[2])": counted as a person counts,
+    with the key that finds it in the scenario file."""
+    where = f"steps[{i}]"
     c.no_unknown(e, STEP_KEYS, where)
-    label = c.take(e, "name", where, "str", default=where) or where
+    unnamed = f"step {i + 1} ({where})"
+    label = c.take(e, "name", where, "str", default=unnamed) or unnamed
     triggers = [t for t in TRIGGERS if t in e]
     if len(triggers) != 1:
         c.add(where, f"expected exactly one trigger ({', '.join(TRIGGERS)}), found "
