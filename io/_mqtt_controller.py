@@ -82,12 +82,12 @@ class MqttControllerPeer:
 
     def _rig_status(self, message: aiomqtt.Message) -> bool:
         """Note the run state of a rig status document; True if it says the rig closed
-        the link (live, not retained: a retained one is old news)."""
+        the link. A retained 'offline' document is an earlier run's last word: neither."""
         try:
             doc = json.loads(message.payload)  # type: ignore[arg-type]
         except (TypeError, ValueError):
             return False
-        if not isinstance(doc, dict):
+        if not isinstance(doc, dict) or (message.retain and doc.get("state") == "offline"):
             return False
         code, detail = doc.get("run_state_code"), doc.get("detail_code", 0)
         if self.on_rig_status is not None and isinstance(code, int) and isinstance(detail, int):

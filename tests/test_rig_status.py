@@ -6,11 +6,13 @@ heartbeats is lost (only commands feed the rig's watchdog)."""
 from __future__ import annotations
 
 import asyncio
+import json
 import os
 import subprocess
 import time
 from pathlib import Path
 
+import aiomqtt
 import numpy as np
 from hil_helpers import controller_closing
 from pymodbus.client import ModbusTcpClient
@@ -24,9 +26,11 @@ from plantrig.io import (
     FrameSplitter,
     Kind,
     LocalBroker,
+    MqttControllerPeer,
     build_link,
     decode_frame,
     encode_frame,
+    mqtt_settings,
     open_pty_pair,
 )
 from plantrig.sim import load_rig, load_scenario, run_to_folder
@@ -146,6 +150,17 @@ def test_mqtt_status_document_carries_the_run_state(tmp_path: Path,
     # the last word after close: offline, and how the run ended (exit code 1, a fault)
     assert doc["state"] == "offline" and doc["run_state"] == "fault"
     assert doc["run_state_code"] == 3 and doc["detail_code"] == 1
+    # the reference controller notes it when it hears it live; retained, it is the last
+    # word of a run before the controller came, and means nothing for this one
+    assert rig.link is not None
+    noted: list[tuple[float, ...]] = []
+    peer = MqttControllerPeer(mqtt_settings(rig.link), 2, lambda *_: None,
+                              on_rig_status=noted.append)
+    for retain in (True, False):
+        message = aiomqtt.Message("plantrig/conveyor/status", json.dumps(doc).encode(), 1,
+                                  retain, 0, None)
+        assert peer._rig_status(message) is not retain      # live: the rig closed the link
+    assert noted == [(3.0, 1.0)]
 
 
 def frames_at_least(fd: int, n: int, timeout: float = 5.0) -> list:
