@@ -45,6 +45,7 @@ PLAIN_CAUSES = ("link_lost", "overruns", "non_finite")
 INTERLOCK_KEYS = {"name", "on", "action", "inputs", "description"}
 SAFETY_KEYS = {"watchdog_timeout", "overrun_streak"}
 LINK_EVENTS = ("link_lost", "link_restored")
+WARN_EVENTS = 20   # itemised limit_warn events per limit; the rest are counted
 # how event texts name a cause; its key for `on` in brackets, to find it in the rig file
 CAUSE_WORDS = {"link_lost": "link lost (link_lost)",
                "overruns": "late ticks in a row (overruns)",
@@ -56,7 +57,6 @@ def cause_words(cause: str) -> str:
     if cause.startswith("limit:"):
         return f"limit {cause.removeprefix('limit:')}"
     return CAUSE_WORDS.get(cause, cause)
-WARN_EVENTS = 20   # itemised limit_warn events per limit; the rest are counted
 
 
 @dataclass(frozen=True)
