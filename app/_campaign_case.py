@@ -9,6 +9,8 @@ function of an importable module.
 
 from __future__ import annotations
 
+import ctypes
+import ctypes.util
 import dataclasses
 import hashlib
 import os
@@ -115,9 +117,34 @@ def run_case(case: Case) -> dict[str, Any]:
         row.update(status=ERROR, outcome="", reason="", exit_code=None, ticks=0,
                    error=f"{type(exc).__name__}: {exc}", verdicts=[])
     row["wall_s"] = time.perf_counter() - started
+    _give_back_freed_memory()
     row["worker"] = f"{socket.gethostname()}:{os.getpid()}"
     row["worker_rss_mb"] = _rss_mb()
     return row
+
+
+def _c_library() -> Any:
+    """The C library (glibc on Linux); None where it cannot be loaded."""
+    try:
+        return ctypes.CDLL(ctypes.util.find_library("c"))
+    except OSError:
+        return None
+
+
+_LIBC = _c_library() if os.name == "posix" else None
+
+
+def _give_back_freed_memory() -> None:
+    """Return the memory the case freed to the system (glibc's malloc_trim).
+
+    Without it a worker's RSS crept up about 17 kB a case (66 -> 80 MB over 600
+    cases) though the case's own objects were all freed (tracemalloc showed no growth):
+    glibc raises its mmap threshold after a large array is freed, so the next case's
+    tape comes from the heap, which then fragments. With the trim RSS stayed within
+    66-73 MB over the same 600 cases, and the cases took no longer (interleaved runs,
+    within the machine's noise). Dask's own documentation gives the same remedy."""
+    if _LIBC is not None and hasattr(_LIBC, "malloc_trim"):
+        _LIBC.malloc_trim(0)
 
 
 def _rss_mb() -> float | None:
