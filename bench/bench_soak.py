@@ -6,7 +6,8 @@ this script starts the rig process and samples the resident memory of all three 
 outside (/proc) every --every seconds, so the sampling costs the loop nothing. At the
 end it reports missed deadlines (late ticks and skipped slots), lateness p50/p99/max,
 ticks planned/run/recorded, and each process's RSS at the first sample (after
---settle seconds) and the last.
+--settle seconds), at a quarter, half and
+three quarters of the run, and the last, so a slow growth shows its shape.
 
     .venv/bin/python bench/bench_soak.py              # 1 hour
     .venv/bin/python bench/bench_soak.py --quick      # 5 minutes
@@ -105,10 +106,11 @@ def main() -> None:
           f"{t['skipped_slots']}; lateness p50 {t['lateness_p50_s'] * 1e6:.0f} us, p99 "
           f"{t['lateness_p99_s'] * 1e6:.0f} us, max {t['lateness_max_s'] * 1e6:.0f} us; "
           f"scheduler {t['scheduler']}, core {t.get('cpu')}\n")
-    print("| process | RSS first sample (MB) | RSS last sample (MB) | samples |")
-    print("|---|---|---|---|")
+    print("| process | RSS first sample (MB) | at 1/4 | 1/2 | 3/4 | last sample | samples |")
+    print("|---|---|---|---|---|---|---|")
     for name, mbs in samples.items():
-        print(f"| {name} | {mbs[0]:.1f} | {mbs[-1]:.1f} | {len(mbs)} |")
+        quarters = " | ".join(f"{mbs[len(mbs) * q // 4]:.1f}" for q in (1, 2, 3))
+        print(f"| {name} | {mbs[0]:.1f} | {quarters} | {mbs[-1]:.1f} | {len(mbs)} |")
 
 
 if __name__ == "__main__":
