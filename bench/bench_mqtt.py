@@ -189,7 +189,9 @@ class LinkLoop:
 # ---- 3. process vs thread --------------------------------------------------------------
 
 def engine_run(rig: Rig, port: int, worker: str, seconds: float) -> dict[str, float]:
-    rig = dataclasses.replace(rig, duration=seconds, link={**(rig.link or {}), "worker": worker})
+    assert rig.link is not None
+    settings = dataclasses.replace(rig.link, options={**rig.link.options, "worker": worker})
+    rig = dataclasses.replace(rig, duration=seconds, link=settings)
     link = build_link(rig, port=port)
     proc = start_controller(rig, port)
     try:
@@ -243,12 +245,17 @@ def main(argv: list[str] | None = None) -> int:
           f"dropped out {h.get('dropped_out', 0):.0f}, bad "
           f"{sum(v for k, v in h.items() if k.startswith(('bad_', 'rejected_'))):.0f}. The "
           "worker's span holds its last 4096 round trips.\n")
+    within = [float(np.mean(np.asarray(rtt) < TICK * 1e3)) * 100 for rtt in (bare.rtt, loop.rtt)]
+    print(f"Round trips within one tick ({TICK * 1e3:g} ms), the most a tick loop that does "
+          f"not wait could use in its next tick: bare echo {within[0]:.1f} %, link loop to "
+          f"loop {within[1]:.1f} %.\n")
     print(f"| worker placement (engine, 500 Hz real time, {seconds} s) | lateness p50 | p99 | "
           "max | overruns | ticks without a fresh command | late answers | round trip p50 |")
     print("|---|---|---|---|---|---|---|---|")
     for w, r in placement.items():
         print(f"| {w} | {r['late_p50']:.1f} us | {r['late_p99']:.1f} us | "
-              f"{r['late_max']:.1f} us | {r['overruns']:.0f} | {r['missed']:.0f} | "
+              f"{r['late_max']:.1f} us | {r['overruns']:.0f} | {r['missed']:.0f} "
+              f"({r['missed'] / (seconds / TICK) * 100:.1f} %) | "
               f"{r['late_answers']:.0f} | {r['rtt_p50']:.3f} ms |")
     return 0
 
