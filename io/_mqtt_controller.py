@@ -92,8 +92,7 @@ class MqttControllerPeer:
         code, detail = doc.get("run_state_code"), doc.get("detail_code", 0)
         if self.on_rig_status is not None and isinstance(code, int) and isinstance(detail, int):
             self.on_rig_status((float(code), float(detail)))
-        return not message.retain and doc.get("state") == "offline" and (
-            doc.get("reason") == CLOSED)
+        return doc.get("state") == "offline" and doc.get("reason") == CLOSED
 
     async def _serve(self, client: aiomqtt.Client) -> None:
         s = self.s
