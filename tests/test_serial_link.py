@@ -52,9 +52,10 @@ TOL = {"y:belt_speed": 2e-5, "y:motor_current": 2e-3, "u:voltage": 2e-3}
 
 
 def hil_rig(tmp_path: Path, *, duration: float = 2.0, fast_lockstep: bool = False,
-            text: bool = False, extra: str = "") -> Rig:
+            text: bool = False, extra: str = "", watchdog: float = 0.1) -> Rig:
     """conveyor_hil.toml with the given changes, written beside the test's files."""
-    src = HIL.replace("duration = 3.0", f"duration = {duration}")
+    src = (HIL.replace("duration = 3.0", f"duration = {duration}")
+           .replace("watchdog_timeout = 0.1", f"watchdog_timeout = {watchdog}"))
     if fast_lockstep:
         src = src.replace('mode = "realtime"', 'mode = "fast"')
         src = src.replace('out_of_range = "reject"', 'out_of_range = "reject"\nlockstep = true')
@@ -150,11 +151,18 @@ def test_int16_wire_loop_equals_fast_builtin_with_the_same_quantisation(
 def test_realtime_loop_matches_fast_while_answers_are_on_time(tmp_path: Path) -> None:
     """In real time an answer can miss its tick (scheduling); the rig then holds the
     last command. Until the first tick without a fresh command, every command used
-    answered the previous tick, so the run must equal the fast run up to there."""
-    rig = hil_rig(tmp_path)
+    answered the previous tick, so the run must equal the fast run up to there. The
+    watchdog is widened to 5 s: on a loaded test machine a scheduling stall of 0.1 s
+    (the shipped value) is a real link loss for the rig, but not what this test is about."""
+    rig = hil_rig(tmp_path, watchdog=5.0)
     wire, health = run_over_pty(rig)
     rounded = simulate(builtin_twin(rig), actuator_chain=Float32(), sensor_chain=Float32())
-    assert wire.outcome.ended == "completed" and wire.rows.shape[0] == rig.n_ticks
+    assert wire.rows.shape[0] == rig.n_ticks and health["link_lost"] == 0
+    # a loaded machine may miss the rig's share of late ticks: then, and only then, the
+    # run is a fault, and the only rule it fails is the real-time one
+    failed = [r.rule for r in wire.outcome.rules if r.passed is False]
+    assert failed in ([], ["real time held"]), wire.outcome.reason
+    assert wire.outcome.ended == ("fault" if failed else "completed"), wire.outcome.reason
     assert health["latency_ticks_p50"] == 1
     stale = np.flatnonzero(wire["fresh"][1:] == 0)
     end = int(stale[0]) + 1 if stale.size else rig.n_ticks
