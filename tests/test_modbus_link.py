@@ -170,6 +170,9 @@ def fuzzed_pdu(rng: random.Random) -> bytes:
     return bytes([fc]) + rng.randbytes(rng.randrange(0, 8))
 
 
+N_MASTERS = 4   # connections polling at once: the server answers one while a master reads
+
+
 def test_100k_fuzzed_requests_no_garbage_reaches_the_plant(served) -> None:  # type: ignore[no-untyped-def]
     rig, link, client, port = served
     link.send(0, 0.0, np.array([0.0, 0.0]))
@@ -178,22 +181,33 @@ def test_100k_fuzzed_requests_no_garbage_reaches_the_plant(served) -> None:  # t
     taken: list[float] = []
     n_requests = 100_000
     answered = 0
-    with socket.create_connection(("127.0.0.1", port)) as s:
-        s.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-        s.settimeout(2.0)
-        # one request at a time, as a master polls (pymodbus drops what follows an
-        # undecodable request in the same read, so pipelining would lose answers)
+    masters = [socket.create_connection(("127.0.0.1", port)) for _ in range(N_MASTERS)]
+    try:
+        for s in masters:
+            s.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            s.settimeout(2.0)
+        # request i goes out on connection i % N_MASTERS; each connection has one request
+        # at a time, as a master polls (pymodbus drops what follows an undecodable request
+        # in the same read, so pipelining would lose answers), while the others' requests
+        # keep the server busy between an answer and the next request
+        for i in range(N_MASTERS):
+            masters[i].sendall(mbap(i, 1, fuzzed_pdu(rng)))
         for i in range(n_requests):
-            s.sendall(mbap(i & 0xFFFF, 1, fuzzed_pdu(rng)))
+            s = masters[i % N_MASTERS]
             pending = s.recv(512)
             while len(pending) < 6 or len(pending) < 6 + struct.unpack(">H", pending[4:6])[0]:
                 pending += s.recv(512)
             assert struct.unpack(">H", pending[:2])[0] == i & 0xFFFF   # its own answer
             answered += 1
+            if i + N_MASTERS < n_requests:
+                s.sendall(mbap((i + N_MASTERS) & 0xFFFF, 1, fuzzed_pdu(rng)))
             if i % 50 == 0:
                 if link.receive(i, i * 0.001, out):
                     taken.append(float(out[0]))
                 link.drain_events()
+    finally:
+        for s in masters:
+            s.close()
     time.sleep(0.3)
     if link.receive(n_requests, 0.0, out):
         taken.append(float(out[0]))
