@@ -146,6 +146,7 @@ class SerialLink:
         self.hi = [s.max for s in rig.inputs]
         self.clamp = settings.out_of_range == "clamp"
         self.lockstep = settings.lockstep
+        self._waited_out = False   # a lockstep wait ran out and no answer came since
         self.timeout_ticks = silent_ticks_allowed(settings.watchdog_timeout, rig.tick)
         self.retry_ticks = max(1, round(RETRY_S / rig.tick))
         self.gate = _EventGate(settings.events_per_kind)
@@ -224,6 +225,7 @@ class SerialLink:
         if self.fresh:
             out[:] = self.cmd
             self.fresh = False
+            self._waited_out = False
             self.n["commands_used"] += 1
             self.last_valid_tick = tick
             if self.lost:
@@ -358,13 +360,16 @@ class SerialLink:
                 break
 
     def _wait_for_answer(self, tick: int) -> None:
-        """Lockstep (fast runs only): wait up to the watchdog timeout for the answer to
-        the sensor frame of tick - 1, so the run does not depend on scheduling."""
+        """Lockstep (fast runs only): wait for the answer to the sensor frame of
+        tick - 1, so the run does not depend on scheduling: up to the watchdog timeout,
+        or one tick once a wait has run out in this silence (docs/protocol.md section 5)."""
         want = (tick - 1) % TICK_MODULUS
-        deadline = self.clock_ns() + int(self.settings.watchdog_timeout * 1e9)
+        limit = self.tick_s if self._waited_out else self.settings.watchdog_timeout
+        deadline = self.clock_ns() + int(limit * 1e9)
         while self.last_echo != want and not self.port_down and self.io is not None:
             left = deadline - self.clock_ns()
             if left <= 0:
+                self._waited_out = True
                 return
             self.io.wait_readable(left / 1e9)
             self._read_port()

@@ -63,6 +63,7 @@ class WorkerLink:
         self.watchdog_timeout = watchdog_timeout
         self.watchdog_ticks = silent_ticks_allowed(watchdog_timeout, tick)
         self.lockstep = lockstep
+        self._waited_out = False   # a lockstep wait ran out and no answer came since
         self.rig_state = rig_state
         self._sock: socket.socket | None = None
         self._peer: socket.socket | None = None
@@ -136,6 +137,7 @@ class WorkerLink:
             self.last_valid_tick = tick  # the watchdog starts with the first tick
         if self._fresh:
             self._fresh = False
+            self._waited_out = False
             out[:] = self._newest
             if self.lost:
                 self.lost = False
@@ -277,12 +279,16 @@ class WorkerLink:
         An answer that misses the wait is no loss by itself (docs/protocol.md section 5):
         the tick goes on without it, a missed tick with the last command held, and the
         answer counts as late when it comes; only the watchdog on plant ticks in
-        receive() declares the link lost, as on the serial link."""
+        receive() declares the link lost, as on the serial link. Once a wait has run
+        out, the ticks of the same silence wait one tick each, so a dead controller
+        holds the run about twice the timeout, not (timeout / tick) times it."""
         assert self._sock is not None
-        deadline = time.monotonic() + self.watchdog_timeout
+        limit = self.tick if self._waited_out else self.watchdog_timeout
+        deadline = time.monotonic() + limit
         while self.last_echo_tick < tick - 1 and not self._gone:
             left = deadline - time.monotonic()
             if left <= 0:
+                self._waited_out = True
                 return
             select.select([self._sock], [], [], left)
             self._drain(tick, t)

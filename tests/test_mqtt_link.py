@@ -16,6 +16,7 @@ import asyncio
 import contextlib
 import json
 import os
+import select
 import struct
 import subprocess
 import sys
@@ -139,11 +140,20 @@ def taken(link: MqttLink, n: int) -> None:
 
 
 def test_a_lockstep_timeout_holds_the_command_and_only_the_watchdog_loses_the_link(
-        tmp_path: Path, mosquitto_broker: LocalBroker) -> None:
+        tmp_path: Path, mosquitto_broker: LocalBroker, monkeypatch: pytest.MonkeyPatch) -> None:
     """docs/protocol.md section 5, the lockstep rule, as on the serial and Modbus links:
     an answer that misses its tick's wait is a missed tick (the command held) and, when
-    it comes, a late one; link_lost comes from the watchdog on plant ticks alone. The
-    test plays the controller, answering exactly when it chooses."""
+    it comes, a late one; link_lost comes from the watchdog on plant ticks alone. Once
+    a wait has run out, the ticks of that silence wait one tick each. The test plays
+    the controller, answering exactly when it chooses, and notes every wait."""
+    waits: list[float] = []
+    real_select = select.select
+
+    def noting_select(r: Any, w: Any, x: Any, timeout: float) -> Any:
+        waits.append(timeout)
+        return real_select(r, w, x, timeout)
+
+    monkeypatch.setattr(select, "select", noting_select)
     rig = mqtt_rig(tmp_path, mosquitto_broker, mode="fast", watchdog=0.15,
                    extra="lockstep = true")
     assert rig.link is not None
@@ -172,12 +182,16 @@ def test_a_lockstep_timeout_holds_the_command_and_only_the_watchdog_loses_the_li
         assert link.receive(2, 0.1, out) and out.tolist() == [2.0]
         assert link.counts["late"] == 1 and link.counts["link_lost"] == 0
         # silence from here: lost at the first tick whose silence exceeds 3 ticks
-        lost_at = []
+        lost_at, longest = [], []
         for k in range(3, 8):
             link.send(k - 1, (k - 1) * 0.05, y)
+            waits.clear()
             assert not link.receive(k, k * 0.05, out)
+            longest.append(max(waits, default=0.0))
             lost_at += [e.tick for e in link.drain_events() if e.kind == "link_lost"]
         assert lost_at == [2 + 3 + 1]
+        # tick 3 waits the whole timeout; ticks 4 to 6 a tick at most; none once lost
+        assert longest[0] > 0.05 and max(longest[1:4]) <= 0.05 and longest[4] == 0.0
         answer(3, 6, 3.0)
         assert link.receive(8, 0.4, out)  # no wait once lost; the answer restores the link
         assert "link_restored" in kinds(link.drain_events())

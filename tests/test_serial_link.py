@@ -203,6 +203,48 @@ def test_watchdog_fires_within_timeout_plus_one_tick(tmp_path: Path) -> None:
     assert wire.outcome.ended == "fault" and "'link kept' not met" in wire.outcome.reason
 
 
+
+class WaitNotingPort(FdPort):
+    """The pty master as the link uses it, noting each wait the link asks for; at the
+    ``stop_at``-th wait it stops the controller's process (SIGSTOP)."""
+
+    def __init__(self, fd: int, controller_pid: int, stop_at: int) -> None:
+        super().__init__(fd, name="pty", owns_fd=False)
+        self.waits: list[float] = []
+        self.pid, self.stop_at = controller_pid, stop_at
+
+    def wait_readable(self, timeout: float) -> None:
+        self.waits.append(timeout)
+        if len(self.waits) == self.stop_at:
+            os.kill(self.pid, signal.SIGSTOP)
+        super().wait_readable(timeout)
+
+
+def test_a_dead_controller_holds_a_lockstep_run_one_timeout_then_one_tick_a_tick(
+        tmp_path: Path) -> None:
+    """docs/protocol.md section 5: after one lockstep wait has run out, each tick of the
+    same silence waits at most one tick, so a stopped controller holds the run about
+    twice the timeout (not timeout / tick times it: 100 x 0.1 s here); the link is
+    still lost by the plant-tick watchdog, at the same tick as before."""
+    rig = hil_rig(tmp_path, fast_lockstep=True, duration=1.0)
+    timeout_ticks = round(rig.link.watchdog_timeout / rig.tick)
+    pair = open_pty_pair()
+    with pty_controller(rig.path, pair) as proc:
+        port = WaitNotingPort(pair.master_fd, proc.pid, stop_at=300)
+        wire = simulate(rig, realtime=False, link=build_link(rig, port=port))
+    lost = [e for e in wire.outcome.events if e.kind == "link_lost"]
+    assert len(lost) == 1 and "watchdog" in lost[0].detail
+    last_fresh = int(np.flatnonzero(wire["fresh"][:lost[0].tick] == 1)[-1])
+    assert lost[0].tick - last_fresh == timeout_ticks + 1
+    assert wire.outcome.ended == "fault" and wire.rows.shape[0] == rig.n_ticks
+    # the waits: within a whole timeout until the first that runs out, then a tick each
+    first_out = next(i for i, w in enumerate(port.waits) if w <= rig.tick) - 1
+    assert port.waits[first_out] > rig.tick and first_out >= 300 - 1
+    after = port.waits[first_out + 1:]
+    assert max(after) <= rig.tick
+    assert len(after) <= timeout_ticks          # no wait at all once the link is lost
+
+
 def test_bad_input_is_counted_evented_and_kept_from_the_plant(tmp_path: Path) -> None:
     rig = hil_rig(tmp_path, duration=1.5, extra="events_per_kind = 3\n")
     pair = open_pty_pair()
