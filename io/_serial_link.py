@@ -227,6 +227,11 @@ class SerialLink:
             self.fresh = False
             self._waited_out = False
             self.n["commands_used"] += 1
+            # latency and lateness of the command used, as on every link (protocol.md)
+            age = (tick - (self.last_echo or 0)) % TICK_MODULUS   # set with the command
+            self.latency_hist[age if age < LATENCY_BINS else LATENCY_BINS - 1] += 1
+            if age > 1:
+                self.n["late"] += 1
             self.last_valid_tick = tick
             if self.lost:
                 self.lost = False
@@ -445,9 +450,6 @@ class SerialLink:
         self.fresh = True
         self.last_echo = tick
         n["commands_in"] += 1
-        self.latency_hist[age if age < LATENCY_BINS else LATENCY_BINS - 1] += 1
-        if age > 1:
-            n["late"] += 1
         i = tick % STAMP_RING
         if self.sent_stamp[i] == tick:
             self.rtt_ms[self.rtt_count % RTT_RING] = (self.clock_ns() - self.sent_ns[i]) / 1e6

@@ -424,7 +424,8 @@ def test_a_sensor_frame_is_rejected_kind_and_a_newer_command_supersedes(
         tmp_path: Path) -> None:
     """The names of docs/protocol.md 5 that MQTT and Modbus share: a SENSOR frame from
     the controller is rejected_kind (as on MQTT), and of two valid commands arriving
-    within one tick the older is superseded (as on MQTT and Modbus)."""
+    within one tick the older is superseded (as on MQTT and Modbus). Both answer tick 0
+    and are read at tick 3: only the one used counts as late, as on every link."""
     rig = hil_rig(tmp_path)
     pair = open_pty_pair()
     link = build_link(rig, port=FdPort(pair.master_fd, name="pty", owns_fd=False))
@@ -439,7 +440,7 @@ def test_a_sensor_frame_is_rejected_kind_and_a_newer_command_supersedes(
         while waiting(pair.master_fd) < len(data):   # the pty delivers in its own time
             assert time.monotonic() < deadline
             time.sleep(0.005)
-        link.receive(1, rig.tick, out)            # one tick reads all three frames
+        link.receive(3, 3 * rig.tick, out)        # one tick reads all three frames
         events = link.drain_events()
         h = link.health()
     finally:
@@ -448,6 +449,7 @@ def test_a_sensor_frame_is_rejected_kind_and_a_newer_command_supersedes(
         pair.close_master()
     assert h["rejected_kind"] == 1 and h["commands_in"] == 2 and h["superseded"] == 1
     assert h["commands_used"] == 1 and out.tolist() == [2.5]
+    assert h["late"] == 1 and h["latency_ticks_max"] == 3
     assert [e.kind for e in events] == ["rejected_command"]
 
 
