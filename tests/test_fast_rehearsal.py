@@ -13,6 +13,7 @@ range (2.4 V) for the command, on a loaded 2-core machine.
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 import tomllib
@@ -42,7 +43,11 @@ def test_fast_lockstep_rehearsal_agrees_with_the_real_time_bench_run(tmp_path: P
     assert fast.returncode == 0, fast.stdout + fast.stderr
     assert "rehearsing in lockstep" in fast.stderr
     bench = plantrig("demo", "--out", str(tmp_path / "bench"))
-    assert bench.returncode == 0, bench.stdout + bench.stderr
+    # a loaded machine may miss the real-time rule (exit 1, a fault); nothing else may fail
+    summary = json.loads((only_folder(tmp_path / "bench") / "summary.json").read_text())
+    failed = [r["rule"] for r in summary["acceptance"] if r["passed"] is False]
+    assert failed in ([], ["real time held"]), bench.stdout + bench.stderr
+    assert bench.returncode == (1 if failed else 0), bench.stdout + bench.stderr
     a, b = read_run(only_folder(tmp_path / "fast")), read_run(only_folder(tmp_path / "bench"))
     assert a.columns == b.columns and len(a.rows) == len(b.rows) == 3000
     col = a.columns.index
