@@ -53,7 +53,7 @@ class Window:
     """A time span to shade: an injected fault or a disturbance, from the events."""
 
     name: str
-    kind: str            # "fault" or "disturbance"
+    kind: str            # "fault" or "disturbance" (the event's window field)
     start: float
     end: float
     detail: str = ""
@@ -115,29 +115,25 @@ def context(record: RunRecord) -> PlotContext:
     for column in record.names("fault"):
         for a, b in spans(record.t, record[column] != 0):
             ctx.windows.append(Window(column.partition(":")[2], "fault", a, b))
-    ctx.trips = [Trip(float(ev["time"]), _name_of(ev) if ev["kind"] == "trip" else "E-stop",
-                      str(ev.get("detail", ""))) for ev in record.events
+    ctx.trips = [Trip(float(ev["time"]), str(ev.get("name", "")) if ev["kind"] == "trip"
+                      else "E-stop", str(ev.get("detail", ""))) for ev in record.events
                  if ev["kind"] in ("trip", "estop")]
     return ctx
 
 
-def _name_of(event: dict[str, Any]) -> str:
-    return str(event.get("detail", "")).partition(":")[0].strip()
-
-
 def windows_from_events(events: list[dict[str, Any]], end: float) -> list[Window]:
-    """Each fault_injected event opens a window (a disturbance is a fault of kind
-    "disturbance") that its fault_cleared event closes, else the end of the run."""
+    """Each fault_injected event opens a window of its ``window`` kind ("fault" or
+    "disturbance") that its fault_cleared event (same ``name``) closes, else the end of
+    the run. Events as sim.read_run gives them: an old record's get their fields there."""
     open_: dict[str, Window] = {}
     out: list[Window] = []
     for ev in events:
-        name, _, rest = str(ev.get("detail", "")).partition(":")
-        name = name.strip()
+        name = str(ev.get("name", ""))
         if ev["kind"] == "fault_injected":
-            kind = "disturbance" if rest.strip().startswith("disturbance") else "fault"
             if name in open_:          # injected again: the earlier one ends here
                 open_.pop(name).end = float(ev["time"])
-            window = Window(name, kind, float(ev["time"]), end, rest.strip())
+            window = Window(name, str(ev.get("window") or "fault"), float(ev["time"]), end,
+                            str(ev.get("detail", "")))
             open_[name] = window
             out.append(window)
         elif ev["kind"] == "fault_cleared" and name in open_:

@@ -1,22 +1,40 @@
 """What the event stream says about the run: E-stop latch, fault windows, the recent list.
 
-Events come from the engine's event tape as (tick, time, kind, detail). The engine
-latches an operator E-stop with an "estop" event and releases it with a "reset" that
-names it (a recorded "trip:estop" column, where there is one, is the authority); an
-interlock latches with a "trip" event ("<name>: <cause>: <why>; <action>") and is
-released by a "reset" naming it, which gives each latched lamp its time and cause; fault
-windows open on events that announce a fault and close on those that clear it (the
-kind names are matched loosely, see ``fault_edge``, so the safety work can choose its
-own).
+Events come from the engine's event tape (or a run folder's record) as EventRow: tick,
+time, kind, detail and the name of what the event is about. The engine latches an
+operator E-stop with an "estop" event and releases it with a "reset" of that name (a
+recorded "trip:estop" column, where there is one, is the authority); an interlock
+latches with a "trip" event of its name and is released by a "reset" of its name, which
+gives each latched lamp its time and cause; fault windows open on events that announce a
+fault and close on those that clear it (the kind names are matched loosely, see
+``fault_edge``, so the safety work can choose its own). Names come from the events'
+name field, never from their detail text, which is only shown.
 """
 
 from __future__ import annotations
 
 from collections import deque
 from dataclasses import dataclass
+from typing import Any, NamedTuple
 
-EventRow = tuple[int, float, str, str]
 RECENT_EVENTS = 400
+ESTOP = "estop"          # the E-stop's name in events and its latch here
+
+
+class EventRow(NamedTuple):
+    """One event as the dashboard holds it."""
+
+    tick: int
+    time: float
+    kind: str
+    detail: str
+    name: str = ""       # the fault, interlock, step, phase ... the event is about
+
+    @classmethod
+    def of(cls, event: dict[str, Any]) -> EventRow:
+        """From an event as the event tape and sim.read_run give it."""
+        return cls(int(event["tick"]), float(event["time"]), str(event["kind"]),
+                   str(event.get("detail", "")), str(event.get("name", "")))
 
 
 @dataclass(frozen=True)
@@ -50,18 +68,12 @@ def fault_edge(kind: str) -> int:
     return 1
 
 
-def fault_name(detail: str) -> str:
-    """The fault's name as the first word of the detail ("stuck_at y:level ..." -> ...)."""
-    word = detail.strip().split(" ", 1)[0].rstrip(":,;") if detail.strip() else ""
-    return word or "fault"
-
-
-def trip_cause(detail: str) -> tuple[str, str]:
-    """(interlock name, cause) of a trip event's detail "<name>: <cause>: <why>; <action>";
-    the action (what the latch does) is left out: the lamp says the state itself."""
-    name, _, rest = detail.partition(": ")
-    cause = rest.rsplit("; ", 1)[0] if "; " in rest else rest
-    return name.strip(), cause.strip()
+def trip_cause(event: EventRow) -> str:
+    """The cause a trip event shows on its lamp: its detail ("<name>: <cause>: <why>;
+    <action>") without the name and the action (the lamp says both itself). Display
+    only: the name that decides which lamp is the event's name field."""
+    text = event.detail.removeprefix(f"{event.name}: ")
+    return (text.rsplit("; ", 1)[0] if "; " in text else text).strip()
 
 
 class EventLog:
@@ -85,43 +97,41 @@ class EventLog:
     def upto(cls, events: list[EventRow], t: float) -> EventLog:
         """The state after every event at or before plant time ``t`` (for replay)."""
         log = cls()
-        log.add([e for e in events if e[1] <= t])
+        log.add([e for e in events if e.time <= t])
         return log
 
     def add(self, events: list[EventRow]) -> None:
         for event in events:
-            _, t, kind, detail = event
+            t, kind, detail, name = event.time, event.kind, event.detail, event.name
             self.recent.append(event)
             self.count += 1
             self.kinds[kind] = self.kinds.get(kind, 0) + 1
             if kind == "estop":
                 self.estop_latched, self.estop_time = True, t
-                self.latches["estop"] = Latch(t, "operator E-stop")
+                self.latches[ESTOP] = Latch(t, "operator E-stop")
                 self.trips.append((t, "E-stop"))
             elif kind == "trip":
-                name, cause = trip_cause(detail)
-                self.latches[name] = Latch(t, cause)
+                self.latches[name] = Latch(t, trip_cause(event))
                 self.trips.append((t, name))
             elif kind == "operator_stop":
                 self.stopping = f"operator stop ({detail})" if detail else "operator stop"
             elif kind == "scenario_step":
-                self.steps.append((t, detail.partition(":")[0]))
+                self.steps.append((t, name))
             elif kind == "phase":
-                self.phases.append((t, detail))
+                self.phases.append((t, name))
             elif kind == "reset":
-                name = detail.partition(":")[0].strip()
                 self.latches.pop(name, None)
-                if "estop" in detail.lower() or "e-stop" in detail.lower():
+                if name == ESTOP:
                     self.estop_latched = False
             elif kind == "run_end":
                 self.ended = detail
             edge = fault_edge(kind)
             if edge > 0:
-                name = fault_name(detail)
+                name = name or "fault"
                 if not any(w.name == name and w.end is None for w in self.windows):
                     self.windows.append(FaultWindow(name, t))
             elif edge < 0:
-                name = fault_name(detail)
+                name = name or "fault"
                 open_ = [w for w in self.windows if w.end is None]
                 named = [w for w in open_ if w.name == name]
                 for w in named or open_:

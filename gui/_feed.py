@@ -50,7 +50,7 @@ class LiveFeed:
             reader.next_seq += jump
             self.skipped += jump
         rows = reader.read_new(max_rows=self.keep_rows)
-        events = [(e["tick"], e["time"], e["kind"], e["detail"])
+        events = [EventRow.of(e)
                   for e in (self.events.read_new() if self.events is not None else [])]
         return rows, events
 

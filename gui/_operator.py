@@ -23,6 +23,7 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
+from plantrig.gui._eventlog import EventRow
 from plantrig.sim import Command
 
 MAX_TEXT = 120
@@ -31,25 +32,26 @@ MOMENT_PRESETS = ("start of test step", "steady state reached", "load applied",
 """Labels offered for "Mark moment"; the operator may type any other."""
 
 
-def answer_to(command: Command, kind: str, detail: str) -> bool | None:
-    """True if event (kind, detail) says the run did ``command``, False if it says the
-    run refused it, None if the event is about something else."""
-    a, c = command.args, command.kind
-    if kind == "command_refused" and detail.startswith(c):
+def answer_to(command: Command, event: EventRow) -> bool | None:
+    """True if ``event`` says the run did ``command``, False if it says the run refused
+    it, None if the event is about something else. Matched on the event's kind and name
+    (a refusal names the command refused; a fault the dashboard injects is named
+    "<kind>:<target>", the engine's name for a fault given none)."""
+    a, c, kind, name = command.args, command.kind, event.kind, event.name
+    if kind == "command_refused" and name == c:
         return False
     if c == "inject_fault":
         return True if kind == "fault_injected" and \
-            detail.startswith(f"{a.get('kind')}:{a.get('target')}:") else None
+            name == (a.get("name") or f"{a.get('kind')}:{a.get('target')}") else None
     if c == "clear_fault":
-        return True if kind == "fault_cleared" and detail.endswith("cleared by command") \
-            else None
+        return True if kind == "fault_cleared" and \
+            event.detail.endswith("cleared by command") else None
     if c == "reset":
         return {"reset": True, "reset_refused": False}.get(kind)
     if c == "set_reference":
-        return True if kind == "reference_set" and detail.startswith(f"{a.get('name')} =") \
-            else None
+        return True if kind == "reference_set" and name == a.get("name") else None
     if c == "mark_phase":
-        return True if kind == "phase" and detail == a.get("name") else None
+        return True if kind == "phase" and name == a.get("name") else None
     if c == "stop":
         return True if kind == "operator_stop" else None
     if c == "estop":
@@ -102,11 +104,12 @@ class Operator:
             "; waiting for the run's answer"
         return True
 
-    def hear(self, events: Iterable[tuple[int, float, str, str]]) -> None:
+    def hear(self, events: Iterable[EventRow]) -> None:
         """Match the run's events to the commands waiting for an answer (oldest first)."""
-        for _, t, kind, detail in events:
+        for event in events:
+            t, kind, detail = event.time, event.kind, event.detail
             for command in self.waiting:
-                verdict = answer_to(command, kind, detail)
+                verdict = answer_to(command, event)
                 if verdict is None:
                     continue
                 self.waiting.remove(command)

@@ -78,8 +78,7 @@ def load_run(folder: str | Path) -> RunRecord:
     if "t" not in record.columns:
         raise RunFolderError(folder, "the tick data has no 't' column")
     columns, units = record.columns, record.units
-    events: list[EventRow] = [(int(e["tick"]), float(e["time"]), str(e["kind"]),
-                               str(e.get("detail", ""))) for e in record.events]
+    events = [EventRow.of(e) for e in record.events]
     summary_path = folder / "summary.json"
     summary = _json(folder, summary_path) if summary_path.is_file() else {}
     rig, note = _rig(folder)

@@ -28,6 +28,7 @@ import numpy as np
 
 from plantrig import CAUTION
 from plantrig.gui._columns import ColumnGroups
+from plantrig.gui._eventlog import EventRow
 from plantrig.gui._faults import FaultChoice, check_fault_form
 from plantrig.gui._model import (
     ALARM,
@@ -80,8 +81,8 @@ class DashboardView:
                  span_s: float = 10.0, max_span_s: float = 30.0,
                  frame_cap_hz: float = 30.0) -> None:
         self.estop_latched = False
-        self.selected_event: tuple[int, float, str, str] | None = None
-        self.shown_events: list[tuple[int, float, str, str]] = []
+        self.selected_event: EventRow | None = None
+        self.shown_events: list[EventRow] = []
         self.groups = groups
         self.specs = specs
         self.operator = operator
@@ -498,7 +499,7 @@ class DashboardView:
             dpg.configure_item(f"{T}event.{i}", show=shown)
             if shown:
                 event = snap.events[i]
-                _, t, kind, detail = event
+                t, kind, detail = event.time, event.kind, event.detail
                 dpg.configure_item(f"{T}event.{i}.0", label=f"{t:.3f}")
                 dpg.set_value(f"{T}event.{i}.0", event == self.selected_event)
                 dpg.set_value(f"{T}event.{i}.1", kind)
@@ -508,7 +509,7 @@ class DashboardView:
         if picked is None:
             dpg.set_value(T + "event_detail", "")
             return
-        _, t, kind, detail = picked
+        t, kind, detail = picked.time, picked.kind, picked.detail
         which = "selected" if self.selected_event else "newest"
         dpg.set_value(T + "event_detail", f"{which} event, t = {t:.3f} s, {kind}:\n{detail}")
 

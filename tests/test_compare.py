@@ -17,7 +17,7 @@ import pytest
 
 from plantrig.cli import main
 from plantrig.sim import read_run
-from plantrig.sim.records._compare import compare_runs
+from plantrig.sim.records._compare import compare_runs, pair_events
 
 ROOT = Path(__file__).resolve().parents[1]
 CONVEYOR = ROOT / "configs" / "conveyor.toml"
@@ -153,7 +153,7 @@ def test_rehearsal_events_side_by_side(tmp_path: Path,
     trips_b = [e for e in read_run(b).events if e["kind"] == "trip"]
     assert trips_a and trips_b
     pair = next(p for p in c.events if p.kind == "trip")
-    assert pair.what == trips_a[0]["detail"].split(":")[0]
+    assert pair.what == trips_a[0]["name"] == "belt_overspeed"
     assert pair.t_a == trips_a[0]["time"] and pair.t_b == trips_b[0]["time"]
     assert pair.dt == pytest.approx(trips_b[0]["time"] - trips_a[0]["time"])
     phases = [p for p in c.events if p.kind == "phase"]
@@ -161,6 +161,28 @@ def test_rehearsal_events_side_by_side(tmp_path: Path,
     assert all(p.dt == 0 for p in phases if p.what in ("surge", "sensor_stuck"))
     assert c.outcomes["a"]["verdicts"] and set(c.outcomes["a"]["verdicts"]) == set(
         c.outcomes["b"]["verdicts"])
+
+
+def test_events_pair_by_their_name_not_their_wording() -> None:
+    """Two faults named by the engine's default "<kind>:<target>" share the text before
+    their first colon, and B words its details otherwise: each still meets its own."""
+    def ev(t: float, kind: str, name: str, detail: str) -> dict[str, object]:
+        return {"tick": round(t * 1000), "time": t, "kind": kind, "detail": detail,
+                "name": name}
+
+    a = [ev(0.1, "fault_injected", "sensor_bias:level", "sensor_bias:level: sensor_bias on "
+                                                        "level (value=0.1), until cleared"),
+         ev(0.2, "fault_injected", "sensor_bias:flow", "sensor_bias:flow: sensor_bias on "
+                                                       "flow (value=0.1), until cleared"),
+         ev(0.5, "trip", "high_level", "high_level: limit level_high: ...; inputs to safe "
+                                       "values")]
+    b = [ev(0.1, "fault_injected", "sensor_bias:flow", "flow biased"),
+         ev(0.2, "fault_injected", "sensor_bias:level", "level biased"),
+         ev(0.5, "trip", "high_level", "tank too full")]
+    got = {(p.kind, p.what): (p.t_a, p.t_b) for p in pair_events(a, b, 0.0)}
+    assert got == {("fault_injected", "sensor_bias:level"): (0.1, 0.2),
+                   ("fault_injected", "sensor_bias:flow"): (0.2, 0.1),
+                   ("trip", "high_level"): (0.5, 0.5)}
 
 
 def test_a_comparison_read_in_parts_equals_one_read_whole(

@@ -77,6 +77,28 @@ def test_a_reader_left_behind_gets_a_marker_not_a_torn_detail(tmp_path: Path) ->
         reader.close()
 
 
+def test_name_and_window_come_back_as_the_event_records_them(tmp_path: Path) -> None:
+    """The tape gives each event as Event.record() writes it into events.jsonl: source,
+    name and window only where set; a name (multi-byte, long) comes back whole."""
+    from plantrig.sim import Event
+
+    writer = EventTape(tmp_path / "run.events", capacity=16, heap_bytes=1 << 14)
+    reader = EventTape(tmp_path / "run.events", create=False)
+    try:
+        sent = [Event(3, 0.3, "fault_injected", "surge: disturbance on belt_load",
+                      name="surge", window="disturbance"),
+                Event(4, 0.4, "phase", TEXT[:300], name=TEXT[:300]),
+                Event(5, 0.5, "link_lost", "no command for 0.2 s", "rehearsed"),
+                Event(6, 0.6, "reset_refused", "nothing is latched")]
+        for e in sent:
+            writer.append(e.tick, e.time, e.kind, e.detail, e.source, e.name, e.window)
+        assert reader.read_new() == [e.record() for e in sent]
+        assert "name" not in sent[3].record() and "window" not in sent[1].record()
+    finally:
+        writer.close(unlink=True)
+        reader.close()
+
+
 def test_an_event_tape_of_another_layout_is_refused(tmp_path: Path) -> None:
     path = tmp_path / "old.events"
     path.write_bytes(b"\0" * 4096)
@@ -98,10 +120,10 @@ def test_a_5000_byte_detail_arrives_whole_in_events_jsonl_and_run_h5(tmp_path: P
     lines = [json.loads(line) for line in
              (folder / "events.jsonl").read_text(encoding="utf-8").splitlines()]
     phases = [e for e in lines if e["kind"] == "phase"]
-    assert len(phases) == 1 and phases[0]["detail"] == detail
+    assert len(phases) == 1 and phases[0]["detail"] == phases[0]["name"] == detail
     record = read_run_h5(folder / "run.h5")
     h5_phases = [e for e in record["events"] if e["kind"] == "phase"]
-    assert len(h5_phases) == 1 and h5_phases[0]["detail"] == detail
+    assert len(h5_phases) == 1 and h5_phases[0]["detail"] == h5_phases[0]["name"] == detail
     assert np.isfinite(record["rows"]).all()
 
 

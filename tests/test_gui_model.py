@@ -21,7 +21,7 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
 from plantrig.gui._columns import ColumnGroups
-from plantrig.gui._eventlog import EventLog, Latch, fault_edge, fault_name, trip_cause
+from plantrig.gui._eventlog import EventLog, EventRow, Latch, fault_edge, trip_cause
 from plantrig.gui._faults import check_fault_form, fault_catalogue, fault_targets
 from plantrig.gui._model import (
     LAMP_LINE_CHARS,
@@ -123,11 +123,15 @@ def test_row_store_window_and_at_match_a_mask():
 
 # -- events ---------------------------------------------------------------------------
 def test_event_log_latches_estop_and_opens_and_closes_fault_windows():
-    events = [(10, 0.01, "estop", "operator E-stop: inputs forced to safe values"),
-              (20, 0.02, "fault_injected", "sensor_stuck:level: sensor_stuck on level"),
-              (25, 0.025, "command_refused", "inject_fault: unknown kind"),
-              (30, 0.03, "reset", "estop: released by operator"),
-              (40, 0.04, "fault_cleared", "sensor_stuck:level: cleared by operator")]
+    events = [EventRow(10, 0.01, "estop", "operator E-stop: inputs forced to safe values",
+                       "estop"),
+              EventRow(20, 0.02, "fault_injected", "sensor_stuck:level: sensor_stuck on level",
+                       "sensor_stuck:level"),
+              EventRow(25, 0.025, "command_refused", "inject_fault: unknown kind",
+                       "inject_fault"),
+              EventRow(30, 0.03, "reset", "estop: released by operator", "estop"),
+              EventRow(40, 0.04, "fault_cleared", "sensor_stuck:level: cleared by operator",
+                       "sensor_stuck:level")]
     log = EventLog()
     log.add(events)
     assert not log.estop_latched and log.estop_time == 0.01
@@ -146,9 +150,22 @@ def test_fault_edges(kind, edge):
     assert fault_edge(kind) == edge
 
 
-def test_fault_name_is_the_first_word():
-    assert fault_name("stuck:y1: held at 0.4") == "stuck:y1"
-    assert fault_name("") == "fault"
+def test_names_come_from_the_name_field_whatever_the_detail_says():
+    # details worded unlike the engine's: the log must not read names from them
+    log = EventLog()
+    log.add([EventRow(1, 0.1, "trip", "guard fired (limit belt_fast)", "belt_guard"),
+             EventRow(2, 0.2, "fault_injected", "a stuck level sensor", "stuck:level"),
+             EventRow(3, 0.3, "scenario_step", "fired at 0.3 s", "surge"),
+             EventRow(4, 0.4, "phase", "operator mark", "steady"),
+             EventRow(5, 0.5, "estop", "E-stop pressed", "estop"),
+             EventRow(6, 0.6, "reset", "released", "estop"),
+             EventRow(7, 0.7, "fault_cleared", "over", "stuck:level")])
+    assert list(log.latches) == ["belt_guard"] and not log.estop_latched
+    assert log.latches["belt_guard"].cause == "guard fired (limit belt_fast)"
+    assert [(w.name, w.start, w.end) for w in log.windows] == [("stuck:level", 0.2, 0.7)]
+    assert log.steps == [(0.3, "surge")] and log.phases == [(0.4, "steady")]
+    log.add([EventRow(8, 0.8, "reset", "belt_guard: reset by operator")])   # no name
+    assert list(log.latches) == ["belt_guard"]
 
 
 # -- panels ---------------------------------------------------------------------------
@@ -194,17 +211,19 @@ def test_a_lamp_is_quiet_until_latched_then_says_when_and_why():
     # the engine's own event details (sim/safety/_interlocks.py): "<name>: <cause>: <why>; <action>"
     trip = ("belt_overspeed: limit belt_fast: x:belt_speed = 1.10022 m/s, above its trip "
             "limit 1.1 m/s (trip_high); inputs to safe values")
-    assert trip_cause(trip) == ("belt_overspeed", "limit belt_fast: x:belt_speed = 1.10022 "
-                                                  "m/s, above its trip limit 1.1 m/s (trip_high)")
-    events = [(100, 0.1, "estop", "operator E-stop: inputs forced to safe values"),
-              (1458, 1.458, "trip", trip),
-              (1500, 1.5, "reset", "estop: E-stop released by operator"),
-              (2458, 2.458, "reset", "belt_overspeed: reset by operator")]
+    cause = ("limit belt_fast: x:belt_speed = 1.10022 m/s, above its trip limit 1.1 m/s "
+             "(trip_high)")
+    assert trip_cause(EventRow(1458, 1.458, "trip", trip, "belt_overspeed")) == cause
+    events = [EventRow(100, 0.1, "estop", "operator E-stop: inputs forced to safe values",
+                       "estop"),
+              EventRow(1458, 1.458, "trip", trip, "belt_overspeed"),
+              EventRow(1500, 1.5, "reset", "estop: E-stop released by operator", "estop"),
+              EventRow(2458, 2.458, "reset", "belt_overspeed: reset by operator",
+                       "belt_overspeed")]
     mid = EventLog.upto(events, 1.49)
     assert mid.latches == {"estop": Latch(0.1, "operator E-stop"),
-                           "belt_overspeed": Latch(1.458, trip_cause(trip)[1])}
-    assert EventLog.upto(events, 1.6).latches == {"belt_overspeed": Latch(1.458,
-                                                                          trip_cause(trip)[1])}
+                           "belt_overspeed": Latch(1.458, cause)}
+    assert EventLog.upto(events, 1.6).latches == {"belt_overspeed": Latch(1.458, cause)}
     assert EventLog.upto(events, 3.0).latches == {}
     latch = mid.latches["belt_overspeed"]
     lamp = Lamp("belt_overspeed", True, latch.t, latch.cause)
@@ -490,7 +509,7 @@ def test_the_status_line_says_the_real_state():
     trip = ("belt_overspeed: limit belt_fast: x:belt_speed = 1.10022 m/s, above its trip "
             "limit 1.1 m/s (trip_high); inputs to safe values")
     rows[1458:, groups.index("trip:belt_overspeed")] = 1.0
-    model.log.add([(1458, 1.458, "trip", trip)])
+    model.log.add([EventRow(1458, 1.458, "trip", trip, "belt_overspeed")])
     tripped = model.snapshot(store, 1.9, 1.0)
     assert tripped.status.level == "alarm"
     assert tripped.status.text == (
@@ -500,10 +519,10 @@ def test_the_status_line_says_the_real_state():
         "1.900 s")
     assert tripped.trips == [(1.458, "belt_overspeed")]
     rows[1600:, groups.index("trip:estop")] = 1.0
-    model.log.add([(1600, 1.6, "estop", "operator E-stop")])
+    model.log.add([EventRow(1600, 1.6, "estop", "operator E-stop", "estop")])
     both = model.snapshot(store, 1.9, 1.0)
     assert both.status.text.startswith("TRIPPED by E-stop, belt_overspeed since t = 1.458 s")
-    model.log.add([(1700, 1.7, "operator_stop", "operator stop from the dashboard")])
+    model.log.add([EventRow(1700, 1.7, "operator_stop", "operator stop from the dashboard")])
     ended = model.snapshot(store, 1.9, 1.0, ended="stopped, exit code 0: operator stop")
     assert ended.status.level == "ended"
     assert ended.status.text == ("ENDED: stopped, exit code 0: operator stop | plant time "
@@ -512,7 +531,7 @@ def test_the_status_line_says_the_real_state():
     assert replay.status == Status("REPLAY of run-1 | at plant time 1.000 s: normal",
                                    "replay")
     fresh = EventLog()
-    fresh.add([(5, 0.005, "operator_stop", "")])
+    fresh.add([EventRow(5, 0.005, "operator_stop", "")])
     rows[:, groups.index("trip:belt_overspeed")] = rows[:, groups.index("trip:estop")] = 0
     assert model.snapshot(store, 0.5, 1.0, log=fresh).status.text.startswith(
         "STOPPING: operator stop |")
@@ -586,18 +605,19 @@ def test_the_form_result_is_the_runs_answer(command_queue):
     assert op.set_reference("speed_setpoint", 0.4)
     assert "waiting for the run's answer" in op.message
     # events as the engine writes them (sim/faults/_faults.py, sim/engine/_engine.py)
-    op.hear([(10, 0.01, "fault_injected", "load_surge: disturbance on belt_load (value=25)"),
-             (12, 0.012, "reference_set", "speed_setpoint = 0.4")])
+    op.hear([EventRow(10, 0.01, "fault_injected", "load_surge: disturbance on belt_load "
+                               "(value=25)", "load_surge"),
+             EventRow(12, 0.012, "reference_set", "speed_setpoint = 0.4", "speed_setpoint")])
     assert op.message.startswith("ACCEPTED at t = 0.012 s: set_reference")
     assert [c.kind for c in op.waiting] == ["inject_fault"]   # another fault is no answer
-    op.hear([(20, 0.02, "command_refused", "inject_fault: target: no output named "
-                                           "'belt_sped'")])
+    op.hear([EventRow(20, 0.02, "command_refused", "inject_fault: target: no output named "
+                                                   "'belt_sped'", "inject_fault")])
     assert op.message == ("REFUSED by the run at t = 0.020 s: inject_fault kind=sensor_stuck "
                           "target=belt_speed duration_s=0.0: inject_fault: target: no output "
                           "named 'belt_sped'")
     assert [a.accepted for a in op.answers] == [True, False]
     assert op.reset()
-    op.hear([(30, 0.03, "reset_refused", "nothing is latched")])
+    op.hear([EventRow(30, 0.03, "reset_refused", "nothing is latched")])
     assert op.message.startswith("REFUSED by the run") and "nothing is latched" in op.message
     assert op.clear_fault()
     op.run_ended("stopped: operator stop")
@@ -611,22 +631,40 @@ def test_the_form_result_is_the_runs_answer(command_queue):
 
 
 def test_answers_match_each_command_kind():
+    # (command, event kind, detail, event name, answer); the engine's wording where the
+    # detail starts with the name, other wording where it does not: names decide
     cases = [
-        (Command("estop"), "estop", "operator E-stop", True),
-        (Command("reset"), "reset", "belt_overspeed: reset by operator", True),
-        (Command("mark_phase", {"name": "surge"}), "phase", "surge", True),
-        (Command("mark_phase", {"name": "surge"}), "phase", "other", None),
-        (Command("stop"), "operator_stop", "", True),
-        (Command("clear_fault"), "fault_cleared", "stuck: cleared by command", True),
-        (Command("clear_fault"), "fault_cleared", "stuck: duration ended", None),
-        (Command("clear_fault"), "command_refused", "clear_fault: no active fault", False),
+        (Command("estop"), "estop", "operator E-stop", "estop", True),
+        (Command("reset"), "reset", "belt_overspeed: reset by operator", "belt_overspeed",
+         True),
+        (Command("mark_phase", {"name": "surge"}), "phase", "surge", "surge", True),
+        (Command("mark_phase", {"name": "surge"}), "phase", "moment marked", "surge", True),
+        (Command("mark_phase", {"name": "surge"}), "phase", "surge", "other", None),
+        (Command("stop"), "operator_stop", "", "", True),
+        (Command("clear_fault"), "fault_cleared", "stuck: cleared by command", "stuck", True),
+        (Command("clear_fault"), "fault_cleared", "stuck: duration ended", "stuck", None),
+        (Command("clear_fault"), "command_refused", "clear_fault: no active fault",
+         "clear_fault", False),
         (Command("set_reference", {"name": "a", "value": 1}), "command_refused",
-         "set_reference {'name': 'a'}: unknown name or non-finite value", False),
+         "set_reference {'name': 'a'}: unknown name or non-finite value", "set_reference",
+         False),
+        (Command("set_reference", {"name": "a", "value": 1}), "command_refused",
+         "set_reference refused, but the event is about another command", "inject_fault",
+         None),
+        (Command("set_reference", {"name": "a", "value": 1}), "reference_set", "now 1", "a",
+         True),
+        (Command("set_reference", {"name": "a", "value": 1}), "reference_set", "a = 1", "b",
+         None),
         (Command("inject_fault", {"kind": "link_drop", "target": "both"}), "fault_injected",
-         "link_drop:both: link_drop on both", True),
+         "link_drop:both: link_drop on both", "link_drop:both", True),
+        (Command("inject_fault", {"kind": "link_drop", "target": "both"}), "fault_injected",
+         "frames dropped both ways", "link_drop:both", True),
+        (Command("inject_fault", {"kind": "link_drop", "target": "both"}), "fault_injected",
+         "link_drop:both: link_drop on both", "link_drop:up", None),
     ]
-    for command, kind, detail, expected in cases:
-        assert answer_to(command, kind, detail) is expected, (command, kind, detail)
+    for command, kind, detail, name, expected in cases:
+        event = EventRow(1, 0.001, kind, detail, name)
+        assert answer_to(command, event) is expected, (command, event)
 
 
 def test_scenario_progress_and_verdicts_read_from_the_folder_files(tmp_path):
@@ -640,8 +678,8 @@ def test_scenario_progress_and_verdicts_read_from_the_folder_files(tmp_path):
     assert plan.phases == ("surge", "sensor_stuck")
     assert plan.verdicts == tuple(v.name for v in scenario.verdicts)
     log = EventLog()
-    log.add([(800, 0.8, "scenario_step", f"{plan.steps[0]}: at 0.8 s"),
-             (800, 0.8, "phase", "surge")])
+    log.add([EventRow(800, 0.8, "scenario_step", f"{plan.steps[0]}: at 0.8 s", plan.steps[0]),
+             EventRow(800, 0.8, "phase", "surge", "surge")])
     lines = progress_lines(plan, log)
     assert lines[0] == f"scenario belt_sensor_stuck: 1 of {len(plan.steps)} steps fired"
     assert lines[1] == "  done  step 1 (steps[0]) at 0.800 s"    # unnamed: counted, with its key

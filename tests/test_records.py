@@ -75,7 +75,8 @@ def test_hdf5_holds_every_tick_bit_for_bit(tmp_path: Path) -> None:
         assert set(f["ticks"]) >= {"time", "timing", "inputs", "outputs", "states", "link",
                                    "references"}
         events = f["events"][()]
-        assert events.dtype.names == ("tick", "time", "kind", "detail", "source")
+        assert events.dtype.names == ("tick", "time", "kind", "detail", "source", "name",
+                                      "window")
         assert events["kind"][-1].decode() == "run_end" and events["tick"][-1] == 2000
         assert f["sources/rig.toml"][()].decode() == rig_path.read_text()
         assert f["sources/tank_model.py"][()].decode() == (TANK.parent /

@@ -210,6 +210,56 @@ def test_signal_pages_overlay_reference_and_shade_faults(belt_run: Path,
     matplotlib.image.imsave(belt_report["pngs"] / "look-signals.png", image)
 
 
+def test_fault_windows_and_trips_come_from_the_event_fields(belt_run: Path,
+                                                           tmp_path: Path) -> None:
+    """The plots take each window's name and kind and each trip's interlock from the
+    events' name and window fields, whatever the detail says; a record written before
+    those fields existed gets them from its text in one place (current_event_fields)."""
+    import shutil
+
+    import h5py
+
+    from plantrig._plots import context, windows_from_events
+    from plantrig.sim.records._reader import current_event_fields
+
+    record = read_run(belt_run)
+    ctx = context(record)
+    # the scenario's load surge is a disturbance (0.8 s for 2.5 s), its stuck sensor a
+    # fault cleared 0.5 s after the trip (configs/rehearsals/belt_sensor_stuck.toml)
+    trip = next(e["time"] for e in record.events if e["kind"] == "trip")
+    assert [(w.name, w.kind, w.start, w.end) for w in ctx.windows] == [
+        ("load_surge", "disturbance", 0.8, pytest.approx(3.3)),
+        ("stuck_sensor", "fault", 1.2, pytest.approx(trip + 0.5))]
+    assert [(t.name, t.time) for t in ctx.trips] == [("belt_overspeed", trip)]
+    reworded = [{**e, "detail": "worded otherwise: fault on nothing"} for e in record.events]
+    assert [(w.name, w.kind, w.start, w.end) for w in windows_from_events(reworded, 4.0)] \
+        == [(w.name, w.kind, w.start, w.end) for w in windows_from_events(record.events, 4.0)]
+    # the same events as an older record holds them (no name, no window): the one
+    # fallback gives back every field the engine set today, from the engine's wording
+    old = [{k: v for k, v in e.items() if k not in ("name", "window")} for e in record.events]
+    assert old != record.events and [current_event_fields(e) for e in old] == record.events
+    # ... and read_run gives them so from a folder whose run.h5 and events.jsonl lack them
+    folder = tmp_path / "old"
+    shutil.copytree(belt_run, folder)
+    (folder / "events.jsonl").write_text("".join(json.dumps(e) + "\n" for e in old))
+    with h5py.File(folder / "run.h5", "r+") as f:
+        table = f["events"][()]
+        del f["events"]
+        f.create_dataset("events", data=table[["tick", "time", "kind", "detail", "source"]])
+    assert read_run(folder).events == record.events
+    # a fault named by the engine's default "<kind>:<target>" keeps its colon, and an
+    # event that names nothing gets no name
+    assert current_event_fields({"tick": 5, "time": 0.5, "kind": "fault_injected", "detail":
+                                 "disturbance:belt_load: disturbance on belt_load (value=1), "
+                                 "until cleared"}) == {
+        "tick": 5, "time": 0.5, "kind": "fault_injected", "detail": "disturbance:belt_load: "
+        "disturbance on belt_load (value=1), until cleared", "name": "disturbance:belt_load",
+        "window": "disturbance"}
+    assert current_event_fields({"tick": 1, "time": 0.1, "kind": "reset_refused",
+                                 "detail": "nothing is latched"}) == {
+        "tick": 1, "time": 0.1, "kind": "reset_refused", "detail": "nothing is latched"}
+
+
 def test_tank_rehearsal_report_reads_the_ode_rig_as_data(tmp_path: Path) -> None:
     folder = run_cli(tmp_path, REHEARSALS / "tank_guarded.toml",
                      REHEARSALS / "heater_stuck_on.toml")

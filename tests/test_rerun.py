@@ -86,6 +86,23 @@ def test_every_shipped_rehearsal_reruns_bit_for_bit(tmp_path: Path, rig: str,
     assert len(links) == (2 if scenario == "link_lost" else 0)
 
 
+def test_operator_commands_are_read_from_the_event_names() -> None:
+    """A reset and a phase are replayed for the name their event carries, whatever its
+    detail says; a refused reset of no interlock replays as a reset of every latch."""
+    from plantrig.sim import Command
+    from plantrig.sim.records._rerun import operator_commands
+
+    events = [{"tick": 10, "time": 0.01, "kind": "estop", "detail": "pressed", "name": "estop"},
+              {"tick": 20, "time": 0.02, "kind": "reset", "detail": "released at last",
+               "name": "belt_overspeed"},
+              {"tick": 30, "time": 0.03, "kind": "reset_refused", "detail": "x: nothing"},
+              {"tick": 40, "time": 0.04, "kind": "phase", "detail": "a moment",
+               "name": "surge"}]
+    assert operator_commands(events) == [
+        (10, Command("estop")), (20, Command("reset", {"interlock": "belt_overspeed"})),
+        (30, Command("reset")), (40, Command("mark_phase", {"name": "surge"}))]
+
+
 def test_model_module_from_a_folder_needs_trust(tmp_path: Path,
                                                 capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["run", str(CONFIGS / "tank.toml"), "--fast", "--duration", "1", "--out",

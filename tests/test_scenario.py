@@ -4,6 +4,7 @@ the demo rehearsals."""
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import subprocess
 import sys
@@ -218,3 +219,6 @@ def test_demo_rehearsals_pass_and_repeat_exactly(rig_name: str, scenario_name: s
     verdicts = evaluate(sc, a.columns, a.units, a.rows, a.outcome.events, rig.tick)
     assert verdicts and all(v.passed for v in verdicts), [v for v in verdicts if not v.passed]
     assert any(e.kind == "trip" for e in a.outcome.events)
+    # verdicts read the events' names (fault, interlock, phase, step), never their wording
+    reworded = [dataclasses.replace(e, detail="worded otherwise: x") for e in a.outcome.events]
+    assert evaluate(sc, a.columns, a.units, a.rows, reworded, rig.tick) == verdicts

@@ -19,15 +19,21 @@ Vector = NDArray[np.float64]
 
 
 REHEARSED = "rehearsed"   # Event.source of what a fault injection made happen
+WINDOW_FAULT, WINDOW_DISTURBANCE = "fault", "disturbance"   # Event.window's values
+OPTIONAL_EVENT_FIELDS = ("source", "name", "window")   # recorded only when set
 
 
 @dataclass(frozen=True, slots=True)
 class Event:
     """Something worth a line in the run record: a trip, a bad frame, a link loss.
 
-    ``source`` says where it came from when logic must tell ("rehearsed" for a link
-    fault a scenario or the operator injected, "" for the real thing); safety reads
-    it, never the wording of ``detail``.
+    ``detail`` is for people; logic reads the fields, never its wording. ``source``
+    says where it came from when logic must tell ("rehearsed" for a link fault a
+    scenario or the operator injected, "" for the real thing). ``name`` is what the
+    event is about: the fault, interlock (``estop`` for the E-stop), limit, scenario
+    step, phase, reference, acceptance rule or refused command (docs/records.md,
+    "Events"). ``window`` is set on ``fault_injected`` only: the kind of window the
+    fault opens on the plots, ``fault`` or ``disturbance``.
     """
 
     tick: int
@@ -35,14 +41,25 @@ class Event:
     kind: str
     detail: str = ""
     source: str = ""
+    name: str = ""
+    window: str = ""
 
     def record(self) -> dict[str, Any]:
-        """The event as events.jsonl holds it (source only when there is one)."""
+        """The event as events.jsonl holds it (source, name and window only when set)."""
         line: dict[str, Any] = {"tick": self.tick, "time": self.time, "kind": self.kind,
                                 "detail": self.detail}
-        if self.source:
-            line["source"] = self.source
+        for key in OPTIONAL_EVENT_FIELDS:
+            if getattr(self, key):
+                line[key] = getattr(self, key)
         return line
+
+
+class EmitEvent(Protocol):
+    """How safety, faults and the scenario record an event (the engine's ``_event``)."""
+
+    def __call__(self, tick: int, kind: str, detail: str = "", source: str = "", *,
+                 name: str = "", window: str = "") -> None:
+        ...
 
 
 class SignalChain(Protocol):

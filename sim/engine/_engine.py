@@ -259,14 +259,16 @@ class Engine:
             self.stop_why = why
         self.stop_requested = True
 
-    def _event(self, tick: int, kind: str, detail: str = "", source: str = "") -> None:
-        self._record_event(Event(tick, tick * self.rig.tick, kind, detail, source))
+    def _event(self, tick: int, kind: str, detail: str = "", source: str = "", *,
+               name: str = "", window: str = "") -> None:
+        self._record_event(Event(tick, tick * self.rig.tick, kind, detail, source, name,
+                                 window))
 
     def _record_event(self, event: Event) -> None:
         self.events.append(event)
         if self.event_tape is not None:
             self.event_tape.append(event.tick, event.time, event.kind, event.detail,
-                                   event.source)
+                                   event.source, event.name, event.window)
         self.safety.on_event(event)        # a link loss may trip an interlock
         if self.scenario is not None:
             self.scenario.on_event(event)  # trips and phases may arm scenario steps
@@ -307,14 +309,16 @@ class Engine:
             if name in self.ref_names and math.isfinite(value):
                 self.ref_override[self.ref_names.index(name)] = value
                 self.any_override = True
-                self._event(k, "reference_set", f"{name} = {value:g}")
+                self._event(k, "reference_set", f"{name} = {value:g}", name=name)
             else:
                 self._event(k, "command_refused", f"set_reference {a!r}: unknown name or "
-                                                  "non-finite value")
+                                                  "non-finite value", name=command.kind)
         elif command.kind == "mark_phase":
-            self._event(k, "phase", str(a.get("name", "")))
+            phase = str(a.get("name", ""))
+            self._event(k, "phase", phase, name=phase)
         else:
-            self._event(k, "command_refused", f"{command.kind}: not available in this run")
+            self._event(k, "command_refused", f"{command.kind}: not available in this run",
+                        name=command.kind)
 
     def run(self) -> RunOutcome:
         """Run every tick; whatever happens, end the tape and return the outcome.
@@ -607,7 +611,7 @@ class Engine:
             for rule in outcome.rules if ended == COMPLETED else ():  # they decide it
                 if rule.passed is False:
                     self._event(done, "rule_failed", f"{rule.rule}: {rule.measured} "
-                                                     f"(needs {rule.needed})")
+                                                     f"(needs {rule.needed})", name=rule.rule)
             ended, reason = outcome.ended, outcome.reason
             if self._told is not None:
                 self._link_state(done, "fault" if ended == FAULT else "ended", ended)

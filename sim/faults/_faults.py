@@ -40,7 +40,12 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim.config._checker import did_you_mean
-from plantrig.sim.engine._contracts import REHEARSED
+from plantrig.sim.engine._contracts import (
+    REHEARSED,
+    WINDOW_DISTURBANCE,
+    WINDOW_FAULT,
+    EmitEvent,
+)
 from plantrig.sim.engine._watchdog import silent_ticks_allowed
 from plantrig.sim.model._plant import OdePlant
 
@@ -363,11 +368,11 @@ class Faults:
 
     The engine asks ``on`` (any fault active at all) and the per-place flags before it
     calls anything, so a run without faults pays a handful of attribute reads per tick.
-    ``emit(tick, kind, detail)`` records an event.
+    ``emit(tick, kind, detail, name=..., window=...)`` records an event.
     """
 
     def __init__(self, rig: Rig, stepper: Stepper, columns: list[str], row: Vector,
-                 emit: Callable[..., None], has_link: bool) -> None:
+                 emit: EmitEvent, has_link: bool) -> None:
         self.rig = rig
         self.tick = rig.tick
         self.stepper = stepper
@@ -407,7 +412,7 @@ class Faults:
         spec, problems = parse_fault(args, self.rig)
         if spec is None:
             self.emit(k, "command_refused", "inject_fault: " + "; ".join(
-                f"{key}: {msg}" for key, msg in problems))
+                f"{key}: {msg}" for key, msg in problems), name="inject_fault")
             return
         self.start(k, spec)
 
@@ -419,7 +424,8 @@ class Faults:
         f = _Active(spec, info.group, spec.target if info.group == "link" else "", k, end)
         if spec.kind in ("sensor_noise", "link_drop", "link_corrupt"):
             f.rng = np.random.default_rng([self.rig.seed, int(spec.params["seed"]), k])
-        self.emit(k, "fault_injected", f"{spec.name}: {spec.describe()}")
+        self.emit(k, "fault_injected", f"{spec.name}: {spec.describe()}", name=spec.name,
+                  window=WINDOW_DISTURBANCE if info.group == "disturbance" else WINDOW_FAULT)
         if info.group == "sensor":
             f.apply = self._sensor_fn(f, k)
         elif info.group == "actuator":
@@ -443,7 +449,8 @@ class Faults:
         if not chosen:
             what = ", ".join(f"{k_}={v}" for k_, v in (("name", name), ("kind", kind),
                                                        ("target", target)) if v) or "any"
-            self.emit(k, "command_refused", f"clear_fault: no active fault matches {what}")
+            self.emit(k, "command_refused", f"clear_fault: no active fault matches {what}",
+                      name="clear_fault")
             return
         for n in chosen:
             self._end(k, n, "cleared by command")
@@ -456,7 +463,7 @@ class Faults:
     def _end(self, k: int, name: str, why: str) -> None:
         f = next(f for f in self.active if f.spec.name == name)
         self.active.remove(f)
-        self.emit(k, "fault_cleared", f"{name}: {why}")
+        self.emit(k, "fault_cleared", f"{name}: {why}", name=name)
         if f.group == "disturbance":
             j = [d.name for d in self.dist].index(f.spec.target)
             self._set_disturbance(j, 0.0)

@@ -34,6 +34,7 @@ from numpy.typing import NDArray
 
 from plantrig.sim.config._checker import RigFileError, RigIssue, describe_value
 from plantrig.sim.records._envelope import minmax_bands
+from plantrig.sim.records._reader import current_event_fields
 from plantrig.sim.records._records import read_events
 
 SIGNAL_PREFIXES = ("ref", "cmd", "sent", "y", "x", "u", "d", "limit", "trip")
@@ -173,7 +174,7 @@ class RunColumns:
         self.n = int(self.summary.get("ticks_recorded", 0))
         if not self.h5.is_file() and not (self.folder / "ticks.npy").is_file():
             raise NotComparable(f"{self.folder}: no tick data (run.h5 or ticks.npy)")
-        self.events = read_events(self.folder / "events.jsonl")
+        self.events = [current_event_fields(e) for e in read_events(self.folder / "events.jsonl")]
         self._file: Any = None          # run.h5, open while the comparison reads it
 
     def close(self) -> None:
@@ -380,13 +381,9 @@ def _deviation(column: str, unit: str, parts: _AlignedParts, t_step: float,
 
 
 def _event_key(ev: dict[str, Any]) -> tuple[str, str]:
-    """(kind, what): what names the interlock, fault or phase (text before ':')."""
-    detail = str(ev.get("detail", ""))
-    what = detail.split(":", 1)[0].strip() if ev["kind"] != "run_end" else ""
-    if ev["kind"] in ("link_lost", "link_restored", "error", "non_finite_state",
-                      "non_finite_input"):
-        what = ""
-    return str(ev["kind"]), what
+    """(kind, name): the interlock, fault, phase, step or rule the event is about, ""
+    for an event that names nothing (a link loss, an operator stop, the run's end)."""
+    return str(ev["kind"]), str(ev.get("name", ""))
 
 
 def pair_events(a: list[dict[str, Any]], b: list[dict[str, Any]],

@@ -15,7 +15,9 @@ Layout::
                            attrs column, index, unit, description, min, max (NaN where
                            the rig gives no bound)
     /events              compound (tick int64, time float64, kind str, detail str,
-                         source str: "rehearsed" for a fault's doing, else "")
+                         source str: "rehearsed" for a fault's doing, else ""; name str:
+                         what the event is about; window str: "fault" or "disturbance"
+                         on fault_injected; an empty string where a field is not set)
     /sources/<file>      text of the rig file, model module, scenario file
 
 Groups by column prefix: see GROUPS. h5py is an optional dependency, imported here only.
@@ -32,6 +34,8 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+
+from plantrig.sim.engine._contracts import OPTIONAL_EVENT_FIELDS
 
 FORMAT = "plantrig run record"
 FORMAT_VERSION = 1
@@ -112,11 +116,12 @@ def write_run_h5(path: Path, blocks: Iterable[NDArray[np.float64]],
                 done = end
             text = h5py.string_dtype()
             dtype = np.dtype([("tick", np.int64), ("time", np.float64), ("kind", text),
-                              ("detail", text), ("source", text)])
+                              ("detail", text), *((key, text) for key in OPTIONAL_EVENT_FIELDS)])
             table = np.empty(len(events), dtype=dtype)
             for i, ev in enumerate(events):
                 table[i] = (int(ev["tick"]), float(ev["time"]), str(ev["kind"]),
-                            str(ev.get("detail", "")), str(ev.get("source", "")))
+                            str(ev.get("detail", "")),
+                            *(str(ev.get(key, "")) for key in OPTIONAL_EVENT_FIELDS))
             f.create_dataset("events", data=table)
             src = f.create_group("sources")
             for name, body in sources.items():
@@ -173,10 +178,13 @@ def read_run_h5(path: Path, columns: list[str] | None = None,
         table = f["events"][()]
         events = [{"tick": int(e["tick"]), "time": float(e["time"]),
                    "kind": _text(e["kind"]), "detail": _text(e["detail"])} for e in table]
-        if table.dtype.names and "source" in table.dtype.names:   # older records have none
-            for event, row in zip(events, table, strict=True):
-                if _text(row["source"]):
-                    event["source"] = _text(row["source"])
+        # as events.jsonl holds them: each optional field only where set (older records
+        # lack some of the fields altogether)
+        for key in OPTIONAL_EVENT_FIELDS:
+            if table.dtype.names and key in table.dtype.names:
+                for event, row in zip(events, table, strict=True):
+                    if _text(row[key]):
+                        event[key] = _text(row[key])
         sources = {name: _text(ds[()]) for name, ds in f["sources"].items()}
         attrs: dict[str, Any] = {}
         for key, value in f.attrs.items():

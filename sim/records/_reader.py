@@ -4,7 +4,8 @@ One reader for every state a folder can be in: finished (``run.h5``, or ``ticks.
 where h5py is not installed), or crashed and not yet recovered (``ticks.journal`` with
 ``run_start.json`` or ``columns.json``; a torn last row is dropped). A folder written
 before a link health counter was renamed is read under today's names (docs/protocol.md
-section 5, "Older run folders"), so every reader sees one vocabulary.
+section 5, "Older run folders"), and its events get the name and window fields today's
+records carry (``current_event_fields``), so every reader sees one vocabulary.
 """
 
 from __future__ import annotations
@@ -18,7 +19,9 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim.engine._contracts import WINDOW_DISTURBANCE, WINDOW_FAULT
 from plantrig.sim.records._records import RUN_START, read_events
+from plantrig.sim.safety._interlocks import ESTOP
 
 # MQTT link health as recorded before the counters took their names of docs/protocol.md
 # section 5 (2 and 3 December 2026). Such a record is known by watchdog_lost, which the
@@ -49,6 +52,40 @@ def current_link_names(summary: dict[str, Any]) -> dict[str, Any]:
             now[new] = now.get(new, 0.0) + value
     now["dropped_out"] = now.get("dropped_out", 0.0) + now.get("dropped_offline", 0.0)
     return {**summary, "link": now}
+
+
+# Events recorded before they carried a name and a window (3 December 2026) said the
+# name only at the head of their detail, as "<name>: ..." for these kinds.
+NAMED_IN_DETAIL = ("fault_injected", "fault_cleared", "trip", "reset", "reset_refused",
+                   "limit_warn", "scenario_step", "expect", "rule_failed")
+
+
+def current_event_fields(event: dict[str, Any]) -> dict[str, Any]:
+    """``event`` with the ``name`` and ``window`` fields today's records carry.
+
+    The one place a name or window is taken from an event's text: an event recorded
+    before those fields existed gets them from the detail the engine then wrote,
+    "<name>: ..." (the name is what comes before the first ": "), a phase's detail
+    being its name and the E-stop's name "estop"; a ``fault_injected`` of a disturbance
+    said "<name>: disturbance on ...". An event that has a name already, or is of a
+    kind that names nothing, is returned as it is.
+    """
+    kind, detail = event.get("kind"), str(event.get("detail", ""))
+    if "name" in event:
+        return event
+    if kind == "phase":
+        name, rest = detail, ""
+    elif kind == "estop":
+        name, rest = ESTOP, ""
+    elif kind in NAMED_IN_DETAIL and ": " in detail:
+        name, _, rest = detail.partition(": ")
+    else:
+        return event
+    now = {**event, "name": name} if name else dict(event)
+    if kind == "fault_injected" and "window" not in event:
+        now["window"] = WINDOW_DISTURBANCE if rest.startswith(WINDOW_DISTURBANCE + " ") \
+            else WINDOW_FAULT
+    return now
 
 
 @dataclass
@@ -105,7 +142,8 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
         from plantrig.sim.records._hdf5 import read_run_h5
 
         d = read_run_h5(h5, columns, ticks, ticks_only=ticks_only)
-        return RunRecord(folder, d["columns"], d["units"], d["rows"], d["events"],
+        return RunRecord(folder, d["columns"], d["units"], d["rows"],
+                         [current_event_fields(e) for e in d["events"]],
                          summary or current_link_names(d["attrs"].get("summary", {})),
                          d["info"], "run.h5", d["length"])
     info = start.get("columns") or []
@@ -118,7 +156,8 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
     else:
         raise FileNotFoundError(f"{folder}: not a plantrig run folder (no run.h5, "
                                 f"{RUN_START} or columns.json)")
-    events = [] if ticks_only else read_events(folder / "events.jsonl")
+    events = [] if ticks_only else [current_event_fields(e)
+                                    for e in read_events(folder / "events.jsonl")]
     n = len(every)
     if (folder / "ticks.npy").exists():
         table = np.load(folder / "ticks.npy", mmap_mode="r").view(np.float64).reshape(-1, n)

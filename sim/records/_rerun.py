@@ -132,7 +132,8 @@ def _events(record: RunRecord) -> list[dict[str, Any]]:
 
 def operator_commands(events: list[dict[str, Any]]) -> list[tuple[int, Command]]:
     """Operator commands recorded by their events (those a scenario step did not issue:
-    a scenario's commands follow its scenario_step event in the same tick)."""
+    a scenario's commands follow its scenario_step event in the same tick); ``events``
+    as sim.read_run gives them, each with its name where it has one."""
     scenario_ticks = {int(e["tick"]) for e in events if e["kind"] == "scenario_step"}
     out: list[tuple[int, Command]] = []
     for e in events:
@@ -149,11 +150,10 @@ def operator_commands(events: list[dict[str, Any]]) -> list[tuple[int, Command]]
         elif kind == "estop":
             out.append((k, Command("estop")))
         elif kind in ("reset", "reset_refused"):
-            name = detail.split(":", 1)[0].strip()
-            known = kind == "reset" or name not in ("nothing is latched", "")
-            out.append((k, Command("reset", {"interlock": name} if known else {})))
+            name = str(e.get("name", ""))    # none: a reset of every latch
+            out.append((k, Command("reset", {"interlock": name} if name else {})))
         elif kind == "phase":
-            out.append((k, Command("mark_phase", {"name": detail})))
+            out.append((k, Command("mark_phase", {"name": str(e.get("name", ""))})))
     return out
 
 

@@ -245,12 +245,12 @@ class TapeReader:
         self._map._mmap.close()  # type: ignore[attr-defined]
 
 
-EVENT_VERSION = 3
+EVENT_VERSION = 4
 EVENT_HEADER_WORDS = HEADER_WORDS + 2
 W_HEAP_SIZE, W_HEAP_WRITTEN = HEADER_WORDS, HEADER_WORDS + 1
 EVENT_DTYPE = np.dtype([("seq", np.int64), ("tick", np.int64), ("time", np.float64),
-                        ("kind", "S32"), ("source", "S16"), ("at", np.int64),
-                        ("size", np.int64)])
+                        ("kind", "S32"), ("source", "S16"), ("window", "S16"),
+                        ("at", np.int64), ("size", np.int64), ("name_size", np.int64)])
 HEAP_BYTES = 1 << 20
 
 
@@ -266,14 +266,17 @@ class EventTape:
 
     Layout: the tick tape's eight header words (written counts rows), two more words
     (heap size, heap bytes written so far), ``capacity`` fixed-size rows (seq, tick,
-    time, kind, at, size), then the heap: a byte ring of ``heap_bytes`` that holds each
-    detail as UTF-8 at byte position ``at`` (modulo its size). A fixed-size field would
-    cut long details (a model error's traceback); the heap keeps them up to a quarter of
-    its size, and a longer one is cut with a marker that says so. The writer claims heap
-    bytes (advances the heap count) before it overwrites them, so a reader that finds the
-    count more than a heap ahead of a detail after copying it knows the copy is torn and
-    says so in place of the text. Readers (recorder, dashboard) see trips, bad frames and
-    operator actions while the run goes on; a crash keeps what the recorder has drained.
+    time, kind, source, window, at, size, name_size), then the heap: a byte ring of
+    ``heap_bytes`` that holds each event's name and then its detail as UTF-8 from byte
+    position ``at`` (modulo its size; ``size`` bytes in all, the first ``name_size`` of
+    them the name). A fixed-size field would cut long details (a model error's
+    traceback) and long names (an operator's phase label); the heap keeps name and
+    detail together up to a quarter of its size, and a longer one is cut with a marker
+    that says so. The writer claims heap bytes (advances the heap count) before it
+    overwrites them, so a reader that finds the count more than a heap ahead of an
+    event's bytes after copying them knows the copy is torn and says so in place of the
+    detail. Readers (recorder, dashboard) see trips, bad frames and operator actions
+    while the run goes on; a crash keeps what the recorder has drained.
     """
 
     def __init__(self, path: Path, capacity: int = 4096, create: bool = True,
@@ -309,12 +312,16 @@ class EventTape:
         self.next_seq = 0
 
     def append(self, tick: int, time_s: float, kind: str, detail: str,
-               source: str = "") -> None:
-        """One event; ``source`` is Event.source ("rehearsed" for an injected fault's
-        doing), recorded so readers never parse ``detail`` to tell."""
+               source: str = "", name: str = "", window: str = "") -> None:
+        """One event; ``source``, ``name`` and ``window`` are Event's fields of those
+        names (sim/engine/_contracts.py), recorded so readers never parse ``detail``."""
+        label = name.encode("utf-8", "replace")
+        if len(label) > self.max_detail // 2:
+            label = _cut(label, self.max_detail // 2 - 120)  # room for the marker
         data = detail.encode("utf-8", "replace")
-        if len(data) > self.max_detail:
-            data = _cut(data, self.max_detail - 120)  # room for the marker
+        if len(label) + len(data) > self.max_detail:
+            data = _cut(data, self.max_detail - len(label) - 120)
+        data = label + data
         n = int(self.header[W_WRITTEN])
         at = int(self.header[W_HEAP_WRITTEN])
         slot = self.rows[n % self.capacity]
@@ -329,34 +336,43 @@ class EventTape:
         slot["time"] = time_s
         slot["kind"] = kind.encode("utf-8", "replace")[:32]
         slot["source"] = source.encode("utf-8", "replace")[:16]
+        slot["window"] = window.encode("utf-8", "replace")[:16]
         slot["at"] = at
         slot["size"] = len(data)
+        slot["name_size"] = len(label)
         slot["seq"] = n
         self.header[W_WRITTEN] = n + 1
 
-    def _detail(self, at: int, size: int) -> str:
+    def _texts(self, at: int, size: int, name_size: int) -> tuple[str, str]:
+        """(name, detail) from the heap; a torn copy gives a marker as the detail."""
         start = at % self.heap_bytes
         first = min(size, self.heap_bytes - start)
         data = self.heap[start:start + first].tobytes() + self.heap[:size - first].tobytes()
         if int(self.header[W_HEAP_WRITTEN]) - at > self.heap_bytes:
-            return (f"[detail of {size} bytes overwritten before it was read: the event "
-                    "heap is full of newer details]")
-        return data.decode("utf-8", "replace")
+            return "", (f"[detail of {size - name_size} bytes overwritten before it was "
+                        "read: the event heap is full of newer details]")
+        return (data[:name_size].decode("utf-8", "replace"),
+                data[name_size:].decode("utf-8", "replace"))
 
     def read_new(self) -> list[dict[str, Any]]:
         """Events since the last call, as events.jsonl holds them: tick, time, kind,
-        detail, and source when there is one."""
+        detail, and source, name and window when set."""
         written = int(self.header[W_WRITTEN])
         self.next_seq = max(self.next_seq, written - self.capacity)
         out = []
         while self.next_seq < written:
             slot = self.rows[self.next_seq % self.capacity].copy()
             if int(slot["seq"]) == self.next_seq:
-                event = {"tick": int(slot["tick"]), "time": float(slot["time"]),
-                         "kind": slot["kind"].decode("utf-8", "replace"),
-                         "detail": self._detail(int(slot["at"]), int(slot["size"]))}
-                if slot["source"]:
-                    event["source"] = slot["source"].decode("utf-8", "replace")
+                name, detail = self._texts(int(slot["at"]), int(slot["size"]),
+                                           int(slot["name_size"]))
+                event: dict[str, Any] = {"tick": int(slot["tick"]), "time": float(slot["time"]),
+                                         "kind": slot["kind"].decode("utf-8", "replace"),
+                                         "detail": detail}
+                for key, value in (("source", slot["source"].decode("utf-8", "replace")),
+                                   ("name", name),
+                                   ("window", slot["window"].decode("utf-8", "replace"))):
+                    if value:
+                        event[key] = value
                 out.append(event)
             self.next_seq += 1
         return out

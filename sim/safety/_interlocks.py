@@ -24,7 +24,6 @@ safety function for real equipment (docs/safety.md).
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -32,7 +31,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from plantrig.sim.config._checker import did_you_mean, not_one_of, one_of
-from plantrig.sim.engine._contracts import REHEARSED, Event
+from plantrig.sim.engine._contracts import REHEARSED, EmitEvent, Event
 from plantrig.sim.safety._limits import LimitBank, LimitSpec
 
 if TYPE_CHECKING:
@@ -163,14 +162,14 @@ class Safety:
     The engine asks three cheap questions every tick: ``checking`` (are there limits to
     check), ``forcing`` (must inputs be forced to safe values) and ``freezing``; all the
     work happens only when a limit is near, a cause appears or an operator acts.
-    ``emit(tick, kind, detail)`` records an event.
+    ``emit(tick, kind, detail, name=...)`` records an event.
     """
 
     def __init__(self, specs: tuple[InterlockSpec, ...] | list[InterlockSpec],
                  limits: tuple[LimitSpec, ...] | list[LimitSpec], settings: SafetySettings,
                  input_names: list[str], safe_u: NDArray[np.float64], columns: list[str],
                  row: NDArray[np.float64], tick: float,
-                 emit: Callable[[int, str, str], None]) -> None:
+                 emit: EmitEvent) -> None:
         self.specs = [ESTOP_SPEC, *specs]
         self.settings = settings
         self.tick = tick
@@ -259,11 +258,11 @@ class Safety:
             if name not in names:
                 hint = did_you_mean(str(name), names)
                 self.emit(k, "reset_refused", f"{name}: no such interlock "
-                                              f"({', '.join(names)}){hint}")
+                                              f"({', '.join(names)}){hint}", name=str(name))
                 return
             chosen = [names.index(name)]
             if not self.latched[chosen[0]]:
-                self.emit(k, "reset_refused", f"{name}: not tripped")
+                self.emit(k, "reset_refused", f"{name}: not tripped", name=name)
                 return
         else:
             chosen = [i for i, on in enumerate(self.latched) if on]
@@ -277,12 +276,13 @@ class Safety:
             present = [c for c in spec.on if c in self.active]
             if present:
                 why = "; ".join(f"{cause_words(c)}: {self.active[c]}" for c in present)
-                self.emit(k, "reset_refused", f"{spec.name}: cause still present: {why}")
+                self.emit(k, "reset_refused", f"{spec.name}: cause still present: {why}",
+                          name=spec.name)
                 continue
             self.latched[i] = False
             self._update()
             self.emit(k, "reset", f"{spec.name}: " + (
-                f"E-stop released by {by}" if i == 0 else f"reset by {by}"))
+                f"E-stop released by {by}" if i == 0 else f"reset by {by}"), name=spec.name)
 
     # -- internals -------------------------------------------------------------------
     def _latch(self, k: int, i: int, cause: str, why: str) -> None:
@@ -291,11 +291,13 @@ class Safety:
         self.trips.append((k, spec.name))
         self._update()
         if i == 0:
-            self.emit(k, "estop", "operator E-stop: inputs forced to safe values")
+            self.emit(k, "estop", "operator E-stop: inputs forced to safe values",
+                      name=spec.name)
             return
         action = {"safe_inputs": "inputs to safe values", "freeze": "inputs to safe values, "
                   "plant frozen", "stop": "inputs to safe values, run stops"}[spec.action]
-        self.emit(k, "trip", f"{spec.name}: {cause_words(cause)}: {why}; {action}")
+        self.emit(k, "trip", f"{spec.name}: {cause_words(cause)}: {why}; {action}",
+                  name=spec.name)
         if spec.action == "stop" and not self.stop_reason:
             self.stop_reason = f"interlock {spec.name!r} tripped ({cause_words(cause)})"
 
@@ -316,12 +318,13 @@ class Safety:
         if shown < WARN_EVENTS:
             more = "; further warnings of this limit are counted only" \
                 if shown == WARN_EVENTS - 1 else ""
-            self.emit(k, "limit_warn", f"{spec.name}: {spec.explain(value, rate)}{more}")
+            self.emit(k, "limit_warn", f"{spec.name}: {spec.explain(value, rate)}{more}",
+                      name=spec.name)
 
     def finish(self, k: int) -> None:
         """At the end of a run: how many warnings each limit gave beyond the itemised ones."""
         for name, count in self.warnings_shown.items():
             if count > WARN_EVENTS:
                 self.emit(k, "limit_warn", f"{name}: {count} warnings in all, the first "
-                                           f"{WARN_EVENTS} itemised")
+                                           f"{WARN_EVENTS} itemised", name=name)
 

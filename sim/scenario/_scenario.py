@@ -43,7 +43,7 @@ from plantrig.sim.config._checker import (
 )
 from plantrig.sim.config._rigfile import Rig
 from plantrig.sim.engine._commands import Command
-from plantrig.sim.engine._contracts import Event
+from plantrig.sim.engine._contracts import EmitEvent, Event
 from plantrig.sim.faults._faults import parse_fault
 from plantrig.sim.safety._interlocks import ESTOP
 from plantrig.sim.scenario._verdicts import VerdictSpec, parse_verdicts
@@ -319,7 +319,7 @@ class ScenarioRunner:
     """
 
     def __init__(self, scenario: Scenario, columns: list[str], tick: float,
-                 emit: Callable[[int, str, str], None]) -> None:
+                 emit: EmitEvent) -> None:
         self.scenario = scenario
         self.tick = tick
         self.emit = emit
@@ -352,7 +352,8 @@ class ScenarioRunner:
         for i in sorted(i for i, when in self._due.items() if when <= k):
             step = self.scenario.steps[i]
             del self._due[i]
-            self.emit(k, "scenario_step", f"{step.label}: {_trigger_text(step)}")
+            self.emit(k, "scenario_step", f"{step.label}: {_trigger_text(step)}",
+                      name=step.label)
             out.extend(step.commands)
             if step.expect is not None:
                 self._expects.append(i)
@@ -366,8 +367,9 @@ class ScenarioRunner:
             assert cond is not None
             value = float(row[cond.index])
             verdict = "passed" if cond.holds(row) else "failed"
-            self.emit(k, "expect", f"{self.scenario.steps[i].label}: {verdict}: {cond} "
-                                   f"(found {value:.6g})")
+            label = self.scenario.steps[i].label
+            self.emit(k, "expect", f"{label}: {verdict}: {cond} (found {value:.6g})",
+                      name=label)
         self._expects.clear()
         for i in list(self._waiting):
             cond = self.scenario.steps[i].when
@@ -380,10 +382,9 @@ class ScenarioRunner:
     def on_event(self, event: Event) -> None:
         """Trips and phases arm the steps waiting for them."""
         if event.kind == "phase":
-            waiting = self._on_phase.pop(event.detail, [])
+            waiting = self._on_phase.pop(event.name, [])
         elif event.kind in ("trip", "estop"):
-            name = ESTOP if event.kind == "estop" else event.detail.split(":", 1)[0]
-            waiting = self._on_trip.pop(name, [])
+            waiting = self._on_trip.pop(event.name, [])
         else:
             return
         for i in waiting:

@@ -218,9 +218,10 @@ def _column(c: Checker, e: dict[str, Any], key: str, where: str, columns: list[s
 
 # -- judging a run ---------------------------------------------------------------------
 def _ev(event: Any) -> tuple[int, str, str]:
+    """(tick, kind, name) of an Event or of a record's event (sim.read_run's form)."""
     if isinstance(event, dict):
-        return int(event["tick"]), str(event["kind"]), str(event.get("detail", ""))
-    return int(event.tick), str(event.kind), str(event.detail)
+        return int(event["tick"]), str(event["kind"]), str(event.get("name", ""))
+    return int(event.tick), str(event.kind), str(event.name)
 
 
 class _Record:
@@ -242,20 +243,15 @@ class _Record:
         if bound is None:
             return default
         if isinstance(bound, str):
-            for tick, kind, detail in self.events:
-                if kind == "phase" and detail == bound:
+            for tick, kind, name in self.events:
+                if kind == "phase" and name == bound:
                     return tick * self.tick
             raise _NotMeasured(f"phase {bound!r} was never reached")
         return float(bound)
 
     def trips(self) -> list[tuple[int, str]]:
-        out = []
-        for tick, kind, detail in self.events:
-            if kind == "trip":
-                out.append((tick, detail.split(": ", 1)[0]))
-            elif kind == "estop":
-                out.append((tick, "estop"))
-        return out
+        """(tick, interlock) of every latch; the E-stop's interlock is "estop"."""
+        return [(tick, name) for tick, kind, name in self.events if kind in ("trip", "estop")]
 
 
 class _NotMeasured(Exception):
@@ -308,8 +304,8 @@ def _human(value: float, unit: str) -> str:
 def _measure(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> tuple[float, str]:
     crit = spec.criterion
     if crit == "trip_within":
-        began = next((tick for tick, kind, detail in rec.events if kind == "fault_injected"
-                      and detail.split(": ", 1)[0] == spec.fault), None)
+        began = next((tick for tick, kind, name in rec.events if kind == "fault_injected"
+                      and name == spec.fault), None)
         if began is None:
             raise _NotMeasured(f"fault {spec.fault!r} was never injected")
         trip = next((tick for tick, name in rec.trips()
@@ -372,9 +368,9 @@ def _measure(spec: VerdictSpec, rec: _Record, scenario: Scenario) -> tuple[float
 
 def _expectations(scenario: Scenario, rec: _Record) -> list[Verdict]:
     checked: dict[str, int] = {}
-    for tick, kind, detail in rec.events:
+    for tick, kind, name in rec.events:
         if kind == "expect":
-            checked.setdefault(detail.split(": ", 1)[0], tick)
+            checked.setdefault(name, tick)
     seq = rec.series("seq") if len(rec.rows) else np.zeros(0)
     out = []
     for step in scenario.steps:
