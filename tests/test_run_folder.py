@@ -17,7 +17,10 @@ import shutil
 import subprocess
 import sys
 import tomllib
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
+from typing import Any
 
 import pytest
 from test_gui import check_screenshot
@@ -48,6 +51,12 @@ PLANTRIG = str(Path(sys.executable).with_name("plantrig"))
 def plantrig(*args: str, cwd: Path) -> subprocess.CompletedProcess[str]:
     return subprocess.run([PLANTRIG, *args], cwd=cwd, capture_output=True, text=True,
                           timeout=GUARD_S)
+
+
+def at_once(*jobs: Callable[[], Any]) -> list[Any]:
+    """Run the jobs (each its commands one after another) at the same time; their results."""
+    with ThreadPoolExecutor(max_workers=len(jobs)) as pool:
+        return [f.result() for f in [pool.submit(job) for job in jobs]]
 
 
 @pytest.fixture(scope="module")
@@ -124,16 +133,18 @@ def test_folder_alone_checks_replays_reports_exports_and_verifies(received, xvfb
     assert f"{folder / 'rig.toml'}: ok" in done.stdout
 
     shot = tmp_path / "replay.png"
-    done = plantrig("replay", str(folder), "--screenshot", str(shot), cwd=elsewhere)
-    assert done.returncode == 0, done.stdout + done.stderr
+    # the replay only reads the folder: it runs beside the report and the export
+    replayed, (reported, exported) = at_once(
+        lambda: plantrig("replay", str(folder), "--screenshot", str(shot), cwd=elsewhere),
+        lambda: (plantrig("report", str(folder), cwd=elsewhere),
+                 plantrig("export", str(folder), "--csv", "--mat", cwd=elsewhere)))
+    assert replayed.returncode == 0, replayed.stdout + replayed.stderr
     regions = json.loads(shot.with_suffix(".regions.json").read_text())
     check_screenshot(shot, regions, {"plot.0": "y", "plot.2": "u"})
 
-    done = plantrig("report", str(folder), cwd=elsewhere)
-    assert done.returncode == 0, done.stdout + done.stderr
+    assert reported.returncode == 0, reported.stdout + reported.stderr
     assert made(folder, "report.html") and made(folder, "report.pdf")
-    done = plantrig("export", str(folder), "--csv", "--mat", cwd=elsewhere)
-    assert done.returncode == 0, done.stdout + done.stderr
+    assert exported.returncode == 0, exported.stdout + exported.stderr
     assert made(folder, "ticks.csv") and made(folder, "run.mat")
     done = plantrig("verify", str(folder), cwd=elsewhere)
     assert done.returncode == 0, done.stdout + done.stderr
@@ -153,35 +164,47 @@ def plant_code(folder: Path, marker: Path) -> None:
 
 def test_read_only_commands_never_import_code_from_the_folder(received, xvfb,
                                                               tmp_path):
-    folder = copy_of(received, tmp_path)
-    marker = tmp_path / "marker"
-    plant_code(folder, marker)
+    # two copies, each with its own marker, so the commands run in two lines at once and
+    # a marker still names the line that wrote it
+    folders, markers = [], []
+    for line in ("a", "b"):
+        folders.append(Path(shutil.copytree(received, tmp_path / line / received.name)))
+        markers.append(tmp_path / f"marker-{line}")
+        plant_code(folders[-1], markers[-1])
 
-    def no_marker(after: str) -> None:
-        planted = sorted(p.name for p in tmp_path.glob("marker*"))
+    def no_marker(after: str, marker: Path) -> None:
+        planted = sorted(p.name for p in tmp_path.glob(f"{marker.name}*"))
         assert planted == [], f"{after} ran code from the folder: {planted}"
 
     shot = tmp_path / "replay.png"
     key = tmp_path / "key"
     assert plantrig("keygen", "--out", str(key), cwd=tmp_path).returncode == 0
-    runs = [(("verify", str(folder)), 0),
-            (("replay", str(folder), "--screenshot", str(shot)), 0),
-            (("report", str(folder)), 0),
-            (("export", str(folder), "--csv", "--mat"), 0),
-            (("sign", str(folder), "--key", f"{key}.private.pem"), 0),
-            (("verify", str(folder), "--public-key", f"{key}.public.pem"), 0),
-            (("compare", str(folder), str(received), "--out", str(tmp_path / "cmp")), 0),
-            (("recover", str(folder)), 2)]                  # ended cleanly: nothing to do
-    for args, code in runs:              # from inside the folder too: no cwd imports
-        done = plantrig(*args, cwd=folder)
-        assert done.returncode == code, f"{args}: {done.stdout}{done.stderr}"
-        no_marker(args[0])
+
+    def run_in(folder: Path, marker: Path, runs: list[tuple[tuple[str, ...], int]]) -> None:
+        for args, code in runs:          # from inside the folder too: no cwd imports
+            done = plantrig(*args, cwd=folder)
+            assert done.returncode == code, f"{args}: {done.stdout}{done.stderr}"
+            no_marker(args[0], marker)
+
+    a, b = folders
+    at_once(lambda: run_in(a, markers[0], [
+                (("report", str(a)), 0),
+                (("recover", str(a)), 2)]),                 # ended cleanly: nothing to do
+            lambda: run_in(b, markers[1], [
+                (("verify", str(b)), 0),
+                (("replay", str(b), "--screenshot", str(shot)), 0),
+                (("export", str(b), "--csv", "--mat"), 0),
+                (("sign", str(b), "--key", f"{key}.private.pem"), 0),
+                (("verify", str(b), "--public-key", f"{key}.public.pem"), 0),
+                (("compare", str(b), str(received), "--out", str(tmp_path / "cmp")), 0)]))
     assert shot.is_file()
+    assert sorted(p.name for p in tmp_path.glob("marker*")) == []
+    folder, marker = a, markers[0]
 
     done = plantrig("check", str(folder / "rig.toml"), cwd=folder)
     assert done.returncode == 2
     assert "came with the run folder" in done.stderr and "--trust-model" in done.stderr
-    no_marker("check")
+    no_marker("check", marker)
     # the control: building the model does run its code, so the marker can appear
     done = plantrig("check", "--trust-model", str(folder / "rig.toml"), cwd=tmp_path)
     assert done.returncode == 0, done.stdout + done.stderr
