@@ -29,12 +29,14 @@ class EventRow(NamedTuple):
     kind: str
     detail: str
     name: str = ""       # the fault, interlock, step, phase ... the event is about
+    source: str = ""     # where it came from, when logic must tell (Event.source)
 
     @classmethod
     def of(cls, event: dict[str, Any]) -> EventRow:
         """From an event as the event tape and sim.read_run give it."""
         return cls(int(event["tick"]), float(event["time"]), str(event["kind"]),
-                   str(event.get("detail", "")), str(event.get("name", "")))
+                   str(event.get("detail", "")), str(event.get("name", "")),
+                   str(event.get("source", "")))
 
 
 @dataclass(frozen=True)

@@ -25,6 +25,7 @@ from typing import Any
 
 from plantrig.gui._eventlog import EventRow
 from plantrig.sim import Command
+from plantrig.sim.engine._contracts import BY_COMMAND
 
 MAX_TEXT = 120
 MOMENT_PRESETS = ("start of test step", "steady state reached", "load applied",
@@ -44,8 +45,7 @@ def answer_to(command: Command, event: EventRow) -> bool | None:
         return True if kind == "fault_injected" and \
             name == (a.get("name") or f"{a.get('kind')}:{a.get('target')}") else None
     if c == "clear_fault":
-        return True if kind == "fault_cleared" and \
-            event.detail.endswith("cleared by command") else None
+        return True if kind == "fault_cleared" and event.source == BY_COMMAND else None
     if c == "reset":
         return {"reset": True, "reset_refused": False}.get(kind)
     if c == "set_reference":

@@ -255,6 +255,11 @@ def test_fault_windows_and_trips_come_from_the_event_fields(belt_run: Path,
         "tick": 5, "time": 0.5, "kind": "fault_injected", "detail": "disturbance:belt_load: "
         "disturbance on belt_load (value=1), until cleared", "name": "disturbance:belt_load",
         "window": "disturbance"}
+    # a fault a clear_fault command ended: its source, as today's records say it
+    assert current_event_fields({"tick": 7, "time": 0.7, "kind": "fault_cleared",
+                                 "detail": "stuck: cleared by command"}) == {
+        "tick": 7, "time": 0.7, "kind": "fault_cleared", "detail": "stuck: cleared by command",
+        "name": "stuck", "source": "command"}
     assert current_event_fields({"tick": 1, "time": 0.1, "kind": "reset_refused",
                                  "detail": "nothing is latched"}) == {
         "tick": 1, "time": 0.1, "kind": "reset_refused", "detail": "nothing is latched"}

@@ -19,6 +19,7 @@ Vector = NDArray[np.float64]
 
 
 REHEARSED = "rehearsed"   # Event.source of what a fault injection made happen
+BY_COMMAND = "command"    # Event.source of a fault_cleared that a clear_fault command ended
 WINDOW_FAULT, WINDOW_DISTURBANCE = "fault", "disturbance"   # Event.window's values
 OPTIONAL_EVENT_FIELDS = ("source", "name", "window")   # recorded only when set
 
@@ -29,7 +30,8 @@ class Event:
 
     ``detail`` is for people; logic reads the fields, never its wording. ``source``
     says where it came from when logic must tell ("rehearsed" for a link fault a
-    scenario or the operator injected, "" for the real thing). ``name`` is what the
+    scenario or the operator injected, "" for the real thing; "command" for a fault a
+    clear_fault command ended, "" when its duration ran out). ``name`` is what the
     event is about: the fault, interlock (``estop`` for the E-stop), limit, scenario
     step, phase, reference, acceptance rule or refused command (docs/records.md,
     "Events"). ``window`` is set on ``fault_injected`` only: the kind of window the

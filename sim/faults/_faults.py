@@ -41,6 +41,7 @@ from numpy.typing import NDArray
 
 from plantrig.sim.config._checker import did_you_mean
 from plantrig.sim.engine._contracts import (
+    BY_COMMAND,
     REHEARSED,
     WINDOW_DISTURBANCE,
     WINDOW_FAULT,
@@ -453,17 +454,17 @@ class Faults:
                       name="clear_fault")
             return
         for n in chosen:
-            self._end(k, n, "cleared by command")
+            self._end(k, n, "cleared by command", BY_COMMAND)
 
     def expire(self, k: int) -> None:
         """End every fault whose duration ran out by tick ``k``."""
         for f in [f for f in self.active if f.end is not None and f.end <= k]:
             self._end(k, f.spec.name, "duration ended")
 
-    def _end(self, k: int, name: str, why: str) -> None:
+    def _end(self, k: int, name: str, why: str, source: str = "") -> None:
         f = next(f for f in self.active if f.spec.name == name)
         self.active.remove(f)
-        self.emit(k, "fault_cleared", f"{name}: {why}", name=name)
+        self.emit(k, "fault_cleared", f"{name}: {why}", source, name=name)
         if f.group == "disturbance":
             j = [d.name for d in self.dist].index(f.spec.target)
             self._set_disturbance(j, 0.0)

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from plantrig.sim.engine._contracts import WINDOW_DISTURBANCE, WINDOW_FAULT
+from plantrig.sim.engine._contracts import BY_COMMAND, WINDOW_DISTURBANCE, WINDOW_FAULT
 from plantrig.sim.records._records import RUN_START, read_events
 from plantrig.sim.safety._interlocks import ESTOP
 
@@ -82,6 +82,8 @@ def current_event_fields(event: dict[str, Any]) -> dict[str, Any]:
     else:
         return event
     now = {**event, "name": name} if name else dict(event)
+    if kind == "fault_cleared" and rest == "cleared by command" and "source" not in event:
+        now["source"] = BY_COMMAND
     if kind == "fault_injected" and "window" not in event:
         now["window"] = WINDOW_DISTURBANCE if rest.startswith(WINDOW_DISTURBANCE + " ") \
             else WINDOW_FAULT

@@ -42,7 +42,7 @@ from plantrig.sim.config._checker import RigFileError, RigIssue, describe_value
 from plantrig.sim.config._overrides import apply_overrides, effective_text
 from plantrig.sim.config._rigfile import Rig, build_rig
 from plantrig.sim.engine._commands import Command
-from plantrig.sim.engine._contracts import REHEARSED, Event
+from plantrig.sim.engine._contracts import BY_COMMAND, REHEARSED, Event
 from plantrig.sim.records._reader import RunRecord, read_run
 from plantrig.sim.records._secrets import redact_assignments
 
@@ -141,7 +141,7 @@ def operator_commands(events: list[dict[str, Any]]) -> list[tuple[int, Command]]
         if k in scenario_ticks:
             continue
         if kind in LOSSY_OPERATOR_EVENTS and not (
-                kind == "fault_cleared" and "cleared by command" not in detail):
+                kind == "fault_cleared" and e.get("source") != BY_COMMAND):
             raise RerunError(f"the record holds {LOSSY_OPERATOR_EVENTS[kind]} from the "
                              f"operator at {float(e['time']):g} s ({detail}); its event does "
                              "not keep every parameter, so a rerun would not be exact")
