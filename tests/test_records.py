@@ -162,8 +162,16 @@ def test_csv_and_mat_exports_read_back_equal(conveyor_run: Path, tmp_path: Path)
     assert back.tobytes() == record.rows.tobytes()        # 17 digits round-trip exactly
     with open(folder / "derived" / "events.csv", newline="") as f:
         events = list(csv.reader(f))
+    assert events[0] == ["tick", "time", "kind", "detail", "source", "name", "window"]
     assert events[-1][2] == "run_end"
+    # every field of every event, as the record holds it (empty where not set)
+    fields = ("kind", "detail", "source", "name", "window")
+    assert [row[2:] for row in events[2:]] == [[str(e.get(k, "")) for k in fields]
+                                               for e in record.events]
     mat = scipy.io.loadmat(folder / "derived" / "run.mat")
+    for k in fields:
+        column = [str(v[0]) if v.size else "" for v in mat["events"][0, 0][k].ravel()]
+        assert column == [str(e.get(k, "")) for e in record.events], k
     names = [str(n[0]) for n in mat["names"].ravel()]
     assert [str(c[0]) for c in mat["columns"].ravel()] == record.columns
     assert [str(u[0]) if u.size else "" for u in mat["units"].ravel()] == record.units

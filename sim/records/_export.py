@@ -27,6 +27,7 @@ from typing import BinaryIO
 import numpy as np
 from numpy.typing import NDArray
 
+from plantrig.sim.engine._contracts import OPTIONAL_EVENT_FIELDS
 from plantrig.sim.records._reader import column_parts, read_run
 from plantrig.sim.records._signoff import DRAFT_PREFIX
 
@@ -80,11 +81,11 @@ def export_csv(folder: Path, out_dir: Path, draft: bool = False,
             f.write("".join(line % tuple(row) for row in rows.tolist()))
     with open(events, "w", newline="", encoding="utf-8") as f:
         w = csv.writer(f)
-        w.writerow(["tick", "time", "kind", "detail"])
-        w.writerow(["", "s", "", ""])
+        w.writerow(["tick", "time", "kind", "detail", *OPTIONAL_EVENT_FIELDS])
+        w.writerow(["", "s", "", ""] + [""] * len(OPTIONAL_EVENT_FIELDS))
         for ev in head.events:
             w.writerow([ev["tick"], f"{float(ev['time']):.17g}", ev["kind"],
-                        ev.get("detail", "")])
+                        ev.get("detail", ""), *(ev.get(k, "") for k in OPTIONAL_EVENT_FIELDS)])
     return [ticks, events]
 
 
@@ -112,6 +113,8 @@ def export_mat(folder: Path, out_dir: Path, status: str, draft: bool = False,
             "time": np.array([ev["time"] for ev in events], dtype=np.float64),
             "kind": np.array([ev["kind"] for ev in events], dtype=object),
             "detail": np.array([ev.get("detail", "") for ev in events], dtype=object),
+            **{k: np.array([ev.get(k, "") for ev in events], dtype=object)
+               for k in OPTIONAL_EVENT_FIELDS},
         },
     }
     scipy.io.savemat(path, data, oned_as="column", do_compression=True)
