@@ -193,7 +193,10 @@ def test_a_comparison_read_in_parts_equals_one_read_whole(
 
     for a, b in ((runs["a"], runs["gain"]), (runs["a"], runs["slow"])):
         whole = compare_runs(a, b)
-        monkeypatch.setattr(module, "PART_TICKS", 7)      # a few buckets a part
+        # a few buckets a part: 17 ticks is 8 buckets of 2 ticks (16, rounded down to
+        # whole buckets) on the 3000-tick grid, 17 of 1 on the 1500-tick one; both
+        # grids end in a short part
+        monkeypatch.setattr(module, "PART_TICKS", 17)
         parts = compare_runs(a, b)
         monkeypatch.undo()
         assert [s.signal for s in parts.signals] == [s.signal for s in whole.signals]
