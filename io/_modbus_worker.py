@@ -37,6 +37,7 @@ from pymodbus.constants import ExcCodes
 from pymodbus.framer import FramerType
 from pymodbus.pdu import ExceptionResponse, ModbusPDU
 from pymodbus.server import ModbusSerialServer, ModbusTcpServer
+from pymodbus.server.requesthandler import ServerRequestHandler
 from pymodbus.simulator import SimData, SimDevice
 
 from plantrig.io._modbus_map import (
@@ -103,6 +104,34 @@ class ServedTable(dict[int, _RequestPair]):
             return self[fc]
         cls = self.refused.get(fc)
         return (cls, cls) if cls is not None else default
+
+
+class _InLoopHandler(ServerRequestHandler):
+    """pymodbus' request handler, serving each decoded request as a task of the server's
+    own event loop. pymodbus hands it over with run_coroutine_threadsafe although it is
+    already on that loop: a write to the loop's self-pipe, a read back and another pass
+    of the loop for every request. Without them the worker needs about a quarter less
+    CPU (20,000 fuzzed requests over four connections: 3.8-4.3 s with, 2.9-3.1 s
+    without), CPU the rig's loop on the same machine keeps."""
+
+    def __init__(self, *args: Any) -> None:
+        super().__init__(*args)
+        self._serving: set[asyncio.Task[None]] = set()   # the loop holds tasks weakly
+
+    def handle_later(self) -> None:
+        task = self.loop.create_task(self.handle_request())
+        self._serving.add(task)
+        task.add_done_callback(self._serving.discard)
+
+
+class _TcpServer(ModbusTcpServer):
+    def callback_new_connection(self) -> ServerRequestHandler:
+        return _InLoopHandler(self, self.trace_packet, self.trace_pdu, self.trace_connect)
+
+
+class _SerialServer(ModbusSerialServer):
+    def callback_new_connection(self) -> ServerRequestHandler:
+        return _InLoopHandler(self, self.trace_packet, self.trace_pdu, self.trace_connect)
 
 
 class RegisterImage:
@@ -372,16 +401,14 @@ class Worker:
         placeholder = SimDevice(id=s["unit_id"], simdata=[SimData(0)])
         server: ModbusTcpServer | ModbusSerialServer
         if s["transport"] == "tcp":
-            server = ModbusTcpServer(placeholder, address=(s["host"], s["port"]),
-                                     trace_pdu=self.trace_pdu,
-                                     trace_connect=self.trace_connect)
+            server = _TcpServer(placeholder, address=(s["host"], s["port"]),
+                                trace_pdu=self.trace_pdu, trace_connect=self.trace_connect)
         else:
-            server = ModbusSerialServer(placeholder, framer=FramerType.RTU,
-                                        port=s["serial_port"], baudrate=s["baud"],
-                                        parity=s["parity"][0].upper(),
-                                        stopbits=s["stop_bits"], bytesize=s["byte_size"],
-                                        trace_pdu=self.trace_pdu,
-                                        trace_connect=self.trace_connect)
+            server = _SerialServer(placeholder, framer=FramerType.RTU,
+                                   port=s["serial_port"], baudrate=s["baud"],
+                                   parity=s["parity"][0].upper(),
+                                   stopbits=s["stop_bits"], bytesize=s["byte_size"],
+                                   trace_pdu=self.trace_pdu, trace_connect=self.trace_connect)
         # pymodbus types context as its own two datastores, but its server only calls
         # device_ids and async_getValues/async_setValues, which RegisterImage provides
         server.context = self.image  # type: ignore[assignment]
