@@ -36,9 +36,12 @@ def build_wheel(tmp_path: Path) -> Path:
         shutil.copytree(REPO / folder, src / folder,
                         ignore=shutil.ignore_patterns("__pycache__"))
     out = tmp_path / "wheels"
-    subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation",
-                    "--no-index", "--quiet", "--wheel-dir", str(out), str(src)],
-                   check=True, capture_output=True, text=True, timeout=300)
+    # the PEP 517 hook pyproject names, called as pip calls it without build isolation
+    # (pip itself would add an interpreter start and its own import)
+    backend = PYPROJECT["build-system"]["build-backend"]
+    subprocess.run([sys.executable, "-c", f"import sys, {backend} as backend; "
+                    "backend.build_wheel(sys.argv[1])", str(out)],
+                   cwd=src, check=True, capture_output=True, text=True, timeout=300)
     (wheel,) = out.glob("plantrig-*.whl")
     return wheel
 
