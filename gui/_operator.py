@@ -24,8 +24,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from plantrig.gui._eventlog import EventRow
-from plantrig.sim import Command
-from plantrig.sim.engine._contracts import BY_COMMAND
+from plantrig.sim import BY_COMMAND, Command
 
 MAX_TEXT = 120
 MOMENT_PRESETS = ("start of test step", "steady state reached", "load applied",

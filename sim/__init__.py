@@ -33,7 +33,8 @@ _HOME: dict[str, str] = {
         ],
         "engine._conditioning",
     ),
-    **dict.fromkeys(["ControllerLink", "Event", "SignalChain"], "engine._contracts"),
+    **dict.fromkeys(["BY_COMMAND", "ControllerLink", "Event", "SignalChain"],
+                    "engine._contracts"),
     **dict.fromkeys(["OpenLoop", "Pid", "PidLoops", "StateFeedback"], "model._controllers"),
     **dict.fromkeys(["ControllerSpec", "PidLoopSpec"], "config._controller_settings"),
     **dict.fromkeys(["Engine", "RunOutcome", "build_controller", "tick_columns"], "engine._engine"),
@@ -241,7 +242,13 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         counts_to_eng,
         eng_to_counts,
     )
-    from plantrig.sim.engine._contracts import ControllerLink, Event, SignalChain, Vector
+    from plantrig.sim.engine._contracts import (
+        BY_COMMAND,
+        ControllerLink,
+        Event,
+        SignalChain,
+        Vector,
+    )
     from plantrig.sim.engine._engine import Engine, RunOutcome, build_controller, tick_columns
     from plantrig.sim.engine._outcome import (
         COMPLETED,

@@ -43,6 +43,7 @@ from plantrig.gui._runinfo import (
 )
 from plantrig.gui._store import LiveStore, RowStore
 from plantrig.sim import (
+    BY_COMMAND,
     FAULT_KINDS,
     Command,
     LimitSpec,
@@ -52,7 +53,6 @@ from plantrig.sim import (
     load_scenario,
     tick_columns,
 )
-from plantrig.sim.engine._contracts import BY_COMMAND
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 finite = st.floats(-1e6, 1e6, allow_nan=False)
