@@ -7,7 +7,10 @@ outside (/proc) every --every seconds, so the sampling costs the loop nothing. A
 end it reports missed deadlines (late ticks and skipped slots), lateness p50/p99/max,
 ticks planned/run/recorded, and each process's RSS at the first sample (after
 --settle seconds), at a quarter, half and
-three quarters of the run, and the last, so a slow growth shows its shape.
+three quarters of the run, and the last, so a slow growth shows its shape. Samples taken
+once the rig has begun to close its record (its summary.json exists, looked for every
+0.2 s; sampled every 0.2 s from then on) are kept apart: the close has a fixed peak of
+its own (h5py and run.h5's blocks, docs/performance.md), which is not growth in the loop.
 
     .venv/bin/python bench/bench_soak.py              # 1 hour
     .venv/bin/python bench/bench_soak.py --quick      # 5 minutes
@@ -87,15 +90,19 @@ def main() -> None:
         sys.exit(f"the controller did not start: {line!r}")
     named = {"rig (loop and link)": rig_proc.pid, "controller": int(line.split()[1])}
     samples: dict[str, list[float]] = {}
+    closing: dict[str, list[float]] = {}
     time.sleep(args.settle)
     while rig_proc.poll() is None:
         recorder = [p for p in children(rig_proc.pid) if p != named["controller"]]
         pids = dict(named, **{"recorder": recorder[0]} if recorder else {})
+        closed = any(out.glob("*/summary.json"))
         for name, pid in pids.items():
             mb = rss_mb(pid)
             if mb is not None and rig_proc.poll() is None:
-                samples.setdefault(name, []).append(mb)
-        time.sleep(args.every)
+                (closing if closed else samples).setdefault(name, []).append(mb)
+        until = time.monotonic() + (0.2 if closed else args.every)
+        while time.monotonic() < until and (closed or not any(out.glob("*/summary.json"))):
+            time.sleep(0.2)   # a close that begins is sampled from its start
     rest = rig_proc.stdout.read()
     folder = Path(next(x for x in rest.splitlines() if x.startswith("folder ")).split(" ", 1)[1])
     summary = json.loads((folder / "summary.json").read_text())
@@ -108,11 +115,13 @@ def main() -> None:
           f"{t['skipped_slots']}; lateness p50 {t['lateness_p50_s'] * 1e6:.0f} us, p99 "
           f"{t['lateness_p99_s'] * 1e6:.0f} us, max {t['lateness_max_s'] * 1e6:.0f} us; "
           f"scheduler {t['scheduler']}, core {t.get('cpu')}\n")
-    print("| process | RSS first sample (MB) | at 1/4 | 1/2 | 3/4 | last sample | samples |")
-    print("|---|---|---|---|---|---|---|")
+    print("| process | RSS first sample (MB) | at 1/4 | 1/2 | 3/4 | last in the run | samples "
+          "| peak while closing |")
+    print("|---|---|---|---|---|---|---|---|")
     for name, mbs in samples.items():
         quarters = " | ".join(f"{mbs[len(mbs) * q // 4]:.1f}" for q in (1, 2, 3))
-        print(f"| {name} | {mbs[0]:.1f} | {quarters} | {mbs[-1]:.1f} | {len(mbs)} |")
+        close = f"{max(closing[name]):.1f}" if closing.get(name) else "not sampled"
+        print(f"| {name} | {mbs[0]:.1f} | {quarters} | {mbs[-1]:.1f} | {len(mbs)} | {close} |")
 
 
 if __name__ == "__main__":
