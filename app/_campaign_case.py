@@ -9,8 +9,6 @@ function of an importable module.
 
 from __future__ import annotations
 
-import ctypes
-import ctypes.util
 import dataclasses
 import hashlib
 import os
@@ -33,6 +31,7 @@ from plantrig.sim import (
     apply_overrides,
     build_chains,
     build_scenario,
+    c_library,
     evaluate,
     load_rig_with_overrides,
     simulate,
@@ -123,15 +122,7 @@ def run_case(case: Case) -> dict[str, Any]:
     return row
 
 
-def _c_library() -> Any:
-    """The C library (glibc on Linux); None where it cannot be loaded."""
-    try:
-        return ctypes.CDLL(ctypes.util.find_library("c"))
-    except OSError:
-        return None
-
-
-_LIBC = _c_library() if os.name == "posix" else None
+_LIBC = c_library()
 
 
 def _give_back_freed_memory() -> None:

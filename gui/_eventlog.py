@@ -17,8 +17,9 @@ from collections import deque
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
+from plantrig.sim import ESTOP
+
 RECENT_EVENTS = 400
-ESTOP = "estop"          # the E-stop's name in events and its latch here
 
 
 class EventRow(NamedTuple):

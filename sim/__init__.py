@@ -51,7 +51,7 @@ _HOME: dict[str, str] = {
         ["DisturbanceSpec", "FAULT_KINDS", "FaultKind", "FaultSpec", "parse_fault"],
         "faults._faults",
     ),
-    **dict.fromkeys(["InterlockSpec", "SafetySettings"], "safety._interlocks"),
+    **dict.fromkeys(["ESTOP", "InterlockSpec", "SafetySettings"], "safety._interlocks"),
     **dict.fromkeys(["LimitSpec"], "safety._limits"),
     **dict.fromkeys(["generate_keypair", "sign_folder", "verify_folder"], "records._manifest"),
     **dict.fromkeys(
@@ -176,6 +176,7 @@ _HOME: dict[str, str] = {
         "records._compare",
     ),
     **dict.fromkeys(["machine_facts", "pacing_test"], "engine._readiness"),
+    **dict.fromkeys(["c_library"], "engine._realtime"),
     **dict.fromkeys(["COMPLETED", "EXIT_VERDICT"], "engine._outcome"),
     **dict.fromkeys(["Vector"], "engine._contracts"),
 }
@@ -260,6 +261,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
         RuleResult,
     )
     from plantrig.sim.engine._readiness import machine_facts, pacing_test
+    from plantrig.sim.engine._realtime import c_library
     from plantrig.sim.engine._run import RunData, run_to_folder, simulate, simulate_inputs
     from plantrig.sim.engine._watchdog import silent_ticks_allowed
     from plantrig.sim.faults._faults import (
@@ -324,7 +326,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim.records._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
     from plantrig.sim.records._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
     from plantrig.sim.records._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
-    from plantrig.sim.safety._interlocks import InterlockSpec, SafetySettings
+    from plantrig.sim.safety._interlocks import ESTOP, InterlockSpec, SafetySettings
     from plantrig.sim.safety._limits import LimitSpec
     from plantrig.sim.scenario._scenario import (
         Scenario,

@@ -13,8 +13,6 @@ estimated from the measured work and wake-up jitter.
 
 from __future__ import annotations
 
-import ctypes
-import ctypes.util
 import math
 import os
 import resource
@@ -23,7 +21,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from plantrig.sim.engine._clock import WallClock
-from plantrig.sim.engine._realtime import realtime_process
+from plantrig.sim.engine._realtime import c_library, realtime_process
 from plantrig.sim.engine._timing import DurationHistogram
 
 PR_GET_TIMERSLACK = 30
@@ -67,11 +65,6 @@ def _read(path: str) -> str | None:
         return Path(path).read_text().strip()
     except OSError:
         return None
-
-
-def _libc() -> ctypes.CDLL | None:
-    name = ctypes.util.find_library("c")
-    return ctypes.CDLL(name, use_errno=True) if name else None
 
 
 def machine_facts(cpu: int) -> list[Fact]:
@@ -134,7 +127,7 @@ def _siblings(cpu: int) -> Fact:
 
 
 def _timer_slack() -> Fact:
-    libc = _libc()
+    libc = c_library()
     if libc is None:
         return Fact("timer slack", "unknown", None)
     slack = libc.prctl(PR_GET_TIMERSLACK, 0, 0, 0, 0)
@@ -144,7 +137,7 @@ def _timer_slack() -> Fact:
 
 def _memlock() -> Fact:
     soft, _hard = resource.getrlimit(resource.RLIMIT_MEMLOCK)
-    libc = _libc()
+    libc = c_library()
     if libc is None:
         return Fact("memory locking", "unknown", None)
     if libc.mlockall(MCL_CURRENT) == 0:

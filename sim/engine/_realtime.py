@@ -40,6 +40,16 @@ class RealtimeReport:
     notes: list[str] = field(default_factory=list)
 
 
+def c_library() -> ctypes.CDLL | None:
+    """The C library (glibc on Linux; errno kept for ctypes.get_errno), or None where
+    there is none to load: prctl, mlockall and malloc_trim come from it."""
+    name = ctypes.util.find_library("c")
+    try:
+        return ctypes.CDLL(name, use_errno=True) if name else None
+    except OSError:
+        return None
+
+
 @contextlib.contextmanager
 def realtime_process(tick_ns: int, spin_ns: int | None = None) -> Iterator[RealtimeReport]:
     """Apply what the OS allows for the duration of a real-time run; say what it was.
@@ -50,8 +60,7 @@ def realtime_process(tick_ns: int, spin_ns: int | None = None) -> Iterator[Realt
     old_policy = os.sched_getscheduler(0) if hasattr(os, "sched_getscheduler") else None
     old_param = os.sched_getparam(0) if hasattr(os, "sched_getparam") else None
     gc_was_enabled = gc.isenabled()
-    name = ctypes.util.find_library("c")
-    libc = ctypes.CDLL(name, use_errno=True) if name else None
+    libc = c_library()
     old_slack = libc.prctl(PR_GET_TIMERSLACK, 0, 0, 0, 0) if libc else -1
     try:
         gc.collect()

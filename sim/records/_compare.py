@@ -34,8 +34,7 @@ from numpy.typing import NDArray
 
 from plantrig.sim.config._checker import RigFileError, RigIssue, describe_value
 from plantrig.sim.records._envelope import minmax_bands
-from plantrig.sim.records._reader import current_event_fields
-from plantrig.sim.records._records import read_events
+from plantrig.sim.records._reader import read_current_events
 
 SIGNAL_PREFIXES = ("ref", "cmd", "sent", "y", "x", "u", "d", "limit", "trip")
 MUST_MATCH = ("cmd", "sent", "y", "x", "u")     # the same plant and link, or no comparison
@@ -174,7 +173,7 @@ class RunColumns:
         self.n = int(self.summary.get("ticks_recorded", 0))
         if not self.h5.is_file() and not (self.folder / "ticks.npy").is_file():
             raise NotComparable(f"{self.folder}: no tick data (run.h5 or ticks.npy)")
-        self.events = [current_event_fields(e) for e in read_events(self.folder / "events.jsonl")]
+        self.events = read_current_events(self.folder / "events.jsonl")
         self._file: Any = None          # run.h5, open while the comparison reads it
 
     def close(self) -> None:

@@ -90,6 +90,11 @@ def current_event_fields(event: dict[str, Any]) -> dict[str, Any]:
     return now
 
 
+def read_current_events(path: Path) -> list[dict[str, Any]]:
+    """The events of an events.jsonl file, each with today's fields (current_event_fields)."""
+    return [current_event_fields(e) for e in read_events(path)]
+
+
 @dataclass
 class RunRecord:
     """One run's record. ``rows`` is ticks x columns float64, in tick-record order."""
@@ -158,8 +163,7 @@ def read_run(folder: str | Path, columns: list[str] | None = None,
     else:
         raise FileNotFoundError(f"{folder}: not a plantrig run folder (no run.h5, "
                                 f"{RUN_START} or columns.json)")
-    events = [] if ticks_only else [current_event_fields(e)
-                                    for e in read_events(folder / "events.jsonl")]
+    events = [] if ticks_only else read_current_events(folder / "events.jsonl")
     n = len(every)
     if (folder / "ticks.npy").exists():
         table = np.load(folder / "ticks.npy", mmap_mode="r").view(np.float64).reshape(-1, n)
