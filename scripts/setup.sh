@@ -32,7 +32,9 @@ if [ ! -x .venv/bin/python ]; then
     python3 -m venv .venv
 fi
 stamp=.venv/.plantrig-installed
-if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ]; then
+# setup.py and the C kernel of plain ticks are built with the package: a change rebuilds
+if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ] || [ setup.py -nt "$stamp" ] \
+        || [ sim/engine/_stretch.c -nt "$stamp" ]; then
     echo "setup: installing plantrig and its test extras into .venv"
     .venv/bin/python -m pip install -q --upgrade pip
     .venv/bin/python -m pip install -q -e '.[test]'

@@ -53,6 +53,7 @@ from plantrig.sim.engine._outcome import (
     settle,
 )
 from plantrig.sim.engine._realtime import RealtimeReport, realtime_process
+from plantrig.sim.engine._stretch import Stretch
 from plantrig.sim.engine._timing import FINE_NS, DurationHistogram
 from plantrig.sim.faults._faults import Faults
 from plantrig.sim.model._controllers import Controller, OpenLoop, Pid, PidLoops, StateFeedback
@@ -68,6 +69,7 @@ META_COLUMNS = ("seq", "t", "lateness", "exec_time", "fresh")
 
 class TapeLike(Protocol):
     def append(self, row: Vector) -> None: ...
+    def append_rows(self, block: Vector) -> None: ...
     def free(self) -> int: ...
     def wait_for_room(self, timeout_s: float = 30.0) -> None: ...
     def recorder_error(self) -> int: ...
@@ -189,7 +191,8 @@ class Engine:
                  commands: CommandInbox | None = None,
                  event_tape: EventTape | None = None,
                  scenario: Scenario | None = None,
-                 on_tick0: Callable[[int], None] | None = None) -> None:
+                 on_tick0: Callable[[int], None] | None = None,
+                 stretches: bool = True) -> None:
         self.rig = rig
         self.on_tick0 = on_tick0    # told tick 0's UTC time (ns) as the loop starts
         self.commands = commands
@@ -251,6 +254,10 @@ class Engine:
         self.orders_due = 0                 # the next tick _take_orders has work at
         self.loop_start = 0
         self._start = self._slot = self._streak = self._began = self._late = 0
+        # plain ticks in C where this run can have them (_stretch.py); ``stretches``
+        # False keeps every tick in Python (the bit-for-bit tests and the bench's peer)
+        self.stretch = Stretch.for_engine(self, [int(c) for c in cuts[:5]]) \
+            if stretches else None
 
     def request_stop(self, why: str = "stop requested") -> None:
         """Ask the loop to end at the next tick boundary (from a signal handler, say);
@@ -386,20 +393,27 @@ class Engine:
         self.tick0_unix_ns = time.time_ns() + (START_LEAD_NS if self.realtime else 0)
         if self.on_tick0 is not None:       # in the lead before tick 0's deadline
             self.on_tick0(self.tick0_unix_ns)
-        paced_until = 0
-        for k in range(self.rig.n_ticks):
+        stretch, n_ticks = self.stretch, self.rig.n_ticks
+        paced_until = k = 0
+        while k < n_ticks:
             if self.stop_requested:
                 raise _RunEnds(STOPPED, self.stop_why)
-            t = k * tick
             if k >= paced_until:
                 paced_until = pace(k)
             if k >= self.orders_due:
                 take_orders(k)
+            if stretch is not None and stretch.ready():
+                end = min(paced_until, self.orders_due, n_ticks)
+                k = stretch.run(k, end)
+                if k == end:
+                    continue
+            t = k * tick
             fresh = controller_command(k, t)
             forced = plant_input(k)
             plant_step(k, t, forced)
             sense_and_send(k, t)
             record(k, t, fresh)
+            k += 1
 
     # -- pacing: real time or as fast as the recorder keeps up ---------------------------
 

@@ -90,6 +90,22 @@ class Tape:
         self.written += 1
         self.header[W_WRITTEN] = self.written
 
+    def append_rows(self, block: NDArray[np.float64]) -> None:
+        """``append`` for each row of ``block`` in turn, at a block's cost (column 0 is
+        ignored): each slot is marked invalid, filled, then numbered, as one row is."""
+        first, count = self.written, len(block)
+        done = 0
+        while done < count:             # in at most two pieces: the ring wraps
+            at = (first + done) % self.capacity
+            piece = min(count - done, self.capacity - at)
+            slots = self.rows[at:at + piece]
+            slots[:, 0] = -1.0
+            slots[:, 1:] = block[done:done + piece, 1:]
+            slots[:, 0] = np.arange(first + done, first + done + piece)
+            done += piece
+        self.written = first + count
+        self.header[W_WRITTEN] = self.written
+
     def recorder_error(self) -> int:
         """RECORDER_OK, the code the recorder set when it could not write, or
         RECORDER_DIED when the watched recorder process is gone (asked of the process at
@@ -161,6 +177,15 @@ class MemoryTape:
         rows[n] = row          # no reader in another process: no torn-row guard needed
         rows[n, 0] = n
         self.written = n + 1
+
+    def append_rows(self, block: NDArray[np.float64]) -> None:
+        """``append`` for each row of ``block`` in turn, at a block's cost."""
+        n, count = self.written, len(block)
+        if n + count > len(self.rows):
+            raise TapeOverflow("memory tape full: the run is longer than planned")
+        self.rows[n:n + count] = block
+        self.rows[n:n + count, 0] = np.arange(n, n + count)
+        self.written = n + count
 
     def recorder_error(self) -> int:
         return RECORDER_OK

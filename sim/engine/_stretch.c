@@ -1,0 +1,142 @@
+/* Plain ticks in C: the fast-mode tick of an LTI plant under built-in PID loops, with
+ * every fault, safety and scenario feature idle (sim/engine/_stretch.py decides that).
+ *
+ * Each tick does what sim/engine/_engine.py's stages do, in the same order and with the
+ * same floating-point operations, so the record is bit for bit the one the Python tick
+ * writes:
+ *   - the PID law of sim/model/_controllers.py, one IEEE operation per Python one (built
+ *     with -ffp-contract=off so no multiply-add is fused);
+ *   - the plant product through the very BLAS routine numpy's np.dot calls, handed in as
+ *     a function pointer (the loader checks the two agree bit for bit before use).
+ * A tick this code cannot finish as the Python tick would (a non-finite or huge command
+ * or state) is left untouched for the Python tick, which records why.
+ *
+ * Plain C with no Python headers: loaded with ctypes.
+ */
+#include <math.h>
+#include <stdint.h>
+#include <string.h>
+
+typedef void (*gemv_fn)(int order, int trans, int64_t m, int64_t n, double alpha,
+                        const double *a, int64_t lda, const double *x, int64_t incx,
+                        double beta, double *y, int64_t incy);
+typedef void (*gemv32_fn)(int order, int trans, int m, int n, double alpha,
+                          const double *a, int lda, const double *x, int incx,
+                          double beta, double *y, int incy);
+
+enum { ROW_MAJOR = 101, NO_TRANS = 111 };
+enum { WINDUP_UNWIND = 0, WINDUP_FREEZE = 1, WINDUP_OFF = 2 };
+/* larger magnitudes go to the Python tick, whose finiteness test squares them */
+#define HUGE_VALUE 1e150
+
+/* One PID loop: settings, then the state the Python object holds between ticks. */
+typedef struct {
+    int64_t measure, drive, reference, windup;
+    double kp, ki, kd, dt, d_pole, d_gain, unwind_gain, lo, hi;
+    double integral, derivative, y_prev;
+    int64_t has_prev;
+} pid_loop;
+
+/* What the engine's tick reads and writes: pointers into its own arrays. */
+typedef struct {
+    void *gemv;
+    int64_t gemv_int64;          /* 1: the routine takes 64-bit integers (ILP64) */
+    int64_t n, m, p, n_refs, n_columns;
+    double *block;               /* [[Ad, Bd], [C, D]], (n + p) x (n + m), row-major */
+    double *row;                 /* the engine's tick record */
+    int64_t at_r, at_cmd, at_sent, at_y, at_xu;   /* where r, cmd, sent, y, [x; u] start */
+    double *next;                /* [x_{k+1}; y_k] */
+    double *ed_d;                /* Ed d, added to x_{k+1} while disturbed */
+    int64_t disturbed;
+    pid_loop *loops;
+    int64_t n_loops;
+    double tick;
+} stretch;
+
+static void plant_product(const stretch *s) {
+    int64_t rows = s->n + s->p, cols = s->n + s->m;
+    const double *xu = s->row + s->at_xu;
+    if (s->gemv_int64)
+        ((gemv_fn)s->gemv)(ROW_MAJOR, NO_TRANS, rows, cols, 1.0, s->block, cols, xu, 1,
+                           0.0, s->next, 1);
+    else
+        ((gemv32_fn)s->gemv)(ROW_MAJOR, NO_TRANS, (int)rows, (int)cols, 1.0, s->block,
+                             (int)cols, xu, 1, 0.0, s->next, 1);
+}
+
+static int plain(const double *v, int64_t count) {
+    for (int64_t i = 0; i < count; i++)
+        if (!(fabs(v[i]) <= HUGE_VALUE))   /* NaN fails this too */
+            return 0;
+    return 1;
+}
+
+/* Pid.compute on (sent, r): the drive value and the loop's next state, nothing written. */
+static double pid_step(const pid_loop *c, const double *sent, const double *r,
+                       pid_loop *next) {
+    double yk = sent[c->measure];
+    double e = r[c->reference] - yk;
+    double y_prev = c->has_prev ? c->y_prev : yk;
+    *next = *c;
+    next->y_prev = yk;
+    next->has_prev = 1;
+    if (c->kd != 0.0)
+        next->derivative = c->d_pole * c->derivative - c->d_gain * (yk - y_prev);
+    double v = c->kp * e + c->integral + next->derivative;
+    double out = v < c->lo ? c->lo : (v > c->hi ? c->hi : v);
+    double ki_e_dt = c->ki * e * c->dt;
+    if (c->windup == WINDUP_UNWIND)
+        next->integral = c->integral + (ki_e_dt + (out - v) * c->unwind_gain);
+    else if (c->windup == WINDUP_FREEZE) {
+        if (!((v > c->hi && e > 0) || (v < c->lo && e < 0)))
+            next->integral = c->integral + ki_e_dt;
+    } else
+        next->integral = c->integral + ki_e_dt;
+    return out;
+}
+
+/* Ticks k0 .. k0 + count - 1, references for each in refs (count x n_refs), each
+ * tick's record into out (count x n_columns). Returns how many ticks were done: fewer
+ * than count when a tick must be left to the Python tick (nothing of it written but its
+ * references and scratch). */
+int64_t run_stretch(stretch *s, int64_t k0, int64_t count, const double *refs,
+                    double *out) {
+    enum { MAX_LOOPS = 64 };
+    pid_loop next[MAX_LOOPS];
+    double drive[MAX_LOOPS];
+    if (s->n_loops > MAX_LOOPS)
+        return 0;
+    double *row = s->row, *r = row + s->at_r, *cmd = row + s->at_cmd;
+    double *sent = row + s->at_sent, *y_rec = row + s->at_y;
+    double *x = row + s->at_xu, *u = x + s->n;
+    double *x_next = s->next, *y = s->next + s->n;
+    int64_t j;
+    for (j = 0; j < count; j++) {
+        int64_t k = k0 + j;
+        memcpy(r, refs + j * s->n_refs, (size_t)s->n_refs * sizeof(double));
+        for (int64_t i = 0; i < s->n_loops; i++) {
+            drive[i] = pid_step(&s->loops[i], sent, r, &next[i]);
+            if (!(fabs(drive[i]) <= HUGE_VALUE))
+                return j;
+        }
+        for (int64_t i = 0; i < s->n_loops; i++)
+            cmd[s->loops[i].drive] = drive[i];
+        if (!plain(cmd, s->m))
+            return j;
+        memcpy(u, cmd, (size_t)s->m * sizeof(double));
+        plant_product(s);
+        if (s->disturbed)
+            for (int64_t i = 0; i < s->n; i++)
+                x_next[i] += s->ed_d[i];
+        if (!plain(x_next, s->n) || !plain(y, s->p))
+            return j;
+        memcpy(y_rec, y, (size_t)s->p * sizeof(double));
+        memcpy(sent, y, (size_t)s->p * sizeof(double));
+        row[1] = (double)k * s->tick;
+        row[4] = 1.0;
+        memcpy(out + j * s->n_columns, row, (size_t)s->n_columns * sizeof(double));
+        memcpy(x, x_next, (size_t)s->n * sizeof(double));
+        memcpy(s->loops, next, (size_t)s->n_loops * sizeof(pid_loop));
+    }
+    return j;
+}

@@ -1,0 +1,200 @@
+"""Stretches of plain fast-mode ticks run in C (sim/engine/_stretch.c).
+
+A plain tick is one of an LTI plant (one step per tick) under the built-in PID loops,
+in fast mode, with no link, no signal chain, no limits to check, no fault active, no
+interlock forcing or freezing and no scenario condition watched: nothing in it can
+raise an event. The engine hands every run of such ticks up to its next orders (operator
+commands, fault ends, scenario steps) to run_stretch and runs every other tick itself,
+so each feature is still there the tick it is needed, and idle ones cost nothing.
+
+The C tick writes the same bits as the Python tick: the PID law operation for operation,
+and the plant product through the BLAS routine numpy's np.dot calls for it (found in
+numpy's own library, and checked against np.dot on the rig's model before it is used).
+Where either cannot be had, there are no stretches and every tick is the Python one.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import functools
+import importlib
+import importlib.machinery
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from plantrig.sim.model._controllers import Pid, PidLoops
+from plantrig.sim.model._plant import LinearStepper
+
+if TYPE_CHECKING:
+    from plantrig.sim.engine._engine import Engine
+
+KERNEL = "_stretch_kernel"
+# numpy's BLAS entry point for float64 matrix-vector products, by the name its
+# scipy-openblas build exports, and whether it takes 64-bit integers (ILP64)
+NUMPY_GEMV = (("scipy_cblas_dgemv64_", True), ("scipy_cblas_dgemv", False))
+ROW_MAJOR, NO_TRANS = 101, 111
+WINDUP_CODES = {"unwind": 0, "freeze": 1, "off": 2}
+# one pid_loop of _stretch.c: measure, drive, reference, windup (int64); kp, ki, kd, dt,
+# d_pole, d_gain, unwind_gain, lo, hi, integral, derivative, y_prev (double); has_prev
+LOOP_WORDS, AT_INTEGRAL = 17, 13
+CHECKS = 4          # random [x; u] vectors the product is compared on before use
+
+
+class _Fields(ctypes.Structure):
+    """The ``stretch`` struct of _stretch.c."""
+
+    _fields_ = [("gemv", ctypes.c_void_p), ("gemv_int64", ctypes.c_int64),
+                ("n", ctypes.c_int64), ("m", ctypes.c_int64), ("p", ctypes.c_int64),
+                ("n_refs", ctypes.c_int64), ("n_columns", ctypes.c_int64),
+                ("block", ctypes.c_void_p), ("row", ctypes.c_void_p),
+                ("at_r", ctypes.c_int64), ("at_cmd", ctypes.c_int64),
+                ("at_sent", ctypes.c_int64), ("at_y", ctypes.c_int64),
+                ("at_xu", ctypes.c_int64), ("next", ctypes.c_void_p),
+                ("ed_d", ctypes.c_void_p), ("disturbed", ctypes.c_int64),
+                ("loops", ctypes.c_void_p), ("n_loops", ctypes.c_int64),
+                ("tick", ctypes.c_double)]
+
+
+@functools.cache
+def _kernel() -> Any:
+    """run_stretch from the compiled kernel beside this module, or None if not built."""
+    here = Path(__file__).parent
+    for suffix in importlib.machinery.EXTENSION_SUFFIXES:
+        path = here / f"{KERNEL}{suffix}"
+        if path.exists():
+            try:
+                run = ctypes.CDLL(str(path)).run_stretch
+            except (OSError, AttributeError):
+                return None
+            run.argtypes = [ctypes.c_void_p, ctypes.c_int64, ctypes.c_int64,
+                            ctypes.c_void_p, ctypes.c_void_p]
+            run.restype = ctypes.c_int64
+            return run
+    return None
+
+
+@functools.cache
+def _numpy_gemv() -> tuple[int, bool] | None:
+    """(address, takes int64) of the BLAS dgemv numpy calls, or None if not found."""
+    try:
+        numpy_core = ctypes.CDLL(importlib.import_module("numpy._core._multiarray_umath")
+                                 .__file__)
+    except OSError:
+        return None
+    for name, int64 in NUMPY_GEMV:
+        try:
+            address = ctypes.cast(getattr(numpy_core, name), ctypes.c_void_p).value
+        except AttributeError:
+            continue
+        if address:
+            return address, int64
+    return None
+
+
+def _same_as_numpy(block: np.ndarray, gemv: tuple[int, bool]) -> bool:
+    """Whether calling ``gemv`` as _stretch.c does gives np.dot's bits on ``block``."""
+    integer = ctypes.c_int64 if gemv[1] else ctypes.c_int
+    pointer, real = ctypes.c_void_p, ctypes.c_double
+    call = ctypes.CFUNCTYPE(None, ctypes.c_int, ctypes.c_int, integer, integer, real,
+                            pointer, integer, pointer, integer, real, pointer,
+                            integer)(gemv[0])
+    rows, cols = block.shape
+    rng = np.random.default_rng(7)
+    for _ in range(CHECKS):
+        x = np.ascontiguousarray(rng.normal(size=cols) * 10.0 ** rng.integers(-3, 4, size=cols))
+        mine, numpy_s = np.zeros(rows), np.zeros(rows)
+        call(ROW_MAJOR, NO_TRANS, rows, cols, 1.0, block.ctypes.data, cols, x.ctypes.data,
+             1, 0.0, mine.ctypes.data, 1)
+        np.dot(block, x, out=numpy_s)
+        if mine.tobytes() != numpy_s.tobytes():
+            return False
+    return True
+
+
+class Stretch:
+    """Runs plain ticks of one engine in C; built by ``for_engine``."""
+
+    def __init__(self, engine: Engine, loops: list[Pid], run: Any, gemv: tuple[int, bool],
+                 cuts: list[int]) -> None:
+        self.engine = engine
+        self.loops = loops
+        self._run = run
+        stepper = engine.stepper
+        assert isinstance(stepper, LinearStepper)
+        self.stepper = stepper
+        rig = engine.rig
+        self.tick = rig.tick
+        self.capacity = engine.poll_every      # orders are due at least this often
+        nr, ncols = len(rig.references), len(engine.columns)
+        self.refs = np.zeros((self.capacity, nr))
+        self.out = np.zeros((self.capacity, ncols))
+        self.state = np.zeros((len(loops), LOOP_WORDS))
+        ints = self.state.view(np.int64)
+        for i, pid in enumerate(loops):
+            ints[i, :4] = (pid.measure, pid.drive, pid.reference, WINDUP_CODES[pid.windup])
+            self.state[i, 4:13] = (pid.kp, pid.ki, pid.kd, pid.dt, pid._d_pole,
+                                   pid._d_gain, pid._unwind_gain, pid.drive_low,
+                                   pid.drive_high)
+        self._ints = ints
+        self.fields = _Fields(
+            gemv[0], int(gemv[1]), stepper.n_states, stepper.n_inputs, stepper.n_outputs,
+            nr, ncols, stepper._block.ctypes.data, engine.row.ctypes.data, cuts[0],
+            cuts[1], cuts[2], cuts[3], cuts[4], stepper._next.ctypes.data,
+            stepper._Ed_d.ctypes.data, 0, self.state.ctypes.data, len(loops), rig.tick)
+        self._fields_at = ctypes.addressof(self.fields)
+        self._refs_at, self._out_at = self.refs.ctypes.data, self.out.ctypes.data
+        self.ticks = 0                  # ticks run in C so far
+
+    @classmethod
+    def for_engine(cls, engine: Engine, cuts: list[int]) -> Stretch | None:
+        """A Stretch when every tick of this run could be plain, else None. ``cuts``:
+        where r, cmd, sent, y and [x; u] start in the engine's record."""
+        controller = engine.controller
+        loops = [controller] if isinstance(controller, Pid) else \
+            controller.loops if isinstance(controller, PidLoops) else None
+        if (loops is None or engine.realtime or engine.link is not None
+                or engine.actuator_chain is not None or engine.sensor_chain is not None
+                or engine.safety.checking or type(engine.stepper) is not LinearStepper):
+            return None
+        run, gemv = _kernel(), _numpy_gemv()
+        if run is None or gemv is None or not _same_as_numpy(engine.stepper._block, gemv):
+            return None
+        return cls(engine, loops, run, gemv, cuts)
+
+    def ready(self) -> bool:
+        """Whether the ticks from now on are plain until something changes at orders."""
+        engine = self.engine
+        scenario, safety = engine.scenario, engine.safety
+        return not (engine.faults.on or safety.forcing or safety.freezing
+                    or safety.stop_reason or engine.stop_requested
+                    or (scenario is not None and scenario.watching))
+
+    def run(self, k: int, end: int) -> int:
+        """Ticks k .. end - 1 as far as they are plain, recorded on the engine's tape;
+        the first tick not done (the Python tick takes it)."""
+        engine, count, tick = self.engine, end - k, self.tick
+        refs = self.refs
+        for i, value in engine.ref_values:
+            refs[:count, i] = [value((k + j) * tick) for j in range(count)]
+        if engine.any_override:
+            chosen = ~np.isnan(engine.ref_override)
+            refs[:count, chosen] = engine.ref_override[chosen]
+        state = self.state
+        for i, pid in enumerate(self.loops):
+            y_prev = pid.y_prev
+            state[i, AT_INTEGRAL:AT_INTEGRAL + 3] = (pid.integral, pid.derivative,
+                                                     0.0 if y_prev is None else y_prev)
+            self._ints[i, AT_INTEGRAL + 3] = y_prev is not None
+        self.fields.disturbed = self.stepper._disturbed
+        done = self._run(self._fields_at, k, count, self._refs_at, self._out_at)
+        for i, pid in enumerate(self.loops):
+            pid.integral, pid.derivative, y_prev = state[i, AT_INTEGRAL:AT_INTEGRAL + 3].tolist()
+            if self._ints[i, AT_INTEGRAL + 3]:
+                pid.y_prev = y_prev
+        if done:
+            engine.tape.append_rows(self.out[:done])
+            engine.done = k + done
+            self.ticks += done
+        return k + done
