@@ -5,9 +5,10 @@ markdown it prints. Every number sits beside a peer measured in the same run:
 
 - plant step per tick (2, 10, 50 states) against scipy.signal.dlsim's and python-control
   forced_response's cost per sample on the same discrete model;
-- the full fast-mode tick (reference, built-in PID, plant, tape record) at 10 states,
-  and with `--engine-at REV` the engine module at git revision REV beside
-  today's, interleaved in the same run (before/after of a change to the loop);
+- the full fast-mode tick (reference, built-in PID, plant, tape record) at 10 states:
+  today's engine with its plain ticks in C, the same engine with every tick in Python,
+  and with `--engine-at REV` the engine module at git revision REV beside them,
+  interleaved in the same run (before/after of a change to the loop);
 - real-time pacing at 1, 5 and 10 kHz (--rates): lateness and missed deadlines of the engine
   beside a bare sleep-and-spin loop (the floor) on the same machine.
 """
@@ -126,13 +127,19 @@ def engine_at(rev: str) -> type:
 def full_tick_table(samples: int, rev: str | None) -> list[str]:
     rig = pid_rig(10, samples * TICK)
     columns = tick_columns(rig)[0]
-    engines = {"today": Engine, **({f"at {rev}": engine_at(rev)} if rev else {})}
+    engines = {"today (plain ticks in C)": lambda r, t: Engine(r, t, realtime=False),
+               "today, every tick in Python": lambda r, t: Engine(r, t, realtime=False,
+                                                                  stretches=False)}
+    if rev:
+        old = engine_at(rev)
+        engines[f"at {rev}"] = lambda r, t: old(r, t, realtime=False)
     best = dict.fromkeys(engines, float("inf"))
-    for _ in range(3):                     # interleaved, so drift on the VM hits both
-        for label, engine in engines.items():
+    for _ in range(3):                     # interleaved, so drift on the VM hits each
+        for label, make in engines.items():
             tape = MemoryTape(columns, rig.n_ticks)
+            engine = make(rig, tape)
             t0 = time.perf_counter()
-            engine(rig, tape, realtime=False).run()
+            engine.run()
             best[label] = min(best[label], time.perf_counter() - t0)
     plant = random_plant(10)
     sysd = scipy.signal.cont2discrete((plant.A, plant.B, plant.C, plant.D), TICK)
