@@ -95,10 +95,12 @@ stop = true
     assert ticks - 600 <= with_c[2] < ticks - 400
 
 
-def two_loop_rig(tmp_path: Path, kp: float = 4.0, span: float = 2.0):  # type: ignore[no-untyped-def]
+def two_loop_rig(tmp_path: Path, kp: float = 4.0, span: float = 2.0,
+                 limits: list | None = None):  # type: ignore[no-untyped-def]
     """Two coupled lags, each under its own loop: one with filtered derivative and
     conditional integration, one without anti-windup, both reaching their limits."""
     return build_rig({
+        "limits": limits or [],
         "rig": {"name": "two_loops", "tick": 0.002, "duration": 2.0, "mode": "fast"},
         "plant": {"kind": "lti", "A": [[-3.0, 0.5], [0.8, -1.5]],
                   "B": [[2.0, 0.0], [0.3, 1.0]], "C": [[1.0, 0.0], [0.0, 1.0]],
@@ -125,6 +127,35 @@ def test_pid_loops_with_each_windup_rule_match(tmp_path: Path) -> None:
     assert with_c[2] == rig.n_ticks
     u = python[0][:, tick_columns(rig)[0].index("u:ub")]
     assert u.max() == 2.0                   # the loops do reach their limits
+
+
+@pytest.mark.parametrize("many", [False, True], ids=["loop screen", "numpy screen"])
+def test_limits_screened_in_c_warn_in_the_same_ticks(tmp_path: Path, many: bool) -> None:
+    # warn bands and rates the sine reference crosses now and then: those ticks go to
+    # Python (warn events), the others stay in C; with 16 limits or more the bank screens
+    # with numpy instead of a loop (sim/safety/_limits.py), so both are followed
+    limits = [{"name": "ya_band", "signal": "y:ya", "warn_low": -0.5, "warn_high": 0.6},
+              {"name": "ya_rate", "signal": "y:ya", "rate_warn": 4.0},
+              {"name": "ub_high", "signal": "u:ub", "warn_high": 1.9}]
+    if many:
+        limits += [{"name": f"b_{i}", "signal": "x:b", "warn_low": -5.0 - i,
+                    "warn_high": 5.0 + i, "rate_warn": 50.0 + i} for i in range(15)]
+    rig = two_loop_rig(tmp_path, limits=limits)
+    with_c, python = run_both_ways(rig)
+    assert_same(with_c, python)
+    warned = {name for _, kind, _, _, name in python[1] if kind == "limit_warn"}
+    assert {"ya_band", "ya_rate", "ub_high"} <= warned, python[1]
+    assert 100 < with_c[2] < rig.n_ticks   # both kinds of tick ran
+
+
+@pytest.mark.parametrize("scenario", [None, "belt_sensor_stuck", "link_lost"])
+def test_guarded_conveyor_rehearsals_match(scenario: str | None) -> None:
+    rehearsals = REPO / "configs" / "rehearsals"
+    rig = load_rig(rehearsals / "conveyor_guarded.toml")
+    loaded = load_scenario(rehearsals / f"{scenario}.toml", rig) if scenario else None
+    with_c, python = run_both_ways(rig, loaded)
+    assert_same(with_c, python)
+    assert with_c[2] > 0
 
 
 @pytest.mark.filterwarnings("ignore:overflow encountered:RuntimeWarning")

@@ -9,7 +9,8 @@
  *   - the plant product through the very BLAS routine numpy's np.dot calls, handed in as
  *     a function pointer (the loader checks the two agree bit for bit before use).
  * A tick this code cannot finish as the Python tick would (a non-finite or huge command
- * or state) is left untouched for the Python tick, which records why.
+ * or state, a value outside a limit's warn band) is left untouched for the Python tick,
+ * which records why.
  *
  * Plain C with no Python headers: loaded with ctypes.
  */
@@ -51,6 +52,11 @@ typedef struct {
     pid_loop *loops;
     int64_t n_loops;
     double tick;
+    /* the limits' screen (sim/safety/_limits.py): per limit, its column in the record,
+     * its warn band and rate_warn * tick; the values it saw last tick */
+    int64_t n_limits, rates, primed;
+    int64_t *limit_at;
+    double *warn_low, *warn_high, *rate_warn_tick, *seen;
 } stretch;
 
 static void plant_product(const stretch *s) {
@@ -68,6 +74,21 @@ static int plain(const double *v, int64_t count) {
     for (int64_t i = 0; i < count; i++)
         if (!(fabs(v[i]) <= HUGE_VALUE))   /* NaN fails this too */
             return 0;
+    return 1;
+}
+
+/* LimitBank's screen on the record: every value inside its warn band and every change
+ * since last tick inside rate_warn * tick (NaN never is). The values into now. */
+static int inside_warn_bands(const stretch *s, const double *row, double *now) {
+    for (int64_t j = 0; j < s->n_limits; j++) {
+        double v = row[s->limit_at[j]];
+        double d = s->primed ? fabs(v - s->seen[j]) : 0.0;
+        if (s->rates && !(d <= s->rate_warn_tick[j]))
+            return 0;
+        if (!(s->warn_low[j] <= v && v <= s->warn_high[j]))
+            return 0;
+        now[j] = v;
+    }
     return 1;
 }
 
@@ -97,14 +118,14 @@ static double pid_step(const pid_loop *c, const double *sent, const double *r,
 
 /* Ticks k0 .. k0 + count - 1, references for each in refs (count x n_refs), each
  * tick's record into out (count x n_columns). Returns how many ticks were done: fewer
- * than count when a tick must be left to the Python tick (nothing of it written but its
- * references and scratch). */
+ * than count when a tick must be left to the Python tick (which writes again what of it
+ * was written here: its state, PID loops and limits' memory are left as they were). */
 int64_t run_stretch(stretch *s, int64_t k0, int64_t count, const double *refs,
                     double *out) {
-    enum { MAX_LOOPS = 64 };
+    enum { MAX_LOOPS = 64, MAX_LIMITS = 256 };
     pid_loop next[MAX_LOOPS];
-    double drive[MAX_LOOPS];
-    if (s->n_loops > MAX_LOOPS)
+    double drive[MAX_LOOPS], seen_now[MAX_LIMITS];
+    if (s->n_loops > MAX_LOOPS || s->n_limits > MAX_LIMITS)
         return 0;
     double *row = s->row, *r = row + s->at_r, *cmd = row + s->at_cmd;
     double *sent = row + s->at_sent, *y_rec = row + s->at_y;
@@ -131,12 +152,18 @@ int64_t run_stretch(stretch *s, int64_t k0, int64_t count, const double *refs,
         if (!plain(x_next, s->n) || !plain(y, s->p))
             return j;
         memcpy(y_rec, y, (size_t)s->p * sizeof(double));
+        if (!inside_warn_bands(s, row, seen_now))
+            return j;
         memcpy(sent, y, (size_t)s->p * sizeof(double));
         row[1] = (double)k * s->tick;
         row[4] = 1.0;
         memcpy(out + j * s->n_columns, row, (size_t)s->n_columns * sizeof(double));
         memcpy(x, x_next, (size_t)s->n * sizeof(double));
         memcpy(s->loops, next, (size_t)s->n_loops * sizeof(pid_loop));
+        if (s->n_limits) {
+            memcpy(s->seen, seen_now, (size_t)s->n_limits * sizeof(double));
+            s->primed = 1;
+        }
     }
     return j;
 }

@@ -1,11 +1,12 @@
 """Stretches of plain fast-mode ticks run in C (sim/engine/_stretch.c).
 
 A plain tick is one of an LTI plant (one step per tick) under the built-in PID loops,
-in fast mode, with no link, no signal chain, no limits to check, no fault active, no
-interlock forcing or freezing and no scenario condition watched: nothing in it can
-raise an event. The engine hands every run of such ticks up to its next orders (operator
-commands, fault ends, scenario steps) to run_stretch and runs every other tick itself,
-so each feature is still there the tick it is needed, and idle ones cost nothing.
+in fast mode, with no link, no signal chain, no fault active, no interlock forcing or
+freezing, no scenario condition watched and every limit's value inside its warn band
+(each limit's screen runs in C): nothing in it can raise an event. The engine hands
+every run of such ticks up to its next orders (operator commands, fault ends, scenario
+steps) to run_stretch and runs every other tick itself, so each feature is still there
+the tick it is needed, and idle ones cost nothing.
 
 The C tick writes the same bits as the Python tick: the PID law operation for operation,
 and the plant product through the BLAS routine numpy's np.dot calls for it (found in
@@ -54,7 +55,11 @@ class _Fields(ctypes.Structure):
                 ("at_xu", ctypes.c_int64), ("next", ctypes.c_void_p),
                 ("ed_d", ctypes.c_void_p), ("disturbed", ctypes.c_int64),
                 ("loops", ctypes.c_void_p), ("n_loops", ctypes.c_int64),
-                ("tick", ctypes.c_double)]
+                ("tick", ctypes.c_double), ("n_limits", ctypes.c_int64),
+                ("rates", ctypes.c_int64), ("primed", ctypes.c_int64),
+                ("limit_at", ctypes.c_void_p), ("warn_low", ctypes.c_void_p),
+                ("warn_high", ctypes.c_void_p), ("rate_warn_tick", ctypes.c_void_p),
+                ("seen", ctypes.c_void_p)]
 
 
 @functools.cache
@@ -138,11 +143,20 @@ class Stretch:
                                    pid._d_gain, pid._unwind_gain, pid.drive_low,
                                    pid.drive_high)
         self._ints = ints
+        self.limits = engine.safety.limits
+        low, high, rate_tick, rates = self.limits.screen() if self.limits else ([], [], [],
+                                                                               False)
+        self.watched = np.array(self.limits.watched if self.limits else [], dtype=np.int64)
+        self.bounds = np.array([low, high, rate_tick], dtype=np.float64).reshape(3, -1)
+        self.seen = np.zeros(len(self.watched))
         self.fields = _Fields(
             gemv[0], int(gemv[1]), stepper.n_states, stepper.n_inputs, stepper.n_outputs,
             nr, ncols, stepper._block.ctypes.data, engine.row.ctypes.data, cuts[0],
             cuts[1], cuts[2], cuts[3], cuts[4], stepper._next.ctypes.data,
-            stepper._Ed_d.ctypes.data, 0, self.state.ctypes.data, len(loops), rig.tick)
+            stepper._Ed_d.ctypes.data, 0, self.state.ctypes.data, len(loops), rig.tick,
+            len(self.watched), int(rates), 0, self.watched.ctypes.data,
+            self.bounds[0].ctypes.data, self.bounds[1].ctypes.data,
+            self.bounds[2].ctypes.data, self.seen.ctypes.data)
         self._fields_at = ctypes.addressof(self.fields)
         self._refs_at, self._out_at = self.refs.ctypes.data, self.out.ctypes.data
         self.ticks = 0                  # ticks run in C so far
@@ -156,7 +170,7 @@ class Stretch:
             controller.loops if isinstance(controller, PidLoops) else None
         if (loops is None or engine.realtime or engine.link is not None
                 or engine.actuator_chain is not None or engine.sensor_chain is not None
-                or engine.safety.checking or type(engine.stepper) is not LinearStepper):
+                or type(engine.stepper) is not LinearStepper):
             return None
         run, gemv = _kernel(), _numpy_gemv()
         if run is None or gemv is None or not _same_as_numpy(engine.stepper._block, gemv):
@@ -169,7 +183,8 @@ class Stretch:
         scenario, safety = engine.scenario, engine.safety
         return not (engine.faults.on or safety.forcing or safety.freezing
                     or safety.stop_reason or engine.stop_requested
-                    or (scenario is not None and scenario.watching))
+                    or (scenario is not None and scenario.watching)
+                    or (self.limits is not None and not self.limits.all_ok))
 
     def run(self, k: int, end: int) -> int:
         """Ticks k .. end - 1 as far as they are plain, recorded on the engine's tape;
@@ -187,8 +202,14 @@ class Stretch:
             state[i, AT_INTEGRAL:AT_INTEGRAL + 3] = (pid.integral, pid.derivative,
                                                      0.0 if y_prev is None else y_prev)
             self._ints[i, AT_INTEGRAL + 3] = y_prev is not None
-        self.fields.disturbed = self.stepper._disturbed
+        fields, limits = self.fields, self.limits
+        fields.disturbed = self.stepper._disturbed
+        if limits is not None:
+            self.seen[:] = limits.last_values()
+            fields.primed = limits.primed
         done = self._run(self._fields_at, k, count, self._refs_at, self._out_at)
+        if limits is not None and done:
+            limits.screened_elsewhere(self.seen.tolist())
         for i, pid in enumerate(self.loops):
             pid.integral, pid.derivative, y_prev = state[i, AT_INTEGRAL:AT_INTEGRAL + 3].tolist()
             if self._ints[i, AT_INTEGRAL + 3]:

@@ -188,6 +188,7 @@ class LimitBank:
         self.n = n
         self.tick = tick
         idx = [columns.index(s.column) for s in self.specs]
+        self.watched = idx                      # the tick column each limit reads
         self._code_idx = np.array([columns.index(f"limit:{s.name}") for s in self.specs],
                                   dtype=np.intp)
         self._rates = any(math.isfinite(s.rate_warn) for s in self.specs)
@@ -222,6 +223,34 @@ class LimitBank:
 
     def value(self, i: int) -> float:
         return float(self.values[i])
+
+    @property
+    def primed(self) -> bool:
+        """Whether the screen has seen a tick (before that, no rate is measured)."""
+        return self._primed
+
+    @property
+    def all_ok(self) -> bool:
+        """Every code OK: a tick whose screen passes changes nothing."""
+        return not self._nonzero
+
+    def screen(self) -> tuple[list[float], list[float], list[float], bool]:
+        """The screen's bounds, as this bank compares them: warn_low, warn_high and
+        rate_warn * tick per limit, and whether any rate is checked."""
+        return ([s.warn_low for s in self.specs], [s.warn_high for s in self.specs],
+                [s.rate_warn * self.tick for s in self.specs], self._rates)
+
+    def last_values(self) -> list[float]:
+        """The values the screen saw at the last tick (rates are measured from them)."""
+        return [float(v) for v in self.values]
+
+    def screened_elsewhere(self, values: list[float]) -> None:
+        """The screen passed on ticks checked outside this bank (plain ticks in C), the
+        last of them seeing ``values``: rates of the next tick are measured from them."""
+        self.values[:] = values
+        if self.vector:
+            self._prev[:] = values
+        self._primed = True
 
     def rate(self, i: int) -> float:
         """|dv/dt| of limit i at the last check (0 without rate limits)."""
