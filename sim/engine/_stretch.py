@@ -70,7 +70,7 @@ def _kernel() -> Any:
         path = here / f"{KERNEL}{suffix}"
         if path.exists():
             try:
-                run = ctypes.CDLL(str(path)).run_stretch
+                run = ctypes.PyDLL(str(path)).run_stretch   # a short call: keep the GIL
             except (OSError, AttributeError):
                 return None
             run.argtypes = [ctypes.c_void_p, ctypes.c_int64, ctypes.c_int64,
