@@ -71,6 +71,9 @@ CONVEYOR = ROOT / "configs" / "conveyor.toml"
 GUARDED = ROOT / "configs" / "rehearsals" / "conveyor_guarded.toml"
 SENSOR_STUCK = ROOT / "configs" / "rehearsals" / "belt_sensor_stuck.toml"
 GUARD_S = 60.0          # a hang guard only; nothing here measures time
+# plant seconds of a fast run the test stops itself: at 600 s the conveyor's plain ticks
+# (in C) got through up to 64 % of it beside a busy dashboard before the stop
+LONG_S = 3000.0
 
 
 def frames_until(window, condition, what: str) -> None:
@@ -313,7 +316,7 @@ def test_replay_shows_the_moment_under_the_slider(xvfb, tmp_path, stock_colours)
 
 
 def live_case(tmp_path: Path) -> None:
-    rig = replace(load_rig(CONVEYOR), duration=600.0)       # fast mode, stopped by the test
+    rig = replace(load_rig(CONVEYOR), duration=LONG_S)      # fast mode, stopped by the test
     commands = mp.get_context("spawn").Queue()
     thread, ready, paths, result = run_in_thread(rig, tmp_path, commands)
     assert ready.wait(GUARD_S) and "error" not in result, result.get("error")
@@ -430,7 +433,7 @@ def plot_of(window, key: str) -> int:
 
 
 def guarded_live_case(tmp_path: Path) -> None:
-    rig = replace(load_rig(GUARDED), duration=600.0)       # fast, stopped by the test
+    rig = replace(load_rig(GUARDED), duration=LONG_S)      # fast, stopped by the test
     commands = mp.get_context("spawn").Queue()
     thread, ready, paths, result = run_in_thread(rig, tmp_path, commands)
     assert ready.wait(GUARD_S) and "error" not in result, result.get("error")
@@ -589,7 +592,7 @@ def shown_run_lines() -> list[str]:
 
 
 def scenario_live_case(tmp_path: Path) -> None:
-    rig = replace(load_rig(GUARDED), duration=600.0)       # fast, stopped by the test
+    rig = replace(load_rig(GUARDED), duration=LONG_S)      # fast, stopped by the test
     scenario = load_scenario(SENSOR_STUCK, rig)
     commands = mp.get_context("spawn").Queue()
     ready = threading.Event()
@@ -733,7 +736,7 @@ def replay_case(tmp_path: Path) -> None:
 def test_killing_the_dashboard_mid_run_loses_no_tick(xvfb, tmp_path):
     # the run is long enough for any machine load; it is stopped by command only after the
     # dashboard has drawn, been killed, and the loop has gone on for a while without it
-    rig = replace(load_rig(CONVEYOR), duration=600.0)
+    rig = replace(load_rig(CONVEYOR), duration=LONG_S)
     commands = mp.get_context("spawn").Queue()
     seen: dict = {}
     exits: list[str] = []
