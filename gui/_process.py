@@ -147,8 +147,16 @@ class DashboardProcess:
         return f"dashboard failed with exit code {code}{never}; the run is not affected"
 
     def wait(self, timeout: float | None = None) -> bool:
-        """Wait for the window to be closed; True if the process has ended."""
+        """Wait for the window to be closed; True if the process has ended.
+
+        The watcher thread reaps the child too: when its waitpid wins, join() here can
+        return with no exit code yet (ECHILD), although the process has ended (its
+        sentinel is ready), and the caller would report nothing. So wait until the exit
+        code is there, as the watcher does."""
         self.process.join(timeout)
+        if multiprocessing.connection.wait([self.process.sentinel], 0):
+            while self.process.exitcode is None:
+                time.sleep(0.01)
         return self.process.exitcode is not None
 
     def stop(self, timeout: float = 2.0) -> None:

@@ -206,17 +206,26 @@ def test_watchdog_fires_within_timeout_plus_one_tick(tmp_path: Path) -> None:
 
 class WaitNotingPort(FdPort):
     """The pty master as the link uses it, noting each wait the link asks for; at the
-    ``stop_at``-th wait it stops the controller's process (SIGSTOP)."""
+    ``stop_at``-th write (a frame a tick) it stops the controller's process (SIGSTOP).
+    Counted in writes, not waits: a controller quicker than the link's first look needs
+    no wait that tick, so a count of waits may never reach ``stop_at`` in the run."""
 
     def __init__(self, fd: int, controller_pid: int, stop_at: int) -> None:
         super().__init__(fd, name="pty", owns_fd=False)
         self.waits: list[float] = []
+        self.writes = 0
+        self.waits_before_stop = -1
         self.pid, self.stop_at = controller_pid, stop_at
+
+    def write_some(self, data: bytes | memoryview) -> int:
+        self.writes += 1
+        if self.writes == self.stop_at:
+            os.kill(self.pid, signal.SIGSTOP)
+            self.waits_before_stop = len(self.waits)
+        return super().write_some(data)
 
     def wait_readable(self, timeout: float) -> None:
         self.waits.append(timeout)
-        if len(self.waits) == self.stop_at:
-            os.kill(self.pid, signal.SIGSTOP)
         super().wait_readable(timeout)
 
 
@@ -239,7 +248,7 @@ def test_a_dead_controller_holds_a_lockstep_run_one_timeout_then_one_tick_a_tick
     assert wire.outcome.ended == "fault" and wire.rows.shape[0] == rig.n_ticks
     # the waits: within a whole timeout until the first that runs out, then a tick each
     first_out = next(i for i, w in enumerate(port.waits) if w <= rig.tick) - 1
-    assert port.waits[first_out] > rig.tick and first_out >= 300 - 1
+    assert port.waits[first_out] > rig.tick and first_out >= port.waits_before_stop >= 0
     after = port.waits[first_out + 1:]
     assert max(after) <= rig.tick
     assert len(after) <= timeout_ticks          # no wait at all once the link is lost
