@@ -20,8 +20,9 @@ Order inside tick k, at plant time t_k = k * tick:
 
 Scenario steps and operator commands act at the start of a tick (_scenario.py).
 
-In fast mode, runs of plain ticks (nothing but the plant, built-in PID loops and the
-record active) go to C in one call each (_stretch.py), with the same record bit for bit;
+In fast mode, runs of plain ticks (nothing active but the plant, built-in PID loops,
+limits inside their warn bands and the record) go to C in one call each (_stretch.py),
+with the same record bit for bit;
 every other tick, and every tick in real time, runs the stages above in Python.
 
 Anything the model, the controller or a link raises ends the run through one stop path

@@ -139,9 +139,7 @@ class Stretch:
         ints = self.state.view(np.int64)
         for i, pid in enumerate(loops):
             ints[i, :4] = (pid.measure, pid.drive, pid.reference, WINDUP_CODES[pid.windup])
-            self.state[i, 4:13] = (pid.kp, pid.ki, pid.kd, pid.dt, pid._d_pole,
-                                   pid._d_gain, pid._unwind_gain, pid.drive_low,
-                                   pid.drive_high)
+            self.state[i, 4:13] = pid.law()
         self._ints = ints
         self.limits = engine.safety.limits
         low, high, rate_tick, rates = self.limits.screen() if self.limits else ([], [], [],
@@ -149,11 +147,12 @@ class Stretch:
         self.watched = np.array(self.limits.watched if self.limits else [], dtype=np.int64)
         self.bounds = np.array([low, high, rate_tick], dtype=np.float64).reshape(3, -1)
         self.seen = np.zeros(len(self.watched))
+        block, step_out, ed_d = stepper.arrays()       # changed in place, never replaced
         self.fields = _Fields(
             gemv[0], int(gemv[1]), stepper.n_states, stepper.n_inputs, stepper.n_outputs,
-            nr, ncols, stepper._block.ctypes.data, engine.row.ctypes.data, cuts[0],
-            cuts[1], cuts[2], cuts[3], cuts[4], stepper._next.ctypes.data,
-            stepper._Ed_d.ctypes.data, 0, self.state.ctypes.data, len(loops), rig.tick,
+            nr, ncols, block.ctypes.data, engine.row.ctypes.data, cuts[0], cuts[1],
+            cuts[2], cuts[3], cuts[4], step_out.ctypes.data, ed_d.ctypes.data, 0,
+            self.state.ctypes.data, len(loops), rig.tick,
             len(self.watched), int(rates), 0, self.watched.ctypes.data,
             self.bounds[0].ctypes.data, self.bounds[1].ctypes.data,
             self.bounds[2].ctypes.data, self.seen.ctypes.data)
@@ -173,7 +172,8 @@ class Stretch:
                 or type(engine.stepper) is not LinearStepper):
             return None
         run, gemv = _kernel(), _numpy_gemv()
-        if run is None or gemv is None or not _same_as_numpy(engine.stepper._block, gemv):
+        if run is None or gemv is None or not _same_as_numpy(engine.stepper.arrays()[0],
+                                                             gemv):
             return None
         return cls(engine, loops, run, gemv, cuts)
 
@@ -203,7 +203,7 @@ class Stretch:
                                                      0.0 if y_prev is None else y_prev)
             self._ints[i, AT_INTEGRAL + 3] = y_prev is not None
         fields, limits = self.fields, self.limits
-        fields.disturbed = self.stepper._disturbed
+        fields.disturbed = self.stepper.disturbed
         if limits is not None:
             self.seen[:] = limits.last_values()
             fields.primed = limits.primed

@@ -84,6 +84,13 @@ class Pid:
         self.derivative = 0.0
         self.y_prev: float | None = None
 
+    def law(self) -> tuple[float, ...]:
+        """The constants compute() uses, in this order: kp, ki, kd, dt, the derivative
+        filter's pole and gain, the unwind gain, drive_low, drive_high (for code that
+        runs the same law outside Python: sim/engine/_stretch.py)."""
+        return (self.kp, self.ki, self.kd, self.dt, self._d_pole, self._d_gain,
+                self._unwind_gain, self.drive_low, self.drive_high)
+
     def compute(self, t: float, y: Vector, r: Vector, u: Vector) -> None:
         # plain floats and locals: this runs every tick on the real-time thread
         yk = float(y[self.measure])

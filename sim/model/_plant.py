@@ -408,6 +408,17 @@ class LinearStepper:
         self.u[:] = 0.0
         self._next[:] = 0.0
 
+    def arrays(self) -> tuple[Matrix, Vector, Vector]:
+        """The arrays a step reads and writes in place, for code that steps the same
+        model outside Python (sim/engine/_stretch.py): the block [[Ad, Bd], [C, D]],
+        [x_{k+1}; y_k], and Ed d (added to x_{k+1} while ``disturbed``)."""
+        return self._block, self._next, self._Ed_d
+
+    @property
+    def disturbed(self) -> bool:
+        """Whether a disturbance input is nonzero (Ed d is added to each step)."""
+        return self._disturbed
+
     def output_only(self, t: float) -> None:
         """Compute y from the present (x, u) without advancing."""
         np.dot(self._block[self.n_states:], self._xu, out=self.y)
