@@ -18,6 +18,10 @@
 #include <stdint.h>
 #include <string.h>
 
+#ifdef __FAST_MATH__
+#error "_stretch.c must keep IEEE arithmetic: build it without -ffast-math"
+#endif
+
 typedef void (*gemv_fn)(int order, int trans, int64_t m, int64_t n, double alpha,
                         const double *a, int64_t lda, const double *x, int64_t incx,
                         double beta, double *y, int64_t incy);
