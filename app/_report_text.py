@@ -421,6 +421,9 @@ def timing_rows(record: RunRecord, s: dict[str, Any]) -> Rows:
         rows.append(("timing", "fast mode: ticks were not paced to the wall clock, so "
                                "lateness and overruns do not apply; wall time "
                                f"{human_duration(float(timing.get('wall_s') or 0.0))}"))
+        if timing.get("ticks_in_c"):
+            rows.append(("plain ticks in C", f"{timing['ticks_in_c']} of "
+                         f"{timing.get('ticks', '?')} (the same record as ticks in Python)"))
         return rows
     res = timing.get("timing_resolution_s")
     res_text = f" (to {res * 1e6:g} us)" if res else ""

@@ -146,12 +146,17 @@ def test_every_page_is_numbered_with_the_run_id(belt_run: Path, belt_report: dic
         assert f"run {belt_run.name} — page {n} of {len(pages)}" in page, n
 
 
-def test_no_internal_names_and_no_timing_figures_in_a_fast_run(belt_report: dict) -> None:
+def test_no_internal_names_and_no_timing_figures_in_a_fast_run(belt_run: Path,
+                                                              belt_report: dict) -> None:
     text = "\n".join(belt_report["pages"])
     for word in INTERNAL:
         assert word not in text, word
     assert "Tick lateness" not in text and "Tick work time" not in text
     assert "fast mode: ticks were not paced to the wall clock" in text
+    summary = json.loads((belt_run / "summary.json").read_text())
+    in_c = summary["timing"]["ticks_in_c"]    # the guarded belt ticks in C until its faults
+    assert 0 < in_c < summary["ticks_recorded"]
+    assert f"{in_c} of {summary['ticks_recorded']} (the same record" in text
     assert "fault injected: stuck_sensor" in text and "limit warning: belt_fast" in text
 
 

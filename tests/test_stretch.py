@@ -33,7 +33,8 @@ def run_both_ways(rig, scenario=None):  # type: ignore[no-untyped-def]
         engine = Engine(rig, tape, realtime=False, scenario=scenario, stretches=stretches)
         outcome = engine.run()
         events = [(e.tick, e.kind, e.detail, e.source, e.name) for e in outcome.events]
-        ran = engine.stretch.ticks if engine.stretch is not None else 0
+        ran = outcome.ticks_in_c
+        assert outcome.timing(rig.tick)["ticks_in_c"] == ran
         results.append((tape.rows, events, ran, outcome.ended))
     return results
 

@@ -147,6 +147,7 @@ class RunOutcome:
     rules: list[RuleResult] = field(default_factory=list)
     answered: int = 0
     loop_s: float = 0.0            # from tick 0's start to the end of the last tick
+    ticks_in_c: int = 0            # plain ticks run in C (_stretch.py), same record
 
     @property
     def exit_code(self) -> int:
@@ -171,6 +172,7 @@ class RunOutcome:
             "scheduler": self.realtime.scheduler if self.realtime else None,
             "spin_window_s": self.realtime.spin_ns / 1e9 if self.realtime else None,
             "cpu": self.realtime.cpu if self.realtime else None,
+            "ticks_in_c": self.ticks_in_c,
         }
 
 
@@ -363,7 +365,8 @@ class Engine:
         return RunOutcome(self.done, ended, reason, self.events, self.lateness,
                           self.work_time, self.overruns, self.skipped, wall_s, report,
                           health, rules, self.answered,
-                          max(0, loop_end - self.loop_start) / 1e9)
+                          max(0, loop_end - self.loop_start) / 1e9,
+                          self.stretch.ticks if self.stretch is not None else 0)
 
     # -- before tick 0 and the loop ------------------------------------------------------
 
