@@ -94,10 +94,16 @@ class DashboardProcess:
 
     def _watch(self) -> None:
         multiprocessing.connection.wait([self.process.sentinel])
-        # another thread may be reaping the child in wait(); let it finish
+        self._exit_code_once_ended()
+        self.report()
+
+    def _exit_code_once_ended(self) -> None:
+        """The process has ended (its sentinel is ready): wait for its exit code.
+
+        This watcher and wait() both reap the child. Whichever waitpid loses gets ECHILD
+        and sees no exit code until the winner has stored it, a moment later."""
         while self.process.exitcode is None:
             time.sleep(0.01)
-        self.report()
 
     def report(self) -> None:
         """Say once how the window ended (to ``on_exit``), whichever thread sees it first.
@@ -147,16 +153,10 @@ class DashboardProcess:
         return f"dashboard failed with exit code {code}{never}; the run is not affected"
 
     def wait(self, timeout: float | None = None) -> bool:
-        """Wait for the window to be closed; True if the process has ended.
-
-        The watcher thread reaps the child too: when its waitpid wins, join() here can
-        return with no exit code yet (ECHILD), although the process has ended (its
-        sentinel is ready), and the caller would report nothing. So wait until the exit
-        code is there, as the watcher does."""
+        """Wait for the window to be closed; True if the process has ended."""
         self.process.join(timeout)
         if multiprocessing.connection.wait([self.process.sentinel], 0):
-            while self.process.exitcode is None:
-                time.sleep(0.01)
+            self._exit_code_once_ended()
         return self.process.exitcode is not None
 
     def stop(self, timeout: float = 2.0) -> None:

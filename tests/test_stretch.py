@@ -10,13 +10,12 @@ import numpy as np
 import pytest
 
 from plantrig.sim import (
-    Engine,
-    MemoryTape,
     Tape,
     TapeReader,
     build_rig,
     load_rig,
     load_scenario,
+    simulate,
     tick_columns,
 )
 
@@ -26,16 +25,14 @@ CONVEYOR = REPO / "configs" / "conveyor.toml"
 
 def run_both_ways(rig, scenario=None):  # type: ignore[no-untyped-def]
     """(rows, events, ticks the C stretches ran) with stretches, then without."""
-    rig = scenario.apply_to(rig) if scenario is not None else rig
     results = []
     for stretches in (True, False):
-        tape = MemoryTape(tick_columns(rig)[0], rig.n_ticks)
-        engine = Engine(rig, tape, realtime=False, scenario=scenario, stretches=stretches)
-        outcome = engine.run()
+        data = simulate(rig, scenario=scenario, stretches=stretches)
+        outcome = data.outcome
         events = [(e.tick, e.kind, e.detail, e.source, e.name) for e in outcome.events]
         ran = outcome.ticks_in_c
         assert outcome.timing(rig.tick)["ticks_in_c"] == ran
-        results.append((tape.rows, events, ran, outcome.ended))
+        results.append((data.rows, events, ran, outcome.ended))
     return results
 
 

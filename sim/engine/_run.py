@@ -65,15 +65,16 @@ class RunData:
 def simulate(rig: Rig, *, realtime: bool = False, clock: Clock | None = None,
              link: ControllerLink | None = None, actuator_chain: SignalChain | None = None,
              sensor_chain: SignalChain | None = None,
-             scenario: Scenario | None = None) -> RunData:
+             scenario: Scenario | None = None, stretches: bool = True) -> RunData:
     """Run ``rig`` in this process, keeping every row in memory (``scenario``: its steps
-    fire during the run; judge it with evaluate on the result)."""
+    fire during the run; judge it with evaluate on the result). ``stretches`` False
+    keeps every tick in Python (plain ticks otherwise run in C, with the same record)."""
     rig = scenario.apply_to(rig) if scenario is not None else rig
     columns, units = tick_columns(rig)
     tape = MemoryTape(columns, rig.n_ticks)
     engine = Engine(rig, tape, realtime=realtime, clock=clock, link=link,
                     actuator_chain=actuator_chain, sensor_chain=sensor_chain,
-                    scenario=scenario)
+                    scenario=scenario, stretches=stretches)
     outcome = engine.run()
     return RunData(columns, units, tape.rows, outcome)
 

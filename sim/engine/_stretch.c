@@ -61,6 +61,10 @@ typedef struct {
     int64_t n_limits, rates, primed;
     int64_t *limit_at;
     double *warn_low, *warn_high, *rate_warn_tick, *seen;
+    /* scratch for one tick, sized by the caller: the loops' next state and drive
+     * values, the limits' values, kept until the tick is done */
+    pid_loop *loops_next;
+    double *drive, *seen_now;
 } stretch;
 
 static void plant_product(const stretch *s) {
@@ -126,11 +130,8 @@ static double pid_step(const pid_loop *c, const double *sent, const double *r,
  * was written here: its state, PID loops and limits' memory are left as they were). */
 int64_t run_stretch(stretch *s, int64_t k0, int64_t count, const double *refs,
                     double *out) {
-    enum { MAX_LOOPS = 64, MAX_LIMITS = 256 };
-    pid_loop next[MAX_LOOPS];
-    double drive[MAX_LOOPS], seen_now[MAX_LIMITS];
-    if (s->n_loops > MAX_LOOPS || s->n_limits > MAX_LIMITS)
-        return 0;
+    pid_loop *next = s->loops_next;
+    double *drive = s->drive, *seen_now = s->seen_now;
     double *row = s->row, *r = row + s->at_r, *cmd = row + s->at_cmd;
     double *sent = row + s->at_sent, *y_rec = row + s->at_y;
     double *x = row + s->at_xu, *u = x + s->n;

@@ -59,7 +59,8 @@ class _Fields(ctypes.Structure):
                 ("rates", ctypes.c_int64), ("primed", ctypes.c_int64),
                 ("limit_at", ctypes.c_void_p), ("warn_low", ctypes.c_void_p),
                 ("warn_high", ctypes.c_void_p), ("rate_warn_tick", ctypes.c_void_p),
-                ("seen", ctypes.c_void_p)]
+                ("seen", ctypes.c_void_p), ("loops_next", ctypes.c_void_p),
+                ("drive", ctypes.c_void_p), ("seen_now", ctypes.c_void_p)]
 
 
 @functools.cache
@@ -130,11 +131,10 @@ class Stretch:
         assert isinstance(stepper, LinearStepper)
         self.stepper = stepper
         rig = engine.rig
-        self.tick = rig.tick
-        self.capacity = engine.poll_every      # orders are due at least this often
+        longest = engine.poll_every            # orders are due at least this often
         nr, ncols = len(rig.references), len(engine.columns)
-        self.refs = np.zeros((self.capacity, nr))
-        self.out = np.zeros((self.capacity, ncols))
+        self.refs = np.zeros((longest, nr))
+        self.out = np.zeros((longest, ncols))
         self.state = np.zeros((len(loops), LOOP_WORDS))
         ints = self.state.view(np.int64)
         for i, pid in enumerate(loops):
@@ -147,6 +147,9 @@ class Stretch:
         self.watched = np.array(self.limits.watched if self.limits else [], dtype=np.int64)
         self.bounds = np.array([low, high, rate_tick], dtype=np.float64).reshape(3, -1)
         self.seen = np.zeros(len(self.watched))
+        # the C tick's scratch: next loop states, drive values, limit values
+        self.scratch = (np.zeros_like(self.state), np.zeros(len(loops)),
+                        np.zeros_like(self.seen))
         block, step_out, ed_d = stepper.arrays()       # changed in place, never replaced
         self.fields = _Fields(
             gemv[0], int(gemv[1]), stepper.n_states, stepper.n_inputs, stepper.n_outputs,
@@ -155,7 +158,8 @@ class Stretch:
             self.state.ctypes.data, len(loops), rig.tick,
             len(self.watched), int(rates), 0, self.watched.ctypes.data,
             self.bounds[0].ctypes.data, self.bounds[1].ctypes.data,
-            self.bounds[2].ctypes.data, self.seen.ctypes.data)
+            self.bounds[2].ctypes.data, self.seen.ctypes.data,
+            *(a.ctypes.data for a in self.scratch))
         self._fields_at = ctypes.addressof(self.fields)
         self._refs_at, self._out_at = self.refs.ctypes.data, self.out.ctypes.data
         self.ticks = 0                  # ticks run in C so far
@@ -189,7 +193,8 @@ class Stretch:
     def run(self, k: int, end: int) -> int:
         """Ticks k .. end - 1 as far as they are plain, recorded on the engine's tape;
         the first tick not done (the Python tick takes it)."""
-        engine, count, tick = self.engine, end - k, self.tick
+        engine, count = self.engine, end - k
+        tick = engine.rig.tick
         refs = self.refs
         for i, value in engine.ref_values:
             refs[:count, i] = [value((k + j) * tick) for j in range(count)]
