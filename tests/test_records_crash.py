@@ -29,8 +29,8 @@ from plantrig.sim import load_rig, run_to_folder, simulate, tick_columns
 from plantrig.sim.engine import _run as run_module
 from plantrig.sim.records._manifest import verify_folder
 from plantrig.sim.records._reader import read_run
-from plantrig.sim.records._records import recover_run
-from plantrig.sim.records._tape import HEADER_WORDS, STATE_ENDED, W_STATE
+from plantrig.sim.records._records import recover_run, salvage_rows
+from plantrig.sim.records._tape import HEADER_WORDS, STATE_ENDED, W_STATE, Tape, TapeReader
 
 REPO = Path(__file__).resolve().parents[1]
 CONVEYOR = REPO / "configs" / "conveyor.toml"
@@ -191,6 +191,29 @@ def test_stalled_recorder_overflows_the_tape_into_a_clean_stop(
     assert "tape_overflow" in kinds and kinds[-1] == "run_end"
     record = read_run(folder)
     same_as_fast_run(record.rows, record.columns, rig_path)
+
+
+def test_rows_the_recorder_copied_but_never_wrote_stay_in_the_ring(tmp_path: Path) -> None:
+    # a recorder killed after copying rows out of the ring and before writing them to
+    # the journal (seen in CI: 241 rows, then the rig lapped them and lost the salvage)
+    columns = ["seq", "t", "v"]
+    tape = Tape(tmp_path / "ring.tape", columns, capacity=8)
+    recorder = TapeReader(tmp_path / "ring.tape", acknowledge=True)
+    block = np.zeros((5, 3))
+    block[:, 1] = np.arange(5) * 0.25
+    tape.append_rows(block)
+    assert len(recorder.read_new()) == 5           # copied, and then the recorder dies
+    assert tape.free() == 3                        # the rig may not reuse those slots
+    journal = tmp_path / "ticks.journal"
+    journal.write_bytes(b"")
+    assert salvage_rows(journal, tmp_path / "ring.tape", 3)["tape_rows"] == 5
+    salvaged = np.frombuffer(journal.read_bytes()).reshape(-1, 3)
+    np.testing.assert_array_equal(salvaged[:, 0], np.arange(5))
+    np.testing.assert_array_equal(salvaged[:, 1], block[:, 1])
+    recorder.release()                             # once written, the slots are free
+    assert tape.free() == 8
+    recorder.close()
+    tape.close()
 
 
 def test_disk_filling_mid_run_stops_safely_and_keeps_the_rows(tmp_path: Path) -> None:

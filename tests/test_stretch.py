@@ -179,6 +179,8 @@ def test_ring_tape_takes_blocks_across_its_wrap(tmp_path: Path) -> None:
         tape.append_rows(block)
         written += size
         seen.append(reader.read_new())
+        reader.release()
+        assert tape.free() == 7
     rows = np.concatenate(seen)
     assert tape.written == written == len(rows)
     np.testing.assert_array_equal(rows[:, 0], np.arange(written))

@@ -96,9 +96,10 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
             # read "ended" before the rows and events: a writer that appends its last
             # event and then ends between our read and our check would lose that event
             finished = reader.ended and event_tape.ended
-            backlog = reader.written - reader.next_seq
-            max_backlog = max(max_backlog, backlog)
             rows = reader.read_new()
+            # how far behind this read was: the rows it took and any written since (a
+            # count taken before the read would miss a recorder stopped between the two)
+            max_backlog = max(max_backlog, len(rows) + reader.written - reader.next_seq)
             if rows.size and disk.error == RECORDER_OK:
                 if disk.write(journal, rows.tobytes()):
                     journal_bytes += rows.size * 8
@@ -109,6 +110,7 @@ def drain_tape(tape_path: str, journal_path: str, status_path: str, event_tape_p
                         os.ftruncate(journal.fileno(), journal_bytes)
             if disk.error != RECORDER_OK:
                 not_written = reader.next_seq - journal_bytes // row_bytes
+            reader.release()     # in the journal (or knowingly dropped): slots are free
             new_events = event_tape.read_new()
             for event in new_events:
                 disk.write(events, (json.dumps(event) + "\n").encode())

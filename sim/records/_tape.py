@@ -253,9 +253,14 @@ class TapeReader:
             block = block[:stop]
             self.lost += count - stop
         self.next_seq += count
+        return block
+
+    def release(self) -> None:
+        """Let the writer reuse the slots of every row read so far (an acknowledging
+        reader only). Called once those rows are in the journal, not when copied out:
+        a reader killed between copy and write must leave them in the ring to salvage."""
         if self.acknowledge:
             self.header[W_CONSUMED] = self.next_seq
-        return block
 
     def latest(self) -> NDArray[np.float64] | None:
         """The newest complete row, for displays that only need the present."""
