@@ -16,6 +16,7 @@ markdown it prints. Every number sits beside a peer measured in the same run:
 from __future__ import annotations
 
 import argparse
+import queue
 import re
 import subprocess
 import sys
@@ -28,6 +29,7 @@ import numpy as np
 import scipy.signal
 
 from plantrig.sim import (
+    CommandInbox,
     Engine,
     LinearPlant,
     MemoryTape,
@@ -128,6 +130,9 @@ def full_tick_table(samples: int, rev: str | None) -> list[str]:
     rig = pid_rig(10, samples * TICK)
     columns = tick_columns(rig)[0]
     engines = {"today (plain ticks in C)": lambda r, t: Engine(r, t, realtime=False),
+               "today, C, inbox looked at every 5 ms (as a recorded run)":
+                   lambda r, t: Engine(r, t, realtime=False,
+                                       commands=CommandInbox(queue.Queue())),
                "today, every tick in Python": lambda r, t: Engine(r, t, realtime=False,
                                                                   stretches=False)}
     if rev:

@@ -4,12 +4,16 @@ steps, non-finite commands) acting in the same ticks."""
 
 from __future__ import annotations
 
+import queue
 from pathlib import Path
 
 import numpy as np
 import pytest
 
 from plantrig.sim import (
+    CommandInbox,
+    Engine,
+    MemoryTape,
     Tape,
     TapeReader,
     build_rig,
@@ -49,6 +53,21 @@ def test_shipped_conveyor_runs_in_stretches_bit_for_bit() -> None:
     with_c, python = run_both_ways(rig)
     assert_same(with_c, python)
     assert with_c[2] == rig.n_ticks         # every tick of a plain run is a C tick
+
+
+def test_only_a_run_with_something_to_poll_cuts_its_stretches_every_5_ms(
+        tmp_path: Path) -> None:
+    # an in-memory run has no inbox and no recorder process: its stretches end only
+    # at its orders (1024 ticks at most, the scratch); a run with either looks every 5 ms
+    rig = load_rig(CONVEYOR)
+    columns, _ = tick_columns(rig)
+    quiet = Engine(rig, MemoryTape(columns, rig.n_ticks))
+    inbox = Engine(rig, MemoryTape(columns, rig.n_ticks), commands=CommandInbox(queue.Queue()))
+    ring = Tape(tmp_path / "ring.tape", columns, capacity=64)
+    recorded = Engine(rig, ring)
+    assert (quiet.poll_every, inbox.poll_every, recorded.poll_every) == (1024, 5, 5)
+    assert quiet.stretch is not None and len(quiet.stretch.out) == 1024
+    ring.close()
 
 
 def test_features_that_leave_a_stretch_act_in_the_same_ticks(tmp_path: Path) -> None:

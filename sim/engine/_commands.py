@@ -2,7 +2,8 @@
 
 Commands arrive on a multiprocessing queue; the loop polls it every COMMAND_POLL_S of
 plant time (an empty poll costs ~10-20 us on the reference VM, too much for every
-tick at 1 kHz). Each command the loop acts on becomes an event in the run record.
+tick at 1 kHz; a run with no inbox and no recorder process has nothing to poll).
+Each command the loop acts on becomes an event in the run record.
 """
 
 from __future__ import annotations

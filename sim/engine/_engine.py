@@ -69,10 +69,13 @@ from plantrig.sim.scenario._scenario import Scenario, ScenarioRunner
 
 Vector = NDArray[np.float64]
 START_LEAD_NS = 5_000_000
+QUIET_POLL_TICKS = 1024
 META_COLUMNS = ("seq", "t", "lateness", "exec_time", "fresh")
 
 
 class TapeLike(Protocol):
+    recorded_elsewhere: bool   # another process records it and may stop mid-run
+
     def append(self, row: Vector) -> None: ...
     def append_rows(self, block: Vector) -> None: ...
     def free(self) -> int: ...
@@ -253,7 +256,11 @@ class Engine:
         self.tick_ns = int(round(rig.tick * 1e9))
         self.ref_values = [(i, r.waveform.value) for i, r in enumerate(rig.references)]
         self.hold_on_silence = rig.on_link_silence == "hold"
-        self.poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick)))
+        # ticks between looks at the command inbox and the recorder's health; a run with
+        # neither (the Python API's in-memory runs) has nothing to look at, and only its
+        # plain ticks' stretches in C are cut there (their scratch is sized by it)
+        self.poll_every = max(1, int(round(COMMAND_POLL_S / rig.tick))) \
+            if commands is not None or tape.recorded_elsewhere else QUIET_POLL_TICKS
         self.demand = np.zeros(m)           # u before the safe values, for the limits
         # what the run counts, and the pacing's state
         self.lateness, self.work_time = DurationHistogram(), DurationHistogram()

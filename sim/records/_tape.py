@@ -49,6 +49,8 @@ class TapeOverflow(RuntimeError):
 class Tape:
     """Writer side of the ring, owned by the tick loop."""
 
+    recorded_elsewhere = True    # by the recorder process, which can die or fail
+
     def __init__(self, path: Path, columns: list[str], capacity: int,
                  units: list[str] | None = None) -> None:
         self.path = Path(path)
@@ -160,6 +162,8 @@ class Tape:
 
 class MemoryTape:
     """An in-process tape holding every row of a run, for the Python API and tests."""
+
+    recorded_elsewhere = False
 
     def __init__(self, columns: list[str], capacity: int) -> None:
         self.columns = list(columns)
