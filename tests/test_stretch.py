@@ -25,6 +25,7 @@ from plantrig.sim import (
 
 REPO = Path(__file__).resolve().parents[1]
 CONVEYOR = REPO / "configs" / "conveyor.toml"
+GUARDED = REPO / "configs" / "rehearsals" / "conveyor_guarded.toml"
 
 
 def run_both_ways(rig, scenario=None):  # type: ignore[no-untyped-def]
@@ -78,7 +79,7 @@ name = "mixed"
 
 [[steps]]
 at = 0.5
-inject = { name = "stuck", kind = "sensor_stuck", target = "belt_speed", value = 0.3, \
+inject = { name = "noisy", kind = "sensor_noise", target = "belt_speed", std = 0.01, \
            duration = 0.3 }
 
 [[steps]]
@@ -108,8 +109,78 @@ stop = true
     kinds = {kind for _, kind, *_ in python[1]}
     assert {"fault_injected", "fault_cleared", "estop", "reset", "phase"} <= kinds
     ticks = python[0].shape[0]
-    # the fault (0.3 s) and the E-stop (0.2 s) ran in Python; the rest in C
-    assert ticks - 600 <= with_c[2] < ticks - 400
+    # the noise (0.3 s: numpy's generator draws it) ran in Python; the rest in C
+    assert ticks - 310 <= with_c[2] <= ticks - 300
+
+
+def test_sensor_and_actuator_faults_and_forced_inputs_run_in_c(tmp_path: Path) -> None:
+    # every sensor and actuator fault that is one operation on one value, some of them
+    # overlapping, held values taken when injected, and an E-stop forcing safe inputs
+    steps = [(0.2, "sensor_bias", "belt_speed", "bias = 0.05, duration = 0.3"),
+             (0.3, "sensor_gain", "motor_current", "gain = 1.1, duration = 0.5"),
+             (0.6, "sensor_drift", "belt_speed", "rate = 0.1, duration = 0.4"),
+             (1.1, "sensor_spike", "belt_speed", "amplitude = 0.2, duration = 0.01"),
+             (1.2, "sensor_dropout", "motor_current", "value = -1.0, duration = 0.1"),
+             (1.3, "sensor_stuck", "belt_speed", "duration = 0.2"),
+             (1.6, "actuator_effectiveness", "voltage", "factor = 0.8, duration = 0.3"),
+             (1.8, "actuator_saturation", "voltage", "low = -5.0, high = 5.0, duration = 0.4"),
+             (2.3, "actuator_stuck", "voltage", "duration = 0.1")]
+    text = '[scenario]\nname = "ops"\n' + "".join(
+        f'[[steps]]\nat = {at}\ninject = {{ name = "f{i}", kind = "{kind}", '
+        f'target = "{target}", {params} }}\n' for i, (at, kind, target, params)
+        in enumerate(steps))
+    text += "[[steps]]\nat = 2.5\nestop = true\n[[steps]]\nat = 2.7\nreset = \"all\"\n"
+    (tmp_path / "ops.toml").write_text(text)
+    rig = load_rig(CONVEYOR)
+    scenario = load_scenario(tmp_path / "ops.toml", rig)
+    with_c, python = run_both_ways(rig, scenario)
+    assert_same(with_c, python)
+    kinds = [kind for _, kind, *_ in python[1]]
+    assert kinds.count("fault_injected") == kinds.count("fault_cleared") == len(steps)
+    assert {"estop", "reset"} <= set(kinds)
+    columns = tick_columns(rig)[0]
+    sent, y = (python[0][:, columns.index(f"{w}:belt_speed")] for w in ("sent", "y"))
+    assert (sent[200:500] == y[200:500] + 0.05).all()            # the faults did act
+    u = python[0][:, columns.index("u:voltage")]
+    assert (np.abs(u[1800:2200]) <= 5.0).all() and (u[2500:2700] == 0.0).all()
+    assert with_c[2] == rig.n_ticks                               # all of them in C
+
+
+def test_faults_that_act_only_where_they_start_and_end_stay_in_c(tmp_path: Path) -> None:
+    # a load surge (a disturbance) and a parameter step change the plant once, at their
+    # start and end: the ticks between run in C; a drifting parameter changes it every
+    # 0.1 s, so its ticks run in Python
+    scenario_file = tmp_path / "plant_faults.toml"
+    scenario_file.write_text("""
+[scenario]
+name = "plant_faults"
+
+[[steps]]
+at = 0.4
+inject = { name = "surge", kind = "disturbance", target = "belt_load", value = 8.0, \
+           duration = 0.8 }
+
+[[steps]]
+at = 1.6
+inject = { name = "slip", kind = "plant_step", target = "A[0,0]", factor = 1.1, \
+           duration = 0.7 }
+
+[[steps]]
+at = 3.0
+inject = { name = "wear", kind = "plant_drift", target = "A[2,2]", rate = 0.2, \
+           update = 0.1, duration = 0.5 }
+""")
+    rig = load_rig(GUARDED)
+    scenario = load_scenario(scenario_file, rig)
+    with_c, python = run_both_ways(rig, scenario)
+    assert_same(with_c, python)
+    rows = python[0]
+    columns = tick_columns(rig)[0]
+    load = rows[:, columns.index("d:belt_load")]
+    assert (load[400:1200] == 8.0).all() and not load[1200:].any()
+    kinds = [kind for _, kind, *_ in python[1]]
+    assert kinds.count("fault_injected") == kinds.count("fault_cleared") == 3
+    assert with_c[2] == rig.n_ticks - 500          # every tick but the drift's
 
 
 def two_loop_rig(tmp_path: Path, kp: float = 4.0, span: float = 2.0,
@@ -163,6 +234,23 @@ def test_limits_screened_in_c_warn_in_the_same_ticks(tmp_path: Path, many: bool)
     warned = {name for _, kind, _, _, name in python[1] if kind == "limit_warn"}
     assert {"ya_band", "ya_rate", "ub_high"} <= warned, python[1]
     assert 100 < with_c[2] < rig.n_ticks   # both kinds of tick ran
+
+
+def test_limits_judge_the_demanded_input_while_it_is_forced(tmp_path: Path) -> None:
+    # under an E-stop the plant gets the safe input (0) while the limits judge what the
+    # loop demands, as the Python tick does: the demand leaving its band warns then too
+    rig = two_loop_rig(tmp_path, limits=[{"name": "ua_band", "signal": "u:ua",
+                                          "warn_low": -1.2, "warn_high": 1.2}])
+    (tmp_path / "estop.toml").write_text('[scenario]\nname = "estop"\n[[steps]]\n'
+                                         'at = 0.5\nestop = true\n[[steps]]\nat = 1.5\n'
+                                         'reset = "all"\n')
+    with_c, python = run_both_ways(rig, load_scenario(tmp_path / "estop.toml", rig))
+    assert_same(with_c, python)
+    u = python[0][:, tick_columns(rig)[0].index("u:ua")]
+    assert (u[251:750] == 0.0).all()
+    warned = [tick for tick, kind, *_ in python[1] if kind == "limit_warn"]
+    assert any(250 < tick < 750 for tick in warned), python[1]
+    assert 100 < with_c[2] < rig.n_ticks
 
 
 @pytest.mark.parametrize("scenario", [None, "belt_sensor_stuck", "link_lost"])

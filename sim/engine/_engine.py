@@ -20,10 +20,10 @@ Order inside tick k, at plant time t_k = k * tick:
 
 Scenario steps and operator commands act at the start of a tick (_scenario.py).
 
-In fast mode, runs of plain ticks (nothing active but the plant, built-in PID loops,
-limits inside their warn bands and the record) go to C in one call each (_stretch.py),
-with the same record bit for bit;
-every other tick, and every tick in real time, runs the stages above in Python.
+In fast mode, runs of plain ticks (an LTI plant under built-in PID loops, limits inside
+their warn bands, and nothing active that needs Python every tick: see _stretch.py) go
+to C in one call each, with the same record bit for bit; every other tick, and every
+tick in real time, runs the stages above in Python.
 
 Anything the model, the controller or a link raises ends the run through one stop path
 that records the error as an event; every row recorded up to then is kept.

@@ -1,5 +1,7 @@
 /* Plain ticks in C: the fast-mode tick of an LTI plant under built-in PID loops, with
- * every fault, safety and scenario feature idle (sim/engine/_stretch.py decides that).
+ * nothing active that needs Python in every tick (sim/engine/_stretch.py decides that):
+ * faults that are one arithmetic operation on a sensor or actuator value, disturbances,
+ * parameter steps and interlocks that force safe inputs are done here too.
  *
  * Each tick does what sim/engine/_engine.py's stages do, in the same order and with the
  * same floating-point operations, so the record is bit for bit the one the Python tick
@@ -34,6 +36,15 @@ enum { WINDUP_UNWIND = 0, WINDUP_FREEZE = 1, WINDUP_OFF = 2 };
 /* larger magnitudes go to the Python tick, whose finiteness test squares them */
 #define HUGE_VALUE 1e150
 
+/* A sensor or actuator fault as one operation on one value (sim/faults/_faults.py):
+ * v = a, v += a, v *= a, v = min(max(v, a), b), v += a * (t - b). */
+enum { OP_SET = 0, OP_ADD = 1, OP_MUL = 2, OP_CLAMP = 3, OP_DRIFT = 4 };
+enum { ON_INPUT = 0, ON_SENT = 1 };
+typedef struct {
+    int64_t place, kind, at;
+    double a, b;
+} fault_op;
+
 /* One PID loop: settings, then the state the Python object holds between ticks. */
 typedef struct {
     int64_t measure, drive, reference, windup;
@@ -65,6 +76,15 @@ typedef struct {
      * values, the limits' values, kept until the tick is done */
     pid_loop *loops_next;
     double *drive, *seen_now;
+    /* the active faults' operations, in the order they were injected */
+    int64_t n_ops;
+    fault_op *ops;
+    /* interlocks that force safe inputs: which inputs, their safe values; the demanded
+     * inputs (scratch), which the limits judge */
+    int64_t forcing;
+    const uint8_t *force_mask;
+    const double *safe_u;
+    double *demand;
 } stretch;
 
 static void plant_product(const stretch *s) {
@@ -76,6 +96,34 @@ static void plant_product(const stretch *s) {
     else
         ((gemv32_fn)s->gemv)(ROW_MAJOR, NO_TRANS, (int)rows, (int)cols, 1.0, s->block,
                              (int)cols, xu, 1, 0.0, s->next, 1);
+}
+
+/* The faults' operations on the values at ``place``, as the Python tick applies them
+ * (Python's min(max(v, a), b) keeps v unless a > v, then the result unless b < it). */
+static void apply_faults(const stretch *s, int64_t place, double *v, double t) {
+    for (int64_t i = 0; i < s->n_ops; i++) {
+        const fault_op *op = &s->ops[i];
+        if (op->place != place)
+            continue;
+        double *x = &v[op->at];
+        switch (op->kind) {
+        case OP_SET: *x = op->a; break;
+        case OP_ADD: *x += op->a; break;
+        case OP_MUL: *x *= op->a; break;
+        case OP_CLAMP:
+            if (op->a > *x) *x = op->a;
+            if (op->b < *x) *x = op->b;
+            break;
+        default: *x += op->a * (t - op->b); break;
+        }
+    }
+}
+
+/* Safety.force: the safe value of every input a tripped interlock forces. */
+static void force_safe(const stretch *s, double *u) {
+    for (int64_t i = 0; i < s->m; i++)
+        if (s->force_mask[i])
+            u[i] = s->safe_u[i];
 }
 
 static int plain(const double *v, int64_t count) {
@@ -149,7 +197,13 @@ int64_t run_stretch(stretch *s, int64_t k0, int64_t count, const double *refs,
             cmd[s->loops[i].drive] = drive[i];
         if (!plain(cmd, s->m))
             return j;
+        double t = (double)k * s->tick;
         memcpy(u, cmd, (size_t)s->m * sizeof(double));
+        apply_faults(s, ON_INPUT, u, t);
+        if (s->forcing) {
+            memcpy(s->demand, u, (size_t)s->m * sizeof(double));
+            force_safe(s, u);
+        }
         plant_product(s);
         if (s->disturbed)
             for (int64_t i = 0; i < s->n; i++)
@@ -157,10 +211,17 @@ int64_t run_stretch(stretch *s, int64_t k0, int64_t count, const double *refs,
         if (!plain(x_next, s->n) || !plain(y, s->p))
             return j;
         memcpy(y_rec, y, (size_t)s->p * sizeof(double));
-        if (!inside_warn_bands(s, row, seen_now))
-            return j;
+        if (s->n_limits) {
+            if (s->forcing)        /* the limits judge the demanded inputs */
+                memcpy(u, s->demand, (size_t)s->m * sizeof(double));
+            if (!inside_warn_bands(s, row, seen_now))
+                return j;
+            if (s->forcing)
+                force_safe(s, u);
+        }
         memcpy(sent, y, (size_t)s->p * sizeof(double));
-        row[1] = (double)k * s->tick;
+        apply_faults(s, ON_SENT, sent, t);
+        row[1] = t;
         row[4] = 1.0;
         memcpy(out + j * s->n_columns, row, (size_t)s->n_columns * sizeof(double));
         memcpy(x, x_next, (size_t)s->n * sizeof(double));

@@ -1,9 +1,11 @@
 """Stretches of plain fast-mode ticks run in C (sim/engine/_stretch.c).
 
 A plain tick is one of an LTI plant (one step per tick) under the built-in PID loops,
-in fast mode, with no link, no signal chain, no fault active, no interlock forcing or
-freezing, no scenario condition watched and every limit's value inside its warn band
-(each limit's screen runs in C): nothing in it can raise an event. The engine hands
+in fast mode, with no link, no signal chain, no fault that needs Python in every tick
+(sensor and actuator faults that are one arithmetic operation, disturbances and
+parameter steps are done in C), no interlock freezing the plant (one forcing safe
+inputs is done in C), no scenario condition watched and every limit's value inside its
+warn band (each limit's screen runs in C): nothing in it can raise an event. The engine hands
 every run of such ticks up to its next orders (operator commands, fault ends, scenario
 steps) to run_stretch and runs every other tick itself, so each feature is still there
 the tick it is needed, and idle ones cost nothing.
@@ -25,6 +27,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from plantrig.sim.faults._faults import FaultOp
 from plantrig.sim.model._controllers import Pid, PidLoops
 from plantrig.sim.model._plant import LinearStepper
 
@@ -60,7 +63,15 @@ class _Fields(ctypes.Structure):
                 ("limit_at", ctypes.c_void_p), ("warn_low", ctypes.c_void_p),
                 ("warn_high", ctypes.c_void_p), ("rate_warn_tick", ctypes.c_void_p),
                 ("seen", ctypes.c_void_p), ("loops_next", ctypes.c_void_p),
-                ("drive", ctypes.c_void_p), ("seen_now", ctypes.c_void_p)]
+                ("drive", ctypes.c_void_p), ("seen_now", ctypes.c_void_p),
+                ("n_ops", ctypes.c_int64), ("ops", ctypes.c_void_p),
+                ("forcing", ctypes.c_int64), ("force_mask", ctypes.c_void_p),
+                ("safe_u", ctypes.c_void_p), ("demand", ctypes.c_void_p)]
+
+
+# one fault_op of _stretch.c (sim/faults/_faults.py's FaultOp)
+OP_DTYPE = np.dtype([("place", np.int64), ("kind", np.int64), ("at", np.int64),
+                     ("a", np.float64), ("b", np.float64)])
 
 
 @functools.cache
@@ -150,6 +161,8 @@ class Stretch:
         # the C tick's scratch: next loop states, drive values, limit values
         self.scratch = (np.zeros_like(self.state), np.zeros(len(loops)),
                         np.zeros_like(self.seen))
+        safety = engine.safety                         # its mask changes in place
+        self.demand = np.zeros(stepper.n_inputs)
         block, step_out, ed_d = stepper.arrays()       # changed in place, never replaced
         self.fields = _Fields(
             gemv[0], int(gemv[1]), stepper.n_states, stepper.n_inputs, stepper.n_outputs,
@@ -159,7 +172,10 @@ class Stretch:
             len(self.watched), int(rates), 0, self.watched.ctypes.data,
             self.bounds[0].ctypes.data, self.bounds[1].ctypes.data,
             self.bounds[2].ctypes.data, self.seen.ctypes.data,
-            *(a.ctypes.data for a in self.scratch))
+            *(a.ctypes.data for a in self.scratch), 0, None, 0, safety.mask.ctypes.data,
+            safety.safe_u.ctypes.data, self.demand.ctypes.data)
+        self._ops: list[FaultOp] | None = None       # the faults' operations loaded
+        self._op_array = np.zeros(0, dtype=OP_DTYPE)
         self._fields_at = ctypes.addressof(self.fields)
         self._refs_at, self._out_at = self.refs.ctypes.data, self.out.ctypes.data
         self.ticks = 0                  # ticks run in C so far
@@ -185,10 +201,17 @@ class Stretch:
         """Whether the ticks from now on are plain until something changes at orders."""
         engine = self.engine
         scenario, safety = engine.scenario, engine.safety
-        return not (engine.faults.on or safety.forcing or safety.freezing
+        faults = engine.faults
+        return not ((faults.on and faults.ops is None) or safety.freezing
                     or safety.stop_reason or engine.stop_requested
                     or (scenario is not None and scenario.watching)
                     or (self.limits is not None and not self.limits.all_ok))
+
+    def _load(self, ops: list[FaultOp]) -> None:
+        """Hand the active faults' operations to the C tick."""
+        self._op_array = np.array([tuple(op) for op in ops], dtype=OP_DTYPE)
+        self.fields.n_ops = len(ops)
+        self.fields.ops = self._op_array.ctypes.data if ops else None
 
     def run(self, k: int, end: int) -> int:
         """Ticks k .. end - 1 as far as they are plain, recorded on the engine's tape;
@@ -209,6 +232,11 @@ class Stretch:
             self._ints[i, AT_INTEGRAL + 3] = y_prev is not None
         fields, limits = self.fields, self.limits
         fields.disturbed = self.stepper.disturbed
+        fields.forcing = engine.safety.forcing
+        ops = engine.faults.ops if engine.faults.on else None
+        if ops is not self._ops:
+            self._load(ops or [])
+            self._ops = ops
         if limits is not None:
             self.seen[:] = limits.last_values()
             fields.primed = limits.primed

@@ -34,7 +34,7 @@ import math
 import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
@@ -353,6 +353,20 @@ def _check_param(key: str, value: float) -> str:
     return ""
 
 
+# A sensor or actuator fault as one arithmetic operation on one value, for the C tick
+# (sim/engine/_stretch.c): v = a, v += a, v *= a, v = min(max(v, a), b), v += a * (t - b)
+OP_SET, OP_ADD, OP_MUL, OP_CLAMP, OP_DRIFT = range(5)
+ON_INPUT, ON_SENT = 0, 1
+
+
+class FaultOp(NamedTuple):
+    place: int      # ON_INPUT (the plant's input) or ON_SENT (the values for the controller)
+    kind: int
+    at: int         # which value: the input or output index
+    a: float
+    b: float = 0.0
+
+
 @dataclass
 class _Active:
     spec: FaultSpec
@@ -362,6 +376,7 @@ class _Active:
     end: int | None
     apply: Callable[..., Any] | None = None
     rng: np.random.Generator | None = None
+    op: FaultOp | None = None       # ``apply`` as one operation, where it is one
 
 
 class Faults:
@@ -387,6 +402,11 @@ class Faults:
         self.plant_on = False
         self.next_end = math.inf
         self._next_drift = math.inf
+        # the per-tick work of the active faults as FaultOps in injection order, or None
+        # when some fault needs the Python tick every tick (noise, a delay, a link fault
+        # or a lost link, a drifting parameter); disturbances and parameter steps have
+        # none, they act where they start and end
+        self.ops: list[FaultOp] | None = []
         m, p = len(rig.inputs), len(rig.outputs)
         self._u_col = slice(columns.index(f"u:{rig.inputs[0].name}"),
                             columns.index(f"u:{rig.inputs[0].name}") + m) if m else slice(0, 0)
@@ -490,6 +510,14 @@ class Faults:
         self.next_end = min((f.end for f in self.active if f.end is not None),
                             default=math.inf)
         self.on = bool(self.active) or self.lost
+        self._update_ops()
+
+    def _update_ops(self) -> None:
+        per_tick = [f for f in self.active if f.group in ("sensor", "actuator")]
+        self.ops = None if (self.link_in_on or self.link_out_on
+                            or self._next_drift < math.inf
+                            or any(f.op is None for f in per_tick)) \
+            else [f.op for f in per_tick if f.op is not None]
 
     # -- sensor and actuator faults ----------------------------------------------------
     def _sensor_fn(self, f: _Active, k0: int) -> Callable[[int, float, Vector], None]:
@@ -499,21 +527,25 @@ class Faults:
         if kind == "sensor_stuck":
             held = p["value"] if not math.isnan(p["value"]) else float(
                 self.row[self._sent_col + i])
+            f.op = FaultOp(ON_SENT, OP_SET, i, held)
 
             def fn(k: int, t: float, v: Vector) -> None:
                 v[i] = held
         elif kind == "sensor_bias":
             b = p["bias"]
+            f.op = FaultOp(ON_SENT, OP_ADD, i, b)
 
             def fn(k: int, t: float, v: Vector) -> None:
                 v[i] += b
         elif kind == "sensor_drift":
             rate = p["rate"]
+            f.op = FaultOp(ON_SENT, OP_DRIFT, i, rate, t0)
 
             def fn(k: int, t: float, v: Vector) -> None:
                 v[i] += rate * (t - t0)
         elif kind == "sensor_gain":
             g = p["gain"]
+            f.op = FaultOp(ON_SENT, OP_MUL, i, g)
 
             def fn(k: int, t: float, v: Vector) -> None:
                 v[i] *= g
@@ -525,11 +557,13 @@ class Faults:
                 v[i] += std * rng.standard_normal()
         elif kind == "sensor_dropout":
             open_value = p["value"]
+            f.op = FaultOp(ON_SENT, OP_SET, i, open_value)
 
             def fn(k: int, t: float, v: Vector) -> None:
                 v[i] = open_value
         else:  # sensor_spike
             a = p["amplitude"]
+            f.op = FaultOp(ON_SENT, OP_ADD, i, a)
 
             def fn(k: int, t: float, v: Vector) -> None:
                 v[i] += a
@@ -546,16 +580,19 @@ class Faults:
         if kind == "actuator_stuck":
             held = p["value"] if not math.isnan(p["value"]) else float(
                 self.row[self._u_col][i])
+            f.op = FaultOp(ON_INPUT, OP_SET, i, held)
 
             def fn(k: int, u: Vector) -> None:
                 u[i] = held
         elif kind == "actuator_effectiveness":
             factor = p["factor"]
+            f.op = FaultOp(ON_INPUT, OP_MUL, i, factor)
 
             def fn(k: int, u: Vector) -> None:
                 u[i] *= factor
         elif kind == "actuator_saturation":
             lo, hi = p["low"], p["high"]
+            f.op = FaultOp(ON_INPUT, OP_CLAMP, i, lo, hi)
 
             def fn(k: int, u: Vector) -> None:
                 u[i] = min(max(u[i], lo), hi)
@@ -678,6 +715,7 @@ class Faults:
             self._next_drift = k + every
         else:
             self._next_drift = math.inf
+        self._update_ops()
         changes: list[ParameterChange] = []
         for f in faults:
             where, _ = plant_target(self.rig, f.spec.target)
