@@ -112,7 +112,7 @@ def run_case(case: Case) -> dict[str, Any]:
                        "measured": float(v.measured), "limit": float(v.limit),
                        "unit": v.unit, "passed": bool(v.passed), "detail": v.detail}
                       for v in verdicts])
-    except Exception as exc:  # any failure of one case is its row, never the campaign's
+    except (Exception, SystemExit) as exc:  # any failure of one case is its row
         row.update(status=ERROR, outcome="", reason="", exit_code=None, ticks=0,
                    error=f"{type(exc).__name__}: {exc}", verdicts=[])
     row["wall_s"] = time.perf_counter() - started

@@ -256,3 +256,49 @@ def test_a_signal_stops_a_run_with_the_dashboard_open(tmp_path: Path, xvfb: str)
     assert "Traceback" not in err and "SystemExit" not in err, err
     assert code == 5 and "outcome: STOPPED (signal SIGTERM)" in out, (out, err)
     check_agrees(folder, "stopped", "signal SIGTERM")
+
+
+def exiting_tank(tmp_path: Path, exit_line: str, where: str) -> Path:
+    """The shipped tank rig with a model module that calls exit() ``where``: at import
+    (module level) or inside its dynamics once the level passes 0.35 m."""
+    source = (REPO / "configs" / "tank_model.py").read_text()
+    if where == "import":
+        source += f"\n{exit_line}\n"
+    else:
+        source = source.replace("def dynamics(t, x, u, p):\n",
+                                f"def dynamics(t, x, u, p):\n    if x[0] > 0.35:\n"
+                                f"        {exit_line}\n", 1)
+        assert exit_line in source
+    (tmp_path / "tank_model.py").write_text(source)
+    rig = tmp_path / "tank.toml"
+    rig.write_text((REPO / "configs" / "tank.toml").read_text())
+    return rig
+
+
+@pytest.mark.parametrize("exit_line", ["import sys; sys.exit(0)", "raise SystemExit(3)"])
+def test_a_model_calling_exit_is_a_fault_never_success(tmp_path: Path, exit_line: str) -> None:
+    # exit code 0 (or 3, "a verdict failed") from the user's module must not become the
+    # run's: the run is a fault, its record finished
+    rig = exiting_tank(tmp_path, exit_line, "dynamics")
+    code, out, err = finished(start_run(rig, tmp_path / "runs", "--fast"))
+    assert code == 1, (out, err)
+    assert "outcome: FAULT (SystemExit" in out and "Traceback" not in err
+    (summary_file,) = (tmp_path / "runs").glob("*/summary.json")
+    folder = summary_file.parent
+    summary = json.loads(summary_file.read_text())
+    assert summary["ended"] == "fault" and summary["exit_code"] == 1
+    assert 0 < summary["ticks_run"] < summary["ticks_planned"]
+    assert verify_folder(folder).ok
+
+
+@pytest.mark.parametrize("exit_line", ["import sys; sys.exit(0)", "raise SystemExit(3)"])
+def test_a_model_calling_exit_at_import_is_a_rig_file_mistake(tmp_path: Path,
+                                                             exit_line: str) -> None:
+    rig = exiting_tank(tmp_path, exit_line, "import")
+    for command in (["check", str(rig)], ["run", str(rig), "--out", str(tmp_path / "runs")]):
+        done = subprocess.run([sys.executable, "-m", "plantrig", *command],
+                              capture_output=True, text=True, timeout=120)
+        assert done.returncode == 2, (command, done.stdout, done.stderr)
+        assert "plant.module" in done.stderr and "SystemExit" in done.stderr
+        assert "Traceback" not in done.stderr
+    assert not (tmp_path / "runs").exists()

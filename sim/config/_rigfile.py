@@ -465,7 +465,7 @@ def _ode_plant(c: Checker, t: dict[str, Any], path: Path, n: int, m: int,
         assert spec is not None and spec.loader is not None
         module = importlib.util.module_from_spec(spec)
         spec.loader.exec_module(module)
-    except Exception as exc:  # the user's module may raise anything while importing
+    except (Exception, SystemExit) as exc:  # the user's module may even call exit()
         c.add("plant.module", f"importing {module_path.name} failed: "
                               f"{type(exc).__name__}: {exc}")
         return None, method, substeps
@@ -492,7 +492,7 @@ def _ode_plant(c: Checker, t: dict[str, Any], path: Path, n: int, m: int,
     for key, fn, size in (("dynamics", plant.dynamics, n), ("output", plant.output, p)):
         try:
             value = fn(0.0, x_probe, u_probe, plant.params)
-        except Exception as exc:  # the user's function is untrusted here
+        except (Exception, SystemExit) as exc:  # the user's function is untrusted
             c.add(f"plant.{key}", f"calling it at x0 raised {type(exc).__name__}: {exc}")
             return None, method, substeps
         if value.shape != (size,):

@@ -361,7 +361,8 @@ class Engine:
                 self._ticks()
         except _RunEnds as end:
             ended, reason = end.ended, end.reason
-        except Exception as exc:  # the one stop path for model, controller and link errors
+        except (Exception, SystemExit) as exc:  # the one stop path for model,
+            # controller and link errors (a model module calling exit() among them)
             self._event(self.done, "error", "".join(
                 traceback.format_exception_only(type(exc), exc)).strip())
             ended, reason = FAULT, f"{type(exc).__name__}: {exc}"

@@ -626,7 +626,7 @@ def linearize(plant: OdePlant, x0: Vector) -> tuple[Matrix, Matrix]:
     u0 = np.zeros(m)
     try:
         f0 = _ode_at(plant, x0, u0)
-    except Exception as exc:  # the user's function is untrusted here
+    except (Exception, SystemExit) as exc:  # the user's function is untrusted here
         raise ModelError("dynamics", f"calling it at x0 raised {type(exc).__name__}: {exc}") \
             from None
     if not np.all(np.isfinite(f0)):
