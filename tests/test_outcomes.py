@@ -136,8 +136,8 @@ def test_a_controller_that_never_answers_is_a_fault(tmp_path: Path) -> None:
     assert summary["exit_code"] == 1 and summary["ticks_run"] == summary["ticks_planned"]
     rules = {r["rule"]: r["passed"] for r in summary["acceptance"]}
     assert rules == {"ran to the end": True, "link kept": False,
-                     "controller answered": False, "real time held": rules["real time held"],
-                     "no unexpected trip": True}
+                     "controller answered": False, "commands usable": True,
+                     "real time held": rules["real time held"], "no unexpected trip": True}
     kinds = [e["kind"] for e in read_run(folder).events]
     assert kinds.count("rule_failed") >= 2 and kinds[-1] == "run_end"
 
@@ -302,3 +302,16 @@ def test_a_model_calling_exit_at_import_is_a_rig_file_mistake(tmp_path: Path,
         assert "plant.module" in done.stderr and "SystemExit" in done.stderr
         assert "Traceback" not in done.stderr
     assert not (tmp_path / "runs").exists()
+
+
+def test_a_run_of_unusable_commands_is_not_completed(tmp_path: Path) -> None:
+    # a controller whose commands are NaN (here: the level sensor reads NaN after 5 s)
+    # is held at its last good input; the run is a fault that says so, not a success
+    rig = exiting_tank(tmp_path, "pass", "dynamics")
+    model = tmp_path / "tank_model.py"
+    model.write_text(model.read_text().replace(
+        "def output(t, x, u, p):\n",
+        "def output(t, x, u, p):\n    if t > 5.0:\n        return np.array([np.nan, x[1]])\n"))
+    code, out, err = finished(start_run(rig, tmp_path / "runs", "--fast"))
+    assert code == 1, (out, err)
+    assert "outcome: FAULT (acceptance rule 'commands usable' not met:" in out

@@ -142,13 +142,16 @@ def _kind_problem(kind: str, value: Any) -> str | None:
         return None
     if kind == "matrix":
         if isinstance(value, list) and value and all(is_number(v) for v in value):
-            return None  # a single row is accepted as a 1-row (or 1-column) matrix
+            return _not_finite(value)  # one row: a 1-row (or 1-column) matrix
         if not isinstance(value, list) or not all(
                 isinstance(r, list) and all(is_number(v) for v in r) for r in value):
             return expected
         if len({len(r) for r in value}) > 1:
             return f"rows have different lengths {[len(r) for r in value]}"
-        return None
+        return next(filter(None, (_not_finite(r, f"[{i}]") for i, r in enumerate(value))),
+                    None)
+    if kind == "vector" and isinstance(value, list) and all(is_number(x) for x in value):
+        return _not_finite(value)
     fits = {
         "int": lambda v: isinstance(v, int) and not isinstance(v, bool),
         "str": lambda v: isinstance(v, str),
@@ -159,6 +162,15 @@ def _kind_problem(kind: str, value: Any) -> str | None:
         "any": lambda v: True,
     }[kind]
     return None if fits(value) else expected
+
+
+def _not_finite(numbers: list[Any], row: str = "") -> str | None:
+    """The first NaN or infinite entry of a list of numbers, as a mistake (a matrix, a
+    table's points or a state vector has no use for one; it would reach the plant)."""
+    for i, v in enumerate(numbers):
+        if not math.isfinite(v):
+            return f"expected finite numbers, found {v!r} at {row}[{i}]"
+    return None
 
 
 MISSING: Any = object()

@@ -74,6 +74,7 @@ class RunFacts:
     skipped_slots: int
     trips: tuple[tuple[int, str], ...] = ()
     rehearsed_losses: int = 0      # link losses an injected fault made: not the link's
+    unusable_commands: int = 0     # ticks whose command was NaN or infinite (input held)
 
 
 @dataclass(frozen=True)
@@ -126,6 +127,9 @@ def judge(rules: AcceptanceRules, facts: RunFacts,
     else:
         out.append(RuleResult("link kept", None, "no link", "a link"))
         out.append(RuleResult("controller answered", None, "built-in controller", "a link"))
+    out.append(RuleResult("commands usable", facts.unusable_commands == 0,
+                          f"{facts.unusable_commands} tick(s) with a NaN or infinite "
+                          "command, the last good input held", "none"))
     if facts.realtime:
         late = facts.overruns + facts.skipped_slots
         share = late / facts.ticks_run if facts.ticks_run else 0.0
