@@ -184,6 +184,11 @@ def build_scenario(doc: dict[str, Any], path: Path, rig: Rig, text: str = "") ->
               if cmd.kind == "inject_fault"}
     phases = {str(cmd.args["name"]) for s in steps if s for cmd in s.commands
               if cmd.kind == "mark_phase"}
+    for i, step in enumerate(steps):     # a clear that matches nothing is a typo, caught
+        for cmd in step.commands if step else ():   # here, not as a refusal mid-run
+            if cmd.kind == "clear_fault" and cmd.args and cmd.args["name"] not in faults:
+                c.add(f"steps[{i}].clear", not_one_of(cmd.args["name"], ["all", *sorted(faults)],
+                                                      "faults the scenario injects"))
     verdicts = parse_verdicts(c, doc, rig, columns, interlocks, faults, phases)
     if c.issues:
         raise ScenarioFileError(c.issues)
