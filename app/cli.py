@@ -25,6 +25,7 @@ if TYPE_CHECKING:
     Subcommands = argparse._SubParsersAction[argparse.ArgumentParser]
 
 EXIT_OK, EXIT_FAULT, EXIT_USAGE, EXIT_VERDICT, EXIT_STOPPED = 0, 1, 2, 3, 5
+MIN_TEST_S = 0.1          # the shortest --bench pacing test that says anything
 EXIT_CLOSED_PIPE = 141   # 128 + SIGPIPE, what shell tools give when their reader quits
 EXIT_MEANINGS = {0: "completed", 1: "fault", 2: "usage mistake", 3: "a verdict failed",
                  4: "tripped", 5: "stopped", 6: "interrupted"}
@@ -146,10 +147,9 @@ def cmd_run(args: argparse.Namespace) -> int:
     realtime = True if args.realtime else False if args.fast else None
     show_caution()
     out = Path(args.out)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        print(f"error: cannot create run folder parent {out}: {exc.strerror}", file=sys.stderr)
+    problem = _outputs_problem(out, args.junit)
+    if problem:
+        print(f"error: {problem}", file=sys.stderr)
         return EXIT_USAGE
     dashboard = _open_dashboard(rig, out) if args.gui else None
     if args.gui and dashboard is None:
@@ -231,6 +231,28 @@ def cmd_run(args: argparse.Namespace) -> int:
     return code
 
 
+def _outputs_problem(out: Path, junit: str | None) -> str:
+    """Why the run's outputs cannot be written, or "": the runs folder is made, and a
+    --junit path checked before the run, so that a run that passes is never reported
+    as a fault for want of its report file."""
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        return f"cannot create run folder parent {out}: {exc.strerror}"
+    if not junit:
+        return ""
+    path = Path(junit)
+    if path.is_dir():
+        why = "is a folder"
+    elif not path.parent.is_dir():
+        why = f"no folder {path.parent}"
+    elif not os.access(path if path.exists() else path.parent, os.W_OK):
+        why = "not writable"
+    else:
+        return ""
+    return f"--junit {junit}: {why}; nothing was run"
+
+
 def _write_junit(path: str, rig_name: str, scenario: Any, summary: dict[str, Any]) -> bool:
     """run --junit: this rehearsal as one JUnit test case (the form campaigns write)."""
     from plantrig._junit import judged_case, write_junit
@@ -277,6 +299,19 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return replay(args.folder, screenshot=args.screenshot)
 
 
+def _test_seconds(text: str) -> float:
+    """--seconds: a pacing test long enough to say anything (a test of 0 s paced one
+    tick and said the rate held)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of seconds, found {text!r}") \
+            from None
+    if not value >= MIN_TEST_S or math.isinf(value):
+        raise argparse.ArgumentTypeError(f"expected at least {MIN_TEST_S:g} s, found {text}")
+    return value
+
+
 def add_check(sub: Subcommands) -> None:
     from plantrig._model_trust import TRUST_HELP
 
@@ -299,8 +334,8 @@ def add_check(sub: Subcommands) -> None:
                    help="also judge whether this machine holds the rig's rate: what decides "
                         "it here, a short pacing test at the rig's tick, the largest rate "
                         "that would hold (exit code 1 when the rate does not hold)")
-    p.add_argument("--seconds", type=float, default=2.0,
-                   help="length of the --bench pacing test (default 2)")
+    p.add_argument("--seconds", type=_test_seconds, default=2.0,
+                   help="length of the --bench pacing test (default 2; at least 0.1)")
     p.set_defaults(func=cmd_check)
 
 

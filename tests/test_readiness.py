@@ -39,6 +39,18 @@ def test_the_report_reads_this_machine_and_its_verdict_is_the_exit_code() -> Non
         assert "of each" in facts["real-time throttling"].value
 
 
+def test_a_pacing_test_too_short_to_say_anything_is_a_usage_mistake() -> None:
+    # a test of 0 s paced one tick and said the rate held (exit 0)
+    for seconds in ("0", "-5", "0.05", "nan"):
+        proc = subprocess.run([sys.executable, "-m", "plantrig", "check",
+                               str(REPO / "configs" / "conveyor.toml"), "--bench",
+                               "--seconds", seconds], capture_output=True, text=True,
+                              timeout=120)
+        assert proc.returncode == 2, (seconds, proc.stdout, proc.stderr)
+        assert "--seconds: expected at least 0.1 s" in proc.stderr
+        assert "HOLDS" not in proc.stdout
+
+
 def test_kernel_cpu_lists_are_read_as_the_kernel_writes_them() -> None:
     # the list format of Documentation/admin-guide/cputopology (common practice)
     assert _cpu_list("0-2,5,7-8") == {0, 1, 2, 5, 7, 8}

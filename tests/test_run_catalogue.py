@@ -40,6 +40,16 @@ def runs(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return out
 
 
+def test_a_junit_file_that_cannot_be_written_stops_the_run_before_it_starts(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # found after the run, it turned a completed run into exit 1 while its summary said 0
+    assert run(tmp_path / "runs", str(CONVEYOR), "--duration", "0.2",
+               "--junit", str(tmp_path / "nowhere" / "x.xml")) == 2
+    err = capsys.readouterr().err
+    assert "error: --junit" in err and "no folder" in err and "nothing was run" in err
+    assert not list((tmp_path / "runs").glob("*/summary.json"))
+
+
 def test_run_junit(runs: Path) -> None:
     passed = ET.parse(runs.parent / "pass.xml").getroot()
     assert (passed.get("tests"), passed.get("failures"), passed.get("errors")) == ("1", "0", "0")

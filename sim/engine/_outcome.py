@@ -32,9 +32,10 @@ EXIT_CODES = {COMPLETED: 0, FAULT: 1, TRIPPED: 4, STOPPED: 5, INTERRUPTED: 6}
 
 EXIT_CODE_HELP = """exit codes:
   0  completed: every planned tick ran and every acceptance rule held
-     (and, with --scenario, every verdict passed)
-  1  fault: link lost, controller silent, real time not held, model error,
-     run record not written, recorder died
+     (and, for a run with a scenario, every verdict passed)
+  1  fault: link lost, controller silent, NaN or infinite commands, real time
+     not held, model error, run record (or --junit file) not written, recorder
+     died
   2  rig file, scenario file or usage mistake: nothing was run
   3  completed, but a scenario verdict failed
   4  tripped: an interlock latched that the rig or scenario did not expect
