@@ -35,6 +35,8 @@ def _load(path: str, overrides: list[str] | None = None, trust_model: bool = Fal
     from plantrig._model_trust import model_guard
     from plantrig.sim import RigFileError, load_rig_with_overrides
 
+    if _not_a_rig(path):
+        raise SystemExit(EXIT_USAGE)
     refusal = model_guard(path, overrides=overrides or (), trust=trust_model)
     if refusal:
         print(f"error: {path}: {refusal}. replay, verify, report and export read a run "
@@ -55,17 +57,24 @@ def _print_issues(path: str, exc: RigFileError) -> None:
           file=sys.stderr)
 
 
-def _scenario_not_rig(path: str) -> bool:
-    """True (after saying so) when ``path`` is a scenario file given where a rig is due."""
+def _not_a_rig(path: str) -> bool:
+    """True (after saying so) when ``path`` is a scenario or campaign file given where a
+    rig is due (the rig checker would list a dozen mistakes that miss the point)."""
     import tomllib
 
     try:
         doc = tomllib.loads(Path(path).read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
         return False   # the rig checker says what is wrong with it
-    if "scenario" in doc and "rig" not in doc:
+    if "rig" in doc:
+        return False
+    if "scenario" in doc:
         print(f"error: {path} is a scenario file, not a rig file; check it against the rig "
               f"it rehearses: plantrig check RIG --scenario {path}", file=sys.stderr)
+        return True
+    if "campaign" in doc:
+        print(f"error: {path} is a campaign file, not a rig file; run it with: "
+              f"plantrig campaign {path}", file=sys.stderr)
         return True
     return False
 
@@ -73,8 +82,6 @@ def _scenario_not_rig(path: str) -> bool:
 def cmd_check(args: argparse.Namespace) -> int:
     from plantrig.sim import RigFileError, summarize
 
-    if _scenario_not_rig(args.rig):
-        return EXIT_USAGE
     rig = _load(args.rig, trust_model=args.trust_model)
     model = summarize(rig.plant, rig.tick, rig.x0, rig.method, rig.substeps)
     print(f"{rig.path}: ok")

@@ -105,6 +105,13 @@ def test_check_lists_safety_and_checks_a_scenario_without_running(tmp_path: Path
     mixed_up = subprocess.run([sys.executable, "-m", "plantrig", "check", str(scenario)],
                               capture_output=True, text=True, timeout=60)
     assert mixed_up.returncode == 2 and "is a scenario file, not a rig file" in mixed_up.stderr
+    campaign = REPO / "configs" / "campaigns" / "release_spread.toml"
+    for command in ("check", "run"):     # one line that says what it is, not a dozen
+        given = subprocess.run([sys.executable, "-m", "plantrig", command, str(campaign)],
+                               capture_output=True, text=True, timeout=60)
+        assert given.returncode == 2, given.stderr
+        assert given.stderr.strip() == (f"error: {campaign} is a campaign file, not a rig "
+                                        f"file; run it with: plantrig campaign {campaign}")
     bad = tmp_path / "bad.toml"
     bad.write_text(scenario.read_text().replace('reset = "link_watchdog"', 'reset = "nope"'))
     refused = subprocess.run([sys.executable, "-m", "plantrig", "check", str(rig),
