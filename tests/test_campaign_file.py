@@ -131,6 +131,10 @@ BAD = [
     ("grid typo", f'[campaign]\n[[rigs]]\nfile = "{TANK}"\n[rigs.grid]\n'
                   '"plant.params.arae" = [0.1]\n', 'rigs[0].grid."plant.params.arae"',
      "no key 'arae' in plant.params (plant.params.arae does not exist); did you mean 'area'?"),
+    ("draw typo", f'[campaign]\n[[rigs]]\nfile = "{TANK}"\n[rigs.draw]\n'
+                  '"plant.params.arae" = { dist = "uniform", spread_pct = 20 }\n',
+     'rigs[0].draw."plant.params.arae"',
+     "no key 'arae' in plant.params (plant.params.arae does not exist); did you mean 'area'?"),
     ("grid empty", f'[campaign]\n[[rigs]]\nfile = "{TANK}"\n[rigs.grid]\n'
                    '"plant.params.area" = []\n', 'rigs[0].grid."plant.params.area"',
      "expected a non-empty list of values, found a list of 0"),

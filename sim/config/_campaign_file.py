@@ -276,6 +276,8 @@ def _entry(c: Checker, t: dict[str, Any], where: str, campaign: Path,
     for key, spec in draw_t.items():
         here = f'{where}.draw."{key}"'
         nominal = _nominal(key, rig_doc, scenarios)
+        if nominal is None and not _key_ok(c, here, key, 0.0, rig_doc, scenarios):
+            continue     # no such key: say that (with a did-you-mean), not what follows
         draw = _draw(c, here, key, spec, nominal)
         if draw is not None and _key_ok(c, here, key, draw.values[0] if draw.values
                                         else nominal if nominal is not None else 0.0,
