@@ -188,6 +188,28 @@ def write_manifest(folder: Path) -> dict[str, Any]:
     return doc
 
 
+def check_manifest(folder: Path) -> dict[str, list[str]]:
+    """Every file of a campaign folder against campaign_manifest.json: the names
+    changed (size or SHA-256), missing and extra. Raises ValueError when the manifest
+    cannot be read as one."""
+    try:
+        doc = json.loads((folder / CAMPAIGN_MANIFEST).read_text(encoding="utf-8"))
+        listed = doc["files"]
+        if doc.get("format") != "plantrig-campaign-manifest" or not isinstance(listed, dict):
+            raise ValueError("not a plantrig campaign manifest")
+        expected = {name: (int(v["bytes"]), str(v["sha256"])) for name, v in listed.items()}
+    except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError) as exc:
+        raise ValueError(f"{CAMPAIGN_MANIFEST}: cannot be read ({exc})") from None
+    present = {p.relative_to(folder).as_posix(): p for p in folder.rglob("*")
+               if p.is_file() and not p.name.startswith(".")}
+    present.pop(CAMPAIGN_MANIFEST, None)
+    changed = [name for name, (size, sha) in sorted(expected.items()) if name in present
+               and (present[name].stat().st_size != size
+                    or sha256_file(present[name]) != sha)]
+    return {"changed": changed, "missing": sorted(set(expected) - set(present)),
+            "extra": sorted(set(present) - set(expected))}
+
+
 def read_journal(path: Path) -> dict[str, dict[str, Any]]:
     """Finished case rows by case id; a torn last line (killed mid-write) is dropped."""
     rows: dict[str, dict[str, Any]] = {}

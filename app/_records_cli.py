@@ -20,6 +20,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from plantrig._campaign_out import CAMPAIGN_MANIFEST, check_manifest
 from plantrig.sim import (
     DERIVED,
     DRAFT_MARK,
@@ -33,6 +34,7 @@ from plantrig.sim import (
     generate_keypair,
     read_for_display,
     recover_run,
+    sha256_file,
     sign_folder,
     verify_folder,
 )
@@ -136,6 +138,8 @@ def _recovered_outcome(report: dict[str, Any]) -> int:
 
 def cmd_verify(args: argparse.Namespace) -> int:
     folder = _folder(args.folder)
+    if not (folder / MANIFEST).exists() and (folder / CAMPAIGN_MANIFEST).exists():
+        return _verify_campaign(folder)
     try:
         result = verify_folder(folder, Path(args.public_key) if args.public_key else None)
     except ManifestError as exc:
@@ -157,6 +161,25 @@ def cmd_verify(args: argparse.Namespace) -> int:
         return EXIT_OK
     print(f"{folder}: FAILED", file=sys.stderr)
     return EXIT_NOT_INTACT
+
+
+def _verify_campaign(folder: Path) -> int:
+    """verify on a campaign folder: every file against campaign_manifest.json."""
+    try:
+        found = check_manifest(folder)
+    except ValueError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        print(f"{folder}: FAILED", file=sys.stderr)
+        return EXIT_NOT_INTACT
+    print(f"{CAMPAIGN_MANIFEST} SHA-256: {sha256_file(folder / CAMPAIGN_MANIFEST)}")
+    for label, names in found.items():
+        for name in names:
+            print(f"{label}: {name}")
+    if any(found.values()):
+        print(f"{folder}: FAILED", file=sys.stderr)
+        return EXIT_NOT_INTACT
+    print(f"{folder}: ok, every file of the campaign matches {CAMPAIGN_MANIFEST}")
+    return EXIT_OK
 
 
 def _env_passphrase(name: str) -> bytes | None:
@@ -317,10 +340,12 @@ def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
                                    "and print manifest.json's own SHA-256. A signature "
                                    "file must be well formed; with --public-key it must "
                                    f"also be valid. Files under {DERIVED}/ (reports, "
-                                   "exports) are not covered.",
+                                   "exports) are not covered. A campaign folder is checked "
+                                   f"against its {CAMPAIGN_MANIFEST} (every file, kept run "
+                                   "folders included).",
                        epilog="exit codes:\n  0  ok\n  1  the folder fails verify (or has no "
                               "manifest)\n  2  no such folder", formatter_class=raw)
-    p.add_argument("folder", help="run folder")
+    p.add_argument("folder", help="run folder or campaign folder")
     p.add_argument("--public-key", metavar="FILE", help="Ed25519 public key (PEM)")
     p.set_defaults(func=cmd_verify)
 

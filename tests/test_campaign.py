@@ -14,6 +14,7 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import shutil
 import signal
 import socket
 import subprocess
@@ -272,3 +273,26 @@ def test_resume_refuses_a_changed_campaign(one_worker: Path, tmp_path: Path) -> 
                           timeout=120)
     assert proc.returncode == 2
     assert "the campaign file changed since this campaign started" in proc.stderr
+
+
+def test_verify_checks_a_campaign_folder_against_its_manifest(one_worker: Path,
+                                                             tmp_path: Path) -> None:
+    folder = tmp_path / "copy"
+    shutil.copytree(one_worker, folder)
+
+    def verify() -> subprocess.CompletedProcess[str]:
+        return subprocess.run([sys.executable, "-m", "plantrig", "verify", str(folder)],
+                              capture_output=True, text=True, timeout=60)
+
+    intact = verify()
+    assert intact.returncode == 0, intact.stderr
+    assert "every file of the campaign matches campaign_manifest.json" in intact.stdout
+    kept = next(folder.glob("cases/*/summary.json")).relative_to(folder).as_posix()
+    with open(folder / kept, "a") as f:       # a kept run folder is covered too
+        f.write(" ")
+    (folder / "cases.csv").unlink()
+    (folder / "notes.txt").write_text("added later")
+    tampered = verify()
+    assert tampered.returncode == 1 and f"{folder}: FAILED" in tampered.stderr
+    assert {f"changed: {kept}", "missing: cases.csv", "extra: notes.txt"} <= set(
+        tampered.stdout.splitlines())
