@@ -289,3 +289,14 @@ def test_unreadable_file(tmp_path: Path) -> None:
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode == 2 and "cannot read" in proc.stderr
     assert "Traceback" not in proc.stderr
+
+
+def test_a_broken_reference_is_one_mistake_not_two(tmp_path: Path) -> None:
+    # its name still counts, so the loop that uses it is not reported as well
+    for old, new in (('kind = "step"\nat = 0.1\nto = 1.0', 'kind = "table"\npoints = [[0.0, nan]]'),
+                     ('kind = "step"', 'kind = "square"')):
+        path = write(tmp_path, GOOD.replace(old, new, 1))
+        with pytest.raises(RigFileError) as info:
+            load_rig(path)
+        assert [i.key for i in info.value.issues] == ["references[0].points" if "nan" in new
+                                                     else "references[0].kind"]

@@ -542,6 +542,7 @@ def _references(c: Checker, doc: dict[str, Any]) -> list[NamedReference]:
         unit = c.take(entry, "unit", where, "str", default="") or ""
         kind = c.take(entry, "kind", where, "str", check=one_of(REFERENCE_KINDS))
         if kind is None:
+            _keep_name(c, where, name, unit, out)
             continue
         c.no_unknown(entry, {"name", "unit", "kind"} | REFERENCE_KEYS[kind], where,
                      renamed=RENAMED_REFERENCE_KEYS[kind])
@@ -573,11 +574,20 @@ def _references(c: Checker, doc: dict[str, Any]) -> list[NamedReference]:
                         waveform = Table([(p[0], p[1]) for p in points], between)
                     except ValueError as exc:
                         c.add(f"{where}.points", str(exc).split(": ", 1)[-1])
-        if name is not None and waveform is not None:
-            if any(r.name == name for r in out):
-                c.add(f"{where}.name", f"duplicate reference name {name!r}")
-            out.append(NamedReference(name, unit, waveform))
+        _keep_name(c, where, name, unit, out, waveform)
     return out
+
+
+def _keep_name(c: Checker, where: str, name: str | None, unit: str,
+               out: list[NamedReference], waveform: Reference | None = None) -> None:
+    """Add the reference to ``out``. One whose waveform is wrong (a mistake already
+    recorded: nothing will run) keeps its name with a stand-in waveform, so that a loop
+    using it is not reported as a second mistake."""
+    if name is None:
+        return
+    if any(r.name == name for r in out):
+        c.add(f"{where}.name", f"duplicate reference name {name!r}")
+    out.append(NamedReference(name, unit, waveform if waveform is not None else Step()))
 
 
 def _ramp(c: Checker, where: str, ramp: Ramp) -> Ramp | None:
