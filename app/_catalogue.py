@@ -7,6 +7,14 @@ and ``plantrig campaign`` add their folder when they finish; ``plantrig runs`` f
 brings the index up to date with the folders (a missing, moved or changed folder, or a
 missing or unreadable catalogue file, is simply indexed again), then lists.
 An index that cannot be written never fails a run: it is rebuilt on the next listing.
+
+A listing does not take summary.json's word for a run: each entry keeps what
+``plantrig verify`` said of the folder (``verify_problem``: every file's size and SHA-256
+against manifest.json; a campaign's summary.json against campaign_manifest.json) and a
+stamp of the size and modification time of every file it read. A folder whose stamp is
+unchanged is not hashed again, so listing many runs costs a ``stat`` per file; a folder
+with any file changed, added or gone is verified again in full. (Only ``plantrig verify``
+is the full check: a file rewritten with its old size and time kept is noticed there.)
 """
 
 from __future__ import annotations
@@ -36,9 +44,12 @@ SCHEMA = """CREATE TABLE IF NOT EXISTS folders (
     failed INTEGER NOT NULL,      -- ... that did not
     summary_sha256 TEXT NOT NULL,
     manifest_sha256 TEXT NOT NULL,
-    summary_mtime_ns INTEGER NOT NULL
+    verify TEXT NOT NULL,         -- 'ok', 'FAILS' (fails verify) or 'unsealed' (no manifest)
+    files_stamp TEXT NOT NULL     -- SHA-256 of every file's path, size and mtime
 )"""
+SCHEMA_VERSION = 2                # PRAGMA user_version; an older catalogue is rebuilt
 CAMPAIGN_SUMMARY_FORMAT = "plantrig-campaign"
+CAMPAIGN_MANIFEST = "campaign_manifest.json"
 EXIT_OK, EXIT_USAGE = 0, 2
 RUNS_EXIT_HELP = """exit codes:
   0  listed (also when nothing matches)
@@ -49,6 +60,9 @@ RUNS_EXIT_HELP = """exit codes:
 def _db(runs: Path) -> Iterator[sqlite3.Connection]:
     con = sqlite3.connect(runs / CATALOGUE, timeout=10)
     try:
+        if con.execute("PRAGMA user_version").fetchone()[0] != SCHEMA_VERSION:
+            con.execute("DROP TABLE IF EXISTS folders")    # only an index: rebuilt
+            con.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
         con.execute(SCHEMA)
         yield con
         con.commit()
@@ -60,9 +74,56 @@ def _sha(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest() if path.is_file() else ""
 
 
-def _entry(runs: Path, folder: Path, summary: dict[str, Any]) -> tuple[Any, ...]:
-    """One catalogue row from a folder's summary.json."""
+def verify_problem(folder: Path, apart: frozenset[str] = frozenset()) -> str | None:
+    """Why a run folder fails ``plantrig verify`` (no key: the signature's form only);
+    None when it passes or has no manifest yet (a record never finished, which keeps its
+    own messages). ``apart``: files judged by other rules and left out here (a rerun's
+    model module, judged by --trust-model and --public-key)."""
+    from plantrig.sim import MANIFEST, ManifestError, verify_folder
+    if not (folder / MANIFEST).is_file():
+        return None
+    try:
+        found = verify_folder(folder)
+    except ManifestError as exc:
+        return str(exc)
+    found.changed = [rel for rel in found.changed if rel not in apart]
+    return None if found.ok else found.problems()
+
+
+def _stamp(folder: Path) -> str:
+    """The size and modification time of every file of ``folder`` (derived/ aside), in
+    one SHA-256: it changes when any file is rewritten, added or removed."""
+    from plantrig.sim import DERIVED
+    digest = hashlib.sha256()
+    for path in sorted(folder.rglob("*")):
+        rel = path.relative_to(folder).as_posix()
+        if path.is_file() and not rel.startswith(f"{DERIVED}/"):
+            st = path.stat()
+            digest.update(f"{rel}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
+    return digest.hexdigest()
+
+
+def _campaign_verify(folder: Path, summary_sha: str) -> str:
+    """A campaign's summary.json against what campaign_manifest.json lists for it."""
+    try:
+        files = json.loads((folder / CAMPAIGN_MANIFEST).read_text(encoding="utf-8"))["files"]
+    except FileNotFoundError:
+        return "unsealed"
+    except (OSError, ValueError, KeyError, TypeError):
+        return "FAILS"
+    listed = files.get("summary.json") if isinstance(files, dict) else None
+    return "ok" if isinstance(listed, dict) and listed.get("sha256") == summary_sha else "FAILS"
+
+
+def _entry(runs: Path, folder: Path, summary: dict[str, Any],
+           sealed_here: bool = False) -> tuple[Any, ...]:
+    """One catalogue row from a folder's summary.json and a check of its record
+    (``sealed_here``: by the command that has just written its manifest from these very
+    files, so hashing them again would only cost a long run's time at its end)."""
+    from plantrig.sim import MANIFEST
+    stamp = _stamp(folder)              # before the check: a later change shows
     summary_path = folder / "summary.json"
+    summary_sha = _sha(summary_path)
     if summary.get("format") == CAMPAIGN_SUMMARY_FORMAT:
         rigs = sorted({g.split("/", 1)[0] for g in summary["by_rig_and_scenario"]})
         scenarios = sorted({g.split("/", 1)[1] for g in summary["by_rig_and_scenario"]} - {"-"})
@@ -71,14 +132,16 @@ def _entry(runs: Path, folder: Path, summary: dict[str, Any]) -> tuple[Any, ...]
                    "passed" if n["passed"] == n["planned"] else "failed")
         return (folder.relative_to(runs).as_posix(), "campaign", ", ".join(rigs),
                 ", ".join(scenarios), summary["started_utc"], outcome, summary["exit_code"],
-                n["passed"], n["done"] - n["passed"] + n["missing"], _sha(summary_path),
-                _sha(folder / "campaign_manifest.json"), summary_path.stat().st_mtime_ns)
+                n["passed"], n["done"] - n["passed"] + n["missing"], summary_sha,
+                _sha(folder / CAMPAIGN_MANIFEST), _campaign_verify(folder, summary_sha), stamp)
     verdicts = summary.get("verdicts") or []
+    verify = ("unsealed" if not (folder / MANIFEST).is_file() else
+              "ok" if sealed_here or not verify_problem(folder) else "FAILS")
     return (folder.relative_to(runs).as_posix(), "run", summary["rig"]["name"],
             _scenario_name(folder), summary["started_utc"], summary["ended"],
             summary.get("exit_code"), sum(bool(v["passed"]) for v in verdicts),
-            sum(not v["passed"] for v in verdicts), _sha(summary_path),
-            _sha(folder / "manifest.json"), summary_path.stat().st_mtime_ns)
+            sum(not v["passed"] for v in verdicts), summary_sha,
+            _sha(folder / MANIFEST), verify, stamp)
 
 
 def _scenario_name(folder: Path) -> str:
@@ -92,12 +155,13 @@ def _scenario_name(folder: Path) -> str:
 
 
 def _index(runs: Path, folder: Path, summary: dict[str, Any]) -> str | None:
-    """Add or replace ``folder``'s entry; the reason when the catalogue cannot be written."""
+    """Add or replace the entry of ``folder``, just finished; the reason when the
+    catalogue cannot be written."""
     try:
         runs, folder = runs.resolve(), folder.resolve()
         with _db(runs) as con:
-            con.execute("INSERT OR REPLACE INTO folders VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
-                        _entry(runs, folder, summary))
+            con.execute("INSERT OR REPLACE INTO folders VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+                        _entry(runs, folder, summary, sealed_here=True))
     except (sqlite3.Error, OSError, KeyError, ValueError) as exc:
         return f"run catalogue {runs / CATALOGUE} not updated ({exc}); `plantrig runs` " \
                "rebuilds it"
@@ -120,8 +184,7 @@ def sync(runs: Path) -> int:
     runs = runs.resolve()
     try:
         with _db(runs) as con:
-            known = {f: (m, s) for f, m, s in con.execute(
-                "SELECT folder, summary_mtime_ns, summary_sha256 FROM folders")}
+            known = dict(con.execute("SELECT folder, files_stamp FROM folders"))
     except sqlite3.DatabaseError:          # not a database: start it again
         (runs / CATALOGUE).unlink(missing_ok=True)
         known = {}
@@ -132,12 +195,11 @@ def sync(runs: Path) -> int:
             folder = summary_path.parent
             rel = folder.relative_to(runs).as_posix()
             present.add(rel)
-            mtime = summary_path.stat().st_mtime_ns
-            if rel in known and known[rel][0] == mtime:
+            if known.get(rel) == _stamp(folder):
                 continue
             try:
                 summary = json.loads(summary_path.read_text(encoding="utf-8"))
-                con.execute("INSERT OR REPLACE INTO folders VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
+                con.execute("INSERT OR REPLACE INTO folders VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
                             _entry(runs, folder, summary))
                 changed += 1
             except (OSError, json.JSONDecodeError, KeyError, TypeError):
@@ -153,12 +215,16 @@ def add_parser(sub: Any) -> None:
                        description="List every run and campaign folder in the runs folder "
                                    f"from its catalogue ({CATALOGUE}), newest first. The "
                                    "catalogue is brought up to date with the folders first "
-                                   "(rebuilt when missing or stale).",
+                                   "(rebuilt when missing or stale). The verify column says "
+                                   "whether the folder passes plantrig verify (FAILS: its "
+                                   "outcome cannot be trusted; unsealed: no manifest), "
+                                   "checked again whenever one of its files changes.",
                        epilog=RUNS_EXIT_HELP,
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--out", default="runs", help="the runs folder (default: runs)")
     p.add_argument("--failed", action="store_true",
-                   help="only runs and campaigns that did not pass (exit code not 0)")
+                   help="only runs and campaigns that did not pass (exit code not 0) or "
+                        "fail verify")
     p.add_argument("--rig", metavar="NAME", help="only those of this rig")
     p.add_argument("--since", metavar="DATE", help="only those started on or after DATE "
                                                    "(YYYY-MM-DD or an ISO time, UTC)")
@@ -183,24 +249,25 @@ def cmd_runs(args: argparse.Namespace) -> int:
         sync(runs)
         with _db(runs.resolve()) as con:
             rows = list(con.execute(
-                "SELECT started_utc, kind, rig, scenario, outcome, exit_code, passed, failed, "
-                "folder FROM folders ORDER BY started_utc DESC, folder"))
+                "SELECT started_utc, kind, rig, scenario, outcome, exit_code, verify, passed, "
+                "failed, folder FROM folders ORDER BY started_utc DESC, folder"))
     except (sqlite3.Error, OSError) as exc:
         print(f"error: {runs / CATALOGUE}: {exc}", file=sys.stderr)
         return EXIT_USAGE
     shown = []
     for row in rows:
-        started, kind, rig, _, _, code, *_ = row
-        if args.failed and code == 0:
+        started, kind, rig, _, _, code, verify, *_ = row
+        if args.failed and code == 0 and verify != "FAILS":
             continue
         if args.rig and args.rig not in [r.strip() for r in rig.split(",")]:
             continue
         if since is not None and _dt.datetime.fromisoformat(started) < since:
             continue
         shown.append(row)
-    head = ("started (UTC)", "kind", "rig", "scenario", "outcome", "exit", "pass/fail", "folder")
-    table = [head, *[(s[:19].replace("T", " "), k, r, sc or "-", o, str(c), f"{p}/{f}", fo)
-                     for s, k, r, sc, o, c, p, f, fo in shown]]
+    head = ("started (UTC)", "kind", "rig", "scenario", "outcome", "exit", "verify",
+            "pass/fail", "folder")
+    table = [head, *[(s[:19].replace("T", " "), k, r, sc or "-", o, str(c), v, f"{p}/{f}", fo)
+                     for s, k, r, sc, o, c, v, p, f, fo in shown]]
     widths = [max(len(row[i]) for row in table) for i in range(len(head))]
     for row in table:
         print("  ".join(cell.ljust(w) for cell, w in zip(row, widths, strict=True)).rstrip())

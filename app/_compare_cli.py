@@ -13,17 +13,21 @@ import datetime as _dt
 import html
 import json
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-from plantrig.sim import RigFileError
+from plantrig._catalogue import verify_problem
+from plantrig.sim import DRAFT_MARK, DRAFT_PREFIX, RigFileError
 
 EXIT_AGREE, EXIT_DIFFER, EXIT_USAGE = 0, 1, 2
+EXIT_NOT_INTACT = 1         # as report and export: a folder that fails verify
 HELP = """exit codes:
   0  the runs agree: every signal within tolerance, the same events (within the event
      time tolerance) and the same outcome and verdicts
   1  the runs differ: a signal beyond tolerance, an event in one run only or too far
-     apart in time, or a different outcome or verdict
+     apart in time, or a different outcome or verdict; also (nothing compared, as
+     report and export) a folder that fails plantrig verify, without --draft
   2  usage mistake: a folder that is not a finished run folder, runs of rigs that are
      not compatible (the message says what differs), a bad tolerance"""
 
@@ -38,7 +42,8 @@ def add_parser(sub: Any) -> None:
                     "deviation and the first tick beyond tolerance; events, outcomes, "
                     "acceptance rules and verdicts side by side. Writes a comparison "
                     "folder (comparison.json, deviations.csv, events.csv, plots/*.png, "
-                    "index.html). Tolerances default to 0 (bit for bit). docs/compare.md.",
+                    "index.html). Tolerances default to 0 (bit for bit). A folder that "
+                    "fails plantrig verify is refused, unless --draft. docs/compare.md.",
         epilog=HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("run_a", help="run folder A (the reference, e.g. the rehearsal)")
     p.add_argument("run_b", help="run folder B (e.g. the bench run)")
@@ -58,6 +63,10 @@ def add_parser(sub: Any) -> None:
     p.add_argument("--out", default="comparisons",
                    help="folder for comparison folders (default: comparisons)")
     p.add_argument("--no-plots", action="store_true", help="skip the PNG plots and HTML")
+    p.add_argument("--draft", action="store_true",
+                   help="compare even a folder that fails plantrig verify: the console, "
+                        "comparison.json and index.html say which and why, and the "
+                        "comparison folder is named DRAFT-*")
     p.set_defaults(func=cmd_compare)
 
 
@@ -89,12 +98,22 @@ def cmd_compare(args: argparse.Namespace) -> int:
     except ValueError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    untrusted = _untrusted(args.run_a, args.run_b)
+    if untrusted and not args.draft:
+        for line in untrusted:
+            print(f"error: {line}", file=sys.stderr)
+        print("nothing was compared: the record is not what was recorded (plantrig verify "
+              "FOLDER says more; --draft compares it anyway, marked)", file=sys.stderr)
+        return EXIT_NOT_INTACT
     try:
         result = compare_runs(args.run_a, args.run_b, tol, envelopes=not args.no_plots)
     except NotComparable as exc:
         print(f"error: {exc}; nothing was compared", file=sys.stderr)
         return EXIT_USAGE
-    folder = write_comparison(result, Path(args.out), plots=not args.no_plots)
+    folder = write_comparison(result, Path(args.out), plots=not args.no_plots,
+                              untrusted=untrusted)
+    for line in untrusted:
+        print(f"{DRAFT_MARK}: {line}")
     for line in iter_lines(result):
         print(line)
     print(f"comparison folder: {folder}")
@@ -103,9 +122,24 @@ def cmd_compare(args: argparse.Namespace) -> int:
     return code
 
 
-def _new_folder(out: Path, a: Path, b: Path) -> Path:
+def _untrusted(run_a: str, run_b: str) -> list[str]:
+    """One line per folder that fails verify ("A: fails verification: ..."); a folder
+    with a summary but no manifest (a record never finished) only gets a warning."""
+    from plantrig.sim import MANIFEST
+    lines = []
+    for label, path in (("A", Path(run_a)), ("B", Path(run_b))):
+        problem = verify_problem(path)
+        if problem:
+            lines.append(f"{label}: fails verification: {problem} ({path})")
+        elif (path / "summary.json").is_file() and not (path / MANIFEST).is_file():
+            print(f"warning: {label}: {path}: no {MANIFEST}, so its record cannot be "
+                  "verified", file=sys.stderr)
+    return lines
+
+
+def _new_folder(out: Path, a: Path, b: Path, prefix: str = "") -> Path:
     stamp = _dt.datetime.now(_dt.UTC).strftime("%Y%m%d-%H%M%S")
-    base = out / f"{a.name}--vs--{b.name}"[:180]
+    base = out / f"{prefix}{a.name}--vs--{b.name}"[:180]
     folder, n = base.with_name(f"{base.name}-{stamp}"), 1
     while folder.exists():
         n += 1
@@ -114,10 +148,14 @@ def _new_folder(out: Path, a: Path, b: Path) -> Path:
     return folder
 
 
-def write_comparison(result: Any, out: Path, plots: bool = True) -> Path:
-    """Write the comparison folder under ``out``; returns its path."""
-    folder = _new_folder(out, result.a, result.b)
-    (folder / "comparison.json").write_text(json.dumps(result.as_dict(), indent=2) + "\n")
+def write_comparison(result: Any, out: Path, plots: bool = True,
+                     untrusted: Sequence[str] = ()) -> Path:
+    """Write the comparison folder under ``out``; returns its path. ``untrusted``: why a
+    folder compared fails verify (then the folder is named DRAFT-*, comparison.json
+    lists them under "fails_verification" and index.html shows them under the mark)."""
+    folder = _new_folder(out, result.a, result.b, DRAFT_PREFIX if untrusted else "")
+    doc = {**result.as_dict(), **({"fails_verification": list(untrusted)} if untrusted else {})}
+    (folder / "comparison.json").write_text(json.dumps(doc, indent=2) + "\n")
     fields = ["signal", "unit", "within", "bit_identical", "max_abs", "t_max_abs", "max_rel",
               "rms", "scale", "abs_tol", "rel_tol", "first_beyond_t", "first_beyond_tick",
               "ticks_beyond"]
@@ -133,7 +171,7 @@ def write_comparison(result: Any, out: Path, plots: bool = True) -> Path:
             rows.writerow([e.kind, e.what, e.t_a, e.t_b, e.dt, e.within])
     if plots:
         images = _plots(result, folder / "plots")
-        (folder / "index.html").write_text(_html(result, images), encoding="utf-8")
+        (folder / "index.html").write_text(_html(result, images, untrusted), encoding="utf-8")
     return folder
 
 
@@ -174,7 +212,7 @@ def _plots(result: Any, where: Path) -> dict[str, str]:
     return names
 
 
-def _html(result: Any, images: dict[str, str]) -> str:
+def _html(result: Any, images: dict[str, str], untrusted: Sequence[str] = ()) -> str:
     e = html.escape
     oa, ob = result.outcomes["a"], result.outcomes["b"]
     rows = "".join(
@@ -198,8 +236,10 @@ def _html(result: Any, images: dict[str, str]) -> str:
         for v in dict.fromkeys([*oa["verdicts"], *ob["verdicts"]]))
     figures = "".join(f"<figure><img src='{e(p)}' alt='{e(c)}'></figure>"
                       for c, p in images.items())
-    notes = "".join(f"<li>{e(n)}</li>" for n in result.notes)
+    notes = "".join(f"<li>{e(n)}</li>" for n in [*untrusted, *result.notes])
     verdict = "The runs agree within tolerance." if result.agree else "The runs DIFFER."
+    if untrusted:
+        verdict = f"{DRAFT_MARK}: a folder fails verification. {verdict}"
     return f"""<!doctype html><html><head><meta charset="utf-8">
 <title>plantrig comparison</title><style>
 body {{ font-family: sans-serif; margin: 1.5em; }} table {{ border-collapse: collapse; }}

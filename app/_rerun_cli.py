@@ -8,12 +8,13 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from plantrig._catalogue import verify_problem
 from plantrig._console import print_outcome
-from plantrig._model_trust import TRUST_HELP, model_guard
+from plantrig._model_trust import TRUST_HELP, model_guard, model_to_load
 from plantrig._override_options import add_override_options, overrides_of
 from plantrig.sim import EXIT_CODE_HELP, RecordError, RigFileError
 
-EXIT_USAGE = 2
+EXIT_NOT_INTACT, EXIT_USAGE = 1, 2      # 1 as report and export: a folder fails verify
 
 
 def add_parser(sub: Any) -> None:
@@ -29,7 +30,11 @@ def add_parser(sub: Any) -> None:
                     "do to a changed plant. Writes a normal run folder (its summary says "
                     "what it re-ran and with which changes); compare it with the original "
                     "by plantrig compare. docs/compare.md.",
-        epilog=f"{EXIT_CODE_HELP}\n  2 also: not a run folder, a record a rerun cannot "
+        epilog=f"{EXIT_CODE_HELP}\n  1 also: the folder fails plantrig verify (a file "
+               "changed, missing or added, a damaged\n     manifest or a malformed "
+               "signature; its model module is judged by --trust-model\n     and "
+               "--public-key instead): nothing was run, as report and export refuse it"
+               "\n  2 also: not a run folder, a record a rerun cannot "
                "reproduce exactly (the message says why), a model module that came with "
                "the folder and is not vouched for (changed since the run, not listed in "
                "the manifest, an unsigned folder, or a signature that does not verify "
@@ -58,8 +63,24 @@ def _untrusted_module(args: argparse.Namespace) -> str | None:
                        from_folder=Path(args.folder))
 
 
+def _folder_module(folder: Path) -> frozenset[str]:
+    """The model module the folder's rig.toml names, as a path inside the folder (none
+    when it names none or one outside)."""
+    module = model_to_load(folder / "rig.toml")
+    if module is None or not module.is_relative_to(folder.resolve()):
+        return frozenset()
+    return frozenset([module.relative_to(folder.resolve()).as_posix()])
+
+
 def cmd_rerun(args: argparse.Namespace) -> int:
-    from plantrig.sim import RerunError, build_chains, load_scenario, plan_rerun, run_to_folder
+    from plantrig.sim import (
+        RerunError,
+        build_chains,
+        load_scenario,
+        plan_rerun,
+        run_to_folder,
+        verdict_lines,
+    )
 
     if not Path(args.folder).is_dir():
         print(f"error: {args.folder}: not a folder", file=sys.stderr)
@@ -70,6 +91,12 @@ def cmd_rerun(args: argparse.Namespace) -> int:
               "signed by a key you trust, or --plant FILE with your own model",
               file=sys.stderr)
         return EXIT_USAGE
+    problem = verify_problem(Path(args.folder), apart=_folder_module(Path(args.folder)))
+    if problem:
+        print(f"error: {args.folder}: fails verification: {problem}; its record is not "
+              "the one the run wrote, so nothing was run (plantrig verify FOLDER says more)",
+              file=sys.stderr)
+        return EXIT_NOT_INTACT
     try:
         plan = plan_rerun(args.folder, overrides=overrides_of(args), plant_file=args.plant)
         scenario = None
@@ -100,6 +127,9 @@ def cmd_rerun(args: argparse.Namespace) -> int:
     print(f"rerun of: {rerun['of']}")
     print("changes: " + ("; ".join(rerun["changes"]) or "none (bit for bit expected)"))
     print_outcome(folder, summary)
+    if scenario is not None:        # as plantrig run prints a scenario's verdicts
+        print(f"scenario: {scenario.name}")
+        print("\n".join(verdict_lines(summary["verdicts"])))
     code = int(summary["exit_code"])
     print(f"exit code {code}; compare with: plantrig compare {rerun['of']} {folder}")
     return code
