@@ -40,8 +40,9 @@ def dut_text(dut: Any) -> str:
     return ", ".join(parts)
 
 
-def print_outcome(folder: Path, summary: dict[str, Any]) -> None:
-    """The run's outcome, acceptance, timing, link, events and record, on stdout."""
+def print_outcome(folder: Path, summary: dict[str, Any], scenario: str | None = None) -> None:
+    """The run's outcome, acceptance, timing, link, events and record, on stdout; for a
+    rehearsal, the ``scenario``'s name and its verdicts after them."""
     timing = summary["timing"]
     print(f"run folder: {folder}")
     if summary.get("dut"):
@@ -82,6 +83,10 @@ def print_outcome(folder: Path, summary: dict[str, Any]) -> None:
         print(f"record: {problem}")
     if record.get("problems"):
         print(f"record: not finished; free space, then: plantrig recover {folder}")
+    if scenario is not None:
+        from plantrig.sim import verdict_lines
+        print(f"scenario: {scenario}")
+        print("\n".join(verdict_lines(summary["verdicts"])))
 
 
 def link_lines(h: dict[str, Any], tick: float, kind: str = "serial") -> str:

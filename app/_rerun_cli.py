@@ -79,7 +79,6 @@ def cmd_rerun(args: argparse.Namespace) -> int:
         load_scenario,
         plan_rerun,
         run_to_folder,
-        verdict_lines,
     )
 
     if not Path(args.folder).is_dir():
@@ -126,10 +125,7 @@ def cmd_rerun(args: argparse.Namespace) -> int:
     rerun = plan.about["rerun"]
     print(f"rerun of: {rerun['of']}")
     print("changes: " + ("; ".join(rerun["changes"]) or "none (bit for bit expected)"))
-    print_outcome(folder, summary)
-    if scenario is not None:        # as plantrig run prints a scenario's verdicts
-        print(f"scenario: {scenario.name}")
-        print("\n".join(verdict_lines(summary["verdicts"])))
+    print_outcome(folder, summary, scenario.name if scenario is not None else None)
     code = int(summary["exit_code"])
     print(f"exit code {code}; compare with: plantrig compare {rerun['of']} {folder}")
     return code

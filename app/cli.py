@@ -218,11 +218,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         code = EXIT_FAULT   # the run passed, but CI would not see it
     # with --json the summary alone goes to stdout; the text a person reads to stderr
     with contextlib.redirect_stdout(sys.stderr) if args.json else contextlib.nullcontext():
-        print_outcome(folder, summary)
-        if scenario is not None:
-            from plantrig.sim import verdict_lines
-            print(f"scenario: {scenario.name}")
-            print("\n".join(verdict_lines(summary["verdicts"])))
+        print_outcome(folder, summary, scenario.name if scenario is not None else None)
         print(f"exit code {code}: {EXIT_MEANINGS[code]}")
     if args.json:
         print(json.dumps({"folder": str(folder), "exit_code": code, **summary}))

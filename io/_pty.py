@@ -98,6 +98,10 @@ class FdPort:
             return os.write(self.fd, data)
         except BlockingIOError:
             return 0
+        except OSError as exc:    # a write can be the first to meet the hang-up
+            if exc.errno == errno.EIO:
+                raise OSError(errno.EIO, "the far end hung up") from None
+            raise
 
     def wait_readable(self, timeout: float) -> None:
         """Wait until bytes (or an error) are waiting, or ``timeout`` s have passed."""

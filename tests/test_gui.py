@@ -346,7 +346,9 @@ def live_case(tmp_path: Path) -> None:
 
         press("estop")
         frames_until(dash, lambda: dash.model.log.kinds.get("estop"), "estop event")
-        dash.frame()
+        # the status follows the rows on screen, which may trail a fast run's events
+        frames_until(dash, lambda: label("status").startswith("E-STOP LATCHED"),
+                     "the latched E-stop on the status line")
         assert label("status").startswith(f"E-STOP LATCHED since t = "
                                           f"{dash.model.log.estop_time:.3f} s: inputs held")
         t_estop = dash.model.log.latches["estop"].t
@@ -361,10 +363,10 @@ def live_case(tmp_path: Path) -> None:
         kinds = dash.model.log.kinds
         frames_until(dash, lambda: kinds.get("fault_injected") or kinds.get("command_refused"),
                      "the engine's answer to inject_fault")
-        if kinds.get("fault_injected"):
-            dash.frame()
-            assert "FAULT ACTIVE: sensor_stuck:belt_speed" in \
-                dpg.get_item_configuration(T + "plot.0")["label"]
+        if kinds.get("fault_injected"):   # marked once the plots have drawn up to it
+            frames_until(dash, lambda: "FAULT ACTIVE: sensor_stuck:belt_speed" in
+                         dpg.get_item_configuration(T + "plot.0")["label"],
+                         "the active fault on the plot")
         after = tmp_path / "live_after.png"
         regions = dash.view.screenshot(after)
         img = load_png(after)
@@ -539,8 +541,8 @@ def guarded_live_case(tmp_path: Path) -> None:
                 dash.frame()
             time.sleep(0.05)
         assert any(c.kind == "estop" for _, c in op.sent)
-        dash.frame()
-        assert "E-stop" in label("status") and label("status").startswith("TRIPPED by")
+        frames_until(dash, lambda: "E-stop" in label("status"), "the E-stop on the status")
+        assert label("status").startswith("TRIPPED by")
         regions = dash.view.screenshot(tmp_path / "guarded_estop.png")
 
         # the run ends: status, outcome and verdict panel from summary.json; nothing is

@@ -87,6 +87,9 @@ def test_a_slave_whose_master_closed_is_hung_up() -> None:
     pair.close_master()
     with pytest.raises(OSError, match="hung up"):
         port.read_some()
+    # a write can meet the hang-up first (the rig sends every tick): the same words
+    with pytest.raises(OSError, match="hung up"):
+        port.write_some(b"cd")
     port.close()
 
 
