@@ -102,13 +102,20 @@ def test_runs_notices_an_edited_record_after_indexing(
     assert " FAILS " in capsys.readouterr().out
 
 
+def claimed_pass(made: dict[str, Path], tmp_path: Path,
+                 capsys: pytest.CaptureFixture[str]) -> tuple[Path, Path]:
+    """A copy of the failed run whose summary claims a pass, and a comparisons folder
+    (the console captured so far dropped)."""
+    tampered = copy(made["failed"], tmp_path / "b")
+    claim_a_pass(tampered)
+    capsys.readouterr()
+    return tampered, tmp_path / "comparisons"
+
+
 def test_compare_refuses_a_folder_that_fails_verify(
         made: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """A rewritten summary (B) or an edited state column (A) stops the comparison."""
-    tampered = copy(made["failed"], tmp_path / "b")
-    claim_a_pass(tampered)
-    out = tmp_path / "comparisons"
-    capsys.readouterr()
+    tampered, out = claimed_pass(made, tmp_path, capsys)
     assert main(["compare", str(made["failed"]), str(tampered), "--out", str(out),
                  "--no-plots"]) == 1
     err = capsys.readouterr().err
@@ -126,10 +133,7 @@ def test_compare_refuses_a_folder_that_fails_verify(
 def test_compare_draft_says_which_folder_fails_verify(
         made: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """--draft compares anyway, but the console, comparison.json and index.html say so."""
-    tampered = copy(made["failed"], tmp_path / "b")
-    claim_a_pass(tampered)
-    out = tmp_path / "comparisons"
-    capsys.readouterr()
+    tampered, out = claimed_pass(made, tmp_path, capsys)
     assert main(["compare", str(made["failed"]), str(tampered), "--out", str(out),
                  "--draft"]) == 1                           # the outcomes differ
     first = capsys.readouterr().out.splitlines()[0]
