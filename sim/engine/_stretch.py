@@ -5,8 +5,8 @@ in fast mode, with no link, no signal chain, no fault that needs Python in every
 (sensor and actuator faults that are one arithmetic operation, disturbances and
 parameter steps are done in C), no interlock freezing the plant (one forcing safe
 inputs is done in C), no scenario condition watched and every limit's value inside its
-warn band (each limit's screen runs in C): nothing in it can raise an event. The engine hands
-every run of such ticks up to its next orders (operator commands, fault ends, scenario
+warn band (each limit's screen runs in C): nothing in it can raise an event. The
+engine hands every run of such ticks up to its next orders (operator commands, fault ends, scenario
 steps) to run_stretch and runs every other tick itself, so each feature is still there
 the tick it is needed, and idle ones cost nothing.
 

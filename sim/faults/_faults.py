@@ -513,6 +513,7 @@ class Faults:
         self._update_ops()
 
     def _update_ops(self) -> None:
+        """``ops`` for the faults active now (after any start, end or plant rebuild)."""
         per_tick = [f for f in self.active if f.group in ("sensor", "actuator")]
         self.ops = None if (self.link_in_on or self.link_out_on
                             or self._next_drift < math.inf
