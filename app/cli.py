@@ -193,6 +193,10 @@ def cmd_run(args: argparse.Namespace) -> int:
         bench.close()
         _print_issues(args.rig, exc)
         return EXIT_USAGE
+    except ValueError as exc:     # a --port the link cannot use: nothing has started
+        bench.close()
+        print(f"error: --port {args.port}: {exc}; nothing was run", file=sys.stderr)
+        return EXIT_USAGE
     except RuntimeError as exc:   # the reference controller did not start
         bench.close()
         print(f"error: {exc}", file=sys.stderr)

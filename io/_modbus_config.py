@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from plantrig.io._endpoint import parse_endpoint
 from plantrig.sim import LinkSettings, Rig
 
 
@@ -17,8 +18,7 @@ def modbus_setup(rig: Rig, settings: LinkSettings, port: Any = None) -> dict[str
     o = dict(settings.options)
     if port is not None:
         if o["transport"] == "tcp":
-            host, _, number = str(port).rpartition(":")
-            o["port"] = int(number)
+            host, o["port"] = parse_endpoint(str(port))
             if host:
                 o["host"] = host
         else:

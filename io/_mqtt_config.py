@@ -12,6 +12,7 @@ import os
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
+from plantrig.io._endpoint import parse_endpoint
 from plantrig.sim import DEFAULT_QOS, TlsSettings
 
 if TYPE_CHECKING:
@@ -79,10 +80,7 @@ def mqtt_settings(link: LinkSettings, endpoint: Any = None) -> MqttSettings:
     if isinstance(endpoint, int) and not isinstance(endpoint, bool):
         o["port"] = endpoint
     elif isinstance(endpoint, str) and endpoint:
-        host, _, port = endpoint.rpartition(":")
-        if not port.isdigit() or not 0 < int(port) < 65536:
-            raise ValueError(f"expected host:port or a port number, found {endpoint!r}")
-        o["port"] = int(port)
+        host, o["port"] = parse_endpoint(endpoint)
         if host:
             o["host"] = host
     if not o["client_id"]:

@@ -141,3 +141,18 @@ def test_the_controllers_closing_lines_have_one_form_for_every_link(kind: str) -
     said = [part.rsplit(" ", 1)[0] for part in lines[0].split("; ", 1)[1].split(", ")]
     assert said == [COUNT_WORDS[name] for name in LINK_COUNTS[kind]]
     assert end_lines(kind, "stopped", ControllerCounts())[1] == "controller: rig states none"
+
+
+@pytest.mark.parametrize("rig", ["conveyor_mqtt.toml", "conveyor_modbus.toml"])
+@pytest.mark.parametrize("port", ["abc", "127.0.0.1:99999", "127.0.0.1:", "0"])
+def test_a_bad_port_for_a_network_link_runs_nothing(tmp_path: Path, rig: str,
+                                                     port: str) -> None:
+    # it had ended in a traceback (exit 1), or a whole run faulted on a server that
+    # could not listen
+    done = subprocess.run([sys.executable, "-m", "plantrig", "run",
+                           str(REPO / "configs" / rig), "--port", port, "--out",
+                           str(tmp_path / "runs")], capture_output=True, text=True, timeout=60)
+    assert done.returncode == 2, done.stderr
+    assert f"error: --port {port}: expected host:port or a port number 1..65535" in \
+        done.stderr and "Traceback" not in done.stderr
+    assert not list((tmp_path / "runs").glob("*/summary.json"))
