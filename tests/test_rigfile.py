@@ -92,6 +92,8 @@ MISTAKES = [
     ("nan_table_point", ('kind = "step"\nat = 0.1\nto = 1.0',
                          'kind = "table"\npoints = [[0.0, 0.0], [0.5, nan]]'),
      "references[0].points", "found nan at [1][1]"),
+    ("negative_seed", ("duration = 1.0", "duration = 1.0\nseed = -1"), "rig.seed",
+     "expected a seed 0..9223372036854775807, found int -1"),
     ("bad_overrun_policy", ("duration = 1.0", 'duration = 1.0\non_overrun = "burst"'),
      "rig.on_overrun", "expected one of skip, catch_up, stop"),
 ]

@@ -176,7 +176,9 @@ def test_scenario_file_mistakes_are_reported_together(tmp_path: Path) -> None:
                      {"on_trip": "nope", "expect": "u:u ~ 3"},
                      {"at": 0.2, "inject": {"name": "offset", "kind": "sensor_bias",
                                             "target": "y", "bias": 0.1}},
-                     {"at": 0.6, "clear": "ofset"}],
+                     {"at": 0.6, "clear": "ofset"},
+                     {"at": 0.7, "inject": {"kind": "sensor_noise", "target": "y",
+                                            "std": 0.1, "seed": -1}}],
            "verdicts": [{"criterion": "rise_tim"},
                         {"criterion": "trip_within", "interlock": "guard", "fault": "f",
                          "max": 10.0},
@@ -200,6 +202,7 @@ def test_scenario_file_mistakes_are_reported_together(tmp_path: Path) -> None:
                    "steps[4].expect: expected '<column> <op> <number>'",
                    "steps[6].clear: expected one of the faults the scenario injects (all, "
                    "offset), found string 'ofset'; did you mean 'offset'?",
+                   "steps[7].inject.seed: expected a whole number >= 0, found -1",
                    "verdicts[0].criterion: expected one of the criteria",
                    "did you mean 'rise_time'?",
                    "verdicts[1].fault: expected one of the faults the scenario injects",

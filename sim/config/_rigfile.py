@@ -26,6 +26,7 @@ from plantrig.sim.config._checker import (
     describe_value,
     is_number,
     one_of,
+    whole_number,
 )
 from plantrig.sim.config._controller_settings import ControllerSpec, check_controller
 from plantrig.sim.config._dut import DutSpec, parse_dut
@@ -204,7 +205,8 @@ def build_rig(doc: dict[str, Any], path: Path, text: str = "") -> Rig:
     tick = c.take(rig_t, "tick", "rig", "number", check=_positive)
     duration = c.take(rig_t, "duration", "rig", "number", check=_positive)
     mode = c.take(rig_t, "mode", "rig", "str", default="fast", check=one_of(MODES)) or "fast"
-    seed = c.take(rig_t, "seed", "rig", "int", default=0)
+    seed = c.take(rig_t, "seed", "rig", "int", default=0,   # numpy takes no negative
+                  check=whole_number(0, 2**63 - 1, "a seed"))
     on_overrun = c.take(rig_t, "on_overrun", "rig", "str", default="skip",
                         check=one_of(OVERRUN_POLICIES)) or "skip"
     on_silence = c.take(rig_t, "on_link_silence", "rig", "str", default="hold",

@@ -344,6 +344,8 @@ def _check_param(key: str, value: float) -> str:
         return f"expected a finite number, found {value}"
     if key in INT_PARAMS and not (value == int(value) and 1 <= value <= MAX_DELAY_TICKS):
         return f"expected a whole number of ticks 1..{MAX_DELAY_TICKS}, found {value:g}"
+    if key == "seed" and not (value == int(value) and 0 <= value < 2**63):
+        return f"expected a whole number >= 0, found {value:g}"
     if key == "probability" and not 0 <= value <= 1:
         return f"expected a probability 0..1, found {value:g}"
     if key in ("std", "factor") and value < 0:
