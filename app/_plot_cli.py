@@ -12,13 +12,15 @@ import sys
 from pathlib import Path
 
 from plantrig._plots import context, known_signals, panels_for, plot_signals
+from plantrig._records_cli import into_record
 from plantrig.sim import DERIVED, read_for_display
 
 EXIT_OK, EXIT_USAGE = 0, 2
 EXIT_CODES = """exit codes:
   0  the plot was written
   2  usage mistake: not a readable run folder, an unknown signal (the known ones are
-     listed), an output that is not .png or .svg, or a file that cannot be written"""
+     listed), an output that is not .png or .svg or lies in the run folder outside
+     derived/ (the record must not change), or a file that cannot be written"""
 SUFFIXES = (".png", ".svg")
 
 
@@ -37,6 +39,8 @@ def cmd_plot(args: argparse.Namespace) -> int:
         + ".png")
     if out.suffix.lower() not in SUFFIXES:
         print(f"error: --out {out}: expected a .png or .svg file", file=sys.stderr)
+        return EXIT_USAGE
+    if into_record(folder, out):
         return EXIT_USAGE
     ctx = context(record)
     try:

@@ -90,13 +90,19 @@ def _out_dir(folder: Path, out: str | None) -> Path | None:
     if out is None:
         return folder / DERIVED
     target = Path(out)
+    return None if into_record(folder, target) else target
+
+
+def into_record(folder: Path, target: Path) -> bool:
+    """True (after saying so) when ``target`` lies in the run folder outside derived/:
+    a file written there would change the record (verify and signatures would fail)."""
     inside = target.resolve().is_relative_to(folder.resolve())
     if inside and not target.resolve().is_relative_to((folder / DERIVED).resolve()):
         print(f"error: --out {target}: inside the run folder but not in {DERIVED}/; the "
-              "record must not change (use a folder outside it, or the default)",
+              "record must not change (use a place outside it, or the default)",
               file=sys.stderr)
-        return None
-    return target
+        return True
+    return False
 
 
 def cmd_recover(args: argparse.Namespace) -> int:

@@ -363,6 +363,11 @@ def test_plot_writes_png_and_svg_with_limits_trips_and_faults(belt_run: Path,
     assert "no signal 'belt_sped'" in err and "y:belt_speed" in err
     assert main(["plot", str(belt_run), "belt_speed", "--out", str(tmp_path / "a.jpg")]) == 2
     assert main(["plot", str(tmp_path / "nowhere"), "belt_speed"]) == 2
+    capsys.readouterr()                      # never into the record outside derived/
+    assert main(["plot", str(belt_run), "belt_speed", "--out",
+                 str(belt_run / "p.png")]) == 2
+    assert "inside the run folder but not in derived/" in capsys.readouterr().err
+    assert not (belt_run / "p.png").exists()
     assert not (belt_run / "derived" / "plot-belt_speed.png").exists()
     assert main(["plot", str(belt_run), "belt_speed"]) == 0   # default: RUN/derived/
     assert (belt_run / "derived" / "plot-belt_speed.png").is_file()
