@@ -26,6 +26,7 @@ from plantrig.sim import (
     DRAFT_MARK,
     MANIFEST,
     RUN_START,
+    KeyFileError,
     ManifestError,
     Readiness,
     RecordError,
@@ -148,6 +149,9 @@ def cmd_verify(args: argparse.Namespace) -> int:
         return _verify_campaign(folder)
     try:
         result = verify_folder(folder, Path(args.public_key) if args.public_key else None)
+    except KeyFileError as exc:      # the command's key, not the folder, is at fault
+        print(f"error: --public-key {exc}", file=sys.stderr)
+        return EXIT_USAGE
     except ManifestError as exc:
         print(f"error: {exc}", file=sys.stderr)
         print(f"{folder}: FAILED", file=sys.stderr)
@@ -350,7 +354,9 @@ def add_record_commands(sub: argparse._SubParsersAction[argparse.ArgumentParser]
                                    f"against its {CAMPAIGN_MANIFEST} (every file, kept run "
                                    "folders included).",
                        epilog="exit codes:\n  0  ok\n  1  the folder fails verify (or has no "
-                              "manifest)\n  2  no such folder", formatter_class=raw)
+                              "manifest)\n  2  no such folder, or a --public-key file that "
+                              "cannot be read or is not an Ed25519 public key",
+                       formatter_class=raw)
     p.add_argument("folder", help="run folder or campaign folder")
     p.add_argument("--public-key", metavar="FILE", help="Ed25519 public key (PEM)")
     p.set_defaults(func=cmd_verify)

@@ -143,6 +143,7 @@ _HOME: dict[str, str] = {
         [
             "DERIVED",
             "MANIFEST",
+            "KeyFileError",
             "ManifestError",
             "WrongPassphrase",
             "check_signature",
@@ -300,6 +301,7 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim.records._manifest import (
         DERIVED,
         MANIFEST,
+        KeyFileError,
         ManifestError,
         WrongPassphrase,
         check_signature,

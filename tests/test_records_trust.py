@@ -431,3 +431,29 @@ def test_every_single_bit_flip_of_a_real_signature_fails_under_its_key(
     finally:
         path.write_bytes(original)
     assert verify_folder(run_copy, Path(keys[1])).ok
+
+
+def test_a_public_key_that_cannot_be_used_is_the_commands_mistake(
+        run_copy: Path, keys: tuple[str, str], tmp_path: Path,
+        capsys: pytest.CaptureFixture[str]) -> None:
+    # a missing, garbled or non-Ed25519 key says nothing of the folder: exit 2, and the
+    # folder is not declared FAILED
+    from cryptography.hazmat.primitives import serialization
+    from cryptography.hazmat.primitives.asymmetric import rsa
+
+    assert main(["sign", str(run_copy), "--key", keys[0]]) == 0
+    rsa_key = tmp_path / "rsa.public.pem"
+    rsa_key.write_bytes(rsa.generate_private_key(public_exponent=65537, key_size=2048)
+                        .public_key().public_bytes(
+                            serialization.Encoding.PEM,
+                            serialization.PublicFormat.SubjectPublicKeyInfo))
+    garbled = tmp_path / "garbled.pem"
+    garbled.write_text("-----BEGIN PUBLIC KEY-----\nnot base64\n-----END PUBLIC KEY-----\n")
+    for key, words in ((tmp_path / "nope.pem", "cannot read key"),
+                       (garbled, "not a PEM public key"),
+                       (rsa_key, "not an Ed25519 public key")):
+        capsys.readouterr()
+        assert main(["verify", str(run_copy), "--public-key", str(key)]) == 2, key
+        err = capsys.readouterr().err
+        assert words in err and "FAILED" not in err
+    assert main(["verify", str(run_copy), "--public-key", keys[1]]) == 0

@@ -48,6 +48,11 @@ class ManifestError(ValueError):
     """A manifest or signature that cannot be read, made or trusted."""
 
 
+class KeyFileError(ManifestError):
+    """A key file that cannot be read or is not the kind needed: a mistake in the
+    command given, not a fault of the folder."""
+
+
 class WrongPassphrase(ManifestError):
     """An encrypted signing key that the passphrase given (or none) does not open."""
 
@@ -391,7 +396,7 @@ def check_signature(folder: Path, public_key: Path) -> tuple[str, str]:
     doc, signature = read_signature(folder)
     key = _load_key(public_key, private=False)
     if not isinstance(key, Ed25519PublicKey):
-        raise ManifestError(f"{public_key}: not an Ed25519 public key")
+        raise KeyFileError(f"{public_key}: not an Ed25519 public key")
     fingerprint = _fingerprint(key)
     if doc["public_key_sha256"] != fingerprint:
         return "invalid", (f"signed with key {doc['public_key_sha256']}, "
@@ -410,7 +415,7 @@ def _load_key(path: Path, private: bool,
     try:
         data = Path(path).read_bytes()
     except OSError as exc:
-        raise ManifestError(f"{path}: cannot read key ({exc.strerror})") from None
+        raise KeyFileError(f"{path}: cannot read key ({exc.strerror})") from None
     secret: bytes | None = None
     if private and ENCRYPTED_PEM in data[:4096]:
         if passphrase is None:
@@ -424,7 +429,7 @@ def _load_key(path: Path, private: bool,
         if secret is not None:
             raise WrongPassphrase(f"{path}: wrong passphrase (or a damaged key file)") \
                 from None
-        raise ManifestError(f"{path}: not a PEM {'private' if private else 'public'} key "
+        raise KeyFileError(f"{path}: not a PEM {'private' if private else 'public'} key "
                             f"({exc})") from None
 
 
