@@ -30,6 +30,10 @@ OPEN_TIMEOUT_S = 10.0
 WORKER_COMMAND = [sys.executable, "-m", "plantrig.io._modbus_worker"]
 
 
+class ServerNotListening(OSError):
+    """The Modbus server could not start listening; says why."""
+
+
 class ModbusLink(WorkerLink):
     """A ControllerLink over Modbus TCP or RTU (see the module doc)."""
 
@@ -47,15 +51,22 @@ class ModbusLink(WorkerLink):
         self.setup = modbus_setup(rig, settings, port)
 
     def open(self) -> None:
-        """Start the server process; wait until it listens (or says why it cannot)."""
+        """Start the server process; wait until it listens. A server that cannot listen
+        (the address in use, a line setting the port refuses) raises ServerNotListening with its
+        cause, so the run ends at tick 0 as with a serial port that cannot open."""
         if self._sock is not None:
             return
         self._socket_pair()
         self._start_process(WORKER_COMMAND, json.dumps(self.setup).encode())
-        if self._await_events({"link_listening", "link_not_connected"}, OPEN_TIMEOUT_S):
-            return
-        self._events.append(Event(-1, 0.0, "link_not_connected",
-                                  f"the Modbus server did not start within {OPEN_TIMEOUT_S} s"))
+        started = self._await_events({"link_listening", "link_not_connected"},
+                                     OPEN_TIMEOUT_S)
+        refused = [e.detail for e in self._events if e.kind == "link_not_connected"]
+        if refused or self._gone:
+            raise ServerNotListening(refused[-1] if refused else "Modbus server: its "
+                                     "process ended before it listened")
+        if not started:
+            self._events.append(Event(-1, 0.0, "link_not_connected", "the Modbus server "
+                                      f"did not start within {OPEN_TIMEOUT_S} s"))
 
     def describe(self) -> dict[str, Any]:
         s = self.setup

@@ -423,9 +423,11 @@ class Worker:
         try:
             self.server = self._server()
             await self.server.serve_forever(background=True)
-        except (OSError, ValueError, termios.error) as exc:
+        except (OSError, ValueError, RuntimeError, termios.error) as exc:
             why = (f"the serial port refused the line settings (baud, parity, stop bits: "
                    f"{exc}); a pseudo-terminal takes no parity" if isinstance(exc, termios.error)
+                   else f"could not listen on {describe(self.setup)} (in use, or not an "
+                        f"address of this machine)" if isinstance(exc, RuntimeError)
                    else str(exc))
             self._to_loop(b"E" + f"link_not_connected\tModbus server: {why}".encode())
             self._to_loop(b"H" + json.dumps(self.health()).encode())

@@ -365,3 +365,23 @@ def test_lockstep_fast_run_answers_every_tick_like_the_built_in_law(tmp_path: Pa
     # float32 registers round belt_speed and the voltage to 2**-24 relative (about 2e-8
     # m/s at 0.4 m/s; measured 1.8e-8): the same law to within that, with a wide margin
     assert deviation <= 1e-6, deviation
+
+
+def test_a_server_that_cannot_listen_ends_the_run_at_once_with_its_cause(
+        tmp_path: Path) -> None:
+    # it had run its whole length as a link fault, recorded as "did not start within 10 s"
+    taken = socket.socket()
+    taken.bind(("127.0.0.1", 0))
+    taken.listen()
+    port = taken.getsockname()[1]
+    try:
+        done = subprocess.run([sys.executable, "-m", "plantrig", "run",
+                               str(ROOT / "configs" / "conveyor_modbus.toml"), "--port",
+                               f"127.0.0.1:{port}", "--out", str(tmp_path / "runs")],
+                              capture_output=True, text=True, timeout=120)
+    finally:
+        taken.close()
+    assert done.returncode == 1, done.stderr
+    assert (f"outcome: FAULT (ServerNotListening: Modbus server: could not listen on "
+            f"Modbus TCP on 127.0.0.1:{port}") in done.stdout
+    assert "ticks: 0 of " in done.stdout and "Traceback" not in done.stderr
