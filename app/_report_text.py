@@ -259,6 +259,10 @@ def software_rows(record: RunRecord, s: dict[str, Any], readiness: Readiness) ->
                          "written" + (f"; {entry[0]} is its copy as run"
                                       if copy and copy != entry[1].get("sha256") else "")
                          + ")"))
+            changes = entry[1].get("overrides") or []
+            if changes:   # what the run changed on the command line, beside the file
+                rows.append((f"{what} changed for this run", "; ".join(map(str, changes))
+                             + f" (--set and options; {entry[0]} holds the result)"))
         elif name and (record.folder / name).is_file():
             digest = hashlib.sha256((record.folder / name).read_bytes()).hexdigest()
             rows.append((f"{role} {name} SHA-256", digest))

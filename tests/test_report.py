@@ -665,3 +665,18 @@ def test_an_old_mqtt_folders_link_counters_read_under_todays_names(
     # a record with today's names is read as written (serial's bad_channels: > 32 values)
     new = {"link": {"bad_channels": 1.0, "dropped_out": 2.0, "dropped_offline": 0.0}}
     assert current_link_names(new) == new
+
+
+def test_a_run_changed_on_the_command_line_says_so_in_its_report(
+        belt_report: dict, tmp_path: Path) -> None:
+    # the limits table shows the value run; the report must also say it was not the file's
+    out = tmp_path / "runs"
+    assert main(["run", str(REHEARSALS / "conveyor_guarded.toml"), "--fast", "--out",
+                 str(out), "--duration", "0.5", "--set", "limits[0].trip_high=1.2"]) == 0
+    (folder,) = [p for p in out.iterdir() if (p / "summary.json").is_file()]
+    assert main(["report", str(folder)]) == 0
+    text = re.sub(r"<[^>]+>", " ", (folder / "derived" / "report.html").read_text())
+    assert re.search(r"rig file changed for this run\s+limits\[0\]\.trip_high=1\.2; "
+                     r"rig\.duration=0\.5 \(--set and options; rig\.toml holds the result\)",
+                     text), text[:2000]
+    assert "changed for this run" not in belt_report["html"]
