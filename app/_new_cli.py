@@ -10,6 +10,7 @@ starters are examples of our own; the templates live in app/starters/.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from pathlib import Path
 from typing import Any
@@ -20,7 +21,8 @@ EXIT_OK, EXIT_USAGE = 0, 2
 EXIT_CODES = """exit codes:
   0  the starter was written (then: plantrig check FILE)
   2  usage mistake: an unknown kind, FILE (or the ODE module beside it) exists and
-     --force was not given, fmu without --fmu or with an FMU that cannot be read"""
+     --force was not given, fmu without --fmu or with an FMU that cannot be read,
+     a file that cannot be written (then nothing is written)"""
 
 
 def add_parser(sub: Any) -> None:
@@ -28,7 +30,8 @@ def add_parser(sub: Any) -> None:
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("kind", choices=KINDS, help="the kind of plant")
     p.add_argument("file", help="the rig file to write (.toml)")
-    p.add_argument("--fmu", help="fmu: the FMU file the rig runs (named relative to FILE)")
+    p.add_argument("--fmu", help="fmu: the FMU file the rig runs (the starter names it "
+                                  "relative to FILE)")
     p.add_argument("--force", action="store_true", help="overwrite existing files")
     p.set_defaults(func=cmd_new)
 
@@ -59,9 +62,19 @@ def cmd_new(args: argparse.Namespace) -> int:
         print(f"error: {', '.join(existing)} already exist(s); --force overwrites",
               file=sys.stderr)
         return EXIT_USAGE
-    path.parent.mkdir(parents=True, exist_ok=True)
-    for target, text in files.items():
-        target.write_text(text, encoding="utf-8")
+    written: list[Path] = []
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        for target, text in files.items():
+            target.write_text(text, encoding="utf-8")
+            written.append(target)
+    except OSError as exc:
+        for done in written:           # no half a starter (a rig file without its module)
+            done.unlink(missing_ok=True)
+        print(f"error: cannot write {exc.filename or path}: {exc.strerror or exc}; "
+              "nothing was written", file=sys.stderr)
+        return EXIT_USAGE
+    for target in written:
         print(f"wrote {target}")
     print(f"next: plantrig check {path}")
     return EXIT_OK
@@ -85,10 +98,7 @@ def fmu_starter(name: str, fmu: Path, folder: Path) -> str:
     if not inputs or not outputs:
         raise ValueError(f"expected inputs and outputs, found {len(inputs)} input(s) and "
                          f"{len(outputs)} output(s)")
-    try:
-        where = fmu.resolve().relative_to(folder.resolve())
-    except ValueError:
-        where = fmu.resolve()
+    where = Path(os.path.relpath(fmu.resolve(), folder.resolve())).as_posix()  # portable
     lines = [
         f"# A starter rig file written by `plantrig new fmu` for {fmu.name}: set each",
         "# signal's unit and range, the tick and the references, then `plantrig check` it.",

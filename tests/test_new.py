@@ -52,3 +52,17 @@ def test_an_fmu_starter_names_the_fmus_signals(tmp_path: Path) -> None:
     assert [s.name for s in rig.states] == ["current", "motor_speed", "belt_speed"]
     missing = plantrig("new", "fmu", "x.toml", cwd=tmp_path)
     assert missing.returncode == 2 and "--fmu" in missing.stderr
+    # a starter in another folder names the FMU relative to itself: it moves with it
+    (tmp_path / "rigs").mkdir()
+    assert plantrig("new", "fmu", "rigs/belt.toml", "--fmu", "conveyor.fmu",
+                    cwd=tmp_path).returncode == 0
+    assert 'file = "../conveyor.fmu"' in (tmp_path / "rigs" / "belt.toml").read_text()
+    assert plantrig("check", "belt.toml", cwd=tmp_path / "rigs").returncode == 0
+
+
+def test_a_starter_that_cannot_be_written_leaves_nothing_behind(tmp_path: Path) -> None:
+    (tmp_path / "arm_model.py").mkdir()          # where the ODE module would go
+    made = plantrig("new", "ode", "arm.toml", "--force", cwd=tmp_path)
+    assert made.returncode == 2 and "Traceback" not in made.stderr
+    assert "cannot write" in made.stderr and "nothing was written" in made.stderr
+    assert not (tmp_path / "arm.toml").exists()
