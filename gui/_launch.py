@@ -110,7 +110,8 @@ def replay(folder: str | Path, *, frame_cap_hz: float = 30.0,
     if record.rig_note:
         _say(f"warning: {record.rig_note}")
     if not display_available():
-        _say(f"error: {NO_DISPLAY}")
+        _say("error: no display: the replay window needs an X or Wayland display (DISPLAY "
+             "is not set); run it under Xvfb, or use plantrig plot or report instead")
         return 2
     process = start_replay_process(folder, frame_cap_hz=frame_cap_hz, screenshot=screenshot,
                                    exit_after_frames=SCREENSHOT_FRAMES if screenshot else None)
@@ -120,7 +121,7 @@ def replay(folder: str | Path, *, frame_cap_hz: float = 30.0,
         process.stop()
         return 0
     if process.process.exitcode != 0:
-        _say(process.describe_exit())
+        _say(process.describe_exit(live=False))
         return 1
     if screenshot is not None and not Path(screenshot).is_file():
         _say(f"error: the replay window saved no picture at {screenshot}")

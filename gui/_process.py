@@ -133,8 +133,11 @@ class DashboardProcess:
     def alive(self) -> bool:
         return self.process.is_alive()
 
-    def describe_exit(self) -> str:
+    def describe_exit(self, live: bool = True) -> str:
+        """How the window's process ended, in words; ``live``: it watched a run (which
+        its end never affects), not a replay."""
         code = self.process.exitcode
+        after = "; the run is not affected" if live else ""
         if code is None:
             return "dashboard running"
         if code == 0:
@@ -143,14 +146,13 @@ class DashboardProcess:
         if code == EXIT_TAPE_GONE:
             return "the run ended before the dashboard could open its tape"
         if code == EXIT_NO_DISPLAY:
-            return "dashboard not started: no display (DISPLAY is not set); " \
-                   "the run is not affected"
+            return f"dashboard not started: no display (DISPLAY is not set){after}"
         if code < 0:
             name = signal.Signals(-code).name
             hint = " (no display? dearpygui aborts without one)" \
                 if -code == signal.SIGABRT else ""
-            return f"dashboard ended by {name}{never}{hint}; the run is not affected"
-        return f"dashboard failed with exit code {code}{never}; the run is not affected"
+            return f"dashboard ended by {name}{never}{hint}{after}"
+        return f"dashboard failed with exit code {code}{never}{after}"
 
     def wait(self, timeout: float | None = None) -> bool:
         """Wait for the window to be closed; True if the process has ended."""

@@ -810,6 +810,11 @@ def test_cli_refuses_without_display_or_run_folder(tmp_path, monkeypatch, capsys
     assert not any(tmp_path.iterdir())                     # nothing was run
     assert cli_main(["replay", str(tmp_path / "missing")]) == 2
     assert "no such folder" in capsys.readouterr().err
+    # a replay without a display says what a replay can do instead (it has no --gui)
+    folder, _, _ = run_to_folder(load_rig(CONVEYOR), tmp_path / "runs")
+    assert cli_main(["replay", str(folder)]) == 2
+    err = capsys.readouterr().err
+    assert "no display: the replay window needs" in err and "--gui" not in err
     assert cli_main(["replay", str(tmp_path)]) == 2
     assert "no rig.toml" in capsys.readouterr().err
 
