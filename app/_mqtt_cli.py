@@ -49,8 +49,12 @@ def run_mqtt_controller(args: argparse.Namespace, rig: Any, settings: Any,
         print(f"{ready_word} on mqtt {where} ({mqtt.payload}, "
               f"{controller.law.__class__.__name__}, {scheduler})", flush=True)
 
+    def waiting(where: str) -> None:
+        print(f"waiting for the MQTT broker at {where}; retrying until it answers "
+              "(Ctrl-C stops)", file=sys.stderr, flush=True)
+
     reason = serve_reference(controller, mqtt, len(rig.outputs), stop=lambda: bool(stopping),
-                             on_ready=ready)
+                             on_ready=ready, on_waiting=waiting)
     print("\n".join(end_lines(settings.kind, reason, controller.counts)), flush=True)
     return EXIT_OK
 

@@ -49,8 +49,10 @@ class MqttControllerPeer:
     def __init__(self, settings: MqttSettings, n_outputs: int, compute: Compute, *,
                  client_id: str | None = None,
                  on_ready: Callable[[str], None] | None = None,
-                 on_rig_status: RigStatus | None = None) -> None:
+                 on_rig_status: RigStatus | None = None,
+                 on_waiting: Callable[[str], None] | None = None) -> None:
         self.s = settings
+        self.on_waiting = on_waiting     # told once when the broker cannot be reached
         self.n_outputs = n_outputs
         self.compute = compute
         self.on_ready = on_ready
@@ -172,7 +174,10 @@ class MqttControllerPeer:
                         await client.publish(self.s.topic("controller/status"),
                                              self._status("offline"), qos=self.s.qos["status"],
                                              retain=True)
-            except (aiomqtt.MqttError, OSError):
+            except (aiomqtt.MqttError, OSError) as exc:
+                if self.on_waiting is not None:   # once: a controller waits for its
+                    self.on_waiting(f"{self.s.host}:{self.s.port} ({exc})")  # broker,
+                    self.on_waiting = None                # it does not give up
                 with contextlib.suppress(asyncio.TimeoutError):
                     await asyncio.wait_for(asyncio.shield(watch), timeout=delay)
                 delay = min(self.s.reconnect_max, delay * 2)
@@ -182,11 +187,11 @@ class MqttControllerPeer:
 
 def serve_reference(controller: Law, settings: MqttSettings, n_outputs: int, *,
                     stop: Callable[[], bool], on_ready: Callable[[str], None] | None = None,
-                    ) -> str:
+                    on_waiting: Callable[[str], None] | None = None) -> str:
     """Run a plantrig.io ReferenceController over MQTT; why it ended. Its counts
     (controller.counts) take the peer's: answered is the law's own count."""
     peer = MqttControllerPeer(settings, n_outputs, controller.command_for, on_ready=on_ready,
-                              on_rig_status=controller.on_rig_status)
+                              on_rig_status=controller.on_rig_status, on_waiting=on_waiting)
     reason = asyncio.run(peer.run(stop))
     c, mine = controller.counts, peer.counts
     c.rx_bad += mine["bad"]

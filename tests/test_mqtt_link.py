@@ -17,6 +17,7 @@ import contextlib
 import json
 import os
 import select
+import socket
 import struct
 import subprocess
 import sys
@@ -710,3 +711,30 @@ def test_tls_verifies_the_broker_and_insecure_skips_it(tmp_path: Path, make_brok
     assert failed and "certificate verify failed" in failed[0].detail
     insecure = open_with(f'ca_file = "{pki["other"]}"\ninsecure = true')
     assert "link_connected" in kinds(insecure)
+
+
+
+def test_a_controller_without_its_broker_says_it_is_waiting() -> None:
+    # it had waited for ever without a word; it still waits (a bench controller outlives
+    # a broker restart), but says so once, and a signal still ends it cleanly
+    with socket.socket() as unused:              # a loopback port nobody listens on
+        unused.bind(("127.0.0.1", 0))
+        port = unused.getsockname()[1]
+    proc = subprocess.Popen([sys.executable, "-m", "plantrig", "controller",
+                             str(CONFIGS / "conveyor_mqtt.toml"), "--port",
+                             f"127.0.0.1:{port}", "--no-realtime"], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    guard = threading.Timer(60, proc.kill)
+    guard.start()
+    try:
+        assert proc.stderr is not None
+        said = ""
+        while "waiting for the MQTT broker" not in said:
+            said = proc.stderr.readline()
+            assert said, "the controller ended without saying it was waiting"
+        assert f"127.0.0.1:{port}" in said and "Ctrl-C stops" in said
+        proc.terminate()
+        out, _ = proc.communicate(timeout=30)
+    finally:
+        guard.cancel()
+    assert proc.returncode == 0 and "controller: stopped" in out
