@@ -31,6 +31,8 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+from plantrig._campaign_out import CAMPAIGN_MANIFEST
+
 CATALOGUE = "catalogue.sqlite"
 SCHEMA = """CREATE TABLE IF NOT EXISTS folders (
     folder TEXT PRIMARY KEY,      -- path relative to the runs folder
@@ -49,7 +51,6 @@ SCHEMA = """CREATE TABLE IF NOT EXISTS folders (
 )"""
 SCHEMA_VERSION = 2                # PRAGMA user_version; an older catalogue is rebuilt
 CAMPAIGN_SUMMARY_FORMAT = "plantrig-campaign"
-CAMPAIGN_MANIFEST = "campaign_manifest.json"
 EXIT_OK, EXIT_USAGE = 0, 2
 RUNS_EXIT_HELP = """exit codes:
   0  listed (also when nothing matches)

@@ -264,7 +264,7 @@ class Engine:
         self.demand = np.zeros(m)           # u before the safe values, for the limits
         # what the run counts, and the pacing's state
         self.lateness, self.work_time = DurationHistogram(), DurationHistogram()
-        self.overruns = self.skipped = self.done = self.answered = self.unusable = 0
+        self.overruns = self.skipped = self.done = self.answered = 0
         self.orders_due = 0                 # the next tick _take_orders has work at
         self.loop_start = 0
         self._start = self._slot = self._streak = self._began = self._late = 0
@@ -536,7 +536,6 @@ class Engine:
         inputs. Whether they were forced (the demanded u is kept for the limits)."""
         cmd, u = self.cmd, self.stepper.u
         if not math.isfinite(cmd.dot(cmd)):  # NaN/inf anywhere (or |v| > 1e154)
-            self.unusable += 1
             self._event(k, "non_finite_input", f"command {cmd.tolist()}; last good input held")
         elif self.actuator_chain is not None:
             self.actuator_chain.apply(k, cmd, u)
@@ -637,7 +636,7 @@ class Engine:
                              self.answered if link else done, int(health.get("link_lost", 0)),
                              self.realtime, self.overruns, self.skipped,
                              tuple(self.safety.trips), int(health.get("rehearsed_losses", 0)),
-                             self.unusable)
+                             sum(e.kind == "non_finite_input" for e in self.events))
             outcome = settle(ended, reason, judge(self.rig.acceptance, facts,
                                                   self.expected_trips))
             for rule in outcome.rules if ended == COMPLETED else ():  # they decide it

@@ -201,14 +201,14 @@ class Stretch:
         """Whether the ticks from now on are plain until something changes at orders."""
         engine = self.engine
         scenario, safety = engine.scenario, engine.safety
-        faults = engine.faults
-        return not ((faults.on and faults.ops is None) or safety.freezing
+        return not (engine.faults.ops is None or safety.freezing
                     or safety.stop_reason or engine.stop_requested
                     or (scenario is not None and scenario.watching)
                     or (self.limits is not None and not self.limits.all_ok))
 
     def _load(self, ops: list[FaultOp]) -> None:
-        """Hand the active faults' operations to the C tick."""
+        """Hand the active faults' operations to the C tick (ready() saw a list)."""
+        self._ops = ops
         self._op_array = np.array([tuple(op) for op in ops], dtype=OP_DTYPE)
         self.fields.n_ops = len(ops)
         self.fields.ops = self._op_array.ctypes.data if ops else None
@@ -233,12 +233,12 @@ class Stretch:
         fields, limits = self.fields, self.limits
         fields.disturbed = self.stepper.disturbed
         fields.forcing = engine.safety.forcing
-        ops = engine.faults.ops if engine.faults.on else None
-        if ops is not self._ops:
-            self._load(ops or [])
-            self._ops = ops
+        ops = engine.faults.ops
+        assert ops is not None          # ready() let these ticks run here
+        if ops is not self._ops:        # a new list whenever a fault starts or ends
+            self._load(ops)
         if limits is not None:
-            self.seen[:] = limits.last_values()
+            self.seen[:] = limits.values
             fields.primed = limits.primed
         done = self._run(self._fields_at, k, count, self._refs_at, self._out_at)
         if limits is not None and done:

@@ -240,10 +240,6 @@ class LimitBank:
         return ([s.warn_low for s in self.specs], [s.warn_high for s in self.specs],
                 [s.rate_warn * self.tick for s in self.specs], self._rates)
 
-    def last_values(self) -> list[float]:
-        """The values the screen saw at the last tick (rates are measured from them)."""
-        return [float(v) for v in self.values]
-
     def screened_elsewhere(self, values: list[float]) -> None:
         """The screen passed on ticks checked outside this bank (plain ticks in C), the
         last of them seeing ``values``: rates of the next tick are measured from them."""
