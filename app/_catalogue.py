@@ -9,9 +9,9 @@ missing or unreadable catalogue file, is simply indexed again), then lists.
 An index that cannot be written never fails a run: it is rebuilt on the next listing.
 
 A listing does not take summary.json's word for a run: each entry keeps what
-``plantrig verify`` said of the folder (``verify_problem``: every file's size and SHA-256
-against manifest.json; a campaign's summary.json against campaign_manifest.json) and a
-stamp of the size and modification time of every file it read. A folder whose stamp is
+``plantrig verify`` said of the folder (``verify_problem``: every file's size and
+SHA-256 against manifest.json; a campaign's summary.json against campaign_manifest.json)
+and a stamp of the size and modification time of every file it read. A folder whose stamp is
 unchanged is not hashed again, so listing many runs costs a ``stat`` per file; a folder
 with any file changed, added or gone is verified again in full. (Only ``plantrig verify``
 is the full check: a file rewritten with its old size and time kept is noticed there.)
@@ -75,22 +75,6 @@ def _sha(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest() if path.is_file() else ""
 
 
-def verify_problem(folder: Path, apart: frozenset[str] = frozenset()) -> str | None:
-    """Why a run folder fails ``plantrig verify`` (no key: the signature's form only);
-    None when it passes or has no manifest yet (a record never finished, which keeps its
-    own messages). ``apart``: files judged by other rules and left out here (a rerun's
-    model module, judged by --trust-model and --public-key)."""
-    from plantrig.sim import MANIFEST, ManifestError, verify_folder
-    if not (folder / MANIFEST).is_file():
-        return None
-    try:
-        found = verify_folder(folder)
-    except ManifestError as exc:
-        return str(exc)
-    found.changed = [rel for rel in found.changed if rel not in apart]
-    return None if found.ok else found.problems()
-
-
 def _stamp(folder: Path) -> str:
     """The size and modification time of every file of ``folder`` (derived/ aside), in
     one SHA-256: it changes when any file is rewritten, added or removed."""
@@ -121,7 +105,7 @@ def _entry(runs: Path, folder: Path, summary: dict[str, Any],
     """One catalogue row from a folder's summary.json and a check of its record
     (``sealed_here``: by the command that has just written its manifest from these very
     files, so hashing them again would only cost a long run's time at its end)."""
-    from plantrig.sim import MANIFEST
+    from plantrig.sim import MANIFEST, verify_problem
     stamp = _stamp(folder)              # before the check: a later change shows
     summary_path = folder / "summary.json"
     summary_sha = _sha(summary_path)

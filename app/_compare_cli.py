@@ -17,8 +17,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-from plantrig._catalogue import verify_problem
-from plantrig.sim import DRAFT_MARK, DRAFT_PREFIX, RigFileError
+from plantrig.sim import DRAFT_MARK, DRAFT_PREFIX, RigFileError, verify_problem
 
 EXIT_AGREE, EXIT_DIFFER, EXIT_USAGE = 0, 1, 2
 EXIT_NOT_INTACT = 1         # as report and export: a folder that fails verify

@@ -8,11 +8,10 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from plantrig._catalogue import verify_problem
 from plantrig._console import print_outcome
 from plantrig._model_trust import TRUST_HELP, model_guard, model_to_load
 from plantrig._override_options import add_override_options, overrides_of
-from plantrig.sim import EXIT_CODE_HELP, RecordError, RigFileError
+from plantrig.sim import EXIT_CODE_HELP, RecordError, RigFileError, verify_problem
 
 EXIT_NOT_INTACT, EXIT_USAGE = 1, 2      # 1 as report and export: a folder fails verify
 

@@ -160,6 +160,7 @@ _HOME: dict[str, str] = {
             "DRAFT_PREFIX",
             "Readiness",
             "check_folder",
+            "verify_problem",
         ],
         "records._signoff",
     ),
@@ -326,7 +327,13 @@ if TYPE_CHECKING:  # type checkers and editors see every name where it lives
     from plantrig.sim.records._rerun import RerunError, plan_rerun
     from plantrig.sim.records._secrets import SECRET_MARK
     from plantrig.sim.records._signal_labels import SIGNAL_LABELS, SIGNAL_MEANINGS
-    from plantrig.sim.records._signoff import DRAFT_MARK, DRAFT_PREFIX, Readiness, check_folder
+    from plantrig.sim.records._signoff import (
+        DRAFT_MARK,
+        DRAFT_PREFIX,
+        Readiness,
+        check_folder,
+        verify_problem,
+    )
     from plantrig.sim.records._tape import EventTape, MemoryTape, Tape, TapeOverflow, TapeReader
     from plantrig.sim.safety._interlocks import ESTOP, InterlockSpec, SafetySettings
     from plantrig.sim.safety._limits import LimitSpec

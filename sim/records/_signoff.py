@@ -73,6 +73,21 @@ def check_folder(folder: Path, public_key: Path | None = None) -> Readiness:
     return out
 
 
+def verify_problem(folder: Path, apart: frozenset[str] = frozenset()) -> str | None:
+    """Why a run folder fails ``plantrig verify`` (no key: the signature's form only);
+    None when it passes or has no manifest yet (a record never finished, which keeps its
+    own messages). ``apart``: files judged by other rules and left out here (a rerun's
+    model module, judged by --trust-model and --public-key)."""
+    if not (folder / MANIFEST).is_file():
+        return None
+    try:
+        found = verify_folder(folder)
+    except ManifestError as exc:
+        return str(exc)
+    found.changed = [rel for rel in found.changed if rel not in apart]
+    return None if found.ok else found.problems()
+
+
 def _json(path: Path) -> object:
     try:
         return json.loads(path.read_text())
